@@ -1,0 +1,32 @@
+# tracewatch — every target builds .venv itself; only Python 3.11 is needed on the machine.
+PYTHON ?= python3.11
+VENV   := .venv
+PY     := $(VENV)/bin/python
+PIP    := $(VENV)/bin/pip
+
+.PHONY: demo test bench install clean
+
+$(VENV)/.installed: pyproject.toml
+	@command -v $(PYTHON) >/dev/null 2>&1 || { echo "make: $(PYTHON) not found; install Python 3.11 or run 'make PYTHON=python3 ...'"; exit 2; }
+	$(PYTHON) -m venv $(VENV)
+	$(PIP) install --quiet --upgrade pip
+	$(PIP) install --quiet -e .
+	touch $@
+
+$(VENV)/.installed-test: $(VENV)/.installed
+	$(PIP) install --quiet -e '.[test]'
+	touch $@
+
+install: $(VENV)/.installed
+
+demo: $(VENV)/.installed
+	$(VENV)/bin/tracewatch demo --dir ./tracewatch-demo
+
+test: $(VENV)/.installed-test
+	$(PY) -m pytest -q
+
+bench: $(VENV)/.installed-test
+	$(PY) bench/run.py
+
+clean:
+	rm -rf $(VENV) tracewatch-demo .pytest_cache

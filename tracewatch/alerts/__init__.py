@@ -1,0 +1,1 @@
+"""Alerts: verdicts over the threshold, with their explanation; incidents group them."""

@@ -1,0 +1,79 @@
+"""Alerts: a scored session becomes a JSON-ready verdict that explains itself.
+
+Stage: scoring → **alerts** → incidents. The object's fields are a contract (DESIGN.md):
+``alert``, ``alert_id`` (stable for the same session), ``source``, ``session_key``, ``score``
+(higher = more anomalous), ``p_value``, ``reasons``, ``cluster``, ``events``,
+``unseen_events``, ``unexpected``, ``missing``, ``baseline_version`` — plus the step
+difference, the representative session and a few raw sample lines after redaction.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import math
+import re
+from collections import Counter
+
+from ..model.explain import explain
+from ..sessions import Session
+
+REASON_FAR = "far_from_baseline"
+REASON_UNSEEN = "unseen_event"
+REDACTED = "«redacted»"
+
+
+class Redactor:
+    """Replaces matches of the configured patterns in any raw text tracewatch stores or shows."""
+
+    def __init__(self, patterns: list[str]) -> None:
+        self._re = re.compile("|".join(f"(?:{p})" for p in patterns)) if patterns else None
+
+    def __call__(self, text: str) -> str:
+        return self._re.sub(REDACTED, text) if self._re is not None else text
+
+
+def alert_id(session: Session) -> str:
+    """Stable for the same session: its source, key and first raw line (which, in practice,
+    carries a timestamp), independent of file names and offsets."""
+    h = hashlib.blake2b(digest_size=8)
+    h.update(f"{session.source}\x1f{session.key}\x1f{session.first_raw}".encode("utf-8", "replace"))
+    return h.hexdigest()
+
+
+def build_verdict(session: Session, seq: tuple[int, ...], score: float, cluster: int, distance: float,
+                  p_value: float, far: bool, baseline, redact: Redactor, *, explain_it: bool) -> dict:
+    miner = baseline.miner
+    unseen = Counter(e for e in seq if not miner.is_seen(e))
+    reasons = []
+    if far:
+        reasons.append(REASON_FAR)
+    if unseen:
+        reasons.append(REASON_UNSEEN)
+    verdict = {
+        "alert": bool(reasons),
+        "alert_id": alert_id(session),
+        "source": session.source,
+        "session_key": session.key,
+        "score": round(score, 6) if math.isfinite(score) else score,
+        "p_value": round(p_value, 6),
+        "threshold": baseline.conformal.threshold_ if math.isfinite(baseline.conformal.threshold_) else None,
+        "reasons": reasons,
+        "cluster": cluster,
+        "distance": round(distance, 6),
+        "events": len(seq),
+        "unseen_events": [{"template_id": miner.templates[e].id, "template": miner.text(e), "count": n}
+                          for e, n in unseen.items()],
+        "unexpected": [],
+        "missing": [],
+        "baseline_version": baseline.version,
+        "start": session.first_ts,
+        "end": session.last_ts,
+        "closed_by": session.close_reason,
+        "first_offset": session.first_offset,
+    }
+    if explain_it:
+        vec = baseline.vectorizer.vector(seq)
+        verdict.update(explain(seq, vec, cluster, baseline.centers[cluster], baseline.cluster_df[cluster],
+                               baseline.medoids[cluster], baseline.vectorizer, miner.text, miner.is_seen))
+        verdict["samples"] = [redact(s) for s in session.samples]
+    return verdict

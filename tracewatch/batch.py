@@ -1,0 +1,80 @@
+"""Batch driver: feed whole files through the pipeline once (fit, score, templates).
+
+Stage: **sources** (batch). Which source an input file belongs to comes from ``--source``,
+from the config's ``paths`` globs, or — with a single source — is that source.
+"""
+
+from __future__ import annotations
+
+import fnmatch
+from collections.abc import Iterator
+from pathlib import Path
+
+from .config import Config
+from .errors import ConfigError, InputError
+from .pipeline import Pipeline
+from .sources.files import expand_inputs, read_lines
+
+
+def assign_sources(cfg: Config, inputs: list[str], source: str | None = None) -> list[tuple[str, Path]]:
+    """``(source name, path)`` for every input; with no inputs, the config's own paths."""
+    if not cfg.sources:
+        raise ConfigError("config: no [[sources]] defined")
+    if source is not None:
+        cfg.source(source)
+    if not inputs:
+        out = []
+        for src in cfg.sources:
+            if source is None or src.name == source:
+                out.extend((src.name, p) for p in expand_inputs(src.paths))
+        if not out:
+            raise InputError("no input files: give INPUT paths or set paths = [...] in the sources")
+        return out
+    pairs = []
+    for path in expand_inputs(inputs):
+        if source is not None:
+            pairs.append((source, path))
+        elif len(cfg.sources) == 1:
+            pairs.append((cfg.sources[0].name, path))
+        else:
+            hits = [s.name for s in cfg.sources
+                    if any(fnmatch.fnmatch(str(path), g) or fnmatch.fnmatch(path.name, Path(g).name)
+                           for g in s.paths)]
+            if len(hits) != 1:
+                why = "matches no source's paths" if not hits else f"matches several sources ({', '.join(hits)})"
+                raise InputError(f"{path}: {why}; say which with --source NAME")
+            pairs.append((hits[0], path))
+    return pairs
+
+
+def iter_file(cfg: Config, source: str, path: Path) -> Iterator[tuple[str, int, str | None]]:
+    return read_lines(path, cfg.source(source).max_line_bytes)
+
+
+def run_files(pipeline: Pipeline, pairs: list[tuple[str, Path]]) -> None:
+    """Feed every file to the pipeline, in order, then flush it."""
+    feed = pipeline.feed_line
+    for source, path in pairs:
+        stream = str(path)
+        for line, offset, repair in iter_file(pipeline.cfg, source, path):
+            feed(source, stream, line, offset, repair)
+        pipeline.end_stream(source, stream)
+    pipeline.flush()
+
+
+def fit_files(cfg: Config, pairs: list[tuple[str, Path]]):
+    """Read normal sessions from files, fit a baseline, save it as the current version."""
+    from .baselines import fit_baseline, save_baseline
+
+    pipeline = Pipeline(cfg)
+    run_files(pipeline, pairs)
+    baseline = fit_baseline(pipeline.fit_sequences(), pipeline.miner, cfg)
+    path = save_baseline(baseline, cfg.state_dir)
+    return baseline, path, pipeline
+
+
+def score_files(cfg: Config, pairs: list[tuple[str, Path]], baseline, on_verdict, *, score_all: bool = False
+                ) -> Pipeline:
+    pipeline = Pipeline(cfg, baseline, on_verdict=on_verdict, score_all=score_all)
+    run_files(pipeline, pairs)
+    return pipeline

@@ -1,0 +1,245 @@
+"""Command line: the command tree only; every command calls into the package.
+
+Any error a user can cause ends as one line on stderr and a non-zero exit code (2 for a bad
+config or bad arguments), never a traceback.
+"""
+
+from __future__ import annotations
+
+import argparse
+import math
+import sys
+from pathlib import Path
+
+import orjson
+
+from . import __version__
+from .baselines import (baselines_dir, current_version, list_versions, load_baseline, load_baseline_dir,
+                        set_current)
+from .batch import assign_sources, fit_files, score_files
+from .config import Config, adhoc_config, load_config
+from .errors import ConfigError, TracewatchError
+from .pipeline import Pipeline
+
+CAUTION = ("Logs can hold secrets and personal data: keep state_dir private and follow your "
+           "own data-protection rules. An anomaly detector misses things and raises false alarms; "
+           "it complements, never replaces, health checks and security controls.")
+
+
+class _Parser(argparse.ArgumentParser):
+    def error(self, message: str):  # one line, exit code 2, as for a bad config
+        self.exit(2, f"tracewatch: error: {message}\n")
+
+
+def _config(args) -> Config:
+    if getattr(args, "config", None):
+        return load_config(args.config)
+    fmt = getattr(args, "format", None)
+    if fmt:
+        return adhoc_config(fmt, state_dir=Path(args.state_dir))
+    raise ConfigError("give --config FILE (or --format FMT to read whole lines without a config)")
+
+
+def _out(obj) -> None:
+    sys.stdout.buffer.write(orjson.dumps(obj, option=orjson.OPT_APPEND_NEWLINE | orjson.OPT_SERIALIZE_NUMPY))
+
+
+# -- commands ----------------------------------------------------------------------------------
+def cmd_check_config(args) -> int:
+    cfg = _config(args)
+    print(f"config OK: {len(cfg.sources)} source(s) "
+          f"({', '.join(f'{s.name}:{s.format}' for s in cfg.sources) or 'none'}); state_dir {cfg.state_dir}")
+    return 0
+
+
+def cmd_fit(args) -> int:
+    cfg = _config(args)
+    pairs = assign_sources(cfg, args.inputs, args.source)
+    baseline, path, pipeline = fit_files(cfg, pairs)
+    if args.json:
+        _out({"version": baseline.version, "path": str(path), **baseline.report})
+    else:
+        print(format_report(baseline.report, baseline.version, path, pipeline))
+    return 0
+
+
+def cmd_score(args) -> int:
+    cfg = _config(args)
+    baseline = load_baseline(cfg.state_dir, args.baseline)
+    pairs = assign_sources(cfg, args.inputs, args.source)
+    pipeline = score_files(cfg, pairs, baseline, _out, score_all=args.all)
+    sys.stdout.flush()
+    n_alerts = sum(pipeline.alerts.values())
+    if args.verbose:
+        reasons = ", ".join(f"{r}={n}" for (_, r), n in sorted(pipeline.alerts.items())) or "none"
+        print(f"tracewatch: {sum(pipeline.sessions_scored.values())} sessions scored with baseline "
+              f"{baseline.version}; alerts by reason: {reasons}", file=sys.stderr)
+    return 1 if args.fail_on_alert and n_alerts else 0
+
+
+def cmd_templates(args) -> int:
+    cfg = _config(args)
+    pairs = assign_sources(cfg, args.inputs, args.source)
+    from .formats import make_format
+    from .records import Record
+    from .sources.files import read_lines
+    from .templates import TemplateMiner
+
+    t = cfg.templates
+    miner = TemplateMiner(t.depth, t.similarity, t.max_children)
+    rows: list[tuple[int, int]] = []
+    for source, path in pairs:
+        fmt = make_format(cfg.source(source))
+        line_of: dict[int, int] = {}
+
+        def take(items):
+            for item in items:
+                rec = item if type(item) is Record else item.record
+                if rec is None:
+                    continue
+                idx = miner.add_event(rec.event) if rec.event is not None else miner.add(rec.message)
+                rows.append((line_of.get(rec.offset, 0), idx))
+
+        for n, (line, offset, _) in enumerate(read_lines(path, cfg.source(source).max_line_bytes), 1):
+            line_of[offset] = n
+            take(fmt.feed(line, offset))
+        take(fmt.flush())
+    tpls = miner.templates
+    for line, idx in rows:
+        _out({"line": line, "template_id": tpls[idx].id, "template": tpls[idx].text})
+    return 0
+
+
+def cmd_baselines(args) -> int:
+    cfg = _config(args)
+    if args.action == "use":
+        if not args.version:
+            raise ConfigError("baselines use: name the VERSION to make current")
+        load_baseline_dir(baselines_dir(cfg.state_dir) / args.version)  # refuse a corrupt one
+        set_current(cfg.state_dir, args.version)
+        print(f"current baseline is now {args.version}")
+        return 0
+    if args.action == "show":
+        b = load_baseline(cfg.state_dir, args.version)
+        print(format_report(b.report, b.version, baselines_dir(cfg.state_dir) / b.version, None))
+        return 0
+    current = current_version(cfg.state_dir)
+    versions = list_versions(cfg.state_dir)
+    if not versions:
+        print(f"no baselines in {baselines_dir(cfg.state_dir)}")
+    for v in versions:
+        print(f"{'*' if v == current else ' '} {v}")
+    return 0
+
+
+def cmd_demo(args) -> int:
+    from .demo.run import run_demo
+
+    return run_demo(Path(args.dir), seed=args.seed, show=args.show)
+
+
+# -- report ------------------------------------------------------------------------------------
+def format_report(r: dict, version: str, path, pipeline: Pipeline | None) -> str:
+    lines = [f"baseline {version} written to {path}"]
+    if pipeline is not None:
+        rejected = sum(pipeline.rejected.values())
+        lines.append(f"records: {sum(pipeline.records.values())} "
+                     f"(lines read {sum(pipeline.lines.values())}, rejected {rejected}"
+                     + (f": {', '.join(f'{k[1]}={v}' for k, v in sorted(pipeline.rejected.items()))}" if rejected else "")
+                     + ")")
+    lines.append(f"sessions: {r['sessions']} ({r['train_sessions']} to fit, {r['calibration_sessions']} to "
+                 f"calibrate), {r['distinct_sequences']} distinct sequences in the fit part")
+    lines.append(f"templates: {r['templates']}   n-grams: {r['ngrams']}   scorer: {r['scorer']}")
+    how = f"knee of the inertia curve at k={r['knee']}" if r["k_auto"] else "set in the config"
+    lines.append(f"k = {r['k']} ({how})")
+    if r["k_auto"]:
+        lines.append("   k   inertia    silhouette")
+        for row in r["curve"]:
+            sil = "" if row["silhouette"] is None else f"{row['silhouette']:.3f}"
+            mark = "  ◄" if row["k"] == r["k"] else ""
+            lines.append(f"  {row['k']:>2}  {row['inertia']:>9.3f}  {sil:>10}{mark}")
+    for note in r["notes"]:
+        lines.append(f"note: {note}")
+    lines.append("clusters (sessions, spread, representative session):")
+    for c in r["clusters"]:
+        rep = " | ".join(c["representative"])
+        lines.append(f"  #{c['cluster']}: {c['sessions']} sessions, spread {c['spread']}: {rep}")
+    if r["contamination"]:
+        lines.append("contamination (tiny clusters left out of the baseline — look at them):")
+        for c in r["contamination"]:
+            lines.append(f"  {c['sessions']} session(s) ({c['share']:.2%}): {' | '.join(c['representative'])}")
+    else:
+        lines.append("contamination: none found")
+    thr = r["threshold"]
+    thr_s = "none (calibration set too small)" if thr is None or not math.isfinite(thr) or thr > 1e300 else f"{thr:.4f}"
+    lines.append(f"threshold: score > {thr_s}  (false_alarm_rate {r['false_alarm_rate']}, split-conformal "
+                 f"on {r['calibration_sessions']} held-out sessions)")
+    return "\n".join(lines)
+
+
+# -- the command tree ---------------------------------------------------------------------------
+def build_parser() -> argparse.ArgumentParser:
+    p = _Parser(prog="tracewatch", description="Log and execution-trace anomaly detection. " + CAUTION)
+    p.add_argument("--version", action="version", version=f"tracewatch {__version__}")
+    sub = p.add_subparsers(dest="command", required=True, parser_class=_Parser)
+
+    def with_config(sp, *, adhoc: bool = False):
+        sp.add_argument("--config", "-c", metavar="FILE", help="TOML config file")
+        if adhoc:
+            sp.add_argument("--format", metavar="FMT", help="read INPUT in this format with no config "
+                            "(the whole line is the message): text, jsonl, syslog, otlp-json, strace")
+            sp.add_argument("--state-dir", default="./tracewatch-state", metavar="DIR",
+                            help="state directory when no config is given (default ./tracewatch-state)")
+
+    sp = sub.add_parser("check-config", help="validate a config file")
+    with_config(sp)
+    sp.set_defaults(func=cmd_check_config)
+
+    sp = sub.add_parser("fit", help="fit a new baseline from normal logs and make it current")
+    with_config(sp, adhoc=True)
+    sp.add_argument("--source", metavar="NAME", help="the source the INPUT files belong to")
+    sp.add_argument("--json", action="store_true", help="print the report as JSON")
+    sp.add_argument("inputs", nargs="*", metavar="INPUT")
+    sp.set_defaults(func=cmd_fit)
+
+    sp = sub.add_parser("score", help="replay files through the current baseline; one JSON object per alert")
+    with_config(sp, adhoc=True)
+    sp.add_argument("--source", metavar="NAME", help="the source the INPUT files belong to")
+    sp.add_argument("--all", action="store_true", help="print every session, not only alerts")
+    sp.add_argument("--baseline", metavar="VERSION", help="score with this baseline version")
+    sp.add_argument("--fail-on-alert", action="store_true", help="exit 1 when any alert was raised")
+    sp.add_argument("--verbose", "-v", action="store_true", help="print a summary on stderr")
+    sp.add_argument("inputs", nargs="*", metavar="INPUT")
+    sp.set_defaults(func=cmd_score)
+
+    sp = sub.add_parser("templates", help="print the event template of every input record")
+    with_config(sp, adhoc=True)
+    sp.add_argument("--source", metavar="NAME")
+    sp.add_argument("inputs", nargs="+", metavar="INPUT")
+    sp.set_defaults(func=cmd_templates)
+
+    sp = sub.add_parser("baselines", help="list baseline versions, show one, or make one current (roll back)")
+    with_config(sp)
+    sp.add_argument("action", nargs="?", choices=["list", "show", "use"], default="list")
+    sp.add_argument("version", nargs="?")
+    sp.set_defaults(func=cmd_baselines)
+
+    sp = sub.add_parser("demo", help="generate the parcel-locker demo, fit, score and tally what was caught")
+    sp.add_argument("--dir", default="./tracewatch-demo", help="where to write the demo (default ./tracewatch-demo)")
+    sp.add_argument("--seed", type=int, default=7)
+    sp.add_argument("--show", type=int, default=6, help="how many alerts to print in full")
+    sp.set_defaults(func=cmd_demo)
+    return p
+
+
+def main(argv: list[str] | None = None) -> int:
+    args = build_parser().parse_args(argv)
+    try:
+        return args.func(args)
+    except TracewatchError as exc:
+        print(f"tracewatch: {exc}", file=sys.stderr)
+        return exc.exit_code
+    except BrokenPipeError:
+        return 0
+    except KeyboardInterrupt:
+        return 130

@@ -1,0 +1,77 @@
+"""Formats: turn one decoded line into records.
+
+Stage: sources → **formats** → templates. One module per input format; each exposes a
+class with ``feed(line, offset)`` and ``flush()``, both returning a list of
+:class:`~tracewatch.records.Record` and :class:`~tracewatch.records.Rejection`. A format never
+raises for bad data: it rejects the line with a reason, keeping it as a whole-line record
+when that still makes sense.
+"""
+
+from __future__ import annotations
+
+import re
+from datetime import datetime, timezone
+from typing import Protocol
+
+from ..config import SourceConfig
+from ..records import Record, Rejection
+
+Output = list  # list[Record | Rejection]
+
+
+class Format(Protocol):
+    def feed(self, line: str, offset: int) -> Output: ...
+
+    def flush(self) -> Output: ...
+
+
+_EPOCH = re.compile(r"^\d{9,10}(\.\d+)?$")
+_EPOCH_MS = re.compile(r"^\d{12,13}$")
+
+
+def parse_timestamp(text: str | None) -> float | None:
+    """Seconds since the epoch from ISO 8601 / RFC 3339 (with ``,`` or ``.`` fractions, as
+    Python's logging module writes them), or from a plain epoch number; None if unreadable.
+    Times without a zone are taken as UTC."""
+    if not text:
+        return None
+    text = text.strip()
+    if _EPOCH.match(text):
+        return float(text)
+    if _EPOCH_MS.match(text):
+        return int(text) / 1000.0
+    try:
+        dt = datetime.fromisoformat(text.replace(",", ".", 1) if "," in text else text)
+    except ValueError:
+        return None
+    if dt.tzinfo is None:
+        dt = dt.replace(tzinfo=timezone.utc)
+    return dt.timestamp()
+
+
+def make_format(src: SourceConfig) -> Format:
+    """The format object for one source (a fresh one per file being read)."""
+    if src.format == "text":
+        from .text import TextFormat
+
+        return TextFormat(src)
+    if src.format == "jsonl":
+        from .jsonl import JsonlFormat
+
+        return JsonlFormat(src)
+    if src.format == "syslog":
+        from .syslog import SyslogFormat
+
+        return SyslogFormat(src)
+    if src.format == "otlp-json":
+        from .otlp import OtlpJsonFormat
+
+        return OtlpJsonFormat(src)
+    if src.format == "strace":
+        from .strace import StraceFormat
+
+        return StraceFormat(src)
+    raise ValueError(f"unknown format {src.format!r}")  # unreachable: config validates it
+
+
+__all__ = ["Format", "Output", "Record", "Rejection", "make_format", "parse_timestamp"]

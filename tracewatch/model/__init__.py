@@ -1,0 +1,1 @@
+"""Scoring stage: the baseline model (fit), its calibration, scoring and explanations."""

@@ -1,0 +1,43 @@
+"""Calibration: turn the user's false-alarm rate into a threshold with conformal p-values.
+
+Split-conformal (inductive) prediction — Papadopoulos, Proedrou, Vovk, Gammerman, "Inductive
+Confidence Machines for Regression", ECML 2002; Vovk, Gammerman, Shafer, "Algorithmic
+Learning in a Random World", 2005. Nonconformity scores of held-out normal sessions form the
+calibration set; a new score s gets p = (1 + #{calibration scores ≥ s}) / (n + 1), and an
+alarm is raised when p ≤ rate, so P(false alarm) ≤ rate when sessions are exchangeable.
+"""
+
+from __future__ import annotations
+
+import math
+
+import numpy as np
+
+
+class ConformalThreshold:
+    """``fit(calibration_scores)`` stores them sorted and derives ``threshold_``: an alarm is
+    raised exactly when a score is above it. ``threshold_`` is +inf when the calibration set
+    is too small for the rate (fewer than 1/rate − 1 sessions); ``usable_`` then is False."""
+
+    def __init__(self, false_alarm_rate: float = 0.005) -> None:
+        self.false_alarm_rate = false_alarm_rate
+
+    def fit(self, scores) -> "ConformalThreshold":
+        cal = np.sort(np.asarray(scores, dtype=float))
+        n = len(cal)
+        self.calibration_scores_ = cal
+        # alarm iff 1 + #{cal ≥ s} ≤ rate·(n+1)  ⟺  #{cal ≥ s} ≤ m
+        m = math.floor(self.false_alarm_rate * (n + 1) + 1e-9) - 1
+        self.usable_ = m >= 0 and n > 0
+        self.threshold_ = float(cal[n - m - 1]) if self.usable_ and m < n else (
+            -math.inf if self.usable_ else math.inf)
+        return self
+
+    def p_values(self, scores) -> np.ndarray:
+        cal = self.calibration_scores_
+        s = np.asarray(scores, dtype=float)
+        at_least = len(cal) - np.searchsorted(cal, s, side="left")
+        return (1.0 + at_least) / (len(cal) + 1.0)
+
+    def alarms(self, scores) -> np.ndarray:
+        return np.asarray(scores, dtype=float) > self.threshold_

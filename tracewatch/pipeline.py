@@ -1,0 +1,148 @@
+"""The pipeline: wires every stage; the batch commands and the daemon drive the same object.
+
+    line ──format──► Record ──miner──► template index ──sessionizer──► closed Session
+         ──vectoriser + scorer──► verdict ──► on_verdict(dict)
+
+Without a baseline the pipeline collects closed sessions for fitting; with one it scores
+them. Batch callers feed lines and call :meth:`flush`; the daemon feeds lines and calls
+:meth:`tick` with its clock so idle sessions close.
+"""
+
+from __future__ import annotations
+
+from collections import Counter
+from collections.abc import Callable
+
+from .alerts.alert import Redactor, build_verdict
+from .baselines import Baseline
+from .config import Config
+from .formats import Format, make_format
+from .records import Record, Rejection
+from .sessions import Session, Sessionizer
+from .templates import TemplateMiner
+
+SCORE_BATCH = 256
+TICK_EVERY = 1024
+MAX_REJECT_SAMPLES = 100
+
+
+class Pipeline:
+    def __init__(self, cfg: Config, baseline: Baseline | None = None, *,
+                 on_verdict: Callable[[dict], None] | None = None, score_all: bool = False,
+                 clock: Callable[[], float] | None = None) -> None:
+        self.cfg = cfg
+        self.baseline = baseline
+        tcfg = cfg.templates
+        self.miner = baseline.miner if baseline else TemplateMiner(tcfg.depth, tcfg.similarity, tcfg.max_children)
+        self.scorer = baseline.make_scorer() if baseline else None
+        self.sessionizer = Sessionizer(cfg.sessions)
+        self.on_verdict = on_verdict or (lambda v: None)
+        self.score_all = score_all
+        self.clock = clock
+        self.redact = Redactor(cfg.redact)
+        self._sources = {s.name: s for s in cfg.sources}
+        self._formats: dict[tuple[str, str], Format] = {}
+        self._closed: list[Session] = []
+        self._watermark = 0.0
+        self._since_tick = 0
+        # fit mode: (source, key, sequence) of every closed session
+        self.collected: list[tuple[str, str, tuple[int, ...]]] = []
+        # plain counters; the metrics module exports them
+        self.records = Counter()  # source -> records accepted
+        self.rejected = Counter()  # (source, reason) -> lines
+        self.repaired = Counter()  # (source, reason) -> lines decoded with replacement / truncated
+        self.lines = Counter()  # source -> lines read
+        self.sessions_scored = Counter()  # source -> sessions
+        self.alerts = Counter()  # (source, reason) -> alerts
+        self.reject_samples: list[dict] = []
+
+    # -- input ---------------------------------------------------------------------------
+    def feed_line(self, source: str, stream: str, line: str, offset: int = -1,
+                  repair: str | None = None) -> None:
+        fmt = self._formats.get((source, stream))
+        if fmt is None:
+            fmt = self._formats[(source, stream)] = make_format(self._sources[source])
+        self.lines[source] += 1
+        if repair is not None:
+            self.repaired[(source, repair)] += 1
+        for item in fmt.feed(line, offset):
+            self._take(source, item)
+
+    def end_stream(self, source: str, stream: str) -> None:
+        """A file ended (batch) or was rotated away: flush what its format holds."""
+        fmt = self._formats.pop((source, stream), None)
+        if fmt is not None:
+            for item in fmt.flush():
+                self._take(source, item)
+
+    def _take(self, source: str, item: Record | Rejection) -> None:
+        if type(item) is Record:
+            self.feed_record(item)
+            return
+        self.rejected[(source, item.reason)] += 1
+        if len(self.reject_samples) < MAX_REJECT_SAMPLES:
+            self.reject_samples.append({"source": source, "reason": item.reason,
+                                        "line": self.redact(item.raw[:500])})
+        if item.record is not None:
+            self.feed_record(item.record)
+
+    def feed_record(self, rec: Record) -> None:
+        self.records[rec.source] += 1
+        idx = self.miner.add_event(rec.event) if rec.event is not None else self.miner.add(rec.message)
+        ts = rec.ts
+        if ts is not None and ts > self._watermark:
+            self._watermark = ts
+        now = self.clock() if self.clock is not None else self._watermark
+        closed = self._closed
+        self.sessionizer.add(rec.source, rec.key, ts, now, idx, rec.raw, rec.offset, rec.message, closed)
+        self._since_tick += 1
+        if self._since_tick >= TICK_EVERY and self.clock is None:
+            self._since_tick = 0
+            self.sessionizer.tick(self._watermark, closed)
+        if len(closed) >= SCORE_BATCH:
+            self._drain()
+
+    # -- time and the end ------------------------------------------------------------------
+    def tick(self, now: float) -> None:
+        self.sessionizer.tick(now, self._closed)
+        self._drain()
+
+    def flush(self) -> None:
+        for source, stream in list(self._formats):
+            self.end_stream(source, stream)
+        self.sessionizer.flush(self._closed)
+        self._drain()
+
+    # -- sessions out ------------------------------------------------------------------------
+    def _drain(self) -> None:
+        closed, self._closed = self._closed, []
+        closed = [s for s in closed if s.events]
+        if not closed:
+            return
+        if self.scorer is None:
+            self.collected.extend((s.source, s.key, tuple(s.events)) for s in closed)
+            return
+        self._score(closed)
+
+    def _score(self, sessions: list[Session]) -> None:
+        b = self.baseline
+        seqs = [tuple(s.events) for s in sessions]
+        results = self.scorer.score(seqs)
+        p_values = b.conformal.p_values([r[0] for r in results])
+        rate = b.false_alarm_rate
+        n_seen = self.miner.n_seen
+        for sess, seq, (score, cluster, dist), p in zip(sessions, seqs, results, p_values):
+            self.sessions_scored[sess.source] += 1
+            far = p <= rate
+            unseen = max(seq) >= n_seen
+            if not (far or unseen or self.score_all):
+                continue
+            alarm = far or unseen
+            verdict = build_verdict(sess, seq, score, cluster, dist, float(p), far, b, self.redact,
+                                    explain_it=alarm)
+            for reason in verdict["reasons"]:
+                self.alerts[(sess.source, reason)] += 1
+            self.on_verdict(verdict)
+
+    def fit_sequences(self) -> list[tuple[int, ...]]:
+        return [seq for _, _, seq in self.collected]

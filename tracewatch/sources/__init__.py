@@ -1,0 +1,1 @@
+"""Sources: where bytes come from (files read once, or files followed as they grow)."""

@@ -1,0 +1,217 @@
+"""Templates: a record's message becomes an event template.
+
+Stage: formats → **templates** → sessions. Variable parts (UUIDs, IPs, hex, paths, URLs,
+quoted values, durations, numbers and any token holding a digit) are masked to ``<*>``;
+then an online miner groups messages by token count and leading tokens and merges similar
+ones into templates with wildcards — the fixed-depth prefix-tree method:
+
+    P. He, J. Zhu, Z. Zheng, M. R. Lyu, "Drain: An Online Log Parsing Approach with Fixed
+    Depth Tree", IEEE ICWS 2017.
+
+Each template gets a stable id (a hash of the first masked message that created it) and a
+dense index used by the feature stage. Structured records (span names, syscalls) carry an
+``event`` and map to an event template directly. When the miner is frozen (scoring), baseline
+templates are matched but never changed; what is created after the freeze is *unseen*.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import re
+from dataclasses import dataclass
+
+WILDCARD = "<*>"
+
+# Order matters: specific shapes first, the catch-all "token with a digit" last.
+_MASKS = [
+    r"[a-zA-Z][a-zA-Z0-9+.-]*://\S+",  # URLs
+    r'"[^"]*"',  # double-quoted values
+    r"(?<==)'[^']*'",  # key='value'
+    r"\b[0-9a-fA-F]{8}-[0-9a-fA-F]{4}-[0-9a-fA-F]{4}-[0-9a-fA-F]{4}-[0-9a-fA-F]{12}\b",  # UUID
+    r"\b\d{1,3}(?:\.\d{1,3}){3}(?::\d+)?\b",  # IPv4[:port]
+    r"\b(?:[0-9a-fA-F]{0,4}:){2,7}[0-9a-fA-F]{0,4}\b",  # IPv6 (rough)
+    r"(?<![\w/])(?:/[\w.@%+~-]+)+/?",  # absolute paths
+    r"\b0x[0-9a-fA-F]+\b",  # hex literals
+    r"\b[0-9a-fA-F]*[a-fA-F][0-9a-fA-F]*\d[0-9a-fA-F]*\b|\b\d[0-9a-fA-F]*[a-fA-F][0-9a-fA-F]*\b",  # hex ids
+    r"[-+]?\b\d[\w.:,+-]*",  # numbers, durations, versions, anything starting with a digit
+    r"\b[\w.-]*\d[\w.-]*",  # any other token holding a digit (common practice in log parsing)
+]
+_MASK_RE = re.compile("|".join(f"(?:{m})" for m in _MASKS))
+_HAS_DIGIT = re.compile(r"\d")
+
+
+def mask(message: str) -> str:
+    """The message with every variable part replaced by ``<*>``, whitespace normalised."""
+    return " ".join(_MASK_RE.sub(WILDCARD, message).split())
+
+
+def _stable_id(text: str) -> str:
+    return hashlib.blake2b(text.encode("utf-8", "replace"), digest_size=5).hexdigest()
+
+
+@dataclass(slots=True)
+class Template:
+    id: str
+    index: int
+    tokens: list[str]
+    path: tuple[str, ...]
+    count: int = 0
+    structured: bool = False  # an event type given by the record, not mined
+    seen: bool = True  # known to the baseline
+
+    @property
+    def text(self) -> str:
+        return " ".join(self.tokens)
+
+
+class TemplateMiner:
+    """Online fixed-depth prefix-tree template miner (He et al., ICWS 2017).
+
+    ``depth`` counts the tree levels including the root and the length layer, so the first
+    ``depth - 2`` tokens route a message; ``similarity`` is the share of equal tokens needed to
+    join a template; a node with ``max_children`` children sends new tokens to ``<*>``.
+    """
+
+    def __init__(self, depth: int = 4, similarity: float = 0.5, max_children: int = 100,
+                 cache_size: int = 200_000) -> None:
+        self.depth = depth
+        self.similarity = similarity
+        self.max_children = max_children
+        self.cache_size = cache_size
+        self.templates: list[Template] = []
+        self._ids: dict[str, int] = {}
+        self._tree: dict = {}
+        self._events: dict[str, int] = {}
+        self._masked: dict[str, int] = {}  # masked message -> template index
+        self._raw: dict[str, int] = {}  # raw message -> template index (bounded)
+        self.frozen = False
+        self.n_seen = 0  # templates with index < n_seen belong to the baseline
+
+    # -- public -----------------------------------------------------------------
+    def add(self, message: str) -> int:
+        """Template index for a message (creating or generalising a template as needed)."""
+        idx = self._raw.get(message)
+        if idx is None:
+            idx = self._add_masked(mask(message))
+            if len(self._raw) >= self.cache_size:
+                self._raw.clear()
+            self._raw[message] = idx
+        self.templates[idx].count += 1
+        return idx
+
+    def add_event(self, event: str) -> int:
+        """Template index for a structured event type (no masking, no merging)."""
+        idx = self._events.get(event)
+        if idx is None:
+            idx = self._new(f"event:{event}", [event], (), structured=True)
+            self._events[event] = idx
+        self.templates[idx].count += 1
+        return idx
+
+    def freeze(self) -> None:
+        """From now on baseline templates never change; new ones are marked unseen."""
+        self.frozen = True
+        self.n_seen = len(self.templates)
+        self._raw.clear()
+
+    def text(self, idx: int) -> str:
+        return self.templates[idx].text
+
+    def is_seen(self, idx: int) -> bool:
+        return idx < self.n_seen or not self.frozen
+
+    # -- the prefix tree --------------------------------------------------------
+    def _route(self, tokens: list[str], create: bool) -> tuple[list[int] | None, tuple[str, ...]]:
+        node = self._tree.setdefault(len(tokens), {}) if create else self._tree.get(len(tokens))
+        path: list[str] = []
+        for token in tokens[: self.depth - 2]:
+            if node is None:
+                return None, ()
+            key = WILDCARD if _HAS_DIGIT.search(token) else token
+            if key not in node:
+                if not create:
+                    key = WILDCARD
+                elif len(node) >= self.max_children:
+                    key = WILDCARD
+            path.append(key)
+            nxt = node.get(key)
+            if nxt is None:
+                if not create:
+                    return None, ()
+                nxt = node[key] = {}
+            node = nxt
+        leaf = node.get("") if node is not None else None
+        if leaf is None and create:
+            leaf = node[""] = []
+        return leaf, tuple(path)
+
+    def _add_masked(self, masked: str) -> int:
+        idx = self._masked.get(masked)
+        if idx is not None:
+            return idx
+        tokens = masked.split(" ") if masked else [""]
+        leaf, path = self._route(tokens, create=True)
+        best, best_sim, best_wild = None, -1.0, -1
+        for cand in leaf:
+            tpl = self.templates[cand]
+            same = wild = 0
+            for a, b in zip(tpl.tokens, tokens):
+                if a == WILDCARD:
+                    wild += 1
+                elif a == b:
+                    same += 1
+            sim = same / len(tokens)
+            if sim > best_sim or (sim == best_sim and wild > best_wild):
+                best, best_sim, best_wild = cand, sim, wild
+        if best is not None and best_sim >= self.similarity:
+            tpl = self.templates[best]
+            if not (self.frozen and best < self.n_seen):
+                tpl.tokens = [a if a == b else WILDCARD for a, b in zip(tpl.tokens, tokens)]
+            idx = best
+        else:
+            idx = self._new(masked, tokens, path)
+            leaf.append(idx)
+        self._masked[masked] = idx
+        return idx
+
+    def _new(self, seed: str, tokens: list[str], path: tuple[str, ...], structured: bool = False) -> int:
+        tid = _stable_id(seed)
+        while tid in self._ids:  # astronomically rare; keep ids unique and deterministic
+            seed += "'"
+            tid = _stable_id(seed)
+        idx = len(self.templates)
+        self.templates.append(Template(tid, idx, list(tokens), path, 0, structured, not self.frozen))
+        self._ids[tid] = idx
+        return idx
+
+    # -- persistence ------------------------------------------------------------
+    def to_dict(self) -> dict:
+        return {
+            "depth": self.depth,
+            "similarity": self.similarity,
+            "max_children": self.max_children,
+            "templates": [
+                {"id": t.id, "template": t.text, "tokens": t.tokens, "path": list(t.path),
+                 "count": t.count, "structured": t.structured}
+                for t in self.templates
+            ],
+        }
+
+    @classmethod
+    def from_dict(cls, data: dict) -> "TemplateMiner":
+        miner = cls(data["depth"], data["similarity"], data["max_children"])
+        for entry in data["templates"]:
+            tokens = list(entry["tokens"])
+            idx = len(miner.templates)
+            tpl = Template(entry["id"], idx, tokens, tuple(entry["path"]), int(entry["count"]),
+                           bool(entry["structured"]))
+            miner.templates.append(tpl)
+            miner._ids[tpl.id] = idx
+            if tpl.structured:
+                miner._events[tokens[0]] = idx
+                continue
+            node = miner._tree.setdefault(len(tokens), {})
+            for key in tpl.path:
+                node = node.setdefault(key, {})
+            node.setdefault("", []).append(idx)
+        return miner
