@@ -28,12 +28,12 @@ from .config import Config
 from .errors import BaselineError, NoBaselineError
 from .features import NgramVectorizer
 from .model.calibrate import ConformalThreshold
-from .model.fit import ClusterModel
 from .model.score import SessionScorer
 from .templates import TemplateMiner
 
 SCHEMA_VERSION = 1
 MIN_SESSIONS = 10
+POOLED = "*"
 
 
 class Manifest(BaseModel):
@@ -48,8 +48,10 @@ class Manifest(BaseModel):
     ngram_max: int
     scorer: str
     knn_k: int
+    unseen_weight: float
     false_alarm_rate: float
-    threshold: float
+    calibration_sources: list[str]
+    sources: list[str]
     report: dict
 
 
@@ -58,8 +60,11 @@ class Baseline:
 
     def __init__(self, *, miner: TemplateMiner, vectorizer: NgramVectorizer, centers: np.ndarray,
                  spreads: np.ndarray, cluster_weights: np.ndarray, cluster_df: np.ndarray,
-                 medoids: list[tuple[int, ...]], conformal: ConformalThreshold, scorer: str,
-                 knn_rows: sp.csr_matrix, knn_k: int, report: dict, version: str = "unsaved") -> None:
+                 medoids: list[tuple[int, ...]], normal_seqs: list[tuple[int, ...]],
+                 normal_labels: np.ndarray, cluster_sources: list[str], normal_sources: list[str], calibration: dict[str, ConformalThreshold], scorer: str,
+                 knn_rows: sp.csr_matrix, knn_k: int, unseen_weight: float, report: dict,
+                 version: str = "unsaved") -> None:
+        self.unseen_weight = unseen_weight
         self.miner = miner
         self.vectorizer = vectorizer
         self.centers = centers
@@ -67,7 +72,14 @@ class Baseline:
         self.cluster_weights = cluster_weights
         self.cluster_df = cluster_df
         self.medoids = medoids
-        self.conformal = conformal
+        self.normal_seqs = normal_seqs  # distinct fit sequences, one per row of knn_rows
+        self.normal_labels = normal_labels  # their cluster
+        self.cluster_sources = cluster_sources  # the source each cluster belongs to
+        self.normal_sources = normal_sources  # the source of each distinct fit sequence
+        self._by_cluster: dict[int, tuple[np.ndarray, sp.csc_matrix]] = {}
+        # one split-conformal threshold per source ("*": all sources pooled, for sources that
+        # had no calibration sessions): each source keeps its own false-alarm rate
+        self.calibration = calibration
         self.scorer_kind = scorer
         self.knn_rows = knn_rows
         self.knn_k = knn_k
@@ -76,16 +88,38 @@ class Baseline:
 
     @property
     def false_alarm_rate(self) -> float:
-        return self.conformal.false_alarm_rate
+        return self.calibration[POOLED].false_alarm_rate
+
+    def conformal(self, source: str) -> ConformalThreshold:
+        """The calibration of ``source`` (or the pooled one when it had too few sessions)."""
+        own = self.calibration.get(source)
+        return own if own is not None and own.usable_ else self.calibration[POOLED]
+
+    def closest_normal(self, vec, cluster: int) -> tuple[int, ...]:
+        """The distinct baseline session of ``cluster`` closest to a session vector."""
+        cached = self._by_cluster.get(cluster)
+        if cached is None:
+            rows = np.flatnonzero(self.normal_labels == cluster)
+            cached = self._by_cluster[cluster] = (rows, self.knn_rows[rows].tocsc())
+        rows, members = cached
+        if len(rows) == 0 or len(vec.indices) == 0:
+            return self.medoids[cluster]
+        dots = members[:, vec.indices] @ vec.values
+        return self.normal_seqs[int(rows[int(np.argmax(dots))])]
 
     def make_scorer(self) -> SessionScorer:
         return SessionScorer(self.vectorizer, self.centers, self.spreads, self.scorer_kind,
-                             self.knn_rows, self.knn_k)
+                             self.knn_rows, self.knn_k, self.unseen_weight,
+                             cluster_sources=self.cluster_sources, row_sources=self.normal_sources)
 
 
 # -- fitting -------------------------------------------------------------------------------
-def fit_baseline(sequences: list[tuple[int, ...]], miner: TemplateMiner, cfg: Config) -> Baseline:
-    """Fit on normal sessions: split train / calibration, vectorise, cluster, calibrate."""
+def fit_baseline(sessions: list[tuple[str, tuple[int, ...]]], miner: TemplateMiner, cfg: Config) -> Baseline:
+    """Fit on normal ``(source, event sequence)`` sessions: split train / calibration,
+    vectorise, cluster, then calibrate each source on its own held-out sessions."""
+    from .model.fit import ClusterModel  # scikit-learn loads only when fitting (≈1 s at start-up)
+
+    sequences = [seq for _, seq in sessions]
     n = len(sequences)
     if n < MIN_SESSIONS:
         raise BaselineError(f"only {n} sessions found in the input; a baseline needs at least "
@@ -95,9 +129,10 @@ def fit_baseline(sequences: list[tuple[int, ...]], miner: TemplateMiner, cfg: Co
     n_cal = max(1, int(round(n * mcfg.calibration_fraction)))
     order = rng.permutation(n)
     cal_idx, train_idx = np.sort(order[:n_cal]), np.sort(order[n_cal:])
-    counts = Counter(sequences[i] for i in train_idx)
-    distinct = list(counts)
-    weights = np.array([counts[s] for s in distinct], dtype=float)
+    counts = Counter(sessions[i] for i in train_idx)  # distinct (source, sequence) with counts
+    row_sources = [src for src, _ in counts]
+    distinct = [seq for _, seq in counts]
+    weights = np.array(list(counts.values()), dtype=float)
 
     vectorizer = NgramVectorizer(cfg.features.ngram_max).fit(distinct, weights)
     X, _ = vectorizer.transform(distinct)
@@ -110,11 +145,25 @@ def fit_baseline(sequences: list[tuple[int, ...]], miner: TemplateMiner, cfg: Co
     present = (X > 0).astype(float)
     cluster_df = np.asarray((present.T @ onehot).T.toarray()) / model.cluster_weights_[:, None]
     medoids = [distinct[r] for r in model.medoids_]
+    # each cluster belongs to the source most of its sessions come from
+    by_source = Counter()
+    for r in keep_rows:
+        by_source[(int(labels[r]), row_sources[r])] += weights[r]
+    cluster_sources = [max((w, src) for (c, src), w in by_source.items() if c == cl)[1] for cl in range(k)]
+    kept_sources = [row_sources[r] for r in keep_rows]
 
     scorer = SessionScorer(vectorizer, model.cluster_centers_, model.spreads_, mcfg.scorer,
-                           X[keep_rows], mcfg.knn_k)
-    cal_scores = [s for s, _, _ in scorer.score([sequences[i] for i in cal_idx])]
-    conformal = ConformalThreshold(mcfg.false_alarm_rate).fit(cal_scores)
+                           X[keep_rows], mcfg.knn_k, mcfg.unseen_weight,
+                           cluster_sources=cluster_sources, row_sources=kept_sources)
+    cal_by_source: dict[str, list[tuple[int, ...]]] = {}
+    for i in cal_idx:
+        cal_by_source.setdefault(sessions[i][0], []).append(sequences[i])
+    calibration: dict[str, ConformalThreshold] = {}
+    for source in sorted(cal_by_source):
+        scores = [r[0] for r in scorer.score(source, cal_by_source[source])]
+        calibration[source] = ConformalThreshold(mcfg.false_alarm_rate).fit(scores)
+    calibration[POOLED] = ConformalThreshold(mcfg.false_alarm_rate).fit(
+        np.concatenate([c.calibration_scores_ for c in calibration.values()]))
 
     text = miner.text
     report = {
@@ -140,20 +189,35 @@ def fit_baseline(sequences: list[tuple[int, ...]], miner: TemplateMiner, cfg: Co
              "representative": [text(e) for e in distinct[max(item["rows"], key=lambda r: weights[r])]]}
             for item in model.contamination_
         ],
-        "threshold": conformal.threshold_,
+        "thresholds": {src: {"threshold": c.threshold_ if c.usable_ else None,
+                             "calibration_sessions": len(c.calibration_scores_)}
+                       for src, c in calibration.items()},
         "false_alarm_rate": mcfg.false_alarm_rate,
         "scorer": mcfg.scorer,
+        "unseen_weight": mcfg.unseen_weight,
     }
-    if not conformal.usable_:
-        report["notes"].append(
-            f"the calibration set ({n_cal} sessions) is too small for false_alarm_rate="
-            f"{mcfg.false_alarm_rate}: at least {int(np.ceil(1 / mcfg.false_alarm_rate)) - 1} are "
-            "needed, so only never-seen events can raise alerts; fit on more sessions")
+    need = int(np.ceil(1 / mcfg.false_alarm_rate)) - 1
+    for src, c in calibration.items():
+        if c.usable_:
+            continue
+        if src == POOLED:
+            report["notes"].append(
+                f"the calibration set ({n_cal} sessions) is too small for false_alarm_rate="
+                f"{mcfg.false_alarm_rate}: at least {need} are needed, so only never-seen events can "
+                "raise alerts; fit on more sessions")
+        else:
+            report["notes"].append(
+                f"source {src!r} has {len(c.calibration_scores_)} calibration sessions, fewer than the "
+                f"{need} its own threshold needs; it uses the threshold of all sources pooled")
     miner.freeze()
     return Baseline(miner=miner, vectorizer=vectorizer, centers=model.cluster_centers_,
                     spreads=model.spreads_, cluster_weights=model.cluster_weights_,
-                    cluster_df=cluster_df.astype(np.float32), medoids=medoids, conformal=conformal,
-                    scorer=mcfg.scorer, knn_rows=X[keep_rows], knn_k=mcfg.knn_k, report=report)
+                    cluster_df=cluster_df.astype(np.float32), medoids=medoids,
+                    normal_seqs=[distinct[r] for r in keep_rows], normal_labels=labels[keep_rows],
+                    cluster_sources=cluster_sources, normal_sources=kept_sources,
+                    calibration=calibration,
+                    scorer=mcfg.scorer, knn_rows=X[keep_rows], knn_k=mcfg.knn_k,
+                    unseen_weight=mcfg.unseen_weight, report=report)
 
 
 # -- the artifact --------------------------------------------------------------------------
@@ -183,6 +247,11 @@ def atomic_write(path: Path, data: bytes) -> None:
         os.fsync(dir_fd)
     finally:
         os.close(dir_fd)
+
+
+def _source_index(names: list[str]) -> np.ndarray:
+    order = sorted(set(names))
+    return np.array([order.index(n) for n in names], dtype=np.int64)
 
 
 def _flat(seqs: list[tuple[int, ...]]) -> tuple[np.ndarray, np.ndarray]:
@@ -232,12 +301,17 @@ def save_baseline(b: Baseline, state_dir: Path, *, make_current: bool = True) ->
     try:
         (tmp / "templates.json").write_bytes(orjson.dumps(b.miner.to_dict()))
         medoid_flat, medoid_offsets = _flat(b.medoids)
+        normal_flat, normal_offsets = _flat(b.normal_seqs)
         knn = b.knn_rows.tocsr()
         arrays = {
             **b.vectorizer.to_arrays(),
             "centers": b.centers, "spreads": b.spreads, "cluster_weights": b.cluster_weights,
             "cluster_df": b.cluster_df, "medoid_flat": medoid_flat, "medoid_offsets": medoid_offsets,
-            "calibration_scores": b.conformal.calibration_scores_,
+            "normal_flat": normal_flat, "normal_offsets": normal_offsets,
+            "normal_labels": np.asarray(b.normal_labels, dtype=np.int64),
+            "cluster_sources": _source_index(b.cluster_sources), "normal_sources": _source_index(b.normal_sources),
+            "calibration_scores": np.concatenate([c.calibration_scores_ for c in b.calibration.values()]),
+            "calibration_offsets": np.cumsum([0] + [len(c.calibration_scores_) for c in b.calibration.values()]),
             "knn_data": knn.data, "knn_indices": knn.indices.astype(np.int64),
             "knn_indptr": knn.indptr.astype(np.int64), "knn_shape": np.array(knn.shape, dtype=np.int64),
         }
@@ -250,8 +324,9 @@ def save_baseline(b: Baseline, state_dir: Path, *, make_current: bool = True) ->
             "created": time.strftime("%Y-%m-%dT%H:%M:%SZ", time.gmtime()),
             "tracewatch": __version__, "content_hash": content_hash, "files": files,
             "ngram_max": b.vectorizer.ngram_max, "scorer": b.scorer_kind, "knn_k": b.knn_k,
-            "false_alarm_rate": b.false_alarm_rate,
-            "threshold": b.conformal.threshold_ if np.isfinite(b.conformal.threshold_) else 1e308,
+            "unseen_weight": b.unseen_weight, "false_alarm_rate": b.false_alarm_rate,
+            "calibration_sources": list(b.calibration),
+            "sources": sorted(set(b.cluster_sources) | set(b.normal_sources)),
             "report": b.report,
         }
         (tmp / "manifest.json").write_bytes(orjson.dumps(manifest, option=orjson.OPT_INDENT_2
@@ -310,13 +385,20 @@ def load_baseline_dir(path: Path) -> Baseline:
         vectorizer = NgramVectorizer.from_arrays(manifest.ngram_max, arrays)
         knn = sp.csr_matrix((arrays["knn_data"], arrays["knn_indices"], arrays["knn_indptr"]),
                             shape=tuple(int(x) for x in arrays["knn_shape"]))
-        conformal = ConformalThreshold(manifest.false_alarm_rate).fit(arrays["calibration_scores"])
+        scores, offsets = arrays["calibration_scores"], arrays["calibration_offsets"].tolist()
+        calibration = {src: ConformalThreshold(manifest.false_alarm_rate).fit(scores[a:b])
+                       for src, a, b in zip(manifest.calibration_sources, offsets, offsets[1:])}
+        if POOLED not in calibration:
+            raise KeyError("pooled calibration")
         medoids = _unflat(arrays["medoid_flat"], arrays["medoid_offsets"])
         baseline = Baseline(
             miner=miner, vectorizer=vectorizer, centers=arrays["centers"], spreads=arrays["spreads"],
             cluster_weights=arrays["cluster_weights"], cluster_df=arrays["cluster_df"],
-            medoids=medoids, conformal=conformal, scorer=manifest.scorer, knn_rows=knn,
-            knn_k=manifest.knn_k, report=manifest.report, version=manifest.version)
+            medoids=medoids, normal_seqs=_unflat(arrays["normal_flat"], arrays["normal_offsets"]),
+            normal_labels=arrays["normal_labels"], calibration=calibration,
+            cluster_sources=[manifest.sources[i] for i in arrays["cluster_sources"].tolist()],
+            normal_sources=[manifest.sources[i] for i in arrays["normal_sources"].tolist()], scorer=manifest.scorer, knn_rows=knn,
+            knn_k=manifest.knn_k, unseen_weight=manifest.unseen_weight, report=manifest.report, version=manifest.version)
     except (KeyError, ValueError, TypeError, zipfile.BadZipFile, OSError, orjson.JSONDecodeError) as exc:
         raise BaselineError(f"{where}: the baseline files are unreadable ({exc}); refit it") from None
     if baseline.centers.shape[1] != len(vectorizer.vocabulary_):

@@ -68,7 +68,7 @@ def fit_files(cfg: Config, pairs: list[tuple[str, Path]]):
 
     pipeline = Pipeline(cfg)
     run_files(pipeline, pairs)
-    baseline = fit_baseline(pipeline.fit_sequences(), pipeline.miner, cfg)
+    baseline = fit_baseline(pipeline.fit_sessions(), pipeline.miner, cfg)
     path = save_baseline(baseline, cfg.state_dir)
     return baseline, path, pipeline
 

@@ -7,7 +7,6 @@ config or bad arguments), never a traceback.
 from __future__ import annotations
 
 import argparse
-import math
 import sys
 from pathlib import Path
 
@@ -132,6 +131,128 @@ def cmd_baselines(args) -> int:
     return 0
 
 
+# -- `run` (the daemon) ---------------------------------------------------------------------------
+RUN_HELP = (
+    "Follow the config's source files as they grow, score sessions as they close with the current "
+    "baseline (hot-reloaded when it changes), append alerts to <state_dir>/alerts.jsonl and serve "
+    "/metrics, /healthz, /readyz, /api/status and /api/alerts on [server] listen "
+    "(default 127.0.0.1:9464). Stop it with SIGTERM or Ctrl-C: it saves its state and exits 0; "
+    "after a crash it resumes from its last checkpoint without losing or repeating anything. "
+    "HTTP exposure: it binds loopback by default; the metrics and the API expose log-derived data "
+    "(session keys, template text, sample lines after redaction) without authentication, so follow "
+    "your own security rules before binding it to any other address.")
+
+
+def cmd_run(args) -> int:
+    from .service.daemon import run_daemon
+
+    return run_daemon(load_config(args.config), log_level=args.log_level, log_format=args.log_format)
+# -- end of `run` -----------------------------------------------------------------------------------
+
+
+# -- `incidents` (tracewatch/alerts/incidents.py, tracewatch/service/incidents_api.py) ------------------
+INCIDENTS_HELP = (
+    "Incidents are alerts grouped by resemblance; the daemon keeps them in <state_dir>/incidents.db. "
+    "Without an action, print a compact table (most recently active first); 'show ID' prints one in "
+    "detail; 'ack', 'resolve' and 'expected' change its status. Reads the state directly (--config) "
+    "or a running daemon's API (--url); a state change through --url needs the bearer token ([incidents] "
+    "token, or the environment variable named by token_env, default TRACEWATCH_INCIDENT_TOKEN). "
+    "Caution: incidents carry log-derived text (redacted by your patterns); keep the daemon's port on "
+    "loopback or behind your own access control. A quiet list is not proof of health.")
+_UNITS = {"s": 1, "m": 60, "h": 3600, "d": 86400}
+
+
+def _since(value: str | None) -> float | None:
+    import re
+    import time
+
+    from .service.incidents_api import parse_since
+
+    if value is None:
+        return None
+    m = re.fullmatch(r"(\d+(?:\.\d+)?)([smhd])", value.strip())
+    if m:
+        return time.time() - float(m.group(1)) * _UNITS[m.group(2)]
+    try:
+        return parse_since(value)
+    except ValueError as exc:
+        raise ConfigError(f"--since: {exc}; or give a duration such as 30m, 2h, 1d") from None
+
+
+def cmd_incidents(args) -> int:
+    import getpass
+
+    from .alerts import summary
+    from .alerts.alert import Redactor
+    from .alerts.incidents import set_status
+    from .alerts.store import IncidentStore
+    from .service.incidents_api import api_request, incident_token
+
+    action = args.action
+    if action != "list" and args.id is None:
+        raise ConfigError(f"incidents {action}: give the incident ID")
+    if not 1 <= args.limit <= 1000:
+        raise ConfigError("--limit: between 1 and 1000")
+    cfg = load_config(args.config) if args.config else None
+    if args.url is None and cfg is None:
+        raise ConfigError("incidents: give --config FILE (read the state) or --url URL (ask a running daemon)")
+    since = _since(args.since)
+    if args.url is not None:
+        if action == "list":
+            query = f"?limit={args.limit}" + (f"&since={since}" if since is not None else "")
+            query += f"&status={args.status}" if args.status else ""
+            code, doc = api_request(args.url, "/api/incidents" + query)
+        elif action == "show":
+            code, doc = api_request(args.url, f"/api/incidents/{args.id}")
+        else:
+            token = incident_token(cfg.incidents) if cfg is not None else None
+            if token is None:
+                import os
+
+                token = os.environ.get("TRACEWATCH_INCIDENT_TOKEN") or None
+            code, doc = api_request(args.url, f"/api/incidents/{args.id}/{action}", method="POST", token=token,
+                                    body={"note": args.note} if args.note else None)
+        if code != 200:
+            print(f"tracewatch: {args.url}: HTTP {code}: {summary.safe(doc.get('error', doc))}", file=sys.stderr)
+            return 1
+        rows, detail = doc.get("incidents"), doc
+        if action in ("ack", "resolve", "expected"):
+            detail = doc["incident"]
+    else:
+        store = IncidentStore.open(cfg.state_dir, create=False)
+        try:
+            if action == "list":
+                rows = [summary.brief(i) for i in store.incidents(status=args.status, since=since, limit=args.limit)]
+            elif action == "show":
+                found = store.incident(args.id)
+                if found is None:
+                    print(f"tracewatch: no incident {args.id}", file=sys.stderr)
+                    return 1
+                detail = summary.detail(found, max_samples=cfg.incidents.max_samples, redact=Redactor(cfg.redact))
+            else:
+                code, out = set_status(store, args.id, action, by=f"cli:{getpass.getuser()}", note=args.note or "")
+                if code != 200:
+                    print(f"tracewatch: {out['error']}", file=sys.stderr)
+                    return 1
+                detail = summary.brief(out)
+        finally:
+            store.close()
+    if action == "list":
+        if args.json:
+            for row in rows:
+                _out(row)
+        else:
+            print(summary.table(rows))
+    elif action == "show" and not args.json:
+        print(summary.text(detail))
+    elif args.json:
+        _out(detail)
+    else:
+        print(f"incident #{detail['id']} is now {detail['status']}: {summary.safe(detail['title'])}")
+    return 0
+# -- end of `incidents` ---------------------------------------------------------------------------------
+
+
 def cmd_demo(args) -> int:
     from .demo.run import run_demo
 
@@ -170,10 +291,13 @@ def format_report(r: dict, version: str, path, pipeline: Pipeline | None) -> str
             lines.append(f"  {c['sessions']} session(s) ({c['share']:.2%}): {' | '.join(c['representative'])}")
     else:
         lines.append("contamination: none found")
-    thr = r["threshold"]
-    thr_s = "none (calibration set too small)" if thr is None or not math.isfinite(thr) or thr > 1e300 else f"{thr:.4f}"
-    lines.append(f"threshold: score > {thr_s}  (false_alarm_rate {r['false_alarm_rate']}, split-conformal "
-                 f"on {r['calibration_sessions']} held-out sessions)")
+    lines.append(f"thresholds (false_alarm_rate {r['false_alarm_rate']}, split-conformal on held-out sessions):")
+    for src, t in r["thresholds"].items():
+        if src == "*" and len(r["thresholds"]) == 2:
+            continue  # one source: the pooled threshold is the same
+        name = "all sources pooled" if src == "*" else f"source {src}"
+        thr = "none (too few sessions)" if t["threshold"] is None else f"score > {t['threshold']:.4f}"
+        lines.append(f"  {name}: {thr}  ({t['calibration_sessions']} sessions)")
     return "\n".join(lines)
 
 
@@ -223,6 +347,30 @@ def build_parser() -> argparse.ArgumentParser:
     sp.add_argument("action", nargs="?", choices=["list", "show", "use"], default="list")
     sp.add_argument("version", nargs="?")
     sp.set_defaults(func=cmd_baselines)
+
+    sp = sub.add_parser("run", help="run the daemon: follow files live, alert, serve metrics",
+                        description=RUN_HELP)
+    sp.add_argument("--config", "-c", metavar="FILE", required=True, help="TOML config file")
+    sp.add_argument("--log-level", default="info", choices=["debug", "info", "warning", "error"],
+                    help="tracewatch's own log on stderr (default info)")
+    sp.add_argument("--log-format", default="plain", choices=["plain", "json"],
+                    help="plain lines or JSON lines (default plain)")
+    sp.set_defaults(func=cmd_run)
+
+    # -- `incidents` --
+    sp = sub.add_parser("incidents", help="list, show, acknowledge or resolve incidents (grouped alerts)",
+                        description=INCIDENTS_HELP)
+    sp.add_argument("action", nargs="?", default="list", choices=["list", "show", "ack", "resolve", "expected"])
+    sp.add_argument("id", nargs="?", type=int, metavar="ID")
+    sp.add_argument("--config", "-c", metavar="FILE", help="TOML config file (read <state_dir>/incidents.db)")
+    sp.add_argument("--url", metavar="URL", help="a running daemon's address, e.g. http://127.0.0.1:9464")
+    sp.add_argument("--json", action="store_true", help="JSON (one object per incident for a list)")
+    sp.add_argument("--since", metavar="WHEN", help="only incidents with an alert since: 30m, 2h, 1d or an ISO time")
+    sp.add_argument("--status", choices=["open", "acknowledged", "resolved", "expected"])
+    sp.add_argument("--limit", type=int, default=50, help="at most this many (default 50)")
+    sp.add_argument("--note", help="a note kept with a status change")
+    sp.set_defaults(func=cmd_incidents)
+    # -- end of `incidents` --
 
     sp = sub.add_parser("demo", help="generate the parcel-locker demo, fit, score and tally what was caught")
     sp.add_argument("--dir", default="./tracewatch-demo", help="where to write the demo (default ./tracewatch-demo)")

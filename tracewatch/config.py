@@ -35,6 +35,11 @@ def _check_regex(value: str | None, *, groups: tuple[str, ...] = ()) -> str | No
     return value
 
 
+# options that belong to one format; setting one for another format is a config error
+_FORMAT_ONLY = {"session_field": "syslog", "span_event": "otlp-json", "max_document_bytes": "otlp-json",
+                "strace_session": "strace"}
+
+
 class SourceConfig(_Section):
     """One input: files of one format whose records share a session key."""
 
@@ -56,6 +61,30 @@ class SourceConfig(_Section):
     continuation_max: int = Field(default=50, ge=0)
     max_line_bytes: int = Field(default=65536, ge=64)
     start_at: Literal["end", "beginning"] = "end"
+    # -- syslog, otlp-json and strace options (tracewatch/formats/{syslog,otlp,strace}.py) ------
+    # syslog: take the session key from a header field (hostname, app_name, procid, msgid) or a
+    # structured-data parameter written as in the message, "[SD-ID PARAM]"; when the message
+    # lacks it, `session_key` (a regex with group `key` searched in MSG) is tried.
+    session_field: str | None = None
+    # otlp-json: what a span's event type is made of, joined with ":" in this order
+    # ("status" adds ":ERROR" only to spans whose status is an error).
+    span_event: list[Literal["service", "kind", "name", "status"]] = ["service", "kind", "name", "status"]
+    # otlp-json: a JSON document spread over several lines is held until complete, up to this size
+    max_document_bytes: int = Field(default=20 * 2**20, ge=1024)
+    # strace: one session per process ("pid") or per process tree ("tree": a child joins the
+    # session of the process that forked it)
+    strace_session: Literal["pid", "tree"] = "pid"
+
+    def _check_format_options(self) -> None:
+        for key, fmt in _FORMAT_ONLY.items():
+            if key in self.model_fields_set and self.format != fmt:
+                raise ValueError(f"{key}: only used with format = \"{fmt}\"")
+        if self.session_field is not None and not re.fullmatch(
+                r"hostname|app_name|procid|msgid|\[[^\s=\]\"]{1,32} [^\s=\]\"]{1,32}\]", self.session_field):
+            raise ValueError("session_field: use hostname, app_name, procid, msgid or a structured-data "
+                             "parameter written \"[SD-ID PARAM]\", for example \"[origin ip]\"")
+        if "name" not in self.span_event:
+            raise ValueError('span_event: must include "name"')
 
     @field_validator("line_pattern")
     @classmethod
@@ -69,11 +98,12 @@ class SourceConfig(_Section):
 
     @model_validator(mode="after")
     def _per_format(self) -> "SourceConfig":
-        if self.format == "text" and self.session_key is not None:
+        if self.format in ("text", "syslog") and self.session_key is not None:
             try:
                 _check_regex(self.session_key, groups=("key",))
             except ValueError as exc:
                 raise ValueError(f"session_key: {exc}") from None
+        self._check_format_options()
         if self.format == "jsonl" and self.session_key is not None:
             if not re.fullmatch(r"[^.\s]+(\.[^.\s]+)*", self.session_key):
                 raise ValueError("session_key: for jsonl it is a dotted field path such as 'ctx.request_id'")
@@ -112,6 +142,9 @@ class ModelConfig(_Section):
     false_alarm_rate: float = Field(default=0.005, gt=0, lt=0.5)
     scorer: Literal["centroid", "knn"] = "centroid"
     knn_k: int = Field(default=1, ge=1)
+    # centroid scorer: how many cluster spreads a session made entirely of n-grams never seen
+    # at fit counts for (new transitions between known steps are the commonest anomaly)
+    unseen_weight: float = Field(default=5.0, ge=0)
     calibration_fraction: float = Field(default=0.25, gt=0, lt=0.9)
     # clusters holding less than this share of the baseline are reported as contamination
     min_cluster_share: float = Field(default=0.005, ge=0, lt=0.5)
@@ -138,6 +171,95 @@ class ServerConfig(_Section):
         return v
 
 
+class DaemonConfig(_Section):
+    """How ``tracewatch run`` follows files and keeps its state (tracewatch/service/daemon.py)."""
+
+    # "native": kernel change notifications (inotify on Linux); "polling": stat the watched
+    # folders every poll_interval_s (network filesystems, where notifications do not arrive)
+    watcher: Literal["native", "polling"] = "native"
+    # polling period, and how often followed files are re-checked even without any notification
+    poll_interval_s: float = Field(default=1.0, ge=0.05, le=60)
+    # a file renamed or deleted away is still read while it keeps growing, until it has been
+    # quiet this long (writers reopen their log a moment after a rotation)
+    rotation_grace_s: float = Field(default=2.0, ge=0, le=600)
+    # offsets, open sessions and learned templates are saved this often (and on shutdown)
+    checkpoint_interval_s: float = Field(default=5.0, ge=0.1, le=3600)
+    # how many recent alerts /api/alerts can return
+    alerts_kept: int = Field(default=1000, ge=1, le=1_000_000)
+
+
+# -- incidents and notifications (tracewatch/alerts/incidents.py, sinks.py) ------------------
+def _check_url(v: str | None) -> str | None:
+    from urllib.parse import urlsplit
+
+    if v is None:
+        return None
+    parts = urlsplit(v)
+    if parts.scheme not in ("http", "https") or not parts.hostname:
+        raise ValueError("must be an http:// or https:// URL with a host")
+    return v.rstrip("/")
+
+
+class IncidentsConfig(_Section):
+    """Grouping alerts into incidents, and who may change an incident's status."""
+
+    # an alert joins the nearest incident when its average cosine distance to the incident's
+    # alerts is at most this (0 = only identical alerts, 1 = anything sharing a feature)
+    cut: float = Field(default=0.5, gt=0, le=1)
+    # an incident takes new alerts while its last one is at most this old (event time)
+    window_s: float = Field(default=1800.0, gt=0)
+    # open or acknowledged incidents with no alert for this long are resolved (0 = never)
+    auto_resolve_s: float = Field(default=1800.0, ge=0)
+    # notifications go out again when an open incident's alert count reaches these
+    escalation_steps: list[int] = Field(default_factory=lambda: [10, 100, 1000])
+    # candidate representatives kept per incident (the medoid is chosen among them)
+    max_members: int = Field(default=32, ge=1, le=1000)
+    max_samples: int = Field(default=5, ge=0, le=50)
+    # bearer token for POST /api/incidents/{id}/ack|resolve|expected: given here, or read from
+    # the environment variable named by token_env; with neither, state changes are refused
+    token: str | None = Field(default=None, min_length=16)
+    token_env: str = Field(default="TRACEWATCH_INCIDENT_TOKEN", pattern=r"^[A-Za-z_][A-Za-z0-9_]*$")
+    page_refresh_s: int = Field(default=30, ge=5, le=3600)
+
+    @field_validator("escalation_steps")
+    @classmethod
+    def _steps(cls, v: list[int]) -> list[int]:
+        if any(n < 2 for n in v) or v != sorted(set(v)):
+            raise ValueError("increasing alert counts of at least 2, e.g. [10, 100, 1000]")
+        return v
+
+
+class NotifyConfig(_Section):
+    """Where incident notifications go (both optional; none configured = none sent)."""
+
+    webhook_url: str | None = None
+    # base URL of a Prometheus Alertmanager; incidents are POSTed to <url>/api/v2/alerts
+    alertmanager_url: str | None = None
+    # extra Alertmanager labels, e.g. {team = "lockers"}
+    alertmanager_labels: dict[str, str] = Field(default_factory=dict)
+    # the incident page's address as receivers should link to it (default http://<server.listen>)
+    page_url: str | None = None
+    timeout_s: float = Field(default=5.0, gt=0, le=120)
+    retry_initial_s: float = Field(default=1.0, gt=0, le=3600)
+    retry_max_s: float = Field(default=300.0, gt=0, le=86400)
+    # firing incidents are sent to Alertmanager again this often while open
+    resend_s: float = Field(default=60.0, ge=1, le=3600)
+
+    @field_validator("webhook_url", "alertmanager_url", "page_url")
+    @classmethod
+    def _urls(cls, v: str | None) -> str | None:
+        return _check_url(v)
+
+    @field_validator("alertmanager_labels")
+    @classmethod
+    def _labels(cls, v: dict[str, str]) -> dict[str, str]:
+        for name in v:  # Prometheus label names: [a-zA-Z_][a-zA-Z0-9_]*, "__" prefix reserved
+            if not re.fullmatch(r"[a-zA-Z_][a-zA-Z0-9_]*", name) or name.startswith("__"):
+                raise ValueError(f"{name!r} is not a valid Prometheus label name")
+        return v
+# -- end of incidents and notifications -------------------------------------------------------
+
+
 class Config(_Section):
     state_dir: Path = Path("./tracewatch-state")
     sources: list[SourceConfig] = Field(default_factory=list)
@@ -146,6 +268,9 @@ class Config(_Section):
     features: FeaturesConfig = FeaturesConfig()
     model: ModelConfig = ModelConfig()
     server: ServerConfig = ServerConfig()
+    daemon: DaemonConfig = DaemonConfig()
+    incidents: IncidentsConfig = IncidentsConfig()  # tracewatch/alerts/incidents.py
+    notify: NotifyConfig = NotifyConfig()  # tracewatch/alerts/sinks.py
     # regexes whose matches are replaced by «redacted» in any raw line tracewatch stores or shows
     redact: list[str] = Field(default_factory=list)
 

@@ -13,6 +13,8 @@ from __future__ import annotations
 from collections import Counter
 from collections.abc import Callable
 
+import numpy as np
+
 from .alerts.alert import Redactor, build_verdict
 from .baselines import Baseline
 from .config import Config
@@ -44,6 +46,7 @@ class Pipeline:
         self._formats: dict[tuple[str, str], Format] = {}
         self._closed: list[Session] = []
         self._watermark = 0.0
+        self._file_watermark = 0.0  # batch: newest record time of the file being read
         self._since_tick = 0
         # fit mode: (source, key, sequence) of every closed session
         self.collected: list[tuple[str, str, tuple[int, ...]]] = []
@@ -69,11 +72,18 @@ class Pipeline:
             self._take(source, item)
 
     def end_stream(self, source: str, stream: str) -> None:
-        """A file ended (batch) or was rotated away: flush what its format holds."""
+        """A file ended (batch) or was rotated away: flush what its format holds.
+
+        In batch runs (no clock) the event-time clock that closes idle sessions follows one
+        file at a time: files are read one after another, and the next one may start earlier
+        (another host, another source), so its sessions must not look idle next to the newest
+        time of the file before."""
         fmt = self._formats.pop((source, stream), None)
         if fmt is not None:
             for item in fmt.flush():
                 self._take(source, item)
+        if self.clock is None:
+            self._file_watermark = 0.0
 
     def _take(self, source: str, item: Record | Rejection) -> None:
         if type(item) is Record:
@@ -83,6 +93,9 @@ class Pipeline:
         if len(self.reject_samples) < MAX_REJECT_SAMPLES:
             self.reject_samples.append({"source": source, "reason": item.reason,
                                         "line": self.redact(item.raw[:500])})
+        # -- bounded, redacted sample on disk: <state_dir>/rejects.jsonl (tracewatch/rejects.py)
+        from .rejects import reject_log
+        reject_log(self.cfg.state_dir).add(source, item.reason, item.raw, self.redact)
         if item.record is not None:
             self.feed_record(item.record)
 
@@ -90,15 +103,18 @@ class Pipeline:
         self.records[rec.source] += 1
         idx = self.miner.add_event(rec.event) if rec.event is not None else self.miner.add(rec.message)
         ts = rec.ts
-        if ts is not None and ts > self._watermark:
-            self._watermark = ts
-        now = self.clock() if self.clock is not None else self._watermark
+        if ts is not None:
+            if ts > self._watermark:
+                self._watermark = ts
+            if ts > self._file_watermark:
+                self._file_watermark = ts
+        now = self.clock() if self.clock is not None else self._file_watermark
         closed = self._closed
         self.sessionizer.add(rec.source, rec.key, ts, now, idx, rec.raw, rec.offset, rec.message, closed)
         self._since_tick += 1
         if self._since_tick >= TICK_EVERY and self.clock is None:
             self._since_tick = 0
-            self.sessionizer.tick(self._watermark, closed)
+            self.sessionizer.tick(self._file_watermark, closed)
         if len(closed) >= SCORE_BATCH:
             self._drain()
 
@@ -127,22 +143,57 @@ class Pipeline:
     def _score(self, sessions: list[Session]) -> None:
         b = self.baseline
         seqs = [tuple(s.events) for s in sessions]
-        results = self.scorer.score(seqs)
-        p_values = b.conformal.p_values([r[0] for r in results])
+        by_source: dict[str, list[int]] = {}
+        for i, sess in enumerate(sessions):
+            by_source.setdefault(sess.source, []).append(i)
+        results: list = [None] * len(sessions)
+        p_values = np.empty(len(sessions))
+        for source, rows in by_source.items():  # each source: its own clusters and calibration
+            for i, res in zip(rows, self.scorer.score(source, [seqs[i] for i in rows])):
+                results[i] = res
+            p_values[rows] = b.conformal(source).p_values([results[i][0] for i in rows])
         rate = b.false_alarm_rate
         n_seen = self.miner.n_seen
-        for sess, seq, (score, cluster, dist), p in zip(sessions, seqs, results, p_values):
+        for sess, seq, (score, cluster, dist, unseen_share), p in zip(sessions, seqs, results, p_values):
             self.sessions_scored[sess.source] += 1
             far = p <= rate
             unseen = max(seq) >= n_seen
             if not (far or unseen or self.score_all):
                 continue
             alarm = far or unseen
-            verdict = build_verdict(sess, seq, score, cluster, dist, float(p), far, b, self.redact,
-                                    explain_it=alarm)
+            verdict = build_verdict(sess, seq, score, cluster, dist, unseen_share, float(p), far, b,
+                                    self.redact, explain_it=alarm)
             for reason in verdict["reasons"]:
                 self.alerts[(sess.source, reason)] += 1
             self.on_verdict(verdict)
 
-    def fit_sequences(self) -> list[tuple[int, ...]]:
-        return [seq for _, _, seq in self.collected]
+    def fit_sessions(self) -> list[tuple[str, tuple[int, ...]]]:
+        """``(source, event sequence)`` of every session collected for fitting."""
+        return [(source, seq) for source, _, seq in self.collected]
+
+    # -- daemon hooks: live time, checkpoints, baseline switches ---------------------------
+    # With ``clock`` given, the pipeline never ticks by itself; the daemon calls
+    # ``tick(live_time())`` (tracewatch.sessions.LiveTime: the watermark below, moved on by the
+    # wall clock while input is quiet), so idle timeouts close the same sessions as a batch run.
+    @property
+    def watermark(self) -> float:
+        """The newest record timestamp fed so far (0.0 before any)."""
+        return self._watermark
+
+    @watermark.setter
+    def watermark(self, value: float) -> None:
+        self._watermark = value
+
+    def held_from(self, source: str, stream: str) -> int | None:
+        """Offset of the first line a format still holds for a stream (a multi-line record not
+        yet complete), for formats that say so with a ``held_from`` attribute; a checkpoint
+        resumes the stream there. Right for formats whose held lines give no record until the
+        held one is complete (continuation lines, a multi-line JSON document)."""
+        return getattr(self._formats.get((source, stream)), "held_from", None)
+
+    def use_baseline(self, baseline: Baseline) -> None:
+        """Switch baselines between sessions: sessions already closed are scored with the old
+        one; open sessions keep their events, re-expressed in the new baseline's templates."""
+        self._drain()
+        self.sessionizer.remap(baseline.miner.adopt(self.miner))
+        self.baseline, self.miner, self.scorer = baseline, baseline.miner, baseline.make_scorer()

@@ -7,12 +7,29 @@ into time windows per source (or, without timestamps, runs of ``max_events`` rec
 
 Time comes from the records when they carry it, otherwise from the clock the caller passes
 in, so batch replays and the live daemon close sessions the same way.
+
+Live time (the daemon, :class:`LiveTime`): sessions are closed in *event time*. ``now`` is the
+newest record timestamp read so far (the watermark) plus the wall-clock time that has passed
+since the watermark last moved, counted only while the daemon has no unread input. So
+
+- a session that a batch replay closes by idle timeout (a later record of its key, or the
+  watermark, is more than ``idle_timeout_s`` past its last event) closes live too, and no later
+  than the batch would close it;
+- the wall clock only moves time on while input is quiet, so catching up on a backlog (after a
+  restart, or a burst faster than the daemon) never ages sessions that are still being read;
+- the one case where live and batch differ is a writer that pauses for longer than
+  ``idle_timeout_s`` minus the gap between two events of one session in its own timestamps
+  (a replay of old logs at a slow pace): live, the session closes during the pause.
+
+Without any timestamps, ``now`` is the wall clock.
 """
 
 from __future__ import annotations
 
 import re
+import time
 from collections import OrderedDict
+from collections.abc import Callable, Sequence
 
 from .config import SessionsConfig
 
@@ -110,3 +127,58 @@ class Sessionizer:
     def flush(self, closed: list[Session]) -> None:
         for skey in list(self.open):
             self._close(skey, "flush", closed)
+
+    # -- live operation: checkpoints and baseline switches (daemon) -----------------------
+    def to_state(self) -> dict:
+        """Open sessions (oldest activity first) and counters, JSON-ready, for a checkpoint."""
+        return {
+            "open": [[s.source, s.key, s.events, s.first_ts, s.last_ts, s.last_seen, s.first_raw,
+                      s.first_offset, s.samples] for s in self.open.values()],
+            "run_counts": dict(self._counts),
+            "evicted": self.evicted,
+        }
+
+    def restore_state(self, state: dict) -> None:
+        """Put back what :meth:`to_state` saved; replaces any open sessions."""
+        self.open.clear()
+        for source, key, events, first_ts, last_ts, last_seen, first_raw, first_offset, samples in state["open"]:
+            sess = Session(source, key, first_ts, first_raw, first_offset)
+            sess.events = list(events)
+            sess.last_ts, sess.last_seen, sess.samples = last_ts, last_seen, list(samples)
+            self.open[(source, key)] = sess
+        self._counts = dict(state["run_counts"])
+        self.evicted = int(state["evicted"])
+
+    def remap(self, mapping: Sequence[int]) -> None:
+        """Re-express open sessions' events in another template numbering (a new baseline)."""
+        for sess in self.open.values():
+            sess.events = [mapping[e] for e in sess.events]
+
+
+class LiveTime:
+    """The daemon's clock for closing sessions: event time that moves on while input is quiet
+    (the rule is in this module's docstring).
+
+    ``watermark()`` gives the newest record timestamp fed so far (0.0 before any); ``wall`` is
+    the replaceable wall clock. Call :meth:`hold` whenever input is still waiting to be read.
+    """
+
+    def __init__(self, watermark: Callable[[], float], wall: Callable[[], float] = time.time) -> None:
+        self.watermark = watermark
+        self.wall = wall
+        self._mark = 0.0
+        self._quiet = 0.0  # wall seconds counted since the watermark last moved
+        self._since = wall()
+
+    def __call__(self) -> float:
+        mark, wall = self.watermark(), self.wall()
+        if mark != self._mark:
+            self._mark, self._quiet = mark, 0.0
+        else:
+            self._quiet += max(0.0, wall - self._since)
+        self._since = wall
+        return mark + self._quiet if mark else wall
+
+    def hold(self) -> None:
+        """Input is still waiting: the wall time since the clock was last read does not count."""
+        self._since = self.wall()

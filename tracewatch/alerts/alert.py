@@ -20,6 +20,7 @@ from ..sessions import Session
 REASON_FAR = "far_from_baseline"
 REASON_UNSEEN = "unseen_event"
 REDACTED = "«redacted»"
+MAX_SEQUENCE = 500  # template ids of the session, for grouping alerts into incidents
 
 
 class Redactor:
@@ -32,6 +33,10 @@ class Redactor:
         return self._re.sub(REDACTED, text) if self._re is not None else text
 
 
+def _finite(x: float) -> float | None:
+    return x if math.isfinite(x) else None
+
+
 def alert_id(session: Session) -> str:
     """Stable for the same session: its source, key and first raw line (which, in practice,
     carries a timestamp), independent of file names and offsets."""
@@ -41,7 +46,7 @@ def alert_id(session: Session) -> str:
 
 
 def build_verdict(session: Session, seq: tuple[int, ...], score: float, cluster: int, distance: float,
-                  p_value: float, far: bool, baseline, redact: Redactor, *, explain_it: bool) -> dict:
+                  unseen_share: float, p_value: float, far: bool, baseline, redact: Redactor, *, explain_it: bool) -> dict:
     miner = baseline.miner
     unseen = Counter(e for e in seq if not miner.is_seen(e))
     reasons = []
@@ -56,11 +61,13 @@ def build_verdict(session: Session, seq: tuple[int, ...], score: float, cluster:
         "session_key": session.key,
         "score": round(score, 6) if math.isfinite(score) else score,
         "p_value": round(p_value, 6),
-        "threshold": baseline.conformal.threshold_ if math.isfinite(baseline.conformal.threshold_) else None,
+        "threshold": _finite(baseline.conformal(session.source).threshold_),
         "reasons": reasons,
         "cluster": cluster,
         "distance": round(distance, 6),
+        "unseen_ngram_share": round(unseen_share, 4),
         "events": len(seq),
+        "sequence": [miner.templates[e].id for e in seq[:MAX_SEQUENCE]],
         "unseen_events": [{"template_id": miner.templates[e].id, "template": miner.text(e), "count": n}
                           for e, n in unseen.items()],
         "unexpected": [],
@@ -74,6 +81,7 @@ def build_verdict(session: Session, seq: tuple[int, ...], score: float, cluster:
     if explain_it:
         vec = baseline.vectorizer.vector(seq)
         verdict.update(explain(seq, vec, cluster, baseline.centers[cluster], baseline.cluster_df[cluster],
-                               baseline.medoids[cluster], baseline.vectorizer, miner.text, miner.is_seen))
+                               baseline.medoids[cluster], baseline.closest_normal(vec, cluster),
+                               baseline.vectorizer, miner.text, miner.is_seen))
         verdict["samples"] = [redact(s) for s in session.samples]
     return verdict

@@ -17,9 +17,10 @@ import orjson
 from ..batch import assign_sources, fit_files, score_files
 from ..config import load_config
 from .scenario import ANOMALY_KINDS, Scenario, generate, labels, parcel_lockers, render_text
+from .traces import TRACE_SOURCE, write_trace_scenario
 
 CONFIG = """\
-# tracewatch demo config: the parcel-locker backend's API log.
+# tracewatch demo config: the parcel-locker backend's API log (and, in the demo, its traces).
 state_dir = "state"
 
 [[sources]]
@@ -76,10 +77,10 @@ def describe(v: dict) -> str:
              f"p={v['p_value']:.4f}  reasons: {', '.join(v['reasons'])}"]
     for u in v["unseen_events"]:
         lines.append(f"    never seen before: {u['template']}")
-    lines.append(f"    compared with normal cluster #{v['cluster']}, whose representative session is:")
-    lines.append("      " + " → ".join(v.get("representative", [])))
+    lines.append(f"    nearest normal cluster #{v['cluster']}; its closest normal session is:")
+    lines.append("      " + " → ".join(v.get("closest_normal", [])))
     if v.get("diff"):
-        lines.append("    step by step:")
+        lines.append("    step by step, against that session:")
         lines.extend(f"      {d}" for d in v["diff"][:8])
     if v.get("missing"):
         lines.append("    expected but missing: " + "; ".join(m["ngram"] for m in v["missing"][:3]))
@@ -93,44 +94,51 @@ def run_demo(folder: Path, *, seed: int = 7, show: int = 6) -> int:
     folder.mkdir(parents=True, exist_ok=True)
     scenario = parcel_lockers()
     base_path, day_path, label_path = write_scenario(folder, scenario, seed=seed)
+    tbase_path, tday_path, tlabel_path = write_trace_scenario(folder, scenario, seed=seed + 100,
+                                                              n_normal=1000, per_kind=10)
     cfg_path = folder / "tracewatch.toml"
-    cfg_path.write_text(CONFIG.format(pattern=scenario.line_pattern))
+    cfg_path.write_text(CONFIG.format(pattern=scenario.line_pattern) + "\n" + TRACE_SOURCE)
     cfg = load_config(cfg_path)
     print(f"demo: parcel-locker backend, files in {folder}/")
-    print(f"  baseline day: {base_path}   day to score: {day_path}   labels: {label_path}")
+    print(f"  API log:  baseline {base_path}, day to score {day_path}, labels {label_path}")
+    print(f"  traces:   baseline {tbase_path}, day to score {tday_path}, labels {tlabel_path}")
 
-    baseline, path, fit_pipe = fit_files(cfg, assign_sources(cfg, [str(base_path)]))
+    baseline, path, fit_pipe = fit_files(cfg, assign_sources(cfg, [str(base_path), str(tbase_path)]))
     r = baseline.report
-    print(f"\nfit: {r['sessions']} sessions, {r['templates']} templates, {r['ngrams']} n-grams, k={r['k']}, "
-          f"threshold {r['threshold']:.3f}; baseline {baseline.version} in {path}")
+    print(f"\nfit: {r['sessions']} sessions, {r['templates']} templates, {r['ngrams']} n-grams, k={r['k']}; "
+          f"baseline {baseline.version} in {path}")
     for c in r["clusters"]:
-        print(f"  cluster #{c['cluster']} ({c['sessions']} sessions): {' → '.join(c['representative'])}")
+        steps = c["representative"]
+        more = f" … ({len(steps)} steps)" if len(steps) > 9 else ""
+        print(f"  cluster #{c['cluster']} ({c['sessions']} sessions): {' → '.join(steps[:9])}{more}")
 
-    verdicts: dict[str, dict] = {}
-    score_files(cfg, assign_sources(cfg, [str(day_path)]), baseline,
-                lambda v: verdicts.__setitem__(v["session_key"], v), score_all=True)
-    truth = [orjson.loads(line) for line in label_path.read_bytes().splitlines()]
-    label_of = {t["session_key"]: t for t in truth}
-    alerts = [v for v in verdicts.values() if v["alert"]]
-    alerts.sort(key=lambda v: -v["score"])
+    verdicts: dict[tuple[str, str], dict] = {}
+    score_files(cfg, assign_sources(cfg, [str(day_path), str(tday_path)]), baseline,
+                lambda v: verdicts.__setitem__((v["source"], v["session_key"]), v), score_all=True)
+    truth = {"locker-api": [orjson.loads(x) for x in label_path.read_bytes().splitlines()],
+             "locker-traces": [orjson.loads(x) for x in tlabel_path.read_bytes().splitlines()]}
+    label_of = {(src, t["session_key"]): t for src, rows in truth.items() for t in rows}
+    alerts = sorted((v for v in verdicts.values() if v["alert"]), key=lambda v: -v["score"])
     print(f"\nscore: {len(verdicts)} sessions, {len(alerts)} alerts. A few, one per kind of problem:\n")
     shown: set[str] = set()
     for v in alerts:
-        kind = label_of.get(v["session_key"], {}).get("label", "?")
+        label = label_of.get((v["source"], v["session_key"]), {})
+        kind = label.get("label", "?")
         if kind in shown or len(shown) >= show:
             continue
         shown.add(kind)
         print(describe(v))
-        print(f"    (injected: {kind}: {label_of[v['session_key']]['detail'] or 'nothing — a false alarm'})\n")
+        print(f"    (injected: {kind}: {label.get('detail') or 'nothing — a false alarm'})\n")
 
-    t = tally(verdicts, truth)
-    print("tally                 sessions  flagged")
-    for kind, row in t.items():
-        if kind == "_all":
-            continue
-        what = "false alarms" if kind == "normal" else "caught"
-        print(f"  {kind:<18} {row['sessions']:>9}  {row['flagged']:>7}  ({what} {row['share']:.1%})")
-    print(f"  precision of alerts: {t['_all']['precision']:.1%}; configured false_alarm_rate "
-          f"{cfg.model.false_alarm_rate:.1%}")
-    print(f"\ndone in {time.perf_counter() - t0:.1f} s. Try: tracewatch score --config {cfg_path} {day_path}")
+    for src, rows in truth.items():
+        t = tally({k: v for (s, k), v in verdicts.items() if s == src}, rows)
+        print(f"tally for {src:<15} sessions  flagged")
+        for kind, row in t.items():
+            if kind == "_all":
+                continue
+            what = "false alarms" if kind == "normal" else "caught"
+            print(f"  {kind:<24} {row['sessions']:>7}  {row['flagged']:>7}  ({what} {row['share']:.1%})")
+        print(f"  precision of alerts: {t['_all']['precision']:.1%}\n")
+    print(f"configured false_alarm_rate {cfg.model.false_alarm_rate:.1%}; done in {time.perf_counter() - t0:.1f} s.")
+    print(f"Try: tracewatch score --config {cfg_path} {day_path}")
     return 0

@@ -43,6 +43,8 @@ class Scenario:
     novel: list[Callable[[random.Random], Step]]  # messages the baseline never sees
     line_pattern: str = (r"^(?P<ts>\S+) (?P<level>[A-Z]+) \[(?P<svc>[^\]]+)\] req=(?P<key>\S+) "
                          r"(?P<message>.*)$")
+    line_format: str = "{ts}Z {level} [{service}] req={key} {message}"
+    time_format: str = "%Y-%m-%dT%H:%M:%S.%f"  # rendered to milliseconds
 
 
 @dataclass
@@ -142,8 +144,9 @@ def render_text(scenario: Scenario, sessions: list[GeneratedSession]) -> list[st
     events.sort(key=lambda e: e[0])
     out = []
     for t, key, step in events:
-        ts = datetime.fromtimestamp(t, tz=timezone.utc).strftime("%Y-%m-%dT%H:%M:%S.%f")[:-3] + "Z"
-        out.append(f"{ts} {step.level} [{scenario.service}] req={key} {step.message}")
+        ts = datetime.fromtimestamp(t, tz=timezone.utc).strftime(scenario.time_format)[:-3]
+        out.append(scenario.line_format.format(ts=ts, level=step.level, service=scenario.service, key=key,
+                                               message=step.message))
     return out
 
 
@@ -168,25 +171,51 @@ def _door(i: dict, rng: random.Random) -> list[Step]:
             Step("door closed", f"door {i['box']} closed after {rng.randint(900, 9000)}ms")]
 
 
-def deposit(rng: random.Random) -> list[Step]:
-    i = _ids(rng)
-    size = rng.choice("SML")
-    steps = [Step("courier authenticated", f"courier {i['courier']} authenticated at locker {i['locker']}"),
-             Step("compartment requested", f"reserve compartment size={size} for parcel {i['parcel']}")]
-    if rng.random() < 0.12:
-        steps.append(Step("size fallback", f"no free compartment of size {size}, trying a larger one",
+def _notify(i: dict, rng: random.Random) -> list[Step]:
+    steps = [Step("notification queued", f"notification queued for recipient {i['user']} via "
+                                         f"{rng.choice(['sms', 'email', 'app'])}")]
+    if rng.random() < 0.1:
+        steps.append(Step("quiet hours", f"recipient {i['user']} is in quiet hours, notification deferred",
+                          essential=False))
+    if rng.random() < 0.06:
+        steps.append(Step("delivery retry", f"notification gateway busy, retry {rng.randint(1, 2)} scheduled",
                           "WARN", essential=False))
-    steps += [Step("compartment reserved", f"compartment {i['box']} reserved for parcel {i['parcel']}"),
-              *_door(i, rng),
-              Step("deposit recorded", f"deposit recorded for parcel {i['parcel']} weight={rng.randint(80, 20000)}g"),
-              Step("notification queued", f"notification queued for recipient {i['user']} via "
-                                          f"{rng.choice(['sms', 'email', 'app'])}"),
-              Step("notification delivered", f"notification delivered to recipient {i['user']} in "
-                                             f"{rng.randint(40, 900)}ms")]
+    steps.append(Step("notification delivered", f"notification delivered to recipient {i['user']} in "
+                                                f"{rng.randint(40, 900)}ms"))
+    return steps
+
+
+def deposit(rng: random.Random) -> list[Step]:
+    """A courier drops one or more parcels at a locker."""
+    i = _ids(rng)
+    steps = [Step("courier authenticated", f"courier {i['courier']} authenticated at locker {i['locker']}")]
+    if rng.random() < 0.08:
+        steps.append(Step("route synced", f"route manifest synced for courier {i['courier']}", essential=False))
+    for _ in range(rng.choices([1, 2, 3, 4], weights=[6, 2, 1, 1])[0]):
+        j = _ids(rng)
+        j["locker"], j["courier"] = i["locker"], i["courier"]
+        size = rng.choice("SML")
+        steps.append(Step("compartment requested", f"reserve compartment size={size} for parcel {j['parcel']}"))
+        for _ in range(rng.choices([0, 1, 2], weights=[85, 12, 3])[0]):
+            steps.append(Step("size fallback", f"no free compartment of size {size}, trying a larger one",
+                              "WARN", essential=False))
+        steps += [Step("compartment reserved", f"compartment {j['box']} reserved for parcel {j['parcel']}"),
+                  *_door(j, rng)]
+        recorded = Step("deposit recorded", f"deposit recorded for parcel {j['parcel']} "
+                                            f"weight={rng.randint(80, 20000)}g")
+        if rng.random() < 0.3:
+            photo = Step("photo stored", f"parcel photo stored as img-{rng.getrandbits(40):010x}.jpg",
+                         essential=False)
+            steps += [photo, recorded] if rng.random() < 0.5 else [recorded, photo]
+        else:
+            steps.append(recorded)
+        steps += _notify(j, rng)
+    steps.append(Step("courier signed off", f"courier {i['courier']} signed off at locker {i['locker']}"))
     return steps
 
 
 def pickup(rng: random.Random) -> list[Step]:
+    """A recipient collects a parcel with a pickup code."""
     i = _ids(rng)
     steps = [Step("code checked", f"pickup code checked for parcel {i['parcel']} at locker {i['locker']}")]
     if rng.random() < 0.15:
@@ -195,26 +224,38 @@ def pickup(rng: random.Random) -> list[Step]:
                               "WARN", essential=False))
         steps.append(Step("code checked", f"pickup code checked for parcel {i['parcel']} at locker {i['locker']}",
                           essential=False))
+    if rng.random() < 0.12:
+        steps += [Step("fee due", f"storage fee due for parcel {i['parcel']}: {rng.randint(1, 9)}.{rng.randint(0, 99):02d} EUR",
+                       essential=False),
+                  Step("fee paid", f"storage fee paid by card ending {rng.randint(1000, 9999)}", essential=False)]
     steps += [*_door(i, rng),
               Step("parcel collected", f"parcel {i['parcel']} marked collected by recipient {i['user']}"),
               Step("compartment released", f"compartment {i['box']} released on locker {i['locker']}")]
+    if rng.random() < 0.2:
+        steps.append(Step("pickup rated", f"recipient rated pickup {rng.randint(1, 5)} of 5", essential=False))
     return steps
 
 
 def returns(rng: random.Random) -> list[Step]:
+    """A courier takes expired parcels back to their senders."""
     i = _ids(rng)
-    n = rng.randint(1, 3)
+    n = rng.randint(1, 5)
     steps = [Step("courier authenticated", f"courier {i['courier']} authenticated at locker {i['locker']}"),
              Step("expired listed", f"expired parcels listed for locker {i['locker']}: {n}")]
     for _ in range(n):
         j = _ids(rng)
         j["locker"] = i["locker"]
-        steps += [*_door(j, rng), Step("parcel returned", f"parcel {j['parcel']} marked returned to sender")]
+        steps += _door(j, rng)
+        if rng.random() < 0.05:
+            steps.append(Step("damage noted", f"parcel {j['parcel']} damage noted by courier {i['courier']}",
+                              "WARN", essential=False))
+        steps.append(Step("parcel returned", f"parcel {j['parcel']} marked returned to sender"))
     steps.append(Step("manifest signed", f"return manifest signed by courier {i['courier']}"))
     return steps
 
 
 def health(rng: random.Random) -> list[Step]:
+    """The monitoring system's periodic check of one locker."""
     i = _ids(rng)
     steps = [Step("health probe", f"health probe from monitor 10.20.{rng.randint(0, 255)}.{rng.randint(1, 254)}"),
              Step("environment read", f"temperature {rng.uniform(-5, 35):.1f}C humidity {rng.randint(20, 90)}% "
@@ -223,6 +264,12 @@ def health(rng: random.Random) -> list[Step]:
     if rng.random() < 0.1:
         steps.append(Step("battery low", f"battery below threshold on locker {i['locker']}, maintenance "
                                          "ticket opened", "WARN", essential=False))
+    if rng.random() < 0.2:
+        steps.append(Step("firmware checked", f"firmware {rng.randint(3, 4)}.{rng.randint(0, 9)}.{rng.randint(0, 20)} "
+                                              "is current", essential=False))
+        if rng.random() < 0.3:
+            steps.append(Step("update scheduled", "firmware update scheduled for the night window",
+                              essential=False))
     steps.append(Step("health report", f"health report sent for locker {i['locker']}"))
     return steps
 

@@ -29,17 +29,7 @@ _EPOCH = re.compile(r"^\d{9,10}(\.\d+)?$")
 _EPOCH_MS = re.compile(r"^\d{12,13}$")
 
 
-def parse_timestamp(text: str | None) -> float | None:
-    """Seconds since the epoch from ISO 8601 / RFC 3339 (with ``,`` or ``.`` fractions, as
-    Python's logging module writes them), or from a plain epoch number; None if unreadable.
-    Times without a zone are taken as UTC."""
-    if not text:
-        return None
-    text = text.strip()
-    if _EPOCH.match(text):
-        return float(text)
-    if _EPOCH_MS.match(text):
-        return int(text) / 1000.0
+def _iso(text: str) -> float | None:
     try:
         dt = datetime.fromisoformat(text.replace(",", ".", 1) if "," in text else text)
     except ValueError:
@@ -47,6 +37,31 @@ def parse_timestamp(text: str | None) -> float | None:
     if dt.tzinfo is None:
         dt = dt.replace(tzinfo=timezone.utc)
     return dt.timestamp()
+
+
+def parse_timestamp(text: str | None) -> float | None:
+    """Seconds since the epoch from ISO 8601 / RFC 3339 (with ``,`` or ``.`` fractions, as
+    Python's logging module writes them), or from a plain epoch number; None if unreadable.
+    Times without a zone are taken as UTC."""
+    if not text:
+        return None
+    text = text.strip()
+    if len(text) >= 10 and text[4] == "-" and text[7] == "-":  # the common case, no regex
+        return _iso(text)
+    if _EPOCH.match(text):
+        return float(text)
+    if _EPOCH_MS.match(text):
+        return int(text) / 1000.0
+    return _iso(text)
+
+
+def feed_lines(fmt: Format, lines) -> Output:
+    """Everything a format gives for ``lines`` (offsets 0, 1, ...), then what it held back: a
+    whole input read at once, for tools and tests."""
+    out: Output = []
+    for offset, line in enumerate(lines):
+        out += fmt.feed(line, offset)
+    return out + fmt.flush()
 
 
 def make_format(src: SourceConfig) -> Format:
@@ -74,4 +89,4 @@ def make_format(src: SourceConfig) -> Format:
     raise ValueError(f"unknown format {src.format!r}")  # unreachable: config validates it
 
 
-__all__ = ["Format", "Output", "Record", "Rejection", "make_format", "parse_timestamp"]
+__all__ = ["Format", "Output", "Record", "Rejection", "feed_lines", "make_format", "parse_timestamp"]

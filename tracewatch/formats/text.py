@@ -60,7 +60,8 @@ class TextFormat:
 
     def _feed_multiline(self, line: str, offset: int) -> Output:
         pending = self._pending
-        if pending is not None and self._cont.match(line) and line.strip():
+        # blank lines inside a record (chained tracebacks have them) belong to it too
+        if pending is not None and self._cont.match(line):
             if self._pending_lines < self._cont_max:
                 pending.raw += "\n" + line
                 self._pending_lines += 1

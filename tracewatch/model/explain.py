@@ -65,9 +65,12 @@ def step_diff(session: Sequence[int], normal: Sequence[int], text: Callable[[int
 
 
 def explain(seq: Sequence[int], vec: SessionVector, cluster: int, center: np.ndarray,
-            cluster_df: np.ndarray, medoid: Sequence[int], vectorizer: NgramVectorizer,
+            cluster_df: np.ndarray, medoid: Sequence[int], closest: Sequence[int],
+            vectorizer: NgramVectorizer,
             text: Callable[[int], str], is_seen: Callable[[int], bool]) -> dict:
-    """The explanation fields of an alert."""
+    """The explanation fields of an alert: the step difference is taken against ``closest``,
+    the cluster's baseline session most like this one, which reads far better than a diff
+    against the medoid when normal sessions vary in length."""
     grams = vectorizer.grams_
 
     def label(gram) -> str:
@@ -97,7 +100,8 @@ def explain(seq: Sequence[int], vec: SessionVector, cluster: int, center: np.nda
     return {
         "unexpected": unexpected,
         "missing": missing,
-        "diff": step_diff(seq, medoid, text, is_seen),
+        "diff": step_diff(seq, closest, text, is_seen),
+        "closest_normal": [text(e) for e in closest],
         "representative": [text(e) for e in medoid],
     }
 

@@ -1,0 +1,89 @@
+"""A second generated scenario, with workflows unlike the demo's: a city bike-share dock network.
+
+Invented names and numbers only. Built with the same Step/Scenario machinery as the demo, so
+the anomaly kinds and labels are the same.
+"""
+
+from __future__ import annotations
+
+import random
+
+from tracewatch.demo.scenario import Scenario, Step
+
+
+def ride(rng: random.Random) -> list[Step]:
+    m, d, b, r = rng.randint(10**5, 10**6), rng.randint(1, 400), rng.randint(1000, 9999), rng.getrandbits(32)
+    steps = [Step("card tapped", f"member {m} tapped card at dock D{d}")]
+    for _ in range(rng.choices([0, 1, 2], weights=[88, 9, 3])[0]):
+        steps.append(Step("card retry", "card read failed, asking member to tap again", "WARN", essential=False))
+    steps.append(Step("bike released", f"bike B{b} released from dock D{d} slot {rng.randint(1, 30)}"))
+    if rng.random() < 0.2:
+        steps.append(Step("helmet lock", f"helmet lock {rng.randint(1, 30)} opened", essential=False))
+    steps.append(Step("ride started", f"ride {r:08x} started"))
+    if rng.random() < 0.1:
+        steps += [Step("ride paused", f"ride {r:08x} paused at {rng.uniform(50, 51):.5f},{rng.uniform(4, 5):.5f}",
+                       essential=False),
+                  Step("ride resumed", f"ride {r:08x} resumed", essential=False)]
+    steps += [Step("bike returned", f"bike B{b} returned to dock D{rng.randint(1, 400)} slot {rng.randint(1, 30)}"),
+              Step("ride ended", f"ride {r:08x} ended after {rng.randint(2, 90)} min"),
+              Step("fare charged", f"fare {rng.randint(0, 9)}.{rng.randint(0, 99):02d} EUR charged to member {m}")]
+    if rng.random() < 0.4:
+        steps.append(Step("receipt", f"receipt emailed to member {m}", essential=False))
+    return steps
+
+
+def rebalance(rng: random.Random) -> list[Step]:
+    t, d = rng.randint(1, 40), rng.randint(1, 400)
+    steps = [Step("truck arrived", f"truck T{t} arrived at dock D{d}"),
+             Step("plan loaded", f"rebalance plan P{rng.randint(100, 999)} loaded for dock D{d}")]
+    for _ in range(rng.randint(1, 6)):
+        b = rng.randint(1000, 9999)
+        steps += [Step("bike unlocked", f"bike B{b} unlocked for transfer"),
+                  Step("bike loaded", f"bike B{b} loaded on truck T{t}")]
+    steps.append(Step("truck left", f"truck T{t} left dock D{d}"))
+    return steps
+
+
+def self_test(rng: random.Random) -> list[Step]:
+    d = rng.randint(1, 400)
+    steps = [Step("self-test started", f"dock D{d} self-test started"),
+             Step("slots ok", f"slot sensors ok: {rng.randint(10, 30)}"),
+             Step("terminal ok", "payment terminal answered the self-test")]
+    if rng.random() < 0.15:
+        steps.append(Step("display adjusted", f"display contrast adjusted to {rng.randint(40, 90)}%", essential=False))
+    steps.append(Step("self-test passed", f"dock D{d} self-test passed"))
+    return steps
+
+
+def renewal(rng: random.Random) -> list[Step]:
+    m = rng.randint(10**5, 10**6)
+    steps = [Step("renewal requested", f"renewal requested by member {m}"),
+             Step("payment authorised", f"payment authorised ref {rng.getrandbits(48):012x}")]
+    if rng.random() < 0.25:
+        steps.append(Step("offer applied", "welcome back offer applied", essential=False))
+    steps.append(Step("membership extended", f"membership of {m} extended to 2027-{rng.randint(1, 12):02d}-28"))
+    return steps
+
+
+def _novel_brake(rng):
+    return Step("brake fault", f"brake sensor fault reported by bike B{rng.randint(1000, 9999)}", "ERROR")
+
+
+def _novel_vandal(rng):
+    return Step("tamper alarm", f"tamper alarm on dock D{rng.randint(1, 400)} lid", "ERROR")
+
+
+def _novel_auth(rng):
+    return Step("auth outage", "identity service unreachable, falling back to offline list", "ERROR")
+
+
+def bike_docks() -> Scenario:
+    return Scenario(
+        service="dockctl",
+        workflows={"ride": (0.6, ride), "rebalance": (0.1, rebalance), "self-test": (0.2, self_test),
+                   "renewal": (0.1, renewal)},
+        novel=[_novel_brake, _novel_vandal, _novel_auth],
+        line_pattern=r"^\[(?P<ts>[^\]]+)\] (?P<svc>\S+) (?P<level>[A-Z]+) ctx=(?P<key>\w+): (?P<message>.*)$",
+        line_format="[{ts}] {service} {level} ctx={key}: {message}",
+        time_format="%Y-%m-%d %H:%M:%S,%f",
+    )

@@ -1,0 +1,458 @@
+"""The daemon end to end: the real `tracewatch run` as a subprocess on real files and a real
+loopback port, and the same Daemon object in-process for hot reload, eviction and readiness.
+
+What must hold: for the same lines, the alerts the daemon journals equal what `tracewatch
+score` prints in one batch — across a rotation by rename, a copytruncate, a clean restart and
+several kill -9 — with no line lost and no alert twice."""
+
+from __future__ import annotations
+
+import ctypes
+import http.client
+import json
+import os
+import shutil
+import signal
+import socket
+import subprocess
+import sys
+import threading
+import time
+from pathlib import Path
+
+import numpy as np
+import pytest
+from prometheus_client import CollectorRegistry
+from prometheus_client.parser import text_string_to_metric_families
+
+from tracewatch.baselines import atomic_write, baselines_dir, load_baseline
+from tracewatch.batch import assign_sources, fit_files
+from tracewatch.config import load_config
+from tracewatch.demo.scenario import generate, parcel_lockers, render_text
+from tracewatch.pipeline import Pipeline
+from tracewatch.service.daemon import Daemon
+from tracewatch.sessions import LiveTime
+
+from .conftest import ROOT, run_cli
+
+IDLE_S = 1.5
+TIME_SCALE = 0.2  # the demo's steps are 0.02-1.5 s apart; scaled, at most 0.3 s (< IDLE_S)
+PAUSE_S = 0.05  # writer pauses stay far below IDLE_S - 0.3 s (the live/batch rule in sessions.py)
+
+CONFIG = """\
+state_dir = "state"
+
+[[sources]]
+name = "api"
+paths = ["{logs}/*.log"]
+format = "text"
+line_pattern = '{pattern}'
+start_at = "beginning"
+
+[sessions]
+idle_timeout_s = {idle}
+max_open_sessions = {max_open}
+end_pattern = '{end}'
+
+[model]
+false_alarm_rate = 0.05
+
+[server]
+listen = "127.0.0.1:{port}"
+
+[daemon]
+poll_interval_s = 0.2
+rotation_grace_s = 0.5
+checkpoint_interval_s = {checkpoint_s}
+"""
+
+
+def scaled_lines(n: int, per_kind: int, seed: int, span_s: float) -> list[str]:
+    """Demo sessions (with ``per_kind`` anomalies of each kind) whose steps are at most 0.3 s apart."""
+    sc = parcel_lockers()
+    sessions = generate(sc, n, per_kind, seed=seed, span_s=span_s)
+    for s in sessions:
+        s.times = [s.start + (t - s.start) * TIME_SCALE for t in s.times]
+    return render_text(sc, sessions)
+
+
+def free_port() -> int:
+    with socket.socket() as s:
+        s.bind(("127.0.0.1", 0))
+        return s.getsockname()[1]
+
+
+def write_config(folder: Path, port: int, *, max_open: int = 100_000, idle: float = IDLE_S,
+                 end_pattern: str = "(?!)", checkpoint_s: float = 0.5) -> Path:
+    """A config following ``folder``/logs/*.log (``(?!)``: an end pattern that never matches)."""
+    (folder / "logs").mkdir(parents=True, exist_ok=True)
+    path = folder / "tracewatch.toml"
+    path.write_text(CONFIG.format(logs=folder / "logs", pattern=parcel_lockers().line_pattern, idle=idle,
+                                  max_open=max_open, port=port, end=end_pattern, checkpoint_s=checkpoint_s))
+    return path
+
+
+@pytest.fixture(scope="module")
+def fitted(tmp_path_factory):
+    """A baseline fitted once, the day's lines, and what `tracewatch score` says about them."""
+    root = tmp_path_factory.mktemp("daemon")
+    cfg_path = write_config(root, 1)
+    cfg = load_config(cfg_path)
+    base = root / "baseline.txt"
+    base.write_text("\n".join(scaled_lines(400, 0, seed=11, span_s=400)) + "\n")
+    fit_files(cfg, assign_sources(cfg, [str(base)]))
+    lines = scaled_lines(260, 4, seed=12, span_s=60)
+    day = root / "day.txt"
+    day.write_text("\n".join(lines) + "\n")
+    batch = run_cli("score", "--config", str(cfg_path), str(day), check=True).stdout
+    expected = [json.loads(x) for x in batch.splitlines()]
+    assert len(expected) >= 10, "the day needs alerts to compare"
+    return root, cfg_path, base, lines, expected
+
+
+def _workspace(fitted, tmp_path: Path, **config) -> Path:
+    """A fresh state folder holding a copy of the fitted baseline; returns the config path."""
+    shutil.copytree(baselines_dir(fitted[0] / "state"), baselines_dir(tmp_path / "state"))
+    return write_config(tmp_path, free_port(), **config)
+
+
+def _comparable(alerts: list[dict]) -> dict[str, dict]:
+    """Alerts by id, without what depends on how the lines were delivered: file offsets, and
+    whether the session was closed by the idle timeout (live) or the end of the input (batch)."""
+    return {a["alert_id"]: {k: v for k, v in a.items() if k not in ("closed_by", "first_offset")}
+            for a in alerts}
+
+
+def _die_with_parent() -> None:
+    """Linux prctl(PR_SET_PDEATHSIG, SIGKILL): a daemon never outlives the test that started it
+    (man 2 prctl)."""
+    libc = ctypes.CDLL(None, use_errno=True)
+    libc.prctl(1, signal.SIGKILL, 0, 0, 0)  # 1 = PR_SET_PDEATHSIG
+
+
+class DaemonProcess:
+    """`tracewatch run` as a subprocess; every one started is killed at the end of the test
+    (:func:`_no_daemon_left`) if the test did not stop it."""
+
+    started: list[DaemonProcess] = []
+
+    def __init__(self, cfg_path: Path, *extra: str) -> None:
+        self.cfg = load_config(cfg_path)
+        self.port = int(self.cfg.server.listen.rsplit(":", 1)[1])
+        self.err_path = cfg_path.parent / f"daemon-{time.monotonic_ns()}.err"
+        self.err = open(self.err_path, "wb")
+        env = dict(os.environ, PYTHONPATH=str(ROOT))
+        self.proc = subprocess.Popen([sys.executable, "-m", "tracewatch", "run", "--config", str(cfg_path), *extra],
+                                     stdout=subprocess.DEVNULL, stderr=self.err, env=env,
+                                     preexec_fn=_die_with_parent if sys.platform == "linux" else None)
+        DaemonProcess.started.append(self)
+
+    def get(self, path: str) -> tuple[int, bytes]:
+        conn = http.client.HTTPConnection("127.0.0.1", self.port, timeout=10)
+        try:
+            conn.request("GET", path)
+            resp = conn.getresponse()
+            return resp.status, resp.read()
+        finally:
+            conn.close()
+
+    def status(self) -> dict:
+        return json.loads(self.get("/api/status")[1])
+
+    def until(self, pred, what: str, timeout: float = 40.0, step: float = 0.05) -> float:
+        """Wait for ``pred()``; returns the perf_counter time it held."""
+        deadline = time.monotonic() + timeout
+        while time.monotonic() < deadline:
+            assert self.proc.poll() is None, f"the daemon exited ({self.proc.returncode}):\n{self.stderr()}"
+            try:
+                if pred():
+                    return time.perf_counter()
+            except (OSError, http.client.HTTPException):
+                pass  # not listening yet
+            time.sleep(step)
+        raise AssertionError(f"gave up waiting for {what}:\n{self.stderr()[-3000:]}")
+
+    def ready(self) -> DaemonProcess:
+        self.until(lambda: self.get("/readyz")[0] == 200, "readiness")
+        return self
+
+    def caught_up(self, n_lines: int) -> dict:
+        def done() -> bool:
+            s = self.status()
+            return s["sources"][0]["records"] == n_lines and s["sessions_open"] == 0
+        self.until(done, f"{n_lines} records and every session closed")
+        return self.status()
+
+    def terminate(self) -> int:
+        self.proc.send_signal(signal.SIGTERM)
+        code = self.proc.wait(timeout=15)
+        self.err.close()
+        return code
+
+    def kill(self) -> None:
+        self.proc.kill()
+        self.proc.wait(timeout=15)
+        if not self.err.closed:
+            self.err.close()
+
+    def stderr(self) -> str:
+        if not self.err.closed:
+            self.err.flush()
+        return self.err_path.read_text(errors="replace")
+
+
+@pytest.fixture(autouse=True)
+def _no_daemon_left():
+    yield
+    while DaemonProcess.started:
+        daemon = DaemonProcess.started.pop()
+        if daemon.proc.poll() is None:
+            daemon.kill()
+
+
+def _write(path: Path, lines: list[str]) -> None:
+    """One burst, delivered in two writes cut inside a line (the daemon must hold the half line)."""
+    data = "".join(line + "\n" for line in lines).encode()
+    cut = len(data) // 2 + 3
+    with open(path, "ab") as fh:
+        fh.write(data[:cut])
+        fh.flush()
+        time.sleep(0.005)
+        fh.write(data[cut:])
+
+
+def _rotate(logs: Path) -> None:
+    os.rename(logs / "app.log", logs / "app.log.1")  # the new app.log is created by the next burst
+
+
+def _copytruncate(logs: Path) -> None:
+    shutil.copy(logs / "app.log", logs / "app.log.2")
+    os.truncate(logs / "app.log", 0)
+
+
+def _journal(cfg_path: Path) -> list[dict]:
+    return [json.loads(x) for x in (cfg_path.parent / "state" / "alerts.jsonl").read_text().splitlines()]
+
+
+def test_live_alerts_equal_the_batch_through_rotation_copytruncate_and_restart(fitted, tmp_path):
+    _, _, _, lines, expected = fitted
+    cfg_path = _workspace(fitted, tmp_path)
+    logs = tmp_path / "logs"
+    daemon = DaemonProcess(cfg_path, "--log-format", "json").ready()
+    bursts = [lines[i:i + 150] for i in range(0, len(lines), 150)]
+    third = len(bursts) // 3
+    for i, burst in enumerate(bursts):
+        if i == third:
+            _rotate(logs)
+        elif i == 2 * third:
+            _copytruncate(logs)
+        elif i == 2 * third + 2:  # a clean restart: open sessions go on from the checkpoint
+            assert daemon.terminate() == 0
+            assert all(json.loads(x)["level"] for x in daemon.stderr().splitlines())  # JSON lines
+            daemon = DaemonProcess(cfg_path).ready()
+        _write(logs / "app.log", burst)
+        time.sleep(PAUSE_S)
+    status = daemon.caught_up(len(lines))
+    _, metrics = daemon.get("/metrics")
+    samples = {(s.name, tuple(sorted(s.labels.items()))): s.value
+               for fam in text_string_to_metric_families(metrics.decode()) for s in fam.samples}
+    assert samples[("tracewatch_records_total", (("source", "api"),))] == len(lines)
+    assert samples[("tracewatch_baseline_info", (("version", "v0001"),))] == 1
+    _, body = daemon.get("/api/alerts?since=0&limit=1000")
+    assert daemon.terminate() == 0
+    assert "Traceback" not in daemon.stderr()
+
+    got = _journal(cfg_path)
+    assert len(got) == len({a["alert_id"] for a in got}), "an alert was journalled twice"
+    assert _comparable(got) == _comparable(expected)
+    assert [a["alert_id"] for a in json.loads(body)["alerts"]] == [a["alert_id"] for a in got]
+    assert status["sessions_evicted"] == 0 and status["sources"][0]["lag_bytes"] == 0
+
+
+def test_kill_9_while_writing_loses_nothing_and_repeats_nothing(fitted, tmp_path):
+    _, _, _, lines, expected = fitted
+    cfg_path = _workspace(fitted, tmp_path)
+    logs = tmp_path / "logs"
+    bursts = [lines[i:i + 60] for i in range(0, len(lines), 60)]
+    done = threading.Event()
+
+    def writer() -> None:
+        for i, burst in enumerate(bursts):
+            if i == len(bursts) // 2:
+                _rotate(logs)
+            _write(logs / "app.log", burst)
+            time.sleep(0.15)
+        done.set()
+
+    daemon = DaemonProcess(cfg_path).ready()
+    thread = threading.Thread(target=writer)
+    thread.start()
+    kills = 0
+    try:
+        while not done.is_set() or kills < 3:
+            time.sleep(0.8 if kills % 2 else 0.3)
+            daemon.kill()  # SIGKILL: no chance to save anything
+            kills += 1
+            daemon = DaemonProcess(cfg_path).ready()
+    finally:
+        thread.join()
+    status = daemon.caught_up(len(lines))
+    assert daemon.terminate() == 0
+    got = _journal(cfg_path)
+    assert kills >= 3
+    assert status["sources"][0]["records"] == len(lines)
+    assert len(got) == len({a["alert_id"] for a in got}), "an alert was journalled twice"
+    assert _comparable(got) == _comparable(expected)
+
+
+@pytest.mark.parametrize("problem, code, message", [
+    ("no-baseline", 1, "fit one first with 'tracewatch fit"),
+    ("port-in-use", 2, "is already in use"),
+    ("missing-folder", 1, "does not exist"),
+], ids=["no-baseline", "port-in-use", "missing-folder"])
+def test_start_up_errors_are_one_clear_line(fitted, tmp_path, problem, code, message):
+    cfg_path = write_config(tmp_path, free_port()) if problem == "no-baseline" else _workspace(fitted, tmp_path)
+    blocker = None
+    if problem == "port-in-use":
+        blocker = socket.socket()
+        blocker.bind(("127.0.0.1", int(load_config(cfg_path).server.listen.rsplit(":", 1)[1])))
+        blocker.listen()
+    elif problem == "missing-folder":
+        shutil.rmtree(tmp_path / "logs")
+    try:
+        proc = run_cli("run", "--config", str(cfg_path))
+    finally:
+        if blocker is not None:
+            blocker.close()
+    assert proc.returncode == code, proc.stderr
+    assert message in proc.stderr and "Traceback" not in proc.stderr
+    assert len([x for x in proc.stderr.splitlines() if x.startswith("tracewatch:")]) == 1
+
+
+# -- in-process: the same Daemon object, driven from a thread --------------------------------------
+class InProcess:
+    def __init__(self, cfg_path: Path) -> None:
+        self.registry = CollectorRegistry()
+        self.daemon = Daemon(load_config(cfg_path), registry=self.registry)
+        self.daemon.start()
+        self.thread = threading.Thread(target=self.daemon.run)
+        self.thread.start()
+
+    def until(self, pred, what: str, timeout: float = 30.0) -> None:
+        deadline = time.monotonic() + timeout
+        while time.monotonic() < deadline:
+            if pred():
+                return
+            time.sleep(0.05)
+        raise AssertionError(f"gave up waiting for {what}; status: {self.daemon.status()}")
+
+    def metric(self, name: str, labels: dict | None = None) -> float | None:
+        return self.registry.get_sample_value(name, labels or {})
+
+    def stop(self) -> None:
+        self.daemon.stop()
+        self.thread.join(15)
+
+
+def test_hot_reload_refuses_a_corrupt_baseline_and_keeps_open_sessions(fitted, tmp_path):
+    _, _, base, lines, _ = fitted
+    cfg_path = _workspace(fitted, tmp_path, idle=600)  # nothing closes while the test refits
+    cfg = load_config(cfg_path)
+    live = InProcess(cfg_path)
+    try:
+        _write(tmp_path / "logs" / "app.log", lines[:200])
+        live.until(lambda: live.metric("tracewatch_records_total", {"source": "api"}) == 200, "200 records")
+        open_before = live.daemon.status()["sessions_open"]
+        assert open_before > 0
+
+        root = baselines_dir(cfg.state_dir)
+        shutil.copytree(root / "v0001", root / "v0002")
+        model = root / "v0002" / "model.npz"
+        data = bytearray(model.read_bytes())
+        data[len(data) // 2] ^= 0xFF
+        model.write_bytes(bytes(data))
+        atomic_write(root / "CURRENT", b"v0002\n")
+        live.until(lambda: live.metric("tracewatch_baseline_reload_failures_total") == 1, "the refusal")
+        assert live.metric("tracewatch_baseline_info", {"version": "v0001"}) == 1
+
+        fit_files(cfg, assign_sources(cfg, [str(base)]))  # v0003, made current
+        live.until(lambda: live.metric("tracewatch_baseline_info", {"version": "v0003"}) == 1, "the switch")
+        assert live.daemon.status()["sessions_open"] == open_before  # none lost, none closed early
+    finally:
+        live.stop()
+    assert {a["baseline_version"] for a in _journal(cfg_path)} <= {"v0001", "v0003"}
+
+
+def test_max_open_sessions_evicts_the_oldest_and_counts_it(fitted, tmp_path):
+    cfg_path = _workspace(fitted, tmp_path, max_open=20)
+    live = InProcess(cfg_path)
+    try:
+        _write(tmp_path / "logs" / "app.log",
+               [f"2026-11-30T10:00:{i:02d}.000Z INFO [locker-api] req=k{i:03d} health probe from monitor 10.0.0.{i}"
+                for i in range(50)])
+        live.until(lambda: live.metric("tracewatch_records_total", {"source": "api"}) == 50, "50 records")
+        live.until(lambda: live.metric("tracewatch_sessions_evicted_total") == 30, "30 evictions")
+        assert live.metric("tracewatch_sessions_open") == 20
+    finally:
+        live.stop()
+
+
+def test_readiness_follows_the_watched_folder(fitted, tmp_path):
+    cfg_path = _workspace(fitted, tmp_path)
+    live = InProcess(cfg_path)
+    try:
+        assert live.daemon.ready() == (True, "")
+        shutil.rmtree(tmp_path / "logs")
+        live.until(lambda: not live.daemon.ready()[0], "not ready")
+        assert "source api is not attached: folder" in live.daemon.ready()[1]
+        (tmp_path / "logs").mkdir()
+        live.until(lambda: live.daemon.ready()[0], "ready again")
+        _write(tmp_path / "logs" / "app.log", fitted[3][:10])  # watched again: new files are read
+        live.until(lambda: live.metric("tracewatch_records_total", {"source": "api"}) == 10, "10 records")
+    finally:
+        live.stop()
+
+
+# -- the live clock ---------------------------------------------------------------------------------
+class FakeWall:
+    def __init__(self) -> None:
+        self.t = 5_000.0
+
+    def __call__(self) -> float:
+        return self.t
+
+
+def test_live_time_follows_records_and_moves_on_only_while_quiet():
+    wall, mark = FakeWall(), [0.0]
+    live = LiveTime(lambda: mark[0], wall)
+    assert live() == wall.t  # no timestamps yet: the wall clock
+    mark[0] = 100.0
+    assert live() == 100.0
+    wall.t += 3
+    assert live() == 103.0  # quiet for 3 s: event time moved on 3 s
+    live.hold()  # input still waiting: the time spent reading does not count
+    wall.t += 10
+    live.hold()
+    assert live() == 103.0
+    mark[0] = 104.0
+    assert live() == 104.0
+
+
+def test_idle_session_closes_live_after_quiet_time_not_during_a_backlog(fitted):
+    root, cfg_path = fitted[0], fitted[1]
+    cfg = load_config(cfg_path)
+    wall = FakeWall()
+    verdicts: list[dict] = []
+    pipe: Pipeline | None = None
+    live = LiveTime(lambda: pipe.watermark, wall)
+    pipe = Pipeline(cfg, load_baseline(root / "state"), on_verdict=verdicts.append, score_all=True, clock=live)
+    pipe.feed_line("api", "f", "2026-11-30T10:00:00.000Z INFO [locker-api] req=a health probe from monitor 10.0.0.1")
+    pipe.tick(live())
+    wall.t += IDLE_S * 4
+    live.hold()  # the follower reported unread input all along
+    pipe.tick(live())
+    assert pipe.sessionizer.open and not verdicts
+    wall.t += IDLE_S + 0.1  # now quiet for longer than the idle timeout
+    pipe.tick(live())
+    assert not pipe.sessionizer.open and [v["closed_by"] for v in verdicts] == ["idle"]
+    assert np.isfinite(verdicts[0]["score"])

@@ -1,0 +1,54 @@
+"""Features: event n-grams with markers, sublinear tf-idf, L2 norm — checked against scikit-learn."""
+
+from __future__ import annotations
+
+import numpy as np
+import scipy.sparse as sp
+from sklearn.feature_extraction.text import TfidfTransformer
+
+from tracewatch.features import END, START, NgramVectorizer, ngrams
+
+
+def test_ngrams_by_hand():
+    got = ngrams([7, 8, 7], 2)
+    assert got == {(7,): 2, (8,): 1, (START, 7): 1, (7, 8): 1, (8, 7): 1, (7, END): 1}
+
+
+def test_tfidf_matches_sklearn_tfidftransformer():
+    rng = np.random.default_rng(0)
+    seqs = [tuple(int(x) for x in rng.integers(0, 6, size=rng.integers(1, 12))) for _ in range(60)]
+    vec = NgramVectorizer(3).fit(seqs)
+    X, unseen = vec.transform(seqs)
+    assert np.allclose(unseen, 0.0)
+    # the same counts through scikit-learn's TfidfTransformer (sublinear_tf, smooth_idf, l2)
+    counts = sp.lil_matrix((len(seqs), len(vec.vocabulary_)))
+    for i, s in enumerate(seqs):
+        for g, c in ngrams(s, 3).items():
+            counts[i, vec.vocabulary_[g]] = c
+    ref = TfidfTransformer(norm="l2", use_idf=True, smooth_idf=True, sublinear_tf=True).fit(counts)
+    assert np.allclose(vec.idf_, ref.idf_)
+    assert np.allclose(X.toarray(), ref.transform(counts).toarray())
+
+
+def test_weights_equal_repeated_rows():
+    seqs = [(1, 2, 3), (1, 3), (2, 2, 2, 4)]
+    w = [3, 1, 2]
+    a = NgramVectorizer(2).fit(seqs, w)
+    b = NgramVectorizer(2).fit([s for s, k in zip(seqs, w) for _ in range(k)])
+    assert a.vocabulary_ == b.vocabulary_ and np.allclose(a.idf_, b.idf_)
+
+
+def test_unseen_ngrams_keep_their_weight_in_the_norm():
+    vec = NgramVectorizer(2).fit([(1, 2), (1, 2, 2)])
+    v = vec.vector((1, 9))
+    assert set(v.unseen) == {(9,), (1, 9), (9, END)}
+    assert np.isclose(float(v.values @ v.values) + v.unseen_mass, 1.0)
+    assert 0.5 < v.unseen_mass < 1.0
+    w = vec.vector((1, 2))
+    assert w.unseen_mass == 0.0 and np.isclose(float(w.values @ w.values), 1.0)
+
+
+def test_persistence_round_trip():
+    vec = NgramVectorizer(3).fit([(1, 2, 3), (3, 2, 1, 1)])
+    back = NgramVectorizer.from_arrays(3, vec.to_arrays())
+    assert back.vocabulary_ == vec.vocabulary_ and np.array_equal(back.idf_, vec.idf_)

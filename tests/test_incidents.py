@@ -1,0 +1,167 @@
+"""Incident grouping (tracewatch/alerts/incidents.py): online average linkage on cosine
+distance within a time window, the medoid as representative, statuses, and notifications per
+incident — on hand-computed toy alerts and on a generated storm scored by the real pipeline."""
+
+from __future__ import annotations
+
+import math
+from collections import Counter
+
+import pytest
+
+from tracewatch.alerts.incidents import IncidentTracker, Incidents, alert_vector, dot, set_status
+from tracewatch.alerts.store import IncidentStore
+from tracewatch.config import parse_config
+
+from .incident_data import RETRY, UNSEEN, Receiver, config, storm, toy_alert
+
+T0 = 1_800_000_000.0
+
+
+@pytest.fixture
+def store(tmp_path):
+    s = IncidentStore.open(tmp_path / "state")
+    yield s
+    s.close()
+
+
+def tracker(store, **incidents) -> IncidentTracker:
+    cfg = parse_config({"incidents": incidents}).incidents
+    return IncidentTracker(store, cfg, clock=lambda: T0)
+
+
+def events(store) -> list[tuple[int, str]]:
+    return [(p["id"], ev) for _, ev, p in store.outbox_after(0)]
+
+
+# -- vectors and linkage, on paper -------------------------------------------------------------------
+def test_toy_vectors_on_paper():
+    # an alert with never-seen event A and an empty sequence has two terms: the event (weight 2)
+    # and the sequence's one bigram "(start) (end)" (norm 0.5): the vector is (2, 0.5)/√4.25
+    a, ab, c = alert_vector(toy_alert("1", "A")), alert_vector(toy_alert("2", "A", "B")), alert_vector(toy_alert("3", "C"))
+    assert sorted(a.values()) == pytest.approx([0.5 / math.sqrt(4.25), 2 / math.sqrt(4.25)])
+    assert dot(a, a) == pytest.approx(1.0)
+    assert dot(a, ab) == pytest.approx(4.25 / math.sqrt(4.25 * 8.25))  # cos = 0.7177…
+    assert dot(a, c) == pytest.approx(0.25 / 4.25)  # they share only the sequence term
+
+
+@pytest.mark.parametrize("cut, joins", [(0.60, False), (0.65, True)], ids=["cut-0.60-apart", "cut-0.65-joins"])
+def test_average_linkage(store, cut, joins):
+    # incident = {A}, {A,B}; new alert {B}: distances 1 - 0.25/4.25 = 0.941 and 1 - 4.25/√(4.25·8.25)
+    # = 0.282; average linkage = their mean 0.612 (single linkage would say 0.282, complete 0.941)
+    tr = tracker(store, cut=cut)
+    first = tr.add(toy_alert("a1", "A"))
+    assert tr.add(toy_alert("a2", "A", "B")) == first  # 0.282 ≤ cut
+    assert (tr.add(toy_alert("x", "B")) == first) is joins
+
+
+def test_medoid_is_the_representative(store):
+    tr = tracker(store)
+    iid = tr.add(toy_alert("ab", "A", "B"))
+    for n in range(3):
+        tr.add(toy_alert(f"a{n}", "A"))
+    rep = store.incident(iid)["representative"]
+    # the three {A} alerts are each at distance 0, 0, 0.282 from the others (sum 0.282); {A,B}
+    # is at 0.282 from all three (sum 0.846): the medoid is an {A} alert
+    assert rep["alert_id"] in {"a0", "a1", "a2"}
+    assert store.incident(iid)["title"] == "never-seen event 'event A <*>'"
+
+
+def test_time_window(store):
+    tr = tracker(store, window_s=600)
+    first = tr.add(toy_alert("1", "A", t=T0))
+    assert tr.add(toy_alert("2", "A", t=T0 + 599)) == first
+    later = tr.add(toy_alert("3", "A", t=T0 + 599 + 601))  # quiet for longer than the window
+    assert later != first
+    assert events(store) == [(first, "opened"), (later, "opened")]
+
+
+def test_replayed_alert_counted_once_and_state_survives_a_restart(store, tmp_path):
+    tr = tracker(store)
+    iid = tr.add(toy_alert("1", "A"))
+    assert tr.add(toy_alert("1", "A")) == iid
+    store.close()
+    again = IncidentStore.open(tmp_path / "state")  # a new process: nothing in memory
+    tr2 = tracker(again)
+    assert tr2.add(toy_alert("1", "A")) == iid  # raised again after a restart: recognised
+    assert tr2.add(toy_alert("2", "A")) == iid  # grouping goes on with the stored incident
+    assert again.incident(iid)["count"] == 2
+    assert [e for _, e in events(again)] == ["opened"]
+    again.close()
+
+
+def test_statuses_and_their_notifications(store):
+    tr = tracker(store, escalation_steps=[3, 5])
+    iid = tr.add(toy_alert("1", "A"))
+    tr.add(toy_alert("2", "A"))
+    tr.add(toy_alert("3", "A"))  # count 3: escalation
+    assert set_status(store, iid, "ack", by="test")[0] == 200
+    for n in range(4, 7):
+        tr.add(toy_alert(str(n), "A"))  # count 5 while acknowledged: no escalation
+    assert set_status(store, iid, "ack", by="test")[0] == 200  # already: no change, no error
+    code, out = set_status(store, iid, "resolve", by="test")
+    assert code == 200 and out["status"] == "resolved"
+    assert set_status(store, iid, "ack", by="test")[0] == 409  # a resolved incident is not acknowledged
+    assert set_status(store, 999, "ack", by="test")[0] == 404
+    assert set_status(store, iid, "shout", by="test")[0] == 400
+    new = tr.add(toy_alert("7", "A"))  # a resolved incident takes no alerts: a new one opens
+    assert new != iid
+    assert events(store) == [(iid, "opened"), (iid, "escalated"), (iid, "resolved"), (new, "opened")]
+
+
+def test_expected_incident_absorbs_alerts_silently(store):
+    tr = tracker(store, window_s=60)
+    iid = tr.add(toy_alert("1", "A"))
+    set_status(store, iid, "expected", by="test", note="nightly batch")
+    before = events(store)
+    for n in range(2, 30):  # also long after the window: an expected pattern stays expected
+        assert tr.add(toy_alert(str(n), "A", t=T0 + 3600 * n)) == iid
+    assert store.incident(iid)["count"] == 29 and store.incident(iid)["note"] == "nightly batch"
+    assert events(store) == before  # opened, resolved — nothing for the 28 expected alerts
+
+
+def test_auto_resolve_on_tick(store):
+    tr = tracker(store, auto_resolve_s=300)
+    iid = tr.add(toy_alert("1", "A", t=T0))
+    assert tr.tick(T0 + 299) == []
+    assert tr.tick(T0 + 301) == [iid]
+    assert store.incident(iid)["status"] == "resolved"
+    assert store.incident(iid)["status_by"].startswith("auto")
+    assert events(store) == [(iid, "opened"), (iid, "resolved")]
+
+
+# -- the storm -----------------------------------------------------------------------------------------
+@pytest.fixture(scope="module")
+def storm_data(tmp_path_factory):
+    return storm(tmp_path_factory.getbasetemp() / "incident-storm")
+
+
+def test_storm_gives_two_incidents_not_hundreds_of_notifications(storm_data, tmp_path):
+    _, alerts, labels = storm_data
+    faulty = Counter(labels[a["session_key"]] for a in alerts)
+    assert faulty[RETRY] >= 150 and faulty[UNSEEN] >= 150  # the storm: hundreds of alerts, two faults
+    receiver = Receiver().start()
+    inc = Incidents(config(tmp_path, notify={"webhook_url": receiver.url + "/hook"}))
+    try:
+        inc.start()  # the notifier thread delivers while alerts come in
+        by_incident: dict[int, Counter] = {}
+        for a in alerts:
+            by_incident.setdefault(inc.add(a), Counter())[labels[a["session_key"]]] += 1
+        rows = inc.store.incidents()
+        queued = len(inc.store.outbox_after(0))
+        received = receiver.wait_for(queued)
+    finally:
+        inc.close()
+        receiver.stop()
+    print(f"\n{len(alerts)} alerts -> {len(rows)} incidents, {len(received)} notifications")
+    assert len(rows) == 2
+    # each fault is one incident, and each incident is one fault
+    assert sorted(sorted(c) for c in by_incident.values()) == [[RETRY], [UNSEEN]]
+    titles = sorted(r["title"] for r in rows)
+    assert titles[0].startswith("never-seen event 'latch sensor on door <*> reports jammed bolt'")
+    assert titles[1].startswith("retry of 'door <*> opened on locker <*>' repeated ")
+    # per incident: opened, escalated at 10 and at 100 alerts — six in all, not hundreds
+    assert len(received) == queued == 6
+    got = Counter((b["incident"]["id"], b["event"], b["incident"].get("step")) for b in received)
+    assert got == Counter({(r["id"], ev, step): 1 for r in rows
+                           for ev, step in (("opened", None), ("escalated", 10), ("escalated", 100))})

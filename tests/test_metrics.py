@@ -1,0 +1,77 @@
+"""Metrics: names and labels per DESIGN.md, values read back from a fresh registry."""
+
+from __future__ import annotations
+
+import math
+
+from prometheus_client import CollectorRegistry, generate_latest
+from prometheus_client.parser import text_string_to_metric_families
+
+from tracewatch.config import parse_config
+from tracewatch.pipeline import Pipeline
+from tracewatch.service.metrics import SCORE_BUCKETS, DaemonMetrics
+
+
+def _pipeline_snapshot() -> dict:
+    """A real pipeline (fit mode: no baseline needed) fed a few lines, one of them unreadable."""
+    cfg = parse_config({"sources": [{"name": "api", "line_pattern": r"^(?P<ts>\S+) key=(?P<key>\S+) (?P<message>.*)$"}]})
+    pipe = Pipeline(cfg)
+    lines = ["2026-01-01T00:00:00Z key=a start", "2026-01-01T00:00:01Z key=a stop", "garbage without a key", ""]
+    for i, line in enumerate(lines):
+        pipe.feed_line("api", "f", line, i, "invalid_utf8" if i == 2 else None)
+    return {"records": dict(pipe.records), "lines": dict(pipe.lines), "rejected": dict(pipe.rejected),
+            "repaired": dict(pipe.repaired), "sessions_open": len(pipe.sessionizer.open),
+            "sessions_scored": {"api": 7}, "alerts": {("api", "unseen_event"): 2},
+            "sessions_evicted": 3, "baseline_version": "v0002", "sources": ["api", "idle-source"],
+            "files": [{"source": "api", "lag_bytes": 100, "lag_seconds": 1.5},
+                      {"source": "api", "lag_bytes": 20, "lag_seconds": 4.0}]}
+
+
+def test_values_from_the_snapshot():
+    reg = CollectorRegistry()
+    DaemonMetrics(reg, _pipeline_snapshot)
+    get = reg.get_sample_value
+    assert get("tracewatch_records_total", {"source": "api"}) == 3  # the blank line is not a record
+    assert get("tracewatch_lines_total", {"source": "api"}) == 4
+    assert get("tracewatch_records_rejected_total", {"source": "api", "reason": "no_match"}) == 1
+    assert get("tracewatch_records_rejected_total", {"source": "api", "reason": "empty"}) == 1
+    assert get("tracewatch_lines_repaired_total", {"source": "api", "reason": "invalid_utf8"}) == 1
+    assert get("tracewatch_sessions_open") == 2  # key a, and the keyless line's time window
+    assert get("tracewatch_sessions_scored_total", {"source": "api"}) == 7
+    assert get("tracewatch_alerts_total", {"source": "api", "reason": "unseen_event"}) == 2
+    assert get("tracewatch_sessions_evicted_total") == 3
+    assert get("tracewatch_baseline_info", {"version": "v0002"}) == 1
+    assert get("tracewatch_ingest_lag_bytes", {"source": "api"}) == 120
+    assert get("tracewatch_ingest_lag_seconds", {"source": "api"}) == 4.0
+    assert get("tracewatch_files_followed", {"source": "api"}) == 2
+    assert get("tracewatch_files_followed", {"source": "idle-source"}) == 0
+
+
+def test_score_histogram_buckets():
+    reg = CollectorRegistry()
+    m = DaemonMetrics(reg, dict)
+    for score in (0.1, 0.9, 2.5, math.inf):
+        m.observe_score("api", score)
+    get = reg.get_sample_value
+    assert get("tracewatch_session_score_count", {"source": "api"}) == 4
+    assert get("tracewatch_session_score_bucket", {"source": "api", "le": "1.0"}) == 2
+    assert get("tracewatch_session_score_bucket", {"source": "api", "le": "3.0"}) == 3
+    assert get("tracewatch_session_score_bucket", {"source": "api", "le": "+Inf"}) == 4
+    assert list(SCORE_BUCKETS) == sorted(SCORE_BUCKETS)
+
+
+def test_exposition_parses_and_follows_the_naming_rules():
+    """The text exposition parses with prometheus_client's own parser (Prometheus text format
+    0.0.4); names start with tracewatch_, counters end in _total and no label is a session key
+    (Prometheus naming practices, prometheus.io/docs/practices/naming)."""
+    reg = CollectorRegistry()
+    DaemonMetrics(reg, _pipeline_snapshot).observe_score("api", 1.0)
+    families = list(text_string_to_metric_families(generate_latest(reg).decode()))
+    assert families
+    allowed = {"source", "reason", "version", "le"}
+    for fam in families:
+        assert fam.name.startswith("tracewatch_")
+        for sample in fam.samples:
+            assert set(sample.labels) <= allowed, sample
+            if fam.type == "counter":
+                assert sample.name.endswith(("_total", "_created")), sample.name

@@ -1,0 +1,100 @@
+"""Baseline model: Kneedle, weighted silhouette vs scikit-learn, the k-means objective, contamination."""
+
+from __future__ import annotations
+
+import numpy as np
+import pytest
+import scipy.sparse as sp
+from sklearn.cluster import KMeans
+from sklearn.metrics import silhouette_score
+
+from tracewatch.features import NgramVectorizer
+from tracewatch.model.fit import ClusterModel, kneedle, weighted_silhouette
+
+
+@pytest.mark.parametrize(
+    "curve, knee",
+    [
+        ([100, 20, 15, 12, 10, 9], 2),  # by hand: normalised chord distance is largest at k=2
+        ([100, 80, 60, 15, 12, 10, 9, 8], 4),
+        ([10, 10, 10], 1),  # flat: no structure
+    ],
+    ids=["sharp-at-2", "sharp-at-4", "flat"],
+)
+def test_kneedle_on_hand_made_curves(curve, knee):
+    ks = np.arange(1, len(curve) + 1)
+    assert kneedle(ks, np.array(curve, dtype=float)) == knee
+
+
+def _blobs(seed=0):
+    rng = np.random.default_rng(seed)
+    centers = rng.normal(size=(3, 5)) * 4
+    X = np.vstack([c + rng.normal(size=(40, 5)) for c in centers])
+    labels = np.repeat([0, 1, 2], 40)
+    return X, labels
+
+
+def test_silhouette_matches_sklearn_unweighted():
+    X, labels = _blobs()
+    # reference: sklearn.metrics.silhouette_score (Rousseeuw 1987), euclidean metric
+    assert np.isclose(weighted_silhouette(X, labels), silhouette_score(X, labels))
+
+
+def test_weighted_silhouette_equals_sklearn_on_expanded_data():
+    X, labels = _blobs(1)
+    X, labels = X[::4], labels[::4]
+    w = np.random.default_rng(2).integers(1, 5, size=len(X))
+    w[0] = 1  # a row standing for one point
+    expanded = np.repeat(X, w, axis=0)
+    assert np.isclose(weighted_silhouette(X, labels, w), silhouette_score(expanded, np.repeat(labels, w)))
+
+
+def test_singleton_cluster_scores_zero_like_sklearn():
+    X = np.array([[0.0], [0.1], [5.0]])
+    labels = np.array([0, 0, 1])
+    assert np.isclose(weighted_silhouette(X, labels), silhouette_score(X, labels))
+
+
+def _session_matrix():
+    rng = np.random.default_rng(4)
+    flows = [(1, 2, 3, 4), (5, 6, 7), (1, 8, 9, 9, 4)]
+    seqs = []
+    for _ in range(300):
+        f = list(flows[rng.integers(0, 3)])
+        if rng.random() < 0.3:
+            f.insert(int(rng.integers(1, len(f))), int(rng.integers(10, 13)))
+        seqs.append(tuple(f))
+    return NgramVectorizer(3).fit(seqs).transform(seqs)[0]
+
+
+def test_lloyd_iterations_never_increase_the_objective():
+    # A property of the method (Lloyd 1982): each assignment + update step cannot raise the
+    # within-cluster sum of squares. Checked on session vectors from a fixed k-means++ start.
+    X = _session_matrix()
+    w = np.random.default_rng(5).integers(1, 4, size=X.shape[0]).astype(float)
+    init = KMeans(n_clusters=4, n_init=1, max_iter=1, random_state=0).fit(X, sample_weight=w).cluster_centers_
+    inertias = []
+    for it in range(1, 12):
+        km = KMeans(n_clusters=4, init=init, n_init=1, max_iter=it, tol=0.0, algorithm="lloyd").fit(X, sample_weight=w)
+        inertias.append(km.inertia_)
+    assert all(b <= a + 1e-9 for a, b in zip(inertias, inertias[1:]))
+
+
+def test_auto_k_finds_the_three_flows_and_reports_the_curve():
+    X = _session_matrix()
+    model = ClusterModel(k="auto", k_max=8, restarts=3, seed=0).fit(X)
+    assert model.k_ == 3
+    assert [row["k"] for row in model.curve_] == list(range(1, 9))
+    inertia = [row["inertia"] for row in model.curve_]
+    assert inertia[0] > inertia[2]
+    assert model.curve_[2]["silhouette"] > 0.3
+
+
+def test_tiny_cluster_is_reported_as_contamination_not_learned():
+    base = np.array([[1.0, 0.0, 0.0], [0.0, 1.0, 0.0], [0.0, 0.0, 1.0]])
+    X = sp.csr_matrix(np.vstack([base[0]] * 1 + [base[1]] * 1 + [base[2]]))
+    w = np.array([500.0, 499.0, 1.0])  # the third pattern is 0.1% of the sessions
+    model = ClusterModel(k=3, min_cluster_share=0.005, seed=0).fit(X, w)
+    assert len(model.cluster_centers_) == 2
+    assert len(model.contamination_) == 1 and model.contamination_[0]["sessions"] == 1
+    assert model.labels_[2] == -1

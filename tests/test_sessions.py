@@ -1,0 +1,64 @@
+"""Sessions: closing on idle, end pattern, max events, max duration; eviction; time windows."""
+
+from __future__ import annotations
+
+from tracewatch.config import SessionsConfig
+from tracewatch.sessions import Sessionizer
+
+
+def _add(sz, key, t, ev, closed, msg="step", source="s"):
+    sz.add(source, key, t, t, ev, f"{t} {key} {msg}", 0, msg, closed)
+
+
+def test_idle_timeout_by_record_time_and_by_tick():
+    sz = Sessionizer(SessionsConfig(idle_timeout_s=10))
+    closed = []
+    _add(sz, "a", 0.0, 1, closed)
+    _add(sz, "a", 5.0, 2, closed)
+    _add(sz, "a", 16.0, 3, closed)  # 11 s after the last event: the old session closes first
+    assert [(s.key, s.events, s.close_reason) for s in closed] == [("a", [1, 2], "idle")]
+    sz.tick(26.5, closed)
+    assert closed[-1].events == [3] and closed[-1].close_reason == "idle"
+    assert not sz.open
+
+
+def test_end_pattern_and_max_events():
+    sz = Sessionizer(SessionsConfig(end_pattern=r"signed off", max_events=3))
+    closed = []
+    _add(sz, "a", 0, 1, closed)
+    _add(sz, "a", 1, 2, closed, msg="courier signed off")
+    assert closed[-1].close_reason == "end" and closed[-1].events == [1, 2]
+    for i in range(4):
+        _add(sz, "b", i, i, closed)
+    assert closed[-1].close_reason == "max_events" and closed[-1].events == [0, 1, 2]
+    sz.flush(closed)
+    assert closed[-1].events == [3] and closed[-1].close_reason == "flush"
+
+
+def test_max_duration():
+    sz = Sessionizer(SessionsConfig(idle_timeout_s=100, max_duration_s=50))
+    closed = []
+    for t in range(0, 60, 20):
+        _add(sz, "a", float(t), t, closed)
+    _add(sz, "a", 60.0, 60, closed)
+    assert closed[0].close_reason == "max_duration" and closed[0].events == [0, 20, 40]
+
+
+def test_open_sessions_are_bounded_oldest_evicted():
+    sz = Sessionizer(SessionsConfig(max_open_sessions=3))
+    closed = []
+    for i, key in enumerate("abcd"):
+        _add(sz, key, float(i), i, closed)
+    _add(sz, "b", 4.0, 9, closed)
+    _add(sz, "e", 5.0, 5, closed)
+    assert [s.key for s in closed] == ["a", "c"] and all(s.close_reason == "evicted" for s in closed)
+    assert sz.evicted == 2 and len(sz.open) == 3
+
+
+def test_keyless_records_fall_into_time_windows():
+    sz = Sessionizer(SessionsConfig(window_s=60, idle_timeout_s=1000))
+    closed = []
+    for t in (0.0, 30.0, 59.9, 60.0, 119.0):
+        _add(sz, None, t, int(t), closed)
+    sz.flush(closed)
+    assert sorted((s.key, len(s.events)) for s in closed) == [("window@0", 3), ("window@60", 2)]

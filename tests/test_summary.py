@@ -1,0 +1,82 @@
+"""Summaries (tracewatch/alerts/summary.py): titles in words from the strongest explanation,
+the detail's bounds and redaction, and text that is safe on a terminal."""
+
+from __future__ import annotations
+
+import itertools
+
+import pytest
+
+from tracewatch.alerts.alert import Redactor
+from tracewatch.alerts.incidents import Incidents
+from tracewatch.alerts.summary import MAX_SAMPLE, detail, safe, table, text, title
+
+from .incident_data import config, storm, toy_alert
+
+DOOR = "door <*> opened on locker <*>"
+
+
+@pytest.mark.parametrize("fields, expected", [
+    ({"unseen_events": [{"template_id": "t9", "template": "latch <*> jammed", "count": 2},
+                        {"template_id": "t8", "template": "gateway timeout", "count": 1}]},
+     "never-seen event 'latch <*> jammed' (+1 more)"),
+    ({"diff": ["extra: x", f"repeated ×37 (normally ×1): {DOOR}", "repeated ×4: retry <*>"]},
+     f"retry of '{DOOR}' repeated 37× (+1 more)"),
+    ({"diff": ["repeated ×2 (normally ×1): a"], "missing": [{"ngram": "a → b", "cluster_share": 1.0},
+                                                           {"ngram": "deposit recorded", "cluster_share": 0.97}]},
+     "step 'deposit recorded' missing"),
+    ({"unexpected": [{"ngram": "door closed → door opened", "weight": 0.4, "seen_at_fit": False}]},
+     "step order never seen: 'door closed' then 'door opened'"),
+    ({"unexpected": [{"ngram": "size fallback", "weight": 0.2, "seen_at_fit": True, "cluster_share": 0.1}]},
+     "step 'size fallback' more frequent than normal"),
+    ({"cluster": 3}, "session unlike the baseline (nearest normal group #3)"),
+], ids=["unseen", "retry", "missing", "new-order", "more-frequent", "fallback"])
+def test_title_from_the_strongest_explanation(fields, expected):
+    base = {"unseen_events": [], "diff": [], "missing": [], "unexpected": []}
+    assert title({**base, **fields}) == expected
+
+
+def test_long_templates_are_cut_in_titles():
+    t = title({"unseen_events": [{"template_id": "x", "template": "word " * 100, "count": 1}]})
+    assert len(t) < 130 and t.endswith("…'")
+
+
+def test_retry_count_in_the_storm_title_is_the_longest_run(tmp_path_factory, tmp_path):
+    """The number in "repeated N×" comes from the explanation's step difference; check it
+    against the representative session's own template-id sequence."""
+    _, alerts, _ = storm(tmp_path_factory.getbasetemp() / "incident-storm")
+    inc = Incidents(config(tmp_path))
+    try:
+        for a in alerts:
+            inc.add(a)
+        retry = [r for r in inc.store.incidents() if r["title"].startswith("retry")][0]
+        rep = inc.store.incident(retry["id"])["representative"]
+    finally:
+        inc.close()
+    longest = max(len(list(run)) for _, run in itertools.groupby(rep["sequence"]))
+    assert retry["title"] == f"retry of '{DOOR}' repeated {longest}×"
+    assert 15 <= longest <= 40  # the storm repeats the step 15–40 times
+
+
+def test_detail_bounds_and_redacts_samples():
+    lines = [f"courier CR{1000 + n} signed in with token=abc{n}" for n in range(9)] + ["x" * 2000]
+    inc = {"id": 4, "status": "open", "title": "t", "count": 3, "first_seen": 1.0, "last_seen": 2.0,
+           "stats": {"sources": {"api": 3}, "reasons": {"unseen_event": 3, "far_from_baseline": 1}},
+           "representative": toy_alert("r", "A", samples=[lines[-1], *lines[:9]], diff=[f"extra: {n}" for n in range(30)])}
+    d = detail(inc, max_samples=5, redact=Redactor([r"token=\S+", r"CR\d{4}"]))
+    assert len(d["samples"]) == 5
+    assert len(d["samples"][0]) == MAX_SAMPLE and d["samples"][0].endswith("…")
+    assert d["samples"][1] == "courier «redacted» signed in with «redacted»"
+    assert len(d["diff"]) == 21 and d["diff"][-1] == "… 10 more differences"
+    # shared: reasons held by at least half of the alerts
+    assert [r["text"] for r in d["shared"]["reasons"]] == ["unseen_event"]
+    assert d["sources"] == ["api"]
+
+
+def test_terminal_text_has_no_control_characters():
+    evil = "door \x1b[2J\x1b]0;owned\x07 opened"
+    assert safe(evil) == "door ?[2J?]0;owned? opened"
+    row = {"id": 1, "status": "open", "count": 2, "last_seen": 0.0, "sources": ["api"], "title": evil}
+    assert "\x1b" not in table([row])
+    d = detail({**row, "first_seen": 0.0, "stats": {}, "representative": toy_alert("r", samples=[evil])})
+    assert "\x1b" not in text(d) and "\x07" not in text(d)

@@ -1,0 +1,161 @@
+"""Summaries: an incident said in words an on-call engineer can act on.
+
+Stage: alerts → incidents → **summary** → page, CLI, notifications. The title comes from the
+strongest explanation of the representative alert, in this order: an event never seen at fit,
+a step repeated many times in a row, an essential step missing, a step order never seen, a
+step more frequent than normal, and only then "unlike the baseline". The detail adds the
+step-by-step difference from the closest normal session, what the incident's alerts share,
+and a few raw sample lines — bounded, and passed through the redaction patterns again so a
+pattern added later also covers samples stored before.
+"""
+
+from __future__ import annotations
+
+import re
+from collections.abc import Callable
+
+MAX_TEMPLATE = 100  # characters of a template quoted in a title
+MAX_SAMPLE = 500  # characters of one sample line
+MAX_DIFF = 20
+SHARED = 0.5  # a reason / n-gram / event is "shared" when at least half the alerts have it
+ARROW = " → "
+
+_REPEATED = re.compile(r"^repeated ×(\d+)(?: \(normally ×(\d+)\))?: (.*)$")
+
+
+def quote(template: str, limit: int = MAX_TEMPLATE) -> str:
+    text = " ".join(template.split())
+    return f"'{text if len(text) <= limit else text[:limit - 1] + '…'}'"
+
+
+def _more(items: list, shown: int = 1) -> str:
+    return f" (+{len(items) - shown} more)" if len(items) > shown else ""
+
+
+def title(alert: dict) -> str:
+    """One line naming the strongest explanation of ``alert``."""
+    unseen = sorted(alert.get("unseen_events") or [], key=lambda u: -u.get("count", 1))
+    if unseen:
+        return f"never-seen event {quote(unseen[0]['template'])}{_more(unseen)}"
+    repeats = []
+    for line in alert.get("diff") or []:
+        m = _REPEATED.match(line)
+        if m:
+            times, normally = int(m.group(1)), int(m.group(2) or 1)
+            if times >= 3 and times > 2 * normally:
+                repeats.append((times, m.group(3)))
+    if repeats:
+        times, template = max(repeats)
+        return f"retry of {quote(template)} repeated {times}×{_more(repeats)}"
+    missing = [m["ngram"] for m in alert.get("missing") or [] if ARROW not in m["ngram"]]
+    if missing:
+        return f"step {quote(missing[0])} missing{_more(missing)}"
+    unexpected = alert.get("unexpected") or []
+    new_order = [u["ngram"] for u in unexpected if not u.get("seen_at_fit", True) and ARROW in u["ngram"]]
+    if new_order:
+        a, _, b = new_order[0].partition(ARROW)
+        b = b.split(ARROW)[0]
+        return f"step order never seen: {quote(a, 60)} then {quote(b, 60)}"
+    frequent = [u["ngram"] for u in unexpected if ARROW not in u["ngram"]]
+    if frequent:
+        return f"step {quote(frequent[0])} more frequent than normal"
+    return f"session unlike the baseline (nearest normal group #{alert.get('cluster', '?')})"
+
+
+def shared(stats: dict, count: int) -> dict[str, list[dict]]:
+    """What at least half of an incident's alerts have in common, most common first."""
+    out: dict[str, list[dict]] = {}
+    for key in ("reasons", "unseen", "unexpected", "missing", "sources"):
+        items = sorted((stats.get(key) or {}).items(), key=lambda kv: (-kv[1], kv[0]))
+        out[key] = [{"text": k, "alerts": n, "share": round(n / count, 3)} for k, n in items
+                    if count and n / count >= SHARED]
+    return out
+
+
+def detail(incident: dict, *, max_samples: int = 5, redact: Callable[[str], str] | None = None) -> dict:
+    """The incident with what a person needs to act: title, step difference, what its alerts
+    share, the closest normal session, and bounded, redacted sample lines."""
+    rep = incident.get("representative") or {}
+    samples = [s if len(s) <= MAX_SAMPLE else s[:MAX_SAMPLE - 1] + "…" for s in (rep.get("samples") or [])]
+    if redact is not None:
+        samples = [redact(s) for s in samples]
+    diff = list(rep.get("diff") or [])
+    if len(diff) > MAX_DIFF:
+        diff = diff[:MAX_DIFF] + [f"… {len(diff) - MAX_DIFF} more differences"]
+    return {
+        **{k: v for k, v in incident.items() if k not in ("representative", "stats")},
+        "shared": shared(incident.get("stats") or {}, incident.get("count", 0)),
+        "sources": sorted((incident.get("stats") or {}).get("sources", {})),
+        "diff": diff,
+        "closest_normal": list(rep.get("closest_normal") or [])[:200],
+        "samples": samples[:max_samples],
+        "representative": {k: rep.get(k) for k in ("alert_id", "source", "session_key", "score", "p_value",
+                                                     "reasons", "cluster", "events", "baseline_version",
+                                                     "start", "end")},
+    }
+
+
+def brief(incident: dict) -> dict:
+    """The list form: no representative, sources as a list."""
+    stats = incident.get("stats") or {}
+    out = {k: v for k, v in incident.items() if k not in ("representative", "stats")}
+    out["sources"] = sorted(stats.get("sources", {}))
+    out["reasons"] = sorted(stats.get("reasons", {}))
+    return out
+
+
+# -- plain text (the CLI) ----------------------------------------------------------------------------
+_CONTROL = re.compile(r"[\x00-\x08\x0b-\x1f\x7f-\x9f]")
+
+
+def safe(text) -> str:
+    """Log-derived text for a terminal: control characters (escape sequences) become '?'."""
+    return _CONTROL.sub("?", str(text))
+
+
+def _utc(ts: float | None) -> str:
+    from datetime import datetime, timezone
+
+    return "-" if ts is None else datetime.fromtimestamp(ts, tz=timezone.utc).strftime("%Y-%m-%d %H:%M:%S")
+
+
+def table(rows: list[dict], *, width: int = 60) -> str:
+    """A compact table of incidents (the list form from :func:`brief`)."""
+    if not rows:
+        return "no incidents"
+    out = [f"{'ID':>5}  {'STATUS':<12}  {'ALERTS':>6}  {'LAST SEEN (UTC)':<19}  {'SOURCES':<16}  TITLE"]
+    for r in rows:
+        sources = safe(",".join(r.get("sources") or []))
+        sources = sources if len(sources) <= 16 else sources[:15] + "…"
+        t = safe(r["title"])
+        out.append(f"{r['id']:>5}  {r['status']:<12}  {r['count']:>6}  {_utc(r['last_seen']):<19}  "
+                   f"{sources:<16}  {t if len(t) <= width else t[:width - 1] + '…'}")
+    return "\n".join(out)
+
+
+def text(d: dict) -> str:
+    """One incident in detail (the form from :func:`detail`), for a terminal."""
+    rep = d.get("representative") or {}
+    lines = [f"incident #{d['id']}: {safe(d['title'])}",
+             f"  status      {d['status']}" + (f" (by {safe(d['status_by'])})" if d.get("status_by") else ""),
+             f"  alerts      {d['count']}",
+             f"  first seen  {_utc(d['first_seen'])} UTC",
+             f"  last seen   {_utc(d['last_seen'])} UTC",
+             f"  sources     {safe(', '.join(d.get('sources') or []))}",
+             f"  represented by session {safe(rep.get('session_key'))} of {safe(rep.get('source'))} "
+             f"(alert {rep.get('alert_id')}, score {rep.get('score')})"]
+    if d.get("note"):
+        lines.append(f"  note        {safe(d['note'])}")
+    if d.get("diff"):
+        lines.append("difference from the closest normal session:")
+        lines += [f"  {safe(x)}" for x in d["diff"]]
+    for key, label in (("unseen", "never seen before"), ("unexpected", "more frequent than normal"),
+                       ("missing", "expected but missing")):
+        items = (d.get("shared") or {}).get(key) or []
+        if items:
+            lines.append(f"shared by most alerts — {label}:")
+            lines += [f"  {safe(i['text'])}  ({i['share']:.0%})" for i in items[:10]]
+    if d.get("samples"):
+        lines.append("sample lines (redacted):")
+        lines += [f"  {safe(s)}" for s in d["samples"]]
+    return "\n".join(lines)

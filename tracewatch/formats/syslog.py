@@ -1,0 +1,231 @@
+"""Format ``syslog``: RFC 5424 and RFC 3164 (BSD) syslog lines, as syslog daemons write them.
+
+Stage: sources → **formats** → templates. Each line becomes one record whose message (MSG, or
+the CONTENT after a BSD tag) is mined into templates; severity comes from PRI.
+
+- RFC 5424: ``<PRI>VERSION TIMESTAMP HOSTNAME APP-NAME PROCID MSGID SD [MSG]`` with NILVALUE
+  ``-``, structured data whose values escape ``"`` ``\\`` ``]`` with a backslash, and an
+  optional UTF-8 BOM before MSG.
+- RFC 3164: ``<PRI>Mmm dd hh:mm:ss HOSTNAME TAG[PID]: CONTENT`` (day space-padded). The
+  timestamp has no year and no zone: it is read as UTC, in the latest year that does not put it
+  more than a day ahead of the clock. Files written by syslog daemons often drop ``<PRI>`` or use
+  an RFC 3339 timestamp instead; both are read too.
+
+The session key comes from ``session_field`` (a header field or ``[SD-ID PARAM]``), else from
+``session_key`` (a regex with group ``key`` searched in the message). A line that is not
+syslog is rejected as ``not_syslog`` and kept as a whole-line record; a bad timestamp, PRI or
+structured data is counted by reason and the rest of the line is still used.
+"""
+
+from __future__ import annotations
+
+import re
+import time
+from collections.abc import Callable
+from dataclasses import dataclass
+from datetime import datetime, timezone
+from functools import lru_cache
+
+from ..config import SourceConfig
+from ..records import Record, Rejection
+from . import Output
+
+# RFC 5424 section 6.2.1, table 2 (the same names as RFC 3164 section 4.1.1)
+SEVERITIES = ("emerg", "alert", "crit", "err", "warning", "notice", "info", "debug")
+HEADER_FIELDS = ("hostname", "app_name", "procid", "msgid")
+NIL = "-"
+BOM = "\ufeff"
+FUTURE_SLACK_DAYS = 1  # a BSD date up to a day ahead of the clock is this year's (zones differ)
+
+_SD_NAME = r'[^ =\]"]{1,32}'
+_SD_ELEMENT_RE = rf'\[{_SD_NAME}(?: {_SD_NAME}="(?:[^"\\]|\\.)*")*\]'
+# header, then STRUCTURED-DATA (NILVALUE or elements), then an optional MSG; a line whose
+# structured data is malformed matches only the looser second form
+_RFC5424 = re.compile(rf"<(\d{{1,3}})>[1-9]\d{{0,2}} (\S+) (\S+) (\S+) (\S+) (\S+) (-|(?:{_SD_ELEMENT_RE})+)"
+                      r"(?: (.*))?\Z", re.S)
+_RFC5424_LOOSE = re.compile(r"<(\d{1,3})>[1-9]\d{0,2} (\S+) (\S+) (\S+) (\S+) (\S+)(?: (.*))?\Z", re.S)
+_RFC3339 = re.compile(r"\d{4}-\d\d-\d\dT\d\d:\d\d:\d\d(?:\.\d{1,6})?(?:Z|[+-]\d\d:\d\d)\Z")
+_SD_ELEMENT = re.compile(rf'\[({_SD_NAME})((?: {_SD_NAME}="(?:[^"\\]|\\.)*")*)\]', re.S)
+_SD_PARAM = re.compile(rf'({_SD_NAME})="((?:[^"\\]|\\.)*)"', re.S)
+_SD_ESCAPE = re.compile(r'\\(["\\\]])')
+_MONTHS = {m: i for i, m in enumerate(("Jan", "Feb", "Mar", "Apr", "May", "Jun", "Jul", "Aug", "Sep", "Oct",
+                                       "Nov", "Dec"), start=1)}
+_RFC3164 = re.compile(r"(?:<(\d{1,3})>)?(Jan|Feb|Mar|Apr|May|Jun|Jul|Aug|Sep|Oct|Nov|Dec) ([ \d]?\d) "
+                      r"(\d\d):(\d\d):(\d\d) (\S+)(?: (.*))?\Z", re.S)
+_FILE3339 = re.compile(r"(?:<(\d{1,3})>)?(\d{4}-\d\d-\d\dT\d\d:\d\d:\d\d(?:\.\d+)?(?:Z|[+-]\d\d:\d\d)) (\S+)"
+                       r"(?: (.*))?\Z", re.S)
+# a BSD TAG is only taken as such when "[pid]" or ":" ends it (RFC 3164 section 5.4, example 2)
+_TAG = re.compile(r"([^\s\[\]:]{1,48})(?:\[([^\]\s]*)\]:?|:) ?(.*)\Z", re.S)
+_SD_FIELD = re.compile(r"\[(\S+) (\S+)\]")
+
+
+def unescape_sd(value: str) -> str:
+    """A PARAM-VALUE with its escapes resolved; a backslash before any other character stays
+    (RFC 5424 section 6.3.3)."""
+    return _SD_ESCAPE.sub(r"\1", value) if "\\" in value else value
+
+
+def parse_structured_data(text: str) -> tuple[dict[str, dict[str, str]], int] | None:
+    """``{sd_id: {param: value}}`` of the SD-ELEMENTs at the start of ``text`` and where they
+    end; None when ``text`` does not start with a well-formed element. The first occurrence
+    of an element or a parameter wins."""
+    sd: dict[str, dict[str, str]] = {}
+    pos = 0
+    while pos < len(text) and text[pos] == "[":
+        m = _SD_ELEMENT.match(text, pos)
+        if m is None:
+            return None
+        params = sd.setdefault(m.group(1), {})
+        for name, value in _SD_PARAM.findall(m.group(2)):
+            params.setdefault(name, unescape_sd(value))
+        pos = m.end()
+    return (sd, pos) if pos else None
+
+
+@lru_cache(maxsize=4096)
+def _bsd_midnight(month: int, day: int, today: int) -> float | None:
+    """Epoch of 00:00 UTC on ``month``/``day`` in the latest year not more than the slack
+    ahead of day number ``today`` (days since the epoch); None for a date no year has."""
+    year = datetime.fromtimestamp(today * 86400, tz=timezone.utc).year + 1
+    for y in range(year, year - 9, -1):  # Feb 29 may need a few years back
+        try:
+            midnight = datetime(y, month, day, tzinfo=timezone.utc).timestamp()
+        except ValueError:
+            continue
+        if midnight <= (today + FUTURE_SLACK_DAYS) * 86400:
+            return midnight
+    return None
+
+
+def _rfc3339(text: str) -> float | None:
+    if not _RFC3339.match(text):
+        return None
+    try:
+        return datetime.fromisoformat(text).timestamp()
+    except (ValueError, OverflowError):
+        return None
+
+
+@dataclass(slots=True)
+class SyslogMessage:
+    """One parsed syslog line; header fields are None where the line has NILVALUE or lacks them."""
+
+    form: str  # "rfc5424", "rfc3164" or "rfc3339-file"
+    pri: int | None
+    ts: float | None
+    hostname: str | None
+    app_name: str | None
+    procid: str | None
+    msgid: str | None
+    sd_text: str  # the STRUCTURED-DATA as written ("" when there is none)
+    message: str
+    problem: str | None = None  # reason the line is counted as rejected, though still used
+
+    @property
+    def sd(self) -> dict[str, dict[str, str]]:
+        """``{sd_id: {param: value}}``, escapes resolved (parsed when asked for)."""
+        parsed = parse_structured_data(self.sd_text) if self.sd_text else None
+        return parsed[0] if parsed else {}
+
+    @property
+    def facility(self) -> int | None:
+        return None if self.pri is None else self.pri >> 3
+
+    @property
+    def severity(self) -> str | None:
+        return SEVERITIES[self.pri & 7] if self.pri is not None and self.pri <= 191 else None
+
+
+def parse(line: str, now: float) -> SyslogMessage | None:
+    """Parse one line in any of the three forms; None when it is not syslog. ``now`` (epoch
+    seconds) picks the year of an RFC 3164 date."""
+    if line.startswith("<"):
+        if (m := _RFC5424.match(line)) is not None:
+            return _rfc5424(m.groups(), None)
+        if (m := _RFC5424_LOOSE.match(line)) is not None:
+            return _rfc5424((*m.groups()[:6], NIL, m.group(7)), "bad_structured_data")
+    if (m := _RFC3164.match(line)) is not None:
+        pri, mon, day, hh, mm, ss, host, msg = m.groups()
+        midnight = _bsd_midnight(_MONTHS[mon], int(day), int(now // 86400))
+        if midnight is None or int(hh) > 23 or int(mm) > 59 or int(ss) > 60:
+            return _bsd("rfc3164", pri, None, host, msg, "bad_timestamp")
+        return _bsd("rfc3164", pri, midnight + int(hh) * 3600 + int(mm) * 60 + int(ss), host, msg, None)
+    if (m := _FILE3339.match(line)) is not None:
+        pri, stamp, host, msg = m.groups()
+        try:
+            ts = datetime.fromisoformat(stamp).timestamp()
+        except (ValueError, OverflowError):
+            ts = None
+        return _bsd("rfc3339-file", pri, ts, host, msg, None if ts is not None else "bad_timestamp")
+    return None
+
+
+def _rfc5424(groups: tuple, problem: str | None) -> SyslogMessage:
+    pri, stamp, host, app, procid, msgid, sd_text, message = groups
+    ts = None
+    if stamp != NIL:
+        ts = _rfc3339(stamp)
+        if ts is None:
+            problem = problem or "bad_timestamp"
+    message = message or ""
+    if message.startswith(BOM):
+        message = message[1:]
+    return _checked(SyslogMessage("rfc5424", int(pri), ts, None if host == NIL else host, None if app == NIL else app,
+                                  None if procid == NIL else procid, None if msgid == NIL else msgid,
+                                  "" if sd_text == NIL else sd_text, message, problem))
+
+
+def _bsd(form: str, pri: str | None, ts: float | None, host: str, msg: str | None,
+         problem: str | None) -> SyslogMessage:
+    msg = msg or ""
+    t = _TAG.match(msg)
+    app, procid, content = (t.group(1), t.group(2) or None, t.group(3)) if t else (None, None, msg)
+    return _checked(SyslogMessage(form, None if pri is None else int(pri), ts, host, app, procid, None, "",
+                                  content, problem))
+
+
+def _checked(msg: SyslogMessage) -> SyslogMessage:
+    if msg.pri is not None and msg.pri > 191 and msg.problem is None:  # RFC 5424 6.2.1: 0..191
+        msg.problem = "bad_pri"
+    return msg
+
+
+class SyslogFormat:
+    def __init__(self, src: SourceConfig, *, clock: Callable[[], float] = time.time) -> None:
+        self.source = src.name
+        self.clock = clock
+        field = src.session_field
+        self._header = field if field in HEADER_FIELDS else None
+        sd = _SD_FIELD.fullmatch(field) if field and self._header is None else None
+        # the one SD-ELEMENT and parameter asked for, found without parsing the others
+        self._sd_element = re.compile(rf'\[{re.escape(sd.group(1))}((?: {_SD_NAME}="(?:[^"\\]|\\.)*")*)\]',
+                                      re.S) if sd else None
+        self._sd_param = re.compile(rf' {re.escape(sd.group(2))}="((?:[^"\\]|\\.)*)"', re.S) if sd else None
+        self._key_re = re.compile(src.session_key) if src.session_key else None
+
+    def _key(self, msg: SyslogMessage | None, message: str) -> str | None:
+        key = None
+        if msg is not None:
+            if self._header is not None:
+                key = getattr(msg, self._header)
+            elif self._sd_element is not None and msg.sd_text:
+                element = self._sd_element.search(msg.sd_text)
+                param = self._sd_param.search(element.group(1)) if element else None
+                key = unescape_sd(param.group(1)) if param else None
+        if key is None and self._key_re is not None:
+            m = self._key_re.search(message)
+            key = m.group("key") if m else None
+        return key
+
+    def feed(self, line: str, offset: int) -> Output:
+        if not line.strip():
+            return [Rejection("empty", line)]
+        msg = parse(line, self.clock())
+        if msg is None:
+            rec = Record(self.source, self._key(None, line), None, None, line, line, offset)
+            return [Rejection("not_syslog", line, rec)]
+        rec = Record(self.source, self._key(msg, msg.message), msg.ts, msg.severity, msg.message, line, offset)
+        return [rec] if msg.problem is None else [Rejection(msg.problem, line, rec)]
+
+    def flush(self) -> Output:
+        return []

@@ -1,0 +1,14 @@
+"""Service: the daemon (``tracewatch run``) and what it serves.
+
+    daemon.py    follows files, drives the pipeline, checkpoints, hot-reloads baselines
+    http.py      /metrics, /healthz, /readyz, /api/status, /api/alerts (standard library server)
+    metrics.py   every Prometheus metric, on a registry passed in (never imports http.py)
+"""
+
+from __future__ import annotations
+
+from .daemon import Daemon, run_daemon, setup_logging
+from .http import serve
+from .metrics import DaemonMetrics
+
+__all__ = ["Daemon", "DaemonMetrics", "run_daemon", "serve", "setup_logging"]

@@ -1,0 +1,228 @@
+"""Incident routes of the daemon's HTTP server: JSON API, HTML page, status changes.
+
+Stage: serves the incidents (:mod:`tracewatch.alerts.incidents`); called by
+:mod:`tracewatch.service.http` through :func:`route`, with the daemon's
+:class:`~tracewatch.alerts.incidents.Incidents` as ``provider.incidents``.
+
+    GET  /                              the incident list (HTML)
+    GET  /incidents/{id}                one incident (HTML)
+    GET  /api/incidents?status=&since=&limit=&offset=
+                                        incidents, most recently active first (JSON)
+    GET  /api/incidents/{id}            one incident in detail (JSON)
+    POST /api/incidents/{id}/ack        acknowledge            ┐ need "Authorization: Bearer
+    POST /api/incidents/{id}/resolve    resolve                │ <token>" with the token of
+    POST /api/incidents/{id}/expected   mark expected          ┘ [incidents] token / token_env
+
+Without a configured token every state change is refused (403); a missing or wrong token
+gets 401 (RFC 6750 §3). Tokens are compared with :func:`hmac.compare_digest`. The pages
+carry log-derived text, escaped (see :mod:`tracewatch.service.page`).
+"""
+
+from __future__ import annotations
+
+import hmac
+import logging
+import os
+import re
+from collections.abc import Mapping
+from datetime import datetime
+from http.server import BaseHTTPRequestHandler
+from urllib.parse import parse_qs, urlsplit
+
+import orjson
+
+from ..alerts.incidents import ACTIONS, Incidents
+from ..alerts.alert import Redactor
+from ..alerts.summary import brief, detail
+from ..alerts.store import STATUSES
+from ..config import IncidentsConfig
+from ..errors import TracewatchError
+from . import page
+
+log = logging.getLogger("tracewatch.http")
+
+MAX_BODY = 4096
+MAX_LIST = 1000
+_DETAIL = re.compile(r"^/(?:api/)?incidents/(\d{1,12})$")
+_ACTION = re.compile(r"^/api/incidents/(\d{1,12})/([a-z]+)$")
+
+
+def incident_token(cfg: IncidentsConfig, env: Mapping[str, str] = os.environ) -> str | None:
+    """The bearer token for state changes: the config's, else the named environment variable's."""
+    if cfg.token:
+        return cfg.token
+    value = env.get(cfg.token_env, "").strip()
+    return value or None
+
+
+def parse_since(value: str) -> float:
+    """Seconds since the epoch, or an ISO 8601 time (UTC when no zone is given)."""
+    try:
+        return float(value)
+    except ValueError:
+        pass
+    try:
+        t = datetime.fromisoformat(value.replace("Z", "+00:00"))
+    except ValueError:
+        raise ValueError(f"since: {value!r} is neither seconds since the epoch nor an ISO 8601 time") from None
+    if t.tzinfo is None:
+        from datetime import timezone
+
+        t = t.replace(tzinfo=timezone.utc)
+    return t.timestamp()
+
+
+def _send(h: BaseHTTPRequestHandler, code: int, body: bytes, content_type: str, headers: dict | None = None) -> None:
+    h.send_response(code)
+    h.send_header("Content-Type", content_type)
+    h.send_header("Content-Length", str(len(body)))
+    h.send_header("Cache-Control", "no-store")
+    h.send_header("X-Content-Type-Options", "nosniff")
+    for k, v in (headers or {}).items():
+        h.send_header(k, v)
+    h.end_headers()
+    if h.command != "HEAD":
+        h.wfile.write(body)
+
+
+def _json(h: BaseHTTPRequestHandler, code: int, obj, headers: dict | None = None) -> None:
+    _send(h, code, orjson.dumps(obj, option=orjson.OPT_SERIALIZE_NUMPY), "application/json", headers)
+
+
+def _html(h: BaseHTTPRequestHandler, code: int, text: str) -> None:
+    _send(h, code, text.encode("utf-8"), "text/html; charset=utf-8",
+          {"Content-Security-Policy": page.CSP, "X-Frame-Options": "DENY", "Referrer-Policy": "no-referrer"})
+
+
+def route(h: BaseHTTPRequestHandler, incidents: Incidents | None) -> bool:
+    """Answer ``h``'s request if it is an incident route; False leaves it to the caller."""
+    url = urlsplit(h.path)
+    path = url.path
+    is_page = path == "/" or path.startswith("/incidents/")
+    if not (is_page or path == "/api/incidents" or path.startswith("/api/incidents/")):
+        return False
+    if incidents is None:
+        _json(h, 404, {"error": "incidents are not served here"})
+        return True
+    try:
+        if h.command == "POST":
+            _post(h, incidents, path)
+        elif h.command in ("GET", "HEAD"):
+            _get(h, incidents, path, parse_qs(url.query))
+        else:
+            _json(h, 405, {"error": "use GET, or POST for a state change"}, {"Allow": "GET, POST"})
+    except TracewatchError as exc:  # the store cannot be opened, for example
+        _json(h, 503, {"error": str(exc)})
+    return True
+
+
+def _get(h: BaseHTTPRequestHandler, inc: Incidents, path: str, query: dict[str, list[str]]) -> None:
+    cfg = inc.cfg.incidents
+    store = inc.store
+    if path == "/":
+        rows = [brief(i) for i in store.incidents(limit=200)]
+        status = inc.notifier.status() if inc.notifier is not None else {}
+        _html(h, 200, page.list_page(rows, store.counts(), status, refresh_s=cfg.page_refresh_s))
+        return
+    if path == "/api/incidents":
+        try:
+            status = query.get("status", [None])[0]
+            if status is not None and status not in STATUSES:
+                raise ValueError(f"status: use one of {', '.join(STATUSES)}")
+            since = parse_since(query["since"][0]) if "since" in query else None
+            limit = int(query.get("limit", ["100"])[0])
+            offset = int(query.get("offset", ["0"])[0])
+            if not 1 <= limit <= MAX_LIST or offset < 0:
+                raise ValueError(f"limit must be between 1 and {MAX_LIST}, offset >= 0")
+        except ValueError as exc:
+            _json(h, 400, {"error": str(exc)})
+            return
+        rows = [brief(i) for i in store.incidents(status=status, since=since, limit=limit, offset=offset)]
+        notify = inc.notifier.status() if inc.notifier is not None else {}
+        _json(h, 200, {"incidents": rows, "counts": store.counts(), "notify": notify})
+        return
+    m = _DETAIL.match(path)
+    found = store.incident(int(m.group(1))) if m else None
+    if found is None:
+        if path.startswith("/api/"):
+            _json(h, 404, {"error": f"no such incident or endpoint: {path}"})
+        else:
+            _html(h, 404, page.message_page("Not found", f"No incident at {path}.", refresh_s=cfg.page_refresh_s))
+        return
+    d = detail(found, max_samples=cfg.max_samples, redact=Redactor(inc.cfg.redact))
+    if path.startswith("/api/"):
+        d["alert_ids"] = store.alert_ids(d["id"])
+        _json(h, 200, d)
+    else:
+        _html(h, 200, page.detail_page(d, refresh_s=cfg.page_refresh_s))
+
+
+def _post(h: BaseHTTPRequestHandler, inc: Incidents, path: str) -> None:
+    try:
+        length = int(h.headers.get("Content-Length") or 0)
+    except ValueError:
+        length = -1
+    if not 0 <= length <= MAX_BODY:
+        h.close_connection = True
+        _json(h, 413, {"error": f"request body must be at most {MAX_BODY} bytes"})
+        return
+    raw = h.rfile.read(length) if length else b""
+    token = incident_token(inc.cfg.incidents)
+    if token is None:
+        _json(h, 403, {"error": "state changes are disabled: set [incidents] token, or the environment "
+                                f"variable {inc.cfg.incidents.token_env}, for the daemon"})
+        return
+    given = h.headers.get("Authorization", "")
+    scheme, _, credentials = given.partition(" ")
+    if scheme.lower() != "bearer" or not credentials:
+        _json(h, 401, {"error": "a bearer token is required"}, {"WWW-Authenticate": 'Bearer realm="tracewatch"'})
+        return
+    if not hmac.compare_digest(credentials.strip().encode("utf-8", "replace"), token.encode("utf-8")):
+        log.warning("refused a state change with a wrong token from %s", h.client_address[0])
+        _json(h, 401, {"error": "wrong token"},
+              {"WWW-Authenticate": 'Bearer realm="tracewatch", error="invalid_token"'})
+        return
+    m = _ACTION.match(path)
+    if m is None or m.group(2) not in ACTIONS:
+        _json(h, 404, {"error": f"no such action: {path}; use /api/incidents/ID/{{{','.join(ACTIONS)}}}"})
+        return
+    note = ""
+    if raw.strip():
+        try:
+            body = orjson.loads(raw)
+            note = str(body.get("note", "")) if isinstance(body, dict) else ""
+        except orjson.JSONDecodeError:
+            _json(h, 400, {"error": 'the body must be JSON, e.g. {"note": "known deploy"}'})
+            return
+    code, out = inc.set_status(int(m.group(1)), m.group(2), by="api", note=note)
+    _json(h, code, {"incident": brief(out)} if code == 200 else out)
+
+
+# -- a client for the CLI's --url ---------------------------------------------------------------------
+def api_request(base_url: str, path: str, *, method: str = "GET", token: str | None = None,
+                body: dict | None = None, timeout: float = 10.0) -> tuple[int, dict]:
+    """Call a running daemon's incident API; returns (HTTP status, JSON answer)."""
+    import urllib.error
+    import urllib.request
+
+    from ..errors import InputError
+
+    data = orjson.dumps(body) if body is not None else (b"" if method == "POST" else None)
+    headers = {"Content-Type": "application/json"} if data is not None else {}
+    if token:
+        headers["Authorization"] = f"Bearer {token}"
+    req = urllib.request.Request(base_url.rstrip("/") + path, data=data, method=method, headers=headers)
+    try:
+        with urllib.request.urlopen(req, timeout=timeout) as resp:
+            return resp.status, orjson.loads(resp.read())
+    except urllib.error.HTTPError as exc:
+        raw = exc.read()
+        exc.close()
+        try:
+            return exc.code, orjson.loads(raw)
+        except orjson.JSONDecodeError:
+            return exc.code, {"error": raw[:200].decode("utf-8", "replace")}
+    except (urllib.error.URLError, OSError, ValueError) as exc:
+        raise InputError(f"{base_url}: cannot reach the daemon: {getattr(exc, 'reason', exc)}") from None
+    except orjson.JSONDecodeError:
+        raise InputError(f"{base_url}{path}: the answer is not JSON; is this a tracewatch daemon?") from None

@@ -1,0 +1,119 @@
+"""Metrics: the daemon's Prometheus metrics, declared in one place.
+
+Stage: reads the pipeline's plain counters (records, rejections, sessions, alerts) and the
+follower's positions; hands Prometheus families to a registry, which the HTTP module exposes.
+This module never imports the HTTP code.
+
+Counters are read from a snapshot at scrape time (one source of truth: the pipeline's own
+counters, which a checkpoint carries across restarts); the session score histogram is
+observed as sessions are scored. Names follow DESIGN.md: ``tracewatch_`` prefix, base units,
+counters end in ``_total``, labels bounded (source, reason, version — never a session key).
+
+The snapshot is a dict with these keys (all optional):
+
+    records, lines, sessions_scored          {source: n}
+    rejected, repaired, alerts               {(source, reason): n}
+    sessions_open, sessions_evicted, baseline_reload_failures, alerts_replayed   int
+    baseline_version                         str
+    sources                                  [source name, ...] (every configured one)
+    files                                    [{"source", "lag_bytes", "lag_seconds"}, ...]
+    checkpoint_time, checkpoint_seconds      when the last checkpoint was written (epoch), and
+                                             how long it took
+"""
+
+from __future__ import annotations
+
+from collections.abc import Callable, Iterator
+
+from prometheus_client import CollectorRegistry, Histogram
+from prometheus_client.core import CounterMetricFamily, GaugeMetricFamily, Metric
+from prometheus_client.registry import Collector
+
+# session scores are distances in units of the nearest cluster's spread
+SCORE_BUCKETS = (0.25, 0.5, 0.75, 1.0, 1.5, 2.0, 3.0, 5.0, 8.0, 13.0, 21.0, float("inf"))
+
+_BY_SOURCE = (
+    ("records", "tracewatch_records_total", "Records accepted from the source's files."),
+    ("lines", "tracewatch_lines_total", "Lines read from the source's files."),
+    ("sessions_scored", "tracewatch_sessions_scored_total", "Sessions closed and scored."),
+)
+_BY_REASON = (
+    ("rejected", "tracewatch_records_rejected_total",
+     "Lines a format could not read as intended (most are still kept as whole-line records)."),
+    ("repaired", "tracewatch_lines_repaired_total",
+     "Lines decoded with replacement characters or truncated to max_line_bytes."),
+    ("alerts", "tracewatch_alerts_total", "Alerts raised, by reason (an alert may have several)."),
+)
+_PLAIN_COUNTERS = (
+    ("sessions_evicted", "tracewatch_sessions_evicted_total",
+     "Sessions closed early because max_open_sessions was reached."),
+    ("baseline_reload_failures", "tracewatch_baseline_reload_failures_total",
+     "New baselines refused (unreadable or corrupt); the old one was kept."),
+    ("alerts_replayed", "tracewatch_alerts_replayed_total",
+     "Alerts raised again after a restart and recognised as already in the journal."),
+)
+
+
+class _SnapshotCollector(Collector):
+    def __init__(self, snapshot: Callable[[], dict]) -> None:
+        self.snapshot = snapshot
+
+    def collect(self) -> Iterator[Metric]:
+        snap = self.snapshot()
+        for key, name, doc in _BY_SOURCE:
+            fam = CounterMetricFamily(name, doc, labels=["source"])
+            for source, n in sorted(snap.get(key, {}).items()):
+                fam.add_metric([source], n)
+            yield fam
+        for key, name, doc in _BY_REASON:
+            fam = CounterMetricFamily(name, doc, labels=["source", "reason"])
+            for (source, reason), n in sorted(snap.get(key, {}).items()):
+                fam.add_metric([source, reason], n)
+            yield fam
+        for key, name, doc in _PLAIN_COUNTERS:
+            yield CounterMetricFamily(name, doc, value=snap.get(key, 0))
+        yield GaugeMetricFamily("tracewatch_sessions_open", "Sessions open now.",
+                                value=snap.get("sessions_open", 0))
+        info = GaugeMetricFamily("tracewatch_baseline_info", "The baseline in use (value 1).", labels=["version"])
+        if snap.get("baseline_version"):
+            info.add_metric([snap["baseline_version"]], 1)
+        yield info
+        lag_b = GaugeMetricFamily("tracewatch_ingest_lag_bytes", "Bytes written to the source's files "
+                                  "and not read yet.", labels=["source"])
+        lag_s = GaugeMetricFamily("tracewatch_ingest_lag_seconds", "Age of the oldest unread data in "
+                                  "the source's files (0 when caught up).", labels=["source"])
+        files = GaugeMetricFamily("tracewatch_files_followed", "Files being followed.", labels=["source"])
+        per: dict[str, list[float]] = {}
+        for f in snap.get("files", []):
+            row = per.setdefault(f["source"], [0, 0.0, 0])
+            row[0] += f["lag_bytes"]
+            row[1] = max(row[1], f["lag_seconds"])
+            row[2] += 1
+        for source in sorted(set(per) | set(snap.get("sources", []))):
+            b, s, n = per.get(source, (0, 0.0, 0))
+            lag_b.add_metric([source], b)
+            lag_s.add_metric([source], s)
+            files.add_metric([source], n)
+        yield lag_b
+        yield lag_s
+        yield files
+        if snap.get("checkpoint_time"):
+            yield GaugeMetricFamily("tracewatch_checkpoint_timestamp_seconds",
+                                    "When the last checkpoint was written.", value=snap["checkpoint_time"])
+            yield GaugeMetricFamily("tracewatch_checkpoint_duration_seconds",
+                                    "How long writing the last checkpoint took.",
+                                    value=snap.get("checkpoint_seconds", 0.0))
+
+
+class DaemonMetrics:
+    """All of the daemon's metrics on ``registry``; ``snapshot`` is read at every scrape."""
+
+    def __init__(self, registry: CollectorRegistry, snapshot: Callable[[], dict]) -> None:
+        self.registry = registry
+        self.scores = Histogram("tracewatch_session_score", "Scores of the sessions scored "
+                                "(distance to the nearest normal cluster, in units of its spread).",
+                                ["source"], buckets=SCORE_BUCKETS, registry=registry)
+        registry.register(_SnapshotCollector(snapshot))
+
+    def observe_score(self, source: str, score: float) -> None:
+        self.scores.labels(source).observe(score)

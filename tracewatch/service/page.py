@@ -1,0 +1,122 @@
+"""The incident page: HTML for the on-call engineer, readable without JavaScript.
+
+Stage: incidents → **page** (served by :mod:`tracewatch.service.incidents_api`). Two views:
+the list (counts and titles) and one incident (step difference, what its alerts share, the
+closest normal session, redacted sample lines). Both refresh themselves with
+``<meta http-equiv="refresh">``. Logs are attacker-controlled input: every string that comes
+from them — titles, templates, sample lines, source names, notes — goes through
+:func:`html.escape`; the page has no script at all, and is served with a Content-Security-Policy
+that forbids scripts.
+"""
+
+from __future__ import annotations
+
+import html
+from datetime import datetime, timezone
+
+CAUTION = ("This page shows text taken from logs (after the configured redaction patterns); logs can hold "
+           "secrets and personal data. Keep this port on loopback or behind your own access control. "
+           "A quiet page is not proof of health: tracewatch sees only the logs it follows, and misses what "
+           "its baseline has learned as normal.")
+CSP = ("default-src 'none'; style-src 'unsafe-inline'; base-uri 'none'; form-action 'none'; "
+       "frame-ancestors 'none'")
+
+_STYLE = """
+body{font:15px/1.45 system-ui,sans-serif;margin:1.5em auto;max-width:72em;padding:0 1em;color:#1b1b1b}
+h1{font-size:1.35em}h2{font-size:1.1em;margin-top:1.6em}
+table{border-collapse:collapse;width:100%}th,td{text-align:left;padding:.3em .5em;border-bottom:1px solid #ddd;
+vertical-align:top}th{background:#f3f3f3}td.n{text-align:right;font-variant-numeric:tabular-nums}
+.open{color:#a40000;font-weight:600}.acknowledged{color:#8a5a00}.resolved{color:#2f6b2f}.expected{color:#555}
+pre{background:#f6f6f6;padding:.6em;overflow-x:auto;white-space:pre-wrap;word-break:break-all}
+footer{margin-top:2.5em;font-size:.85em;color:#555;border-top:1px solid #ddd;padding-top:.6em}
+code{background:#f3f3f3;padding:0 .2em}
+"""
+
+
+def e(value) -> str:
+    """Escape anything for HTML text or a quoted attribute."""
+    return html.escape(str(value), quote=True)
+
+
+def when(ts: float | None) -> str:
+    if ts is None:
+        return "–"
+    return datetime.fromtimestamp(ts, tz=timezone.utc).strftime("%Y-%m-%d %H:%M:%S UTC")
+
+
+def _page(title: str, body: str, *, refresh_s: int) -> str:
+    return (f'<!DOCTYPE html>\n<html lang="en"><head><meta charset="utf-8">'
+            f'<meta http-equiv="refresh" content="{int(refresh_s)}">'
+            f'<meta name="viewport" content="width=device-width, initial-scale=1">'
+            f"<title>{e(title)}</title><style>{_STYLE}</style></head>\n<body>\n{body}\n"
+            f"<footer><p>{e(CAUTION)}</p><p>Refreshes every {int(refresh_s)} s. "
+            f'JSON: <a href="/api/incidents">/api/incidents</a>.</p></footer>\n</body></html>\n')
+
+
+def list_page(incidents: list[dict], counts: dict[str, int], notify: dict[str, dict], *, refresh_s: int) -> str:
+    """All incidents, most recently active first."""
+    tally = ", ".join(f'<span class="{e(s)}">{counts.get(s, 0)} {e(s)}</span>'
+                      for s in ("open", "acknowledged", "resolved", "expected"))
+    rows = []
+    for inc in incidents:
+        rows.append(
+            f'<tr><td><a href="/incidents/{int(inc["id"])}">#{int(inc["id"])}</a></td>'
+            f'<td class="{e(inc["status"])}">{e(inc["status"])}</td><td class="n">{int(inc["count"])}</td>'
+            f'<td>{e(when(inc["first_seen"]))}</td><td>{e(when(inc["last_seen"]))}</td>'
+            f'<td>{e(", ".join(inc.get("sources") or []))}</td><td class="title">{e(inc["title"])}</td></tr>')
+    table = ("<table><thead><tr><th>id</th><th>status</th><th>alerts</th><th>first seen</th><th>last seen</th>"
+             "<th>sources</th><th>what happened</th></tr></thead><tbody>\n" + "\n".join(rows) + "\n</tbody></table>"
+             if rows else "<p>No incidents recorded.</p>")
+    sinks = []
+    for name, st in notify.items():
+        state = f"{st.get('pending', 0)} pending"
+        if st.get("last_error"):
+            state += f", last error: {st['last_error']}"
+        sinks.append(f"<li>{e(name)}: {e(state)}</li>")
+    notes = f"<h2>Notifications</h2><ul>{''.join(sinks)}</ul>" if sinks else ""
+    body = f"<h1>tracewatch — incidents</h1><p>{tally}</p>\n{table}\n{notes}"
+    return _page("tracewatch incidents", body, refresh_s=refresh_s)
+
+
+def _shared_list(items: list[dict]) -> str:
+    return "".join(f"<li>{e(i['text'])} <small>({round(100 * i['share'])}% of alerts)</small></li>" for i in items)
+
+
+def detail_page(d: dict, *, refresh_s: int) -> str:
+    """One incident: what went wrong, compared with what."""
+    iid = int(d["id"])
+    rep = d.get("representative") or {}
+    facts = [("status", f'<span class="{e(d["status"])}">{e(d["status"])}</span>'
+                        + (f" by {e(d['status_by'])}" if d.get("status_by") else "")),
+             ("alerts", e(d["count"])), ("first seen", e(when(d["first_seen"]))),
+             ("last seen", e(when(d["last_seen"]))), ("sources", e(", ".join(d.get("sources") or []))),
+             ("representative session", f"{e(rep.get('source'))} / {e(rep.get('session_key'))} "
+                                        f"(score {e(rep.get('score'))}, p = {e(rep.get('p_value'))})")]
+    if d.get("note"):
+        facts.append(("note", e(d["note"])))
+    parts = [f"<p><a href=\"/\">← all incidents</a></p><h1>#{iid}: {e(d['title'])}</h1>",
+             "<table>" + "".join(f"<tr><th>{k}</th><td>{v}</td></tr>" for k, v in facts) + "</table>"]
+    if d.get("diff"):
+        parts.append("<h2>Difference from the closest normal session</h2><ul class=\"diff\">"
+                     + "".join(f"<li>{e(line)}</li>" for line in d["diff"]) + "</ul>")
+    shared = d.get("shared") or {}
+    labels = {"unseen": "Events never seen before", "unexpected": "Step sequences more frequent than normal",
+              "missing": "Expected steps missing", "reasons": "Reasons"}
+    for key, label in labels.items():
+        if shared.get(key):
+            parts.append(f"<h2>{label} (shared by most alerts)</h2><ul>{_shared_list(shared[key])}</ul>")
+    if d.get("closest_normal"):
+        parts.append("<h2>The closest normal session</h2><ol>"
+                     + "".join(f"<li>{e(step)}</li>" for step in d["closest_normal"]) + "</ol>")
+    if d.get("samples"):
+        parts.append("<h2>Sample lines (redacted)</h2><pre class=\"samples\">"
+                     + "\n".join(e(s) for s in d["samples"]) + "</pre>")
+    parts.append(f"<h2>Act on it</h2><p>With the bearer token: <code>tracewatch incidents ack {iid}</code>, "
+                 f"<code>resolve {iid}</code> or <code>expected {iid}</code> "
+                 f"(or <code>POST /api/incidents/{iid}/ack</code>).</p>")
+    return _page(f"#{iid} {d['title']} — tracewatch", "\n".join(parts), refresh_s=refresh_s)
+
+
+def message_page(title: str, message: str, *, refresh_s: int = 30) -> str:
+    return _page(title, f"<p><a href=\"/\">← all incidents</a></p><h1>{e(title)}</h1><p>{e(message)}</p>",
+                 refresh_s=refresh_s)

@@ -1,0 +1,257 @@
+"""Checkpoints and the alert journal: what lets the daemon stop (or crash) and carry on.
+
+Stage: **sources** (daemon) ↔ sessions ↔ alerts. A checkpoint saves together, atomically
+(temp file, fsync, rename), where every followed file was left (device, inode, a fingerprint
+of its head, offset), the open sessions, the templates learned since the fit, the pipeline's
+counters and the journal's length. It is plain JSON with a schema version, checked by
+pydantic on load: loading never executes anything.
+
+Exactly-once alerts. Alerts are appended to ``<state_dir>/alerts.jsonl`` as they are raised;
+before each checkpoint the journal is fsynced and its length saved in the checkpoint. After a
+crash the daemon restarts from the checkpoint and re-reads the lines that followed it, so the
+alerts raised in between are raised again, with the same ``alert_id`` (a hash of the session's
+source, key and first line). The journal holds exactly those after the saved length: they are
+recognised by id and not appended twice; those not raised again yet when the next checkpoint
+is written are carried in it (``pending``). A torn last line (a crash mid-write) is cut off
+first.
+"""
+
+from __future__ import annotations
+
+import logging
+import os
+import time
+from collections import Counter, deque
+from pathlib import Path
+from typing import Literal
+
+import orjson
+from pydantic import BaseModel, ConfigDict, Field, ValidationError
+
+from ..baselines import atomic_write
+from ..errors import StateError
+
+log = logging.getLogger("tracewatch.checkpoint")
+
+SCHEMA_VERSION = 1
+COUNTERS = ("records", "rejected", "repaired", "lines", "sessions_scored", "alerts")
+TAIL_READ_BYTES = 8 << 20  # the recent alerts /api/alerts serves are read back from this much
+
+
+class _Strict(BaseModel):
+    model_config = ConfigDict(extra="forbid")
+
+
+class FilePosition(_Strict):
+    source: str
+    path: str
+    dev: int
+    ino: int
+    offset: int = Field(ge=0)
+    fp: str
+    fp_len: int = Field(ge=0)
+
+
+class SavedSessions(_Strict):
+    # source, key, events, first_ts, last_ts, last_seen, first_raw, first_offset, samples
+    open: list[tuple[str, str, list[int], float, float, float, str, int, list[str]]]
+    run_counts: dict[str, int]
+    evicted: int = Field(ge=0)
+
+
+class SavedTemplate(_Strict):
+    id: str
+    template: str
+    tokens: list[str]
+    path: list[str]
+    count: int
+    structured: bool
+
+
+class SavedTemplates(_Strict):
+    n_seen: int = Field(ge=0)
+    templates: list[SavedTemplate]
+    masked: list[tuple[str, int]]
+
+
+class SavedPipeline(_Strict):
+    watermark: float
+    counters: dict[str, list[tuple[list[str], int]]]
+    sessions: SavedSessions
+    templates: SavedTemplates
+
+
+class JournalMark(_Strict):
+    offset: int = Field(ge=0)
+    count: int = Field(ge=0)
+    # alerts in the journal before ``offset`` whose session a restart will close again
+    pending: list[str] = Field(default_factory=list)
+
+
+class Checkpoint(_Strict):
+    schema_version: int
+    kind: Literal["tracewatch-checkpoint"]
+    written: float
+    baseline_version: str
+    files: list[FilePosition]
+    pipeline: SavedPipeline
+    alerts: JournalMark
+
+
+# -- save and load ------------------------------------------------------------------------------
+def capture(pipeline, files: list[dict], mark: dict) -> bytes:
+    """The checkpoint of a pipeline (whose closed sessions are already scored), file positions
+    and the journal mark, serialised."""
+    counters = {}
+    for name in COUNTERS:
+        counters[name] = [[list(k) if isinstance(k, tuple) else [k], n] for k, n in getattr(pipeline, name).items()]
+    state = {
+        "schema_version": SCHEMA_VERSION, "kind": "tracewatch-checkpoint", "written": time.time(),
+        "baseline_version": pipeline.baseline.version, "files": files,
+        "pipeline": {"watermark": pipeline.watermark, "counters": counters,
+                     "sessions": pipeline.sessionizer.to_state(),
+                     "templates": pipeline.miner.learned_state()},
+        "alerts": mark,
+    }
+    return orjson.dumps(state)
+
+
+def save_checkpoint(path: Path, data: bytes) -> None:
+    atomic_write(path, data)
+
+
+def load_checkpoint(path: Path) -> Checkpoint | None:
+    """The saved checkpoint, or None when there is none yet; a damaged one is a StateError."""
+    try:
+        raw = path.read_bytes()
+    except FileNotFoundError:
+        return None
+    except OSError as exc:
+        raise StateError(f"{path}: cannot read the checkpoint: {exc.strerror or exc}") from None
+    advice = ("; move it away to start afresh (files are then read as on a first start, and alerts "
+              "already in alerts.jsonl stay)")
+    try:
+        ckpt = Checkpoint.model_validate_json(raw)
+    except ValidationError as exc:
+        raise StateError(f"{path}: the checkpoint is damaged ({str(exc).splitlines()[0]}){advice}") from None
+    if ckpt.schema_version != SCHEMA_VERSION:
+        raise StateError(f"{path}: checkpoint schema {ckpt.schema_version} is not supported by this "
+                         f"tracewatch (schema {SCHEMA_VERSION}){advice}")
+    return ckpt
+
+
+def restore(pipeline, ckpt: Checkpoint) -> None:
+    """Put a checkpoint's pipeline state back into a fresh pipeline built on the same baseline."""
+    saved = ckpt.pipeline
+    miner = pipeline.miner
+    try:
+        miner.restore_learned(saved.templates.model_dump())
+    except ValueError as exc:
+        raise StateError(f"checkpoint: {exc}") from None
+    n = len(miner.templates)
+    for entry in saved.sessions.open:
+        if any(not 0 <= e < n for e in entry[2]):
+            raise StateError("checkpoint: an open session refers to a template that does not exist")
+    pipeline.sessionizer.restore_state(dict(saved.sessions))
+    for name in COUNTERS:
+        counter = getattr(pipeline, name)
+        counter.clear()
+        for key, value in saved.counters.get(name, []):
+            counter[key[0] if len(key) == 1 else tuple(key)] = value
+    pipeline.watermark = saved.watermark
+
+
+# -- the alert journal -----------------------------------------------------------------------------
+class AlertJournal:
+    """``alerts.jsonl``: every alert appended once, across restarts (see the module docstring).
+
+    Alerts are numbered from 1 in journal order; :meth:`since` serves the most recent
+    ``keep`` of them to ``/api/alerts``."""
+
+    def __init__(self, path: Path, keep: int = 1000) -> None:
+        self.path = path
+        self.keep = keep
+        self.fd = -1
+        self.size = 0
+        self.count = 0
+        self.replayed = 0  # alerts raised again after a restart and recognised
+        self.recent: deque[tuple[int, dict]] = deque(maxlen=keep)
+        self._already: Counter[str] = Counter()
+
+    def open(self, mark: JournalMark | None) -> None:
+        self.path.parent.mkdir(parents=True, exist_ok=True)
+        self.fd = os.open(self.path, os.O_RDWR | os.O_APPEND | os.O_CREAT | os.O_CLOEXEC, 0o600)
+        size = os.fstat(self.fd).st_size
+        if size:  # cut a torn last line
+            start = max(0, size - (1 << 20))
+            block = os.pread(self.fd, size - start, start)
+            cut = block.rfind(b"\n")
+            end = start + cut + 1 if cut >= 0 else (0 if start == 0 else size)
+            if end != size:
+                log.warning("%s ended with a partial line (%d bytes); cut it off", self.path, size - end)
+                os.ftruncate(self.fd, end)
+                size = end
+        self.size = size
+        start = 0
+        if mark is not None and mark.offset <= size:
+            start, self.count = mark.offset, mark.count
+        elif mark is not None:
+            log.warning("%s is shorter than when the checkpoint was written; numbering its alerts afresh",
+                        self.path)
+        if mark is not None:
+            self._already = Counter(mark.pending)
+        if mark is not None and mark.offset <= size:  # written since the checkpoint: a few seconds' worth
+            after = self._read(start, size)
+            self.count += after.count(b"\n")
+            self._already.update(orjson.loads(line)["alert_id"] for line in after.splitlines() if line)
+        else:
+            self.count += sum(self._read(pos, min(size, pos + (1 << 24))).count(b"\n")
+                              for pos in range(start, size, 1 << 24))
+        lines = self._read(max(0, size - TAIL_READ_BYTES), size).splitlines()[-self.keep:]
+        if size > TAIL_READ_BYTES and lines:
+            lines = lines[1:]  # the first may be cut
+        first = self.count - len(lines) + 1
+        for i, line in enumerate(lines):
+            self.recent.append((first + i, orjson.loads(line)))
+
+    def _read(self, start: int, end: int) -> bytes:
+        chunks, pos = [], start
+        while pos < end:
+            data = os.pread(self.fd, min(end - pos, 1 << 24), pos)
+            if not data:
+                break
+            chunks.append(data)
+            pos += len(data)
+        return b"".join(chunks)
+
+    def append(self, alert: dict) -> bool:
+        """Append one alert; False when it is one raised again after a restart and already there."""
+        aid = alert["alert_id"]
+        if self._already[aid] > 0:
+            self._already[aid] -= 1
+            self.replayed += 1
+            return False
+        line = orjson.dumps(alert, option=orjson.OPT_APPEND_NEWLINE | orjson.OPT_SERIALIZE_NUMPY)
+        view = memoryview(line)
+        while view:
+            view = view[os.write(self.fd, view):]
+        self.size += len(line)
+        self.count += 1
+        self.recent.append((self.count, alert))
+        return True
+
+    def sync(self) -> dict:
+        """Make every appended alert durable; returns the mark a checkpoint saves."""
+        os.fsync(self.fd)
+        return {"offset": self.size, "count": self.count, "pending": list(self._already.elements())}
+
+    def since(self, seq: int, limit: int) -> dict:
+        items = [(n, a) for n, a in self.recent if n > seq][:limit]
+        oldest = self.recent[0][0] if self.recent else self.count + 1
+        return {"alerts": [a for _, a in items], "next": items[-1][0] if items else max(seq, 0),
+                "total": self.count, "missed": max(0, min(oldest, self.count + 1) - seq - 1)}
+
+    def close(self) -> None:
+        if self.fd >= 0:
+            os.close(self.fd)
+            self.fd = -1
