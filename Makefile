@@ -28,6 +28,10 @@ test: $(VENV)/.installed-test
 	@command -v strace >/dev/null 2>&1 || { export DEBIAN_FRONTEND=noninteractive; \
 	  { apt-get update -qq && apt-get install -y -qq strace; } >/dev/null 2>&1 \
 	  || echo "make: strace could not be installed (needs root and apt-get); its tests will be skipped"; }
+	@# Debian's chromium, for the incident page's browser test (tests/test_page.py): the same rule
+	@command -v chromium >/dev/null 2>&1 || { export DEBIAN_FRONTEND=noninteractive; \
+	  { apt-get update -qq && apt-get install -y -qq chromium; } >/dev/null 2>&1 \
+	  || echo "make: chromium could not be installed (needs root and apt-get); the browser test will be skipped"; }
 	$(PY) -m pytest -q
 
 bench: $(VENV)/.installed-test

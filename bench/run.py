@@ -28,7 +28,7 @@ from pathlib import Path
 
 HERE = Path(__file__).resolve().parent
 OUT = HERE / "out"
-BENCHMARKS = {"score": "score_vs_script"}  # name -> module with run(ctx)
+BENCHMARKS = {"score": "score_vs_script", "formats": "formats", "daemon": "daemon"}  # name -> module with run(ctx)
 DEFAULT_LINES = 1_000_000
 QUICK_LINES = 100_000
 BASELINE_SHARE = 0.2  # the baseline file is this share of the scored one (at least 50k lines)

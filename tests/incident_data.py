@@ -9,6 +9,7 @@ tracewatch.demo.scenario's machinery (generate, Step, the scenario's novel event
 from __future__ import annotations
 
 import functools
+import http.client
 import random
 import threading
 import time
@@ -59,6 +60,20 @@ def config(root: Path, **extra) -> Config:
     })
 
 
+def storm_sessions(n_faulty: int, n_normal: int, *, seed: int, span_s: float) -> list[GeneratedSession]:
+    """``n_faulty`` sessions hit by the two faults (alternately, where the retry applies) and
+    ``n_normal`` untouched ones, all starting within ``span_s`` seconds of STORM_START."""
+    sc = parcel_lockers()
+    rng = random.Random(seed)
+    day = generate(sc, n_faulty + n_normal, 0, seed=seed + 1, start=STORM_START, span_s=span_s)
+    jam = sc.novel[0]  # "latch sensor on door N reports jammed bolt"
+    for i, sess in enumerate(day[:n_faulty]):
+        if not (i % 2 == 0 and _retry(sess, rng)):
+            _unseen(sess, rng, jam)
+        _retime(sess, rng)
+    return day
+
+
 @functools.cache
 def storm(root: Path, n_faulty: int = 400, n_normal: int = 100) -> tuple[Config, list[dict], dict[str, str]]:
     """(config, alerts in the order the pipeline raised them, session key → label)."""
@@ -66,13 +81,7 @@ def storm(root: Path, n_faulty: int = 400, n_normal: int = 100) -> tuple[Config,
     root.mkdir(parents=True, exist_ok=True)
     base = generate(sc, 800, 0, seed=31, start=datetime(2026, 11, 29, tzinfo=timezone.utc))
     (root / "baseline.log").write_text("\n".join(render_text(sc, base)) + "\n")
-    rng = random.Random(32)
-    day = generate(sc, n_faulty + n_normal, 0, seed=33, start=STORM_START, span_s=240)
-    jam = sc.novel[0]  # "latch sensor on door N reports jammed bolt"
-    for i, sess in enumerate(day[:n_faulty]):
-        if not (i % 2 == 0 and _retry(sess, rng)):
-            _unseen(sess, rng, jam)
-        _retime(sess, rng)
+    day = storm_sessions(n_faulty, n_normal, seed=32, span_s=240)
     (root / "storm.log").write_text("\n".join(render_text(sc, day)) + "\n")
     cfg = config(root)
     baseline, _, _ = fit_files(cfg, assign_sources(cfg, [str(root / "baseline.log")]))
@@ -83,8 +92,8 @@ def storm(root: Path, n_faulty: int = 400, n_normal: int = 100) -> tuple[Config,
 
 # -- a receiver on loopback, standing in for a webhook and for Alertmanager ---------------------------
 class Receiver:
-    """A real HTTP server on 127.0.0.1 that records every POST (path, headers, JSON body) and
-    answers ``status`` (settable, e.g. 503 to play a receiver in trouble). ``stop()`` closes the
+    """A real HTTP server on 127.0.0.1 that records every POST (path, headers, JSON body, the
+    status it answered) and answers ``status`` (settable, e.g. 503 to play a receiver in trouble). ``stop()`` closes the
     port (connection refused, a receiver that is down); ``start()`` opens the same port again."""
 
     def __init__(self, port: int = 0) -> None:
@@ -102,10 +111,9 @@ class Receiver:
             def do_POST(self) -> None:  # noqa: N802
                 body = self.rfile.read(int(self.headers.get("Content-Length") or 0))
                 code = outer.status
-                if code == 200:
-                    with outer._lock:
-                        outer.requests.append({"path": self.path, "headers": dict(self.headers),
-                                               "body": orjson.loads(body)})
+                with outer._lock:
+                    outer.requests.append({"path": self.path, "headers": dict(self.headers), "status": code,
+                                           "body": orjson.loads(body)})
                 self.send_response(code)
                 self.send_header("Content-Length", "0")
                 self.end_headers()
@@ -134,13 +142,14 @@ class Receiver:
         return f"http://127.0.0.1:{self.port}"
 
     def bodies(self) -> list:
+        """The bodies of the requests it accepted (answered 200)."""
         with self._lock:
-            return [r["body"] for r in self.requests]
+            return [r["body"] for r in self.requests if r["status"] == 200]
 
     def wait_for(self, n: int, timeout: float = 10.0) -> list:
-        """Bodies once at least ``n`` requests arrived (or the timeout passed)."""
+        """Accepted bodies once there are at least ``n`` (or the timeout passed)."""
         end = time.monotonic() + timeout
-        while len(self.requests) < n and time.monotonic() < end:
+        while len(self.bodies()) < n and time.monotonic() < end:
             time.sleep(0.02)
         return self.bodies()
 
@@ -156,3 +165,95 @@ def toy_alert(alert_id: str, *unseen: str, t: float = 1_800_000_000.0, source: s
              "closest_normal": ["begin <*>", "end <*>"], "samples": [f"line of {alert_id}"]}
     alert.update(fields)
     return alert
+
+
+# -- the daemon's HTTP server, answering for a real (not started) daemon ---------------------------------
+
+def request(port: int, method: str, path: str, *, headers: dict | None = None, body: bytes | None = None
+            ) -> tuple[int, dict, bytes]:
+    conn = http.client.HTTPConnection("127.0.0.1", port, timeout=10)
+    conn.request(method, path, body=body, headers=headers or {})
+    resp = conn.getresponse()
+    data = resp.read()
+    conn.close()
+    return resp.status, dict(resp.getheaders()), data
+
+
+class Served:
+    """``tracewatch.service.http.serve`` on 127.0.0.1 for a Daemon built from ``cfg`` (not started:
+    no files are followed); alerts go to ``daemon.incidents`` directly."""
+
+    def __init__(self, cfg: Config) -> None:
+        from prometheus_client import CollectorRegistry
+
+        from tracewatch.service.daemon import Daemon
+        from tracewatch.service.http import serve
+
+        self.daemon = Daemon(cfg, registry=CollectorRegistry())
+        self.server, self.thread = serve("127.0.0.1:0", self.daemon, self.daemon.registry)
+        self.port = self.server.server_address[1]
+        self.incidents = self.daemon.incidents
+
+    def close(self) -> None:
+        self.server.shutdown()
+        self.server.server_close()
+        self.thread.join(5)
+        self.daemon.incidents.close()
+        self.daemon.journal.close()
+
+
+# -- a daemon following a real log file (the browser test, the restart test) ------------------------------
+LIVE_CONFIG = """\
+state_dir = "state"
+{top}
+[[sources]]
+name = "locker-api"
+paths = ["{logs}/*.log"]
+line_pattern = '{pattern}'
+start_at = "beginning"
+
+[sessions]
+idle_timeout_s = 1.0
+
+[model]
+false_alarm_rate = 0.01
+
+[server]
+listen = "127.0.0.1:{port}"
+
+[daemon]
+poll_interval_s = 0.1
+checkpoint_interval_s = 0.5
+{tail}"""
+
+
+def free_port() -> int:
+    import socket
+
+    with socket.socket() as s:
+        s.bind(("127.0.0.1", 0))
+        return s.getsockname()[1]
+
+
+def scaled(sessions: list[GeneratedSession]) -> list[str]:
+    """Log lines whose steps are at most 0.3 s apart: far below the live configs' 1 s idle timeout."""
+    for s in sessions:
+        s.times = [s.start + 0.2 * (t - s.start) for t in s.times]
+    return render_text(parcel_lockers(), sessions)
+
+
+def live_setup(root: Path, *, seed: int, top: str = "", tail: str = "") -> tuple[Path, int]:
+    """A config following ``root``/logs/*.log on a free loopback port, with a baseline fitted
+    from 400 generated sessions; returns the config's path and the port."""
+    from tracewatch.config import load_config
+
+    port = free_port()
+    (root / "logs").mkdir(parents=True, exist_ok=True)
+    cfg_path = root / "tw.toml"
+    cfg_path.write_text(LIVE_CONFIG.format(top=top, tail=tail, logs=root / "logs", port=port,
+                                           pattern=parcel_lockers().line_pattern))
+    cfg = load_config(cfg_path)
+    base = root / "baseline.txt"
+    base.write_text("\n".join(scaled(generate(parcel_lockers(), 400, 0, seed=seed, span_s=400))) + "\n")
+    fit_files(cfg, assign_sources(cfg, [str(base)]))
+    return cfg_path, port

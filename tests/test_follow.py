@@ -27,8 +27,8 @@ class Recorder:
         self.lines: list[tuple[str, str, str, int, str | None]] = []
         self.ended: list[tuple[str, str]] = []
 
-    def feed_line(self, source, stream, line, offset=-1, repair=None) -> None:
-        self.lines.append((source, stream, line, offset, repair))
+    def feed_lines(self, source, stream, lines) -> None:
+        self.lines.extend((source, stream, line, offset, repair) for line, offset, repair in lines)
 
     def end_stream(self, source, stream) -> None:
         self.ended.append((source, stream))

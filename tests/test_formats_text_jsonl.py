@@ -88,3 +88,22 @@ def test_jsonl_fields_and_rejects():
     assert arr.reason == "not_an_object"
     [nomsg] = fmt.feed('{"other": 1}', 0)
     assert nomsg.reason == "no_message_field" and nomsg.record is not None
+
+
+def test_parse_timestamp_equals_datetime():
+    # parse_timestamp must give exactly what datetime.fromisoformat().timestamp() gives
+    import random
+
+    rng = random.Random(1)
+    for _ in range(2000):
+        base = datetime(2026, 1, 1, tzinfo=timezone.utc).timestamp() + rng.randrange(0, 3 * 86400)
+        micros = rng.randrange(0, 10**6)
+        digits = rng.choice([1, 2, 3, 6])
+        frac = f"{micros:06d}"[:digits]
+        text = datetime.fromtimestamp(base, tz=timezone.utc).strftime("%Y-%m-%dT%H:%M:%S") + "." + frac
+        for zone in ("Z", "+02:00", ""):
+            expected = datetime.fromisoformat(text + zone).replace(
+                tzinfo=datetime.fromisoformat(text + zone).tzinfo or timezone.utc).timestamp()
+            assert parse_timestamp(text + zone) == expected
+        comma = text.replace(".", ",")
+        assert parse_timestamp(comma) == parse_timestamp(text)

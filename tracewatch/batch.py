@@ -53,11 +53,9 @@ def iter_file(cfg: Config, source: str, path: Path) -> Iterator[tuple[str, int, 
 
 def run_files(pipeline: Pipeline, pairs: list[tuple[str, Path]]) -> None:
     """Feed every file to the pipeline, in order, then flush it."""
-    feed = pipeline.feed_line
     for source, path in pairs:
         stream = str(path)
-        for line, offset, repair in iter_file(pipeline.cfg, source, path):
-            feed(source, stream, line, offset, repair)
+        pipeline.feed_lines(source, stream, iter_file(pipeline.cfg, source, path))
         pipeline.end_stream(source, stream)
     pipeline.flush()
 

@@ -60,16 +60,39 @@ class Pipeline:
         self.reject_samples: list[dict] = []
 
     # -- input ---------------------------------------------------------------------------
-    def feed_line(self, source: str, stream: str, line: str, offset: int = -1,
-                  repair: str | None = None) -> None:
+    def _format(self, source: str, stream: str) -> Format:
         fmt = self._formats.get((source, stream))
         if fmt is None:
             fmt = self._formats[(source, stream)] = make_format(self._sources[source])
+        return fmt
+
+    def feed_line(self, source: str, stream: str, line: str, offset: int = -1,
+                  repair: str | None = None) -> None:
         self.lines[source] += 1
         if repair is not None:
             self.repaired[(source, repair)] += 1
-        for item in fmt.feed(line, offset):
-            self._take(source, item)
+        for item in self._format(source, stream).feed(line, offset):
+            if type(item) is Record:
+                self.feed_record(item)
+            else:
+                self._take(source, item)
+
+    def feed_lines(self, source: str, stream: str, lines) -> None:
+        """Feed ``(line, offset, repair)`` triples of one stream: the same as calling
+        :meth:`feed_line` for each, with the per-line lookups done once."""
+        feed = self._format(source, stream).feed
+        feed_record, take, repaired = self.feed_record, self._take, self.repaired
+        n = 0
+        for line, offset, repair in lines:
+            n += 1
+            if repair is not None:
+                repaired[(source, repair)] += 1
+            for item in feed(line, offset):
+                if type(item) is Record:
+                    feed_record(item)
+                else:
+                    take(source, item)
+        self.lines[source] += n
 
     def end_stream(self, source: str, stream: str) -> None:
         """A file ended (batch) or was rotated away: flush what its format holds.

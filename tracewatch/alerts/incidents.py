@@ -40,6 +40,7 @@ from pathlib import Path
 import orjson
 
 from ..config import Config, IncidentsConfig
+from ..errors import StateError
 from . import summary
 from .store import FIRING, IncidentStore, dumps
 
@@ -335,6 +336,7 @@ class Incidents:
         self._store: IncidentStore | None = None
         self.tracker: IncidentTracker | None = None
         self.notifier = None
+        self.failures = 0
 
     @property
     def store(self) -> IncidentStore:
@@ -352,12 +354,23 @@ class Incidents:
         self.notifier.start()
 
     def add(self, alert: dict) -> int | None:
-        self.store  # noqa: B018
-        return self.tracker.add(alert)
+        """Group an alert. A store that fails (disk full, say) is logged and does not stop the
+        caller: alerts.jsonl stays the record, and later alerts are grouped when it works again."""
+        try:
+            self.store  # noqa: B018
+            return self.tracker.add(alert)
+        except (sqlite3.Error, StateError, OSError) as exc:
+            self.failures += 1
+            log.error("incident store: %s; alert %s not grouped (it is in alerts.jsonl)", exc, alert.get("alert_id"))
+            return None
 
     def tick(self, now: float) -> None:
         if self.tracker is not None:
-            self.tracker.tick(now)
+            try:
+                self.tracker.tick(now)
+            except (sqlite3.Error, OSError) as exc:
+                self.failures += 1
+                log.error("incident store: %s; quiet incidents not resolved this time", exc)
 
     def set_status(self, iid: int, action: str, *, by: str, note: str = "") -> tuple[int, dict]:
         code, out = set_status(self.store, iid, action, by=by, note=note)

@@ -114,6 +114,11 @@ class IncidentStore:
             if create:
                 path.parent.mkdir(parents=True, exist_ok=True)
             store._init()
+        except sqlite3.OperationalError as exc:
+            store.close()
+            if "locked" in str(exc) or "busy" in str(exc):
+                raise StateError(f"{path}: busy (another process has held it for seconds); try again") from None
+            raise StateError(f"{path}: not a usable incident store ({exc}); move it away to start afresh") from None
         except sqlite3.DatabaseError as exc:
             store.close()
             raise StateError(f"{path}: not a usable incident store ({exc}); move it away to start afresh") from None
@@ -123,20 +128,29 @@ class IncidentStore:
         return store
 
     def _init(self) -> None:
+        """Check the schema with a read (a reader never waits for the daemon's writes); create
+        it only when missing."""
         db = self.db
-        db.execute("PRAGMA journal_mode=WAL")
-        with self.transaction() as tx:
-            for stmt in _SCHEMA.split(";"):
-                if stmt.strip():
-                    tx.execute(stmt)
-            row = tx.execute("SELECT value FROM meta WHERE key = 'schema_version'").fetchone()
-            if row is None:
-                tx.execute("INSERT INTO meta VALUES ('schema_version', ?)", (str(SCHEMA_VERSION),))
-                tx.execute("INSERT INTO meta VALUES ('store_id', ?)", (uuid.uuid4().hex,))
-            elif int(row[0]) > SCHEMA_VERSION:
-                raise StateError(f"{self.path} was written by a newer tracewatch (schema {row[0]}, this one "
-                                 f"reads {SCHEMA_VERSION}); upgrade tracewatch or move the file away")
-            self.store_id = tx.execute("SELECT value FROM meta WHERE key = 'store_id'").fetchone()[0]
+        try:
+            row = db.execute("SELECT value FROM meta WHERE key = 'schema_version'").fetchone()
+        except sqlite3.OperationalError as exc:
+            if "no such table" not in str(exc):
+                raise
+            row = None
+        if row is None:
+            if db.execute("PRAGMA journal_mode").fetchone()[0] != "wal":
+                db.execute("PRAGMA journal_mode=WAL")
+            with self.transaction() as tx:
+                for stmt in _SCHEMA.split(";"):
+                    if stmt.strip():
+                        tx.execute(stmt)
+                if tx.execute("SELECT 1 FROM meta WHERE key = 'schema_version'").fetchone() is None:
+                    tx.execute("INSERT INTO meta VALUES ('schema_version', ?)", (str(SCHEMA_VERSION),))
+                    tx.execute("INSERT INTO meta VALUES ('store_id', ?)", (uuid.uuid4().hex,))
+        elif int(row[0]) > SCHEMA_VERSION:
+            raise StateError(f"{self.path} was written by a newer tracewatch (schema {row[0]}, this one "
+                             f"reads {SCHEMA_VERSION}); upgrade tracewatch or move the file away")
+        self.store_id = db.execute("SELECT value FROM meta WHERE key = 'store_id'").fetchone()[0]
 
     # -- connections and transactions ------------------------------------------------------------
     @property
@@ -163,6 +177,16 @@ class IncidentStore:
             db.execute("ROLLBACK")
             raise
         db.execute("COMMIT")
+
+    def release(self) -> None:
+        """Close this thread's connection (for short-lived threads, such as HTTP requests)."""
+        conn = getattr(self._local, "conn", None)
+        if conn is not None:
+            self._local.conn = None
+            with self._guard:
+                if conn in self._all:
+                    self._all.remove(conn)
+            conn.close()
 
     def close(self) -> None:
         with self._guard:

@@ -31,9 +31,14 @@ _EPOCH_MS = re.compile(r"^\d{12,13}$")
 
 def _iso(text: str) -> float | None:
     try:
-        dt = datetime.fromisoformat(text.replace(",", ".", 1) if "," in text else text)
+        dt = datetime.fromisoformat(text)
     except ValueError:
-        return None
+        if "," not in text:
+            return None
+        try:
+            dt = datetime.fromisoformat(text.replace(",", ".", 1))
+        except ValueError:
+            return None
     if dt.tzinfo is None:
         dt = dt.replace(tzinfo=timezone.utc)
     return dt.timestamp()
@@ -45,9 +50,9 @@ def parse_timestamp(text: str | None) -> float | None:
     Times without a zone are taken as UTC."""
     if not text:
         return None
-    text = text.strip()
     if len(text) >= 10 and text[4] == "-" and text[7] == "-":  # the common case, no regex
         return _iso(text)
+    text = text.strip()
     if _EPOCH.match(text):
         return float(text)
     if _EPOCH_MS.match(text):

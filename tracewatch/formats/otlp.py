@@ -187,6 +187,11 @@ class OtlpJsonFormat:
         self._reset()
         return [Rejection(reason, x) for x in held]
 
+    @property
+    def held_from(self) -> int | None:
+        """Offset of the first line of a document not yet complete (a checkpoint resumes there)."""
+        return self._offset if self._held is not None else None
+
     def flush(self) -> Output:
         return self._give_up("truncated_document")
 

@@ -20,43 +20,39 @@ class TextFormat:
         self.source = src.name
         self._pattern = re.compile(src.line_pattern) if src.line_pattern else None
         groups = self._pattern.groupindex if self._pattern else {}
-        self._has_ts = "ts" in groups
-        self._has_level = "level" in groups
-        self._has_key = "key" in groups
+        # group numbers (0 = absent, which m.group(0) would not be read for)
+        self._gi = tuple(groups.get(name, 0) for name in ("message", "ts", "level", "key"))
         self._key = re.compile(src.session_key) if src.session_key else None
         self._cont = re.compile(src.continuation_pattern) if src.continuation_pattern else None
         self._cont_max = src.continuation_max
         self._pending: Record | None = None
         self._pending_lines = 0
+        # feed(line, offset) -> Output: the per-line entry point, chosen once per instance
+        self.feed = self._feed_multiline if self._cont is not None else self._parse
 
-    def _key_of(self, line: str, groups: dict | None) -> str | None:
-        if groups is not None and self._has_key and groups["key"] is not None:
-            return groups["key"]
+    def _key_of(self, line: str, key: str | None) -> str | None:
+        if key is not None:
+            return key
         if self._key is not None:
             m = self._key.search(line)
             if m is not None:
                 return m.group("key")
         return None
 
-    def feed(self, line: str, offset: int) -> Output:
-        if self._cont is not None:
-            return self._feed_multiline(line, offset)
-        return self._parse(line, offset)
-
     def _parse(self, line: str, offset: int) -> Output:
-        if not line.strip():
-            return [Rejection("empty", line)]
         pattern = self._pattern
-        if pattern is None:
-            return [Record(self.source, self._key_of(line, None), None, None, line, line, offset)]
-        m = pattern.match(line)
+        m = pattern.match(line) if pattern is not None else None
         if m is None:
+            if not line.strip():
+                return [Rejection("empty", line)]
             rec = Record(self.source, self._key_of(line, None), None, None, line, line, offset)
-            return [Rejection("no_match", line, rec)]
-        g = m.groupdict()
-        ts = parse_timestamp(g["ts"]) if self._has_ts else None
-        level = g["level"] if self._has_level else None
-        return [Record(self.source, self._key_of(line, g), ts, level, g["message"] or "", line, offset)]
+            return [rec] if pattern is None else [Rejection("no_match", line, rec)]
+        gm, gts, glevel, gkey = self._gi
+        key = m.group(gkey) if gkey else None
+        if key is None and self._key is not None:
+            key = self._key_of(line, None)
+        return [Record(self.source, key, parse_timestamp(m.group(gts)) if gts else None,
+                       m.group(glevel) if glevel else None, m.group(gm) or "", line, offset)]
 
     def _feed_multiline(self, line: str, offset: int) -> Output:
         pending = self._pending
@@ -75,6 +71,11 @@ class TextFormat:
             else:
                 out.append(item)
         return out
+
+    @property
+    def held_from(self) -> int | None:
+        """Offset of the record still waiting for continuation lines (a checkpoint resumes there)."""
+        return self._pending.offset if self._pending is not None else None
 
     def flush(self) -> Output:
         if self._pending is None:

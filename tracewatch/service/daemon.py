@@ -331,10 +331,10 @@ class Daemon:
 class _Unready:
     """The follower's sink until the pipeline exists (nothing is read before that)."""
 
-    def feed_line(self, *args) -> None:
+    def feed_lines(self, *args) -> None:
         raise RuntimeError("the follower read before the pipeline was ready")
 
-    end_stream = feed_line
+    end_stream = feed_lines
 
 
 def _iso(ts: float) -> str:

@@ -113,6 +113,9 @@ def route(h: BaseHTTPRequestHandler, incidents: Incidents | None) -> bool:
             _json(h, 405, {"error": "use GET, or POST for a state change"}, {"Allow": "GET, POST"})
     except TracewatchError as exc:  # the store cannot be opened, for example
         _json(h, 503, {"error": str(exc)})
+    finally:
+        if incidents._store is not None:
+            incidents._store.release()  # each request runs in a thread of its own
     return True
 
 

@@ -100,7 +100,7 @@ def detail_page(d: dict, *, refresh_s: int) -> str:
         parts.append("<h2>Difference from the closest normal session</h2><ul class=\"diff\">"
                      + "".join(f"<li>{e(line)}</li>" for line in d["diff"]) + "</ul>")
     shared = d.get("shared") or {}
-    labels = {"unseen": "Events never seen before", "unexpected": "Step sequences more frequent than normal",
+    labels = {"unseen": "Events never seen before", "unexpected": "Unusual steps or step sequences",
               "missing": "Expected steps missing", "reasons": "Reasons"}
     for key, label in labels.items():
         if shared.get(key):

@@ -48,29 +48,70 @@ def expand_inputs(patterns: list[str]) -> list[Path]:
     return out
 
 
+CHUNK = 1 << 20
+
+
+def _lines_of(block: bytes, offset: int, max_line_bytes: int) -> Iterator[tuple[str, int, str | None]]:
+    """Lines of a block that ends with a newline. An ASCII block (the usual case) is decoded
+    once and split as text, where character and byte offsets agree."""
+    if block.isascii():
+        for line in block.decode("ascii").split("\n")[:-1]:
+            size = len(line) + 1
+            if line and line[-1] == "\r":
+                line = line[:-1]
+            if len(line) <= max_line_bytes:
+                yield line, offset, None
+            else:
+                yield line[:max_line_bytes], offset, LINE_TOO_LONG
+            offset += size
+        return
+    for raw in block.split(b"\n")[:-1]:
+        text, problem = decode_line(raw[:-1] if raw.endswith(b"\r") else raw, max_line_bytes)
+        yield text, offset, problem
+        offset += len(raw) + 1
+
+
 def read_lines(path: Path, max_line_bytes: int) -> Iterator[tuple[str, int, str | None]]:
     """Yield ``(text, offset, repair_reason)`` for every line of ``path``, the last one even
-    without a trailing newline."""
+    without a trailing newline. Memory stays bounded by the chunk size and ``max_line_bytes``
+    even for a file with no newline at all."""
     try:
         fh = open(path, "rb")
     except OSError as exc:
         raise InputError(f"{path}: cannot read: {exc.strerror or exc}") from None
     with fh:
         offset = 0
+        rest = b""
+        skipping = False  # inside an over-long line whose start was already yielded
         try:
-            for raw in fh:
-                size = len(raw)
-                line = raw[:-1] if raw.endswith(b"\n") else raw
-                if line.endswith(b"\r"):
-                    line = line[:-1]
-                if len(line) <= max_line_bytes:
-                    try:
-                        yield line.decode("utf-8"), offset, None
-                    except UnicodeDecodeError:
-                        yield line.decode("utf-8", errors="replace"), offset, INVALID_UTF8
-                else:
-                    text, problem = decode_line(line, max_line_bytes)
-                    yield text, offset, problem
-                offset += size
+            while True:
+                chunk = fh.read(CHUNK)
+                if not chunk:
+                    break
+                data = rest + chunk if rest else chunk
+                cut = data.rfind(b"\n") + 1
+                if skipping:
+                    first = data.find(b"\n")
+                    if first < 0:
+                        offset += len(data)
+                        rest = b""
+                        continue
+                    offset += first + 1
+                    data, cut, skipping = data[first + 1:], cut - first - 1, False
+                if cut == 0:
+                    if len(data) > max_line_bytes:  # an over-long line: yield its start, skip the rest
+                        text, _ = decode_line(data[:max_line_bytes], max_line_bytes)
+                        yield text, offset, LINE_TOO_LONG
+                        offset += len(data)
+                        rest, skipping = b"", True
+                    else:
+                        rest = data
+                    continue
+                yield from _lines_of(data[:cut], offset, max_line_bytes)
+                offset += cut
+                rest = data[cut:]
+            if rest:
+                text, problem = decode_line(rest[:-1] if rest.endswith(b"\r") else rest, max_line_bytes)
+                yield text, offset, problem
         except OSError as exc:
             raise InputError(f"{path}: read failed at byte {offset}: {exc.strerror or exc}") from None

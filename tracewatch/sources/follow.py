@@ -1,7 +1,7 @@
 """Live source: follow files as they grow.
 
-Stage: **sources** (daemon) → formats. Hands every complete new line on to a sink as
-``feed_line(source, stream, line, offset, repair)`` and says ``end_stream(source, stream)``
+Stage: **sources** (daemon) → formats. Hands complete new lines on to a sink as
+``feed_lines(source, stream, [(line, offset, repair), ...])`` and says ``end_stream(source, stream)``
 when a file is finished — the sink is the pipeline. The decoding policy is the batch reader's
 (:func:`tracewatch.sources.files.decode_line`).
 
@@ -46,8 +46,7 @@ _WILD = frozenset("*?[")
 
 
 class LineSink(Protocol):
-    def feed_line(self, source: str, stream: str, line: str, offset: int = -1,
-                  repair: str | None = None) -> None: ...
+    def feed_lines(self, source: str, stream: str, lines: list[tuple[str, int, str | None]]) -> None: ...
 
     def end_stream(self, source: str, stream: str) -> None: ...
 
@@ -105,7 +104,8 @@ class Tail:
         pieces = data.split(b"\n")
         tail = pieces.pop()
         cap = self.max_line_bytes + 1  # enough to know that a line is too long
-        feed, source, stream, offset = sink.feed_line, self.source, self.stream, self.offset
+        offset = self.offset
+        lines = []
         for piece in pieces:
             size = len(piece) + 1
             if self.partial_len:
@@ -115,12 +115,12 @@ class Tail:
                 self.partial_len = 0
             elif len(piece) > cap:
                 piece = piece[:cap]
-            if piece.endswith(b"\r"):
-                piece = piece[:-1]
-            text, repair = decode_line(piece, self.max_line_bytes)
-            feed(source, stream, text, offset, repair)
+            text, repair = decode_line(piece.rstrip(b"\r"), self.max_line_bytes)
+            lines.append((text, offset, repair))
             offset += size
         self.offset = offset
+        if lines:
+            sink.feed_lines(self.source, self.stream, lines)
         if tail:
             if len(self.partial) < cap:
                 self.partial += tail[:cap - len(self.partial)]
