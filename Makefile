@@ -32,6 +32,11 @@ test: $(VENV)/.installed-test
 	@command -v chromium >/dev/null 2>&1 || { export DEBIAN_FRONTEND=noninteractive; \
 	  { apt-get update -qq && apt-get install -y -qq chromium; } >/dev/null 2>&1 \
 	  || echo "make: chromium could not be installed (needs root and apt-get); the browser test will be skipped"; }
+	@# Debian's prometheus and prometheus-alertmanager, for tests/test_prometheus_real.py and
+	@# tests/test_alertmanager_real.py (the deploy/ examples run for real): the same rule
+	@{ command -v prometheus && command -v prometheus-alertmanager; } >/dev/null 2>&1 || { export DEBIAN_FRONTEND=noninteractive; \
+	  { apt-get update -qq && apt-get install -y -qq --no-install-recommends prometheus prometheus-alertmanager; } >/dev/null 2>&1 \
+	  || echo "make: prometheus/prometheus-alertmanager could not be installed (needs root and apt-get); their tests will be skipped"; }
 	$(PY) -m pytest -q
 
 bench: $(VENV)/.installed-test

@@ -10,7 +10,7 @@ from datetime import datetime, timezone
 import orjson
 
 from tracewatch.config import SourceConfig
-from tracewatch.formats import parse_timestamp
+from tracewatch.formats import items, parse_timestamp
 from tracewatch.formats.jsonl import JsonlFormat
 from tracewatch.formats.text import TextFormat
 from tracewatch.records import Record, Rejection
@@ -20,7 +20,7 @@ def test_text_groups_and_key():
     src = SourceConfig(name="api", line_pattern=r"^(?P<ts>\S+) (?P<level>[A-Z]+) (?P<message>.*)$",
                        session_key=r"req=(?P<key>[0-9a-f]+)")
     fmt = TextFormat(src)
-    [rec] = fmt.feed("2026-11-30T10:00:00.250Z INFO req=ab12 door 5 opened", 42)
+    [rec] = items(fmt.feed("2026-11-30T10:00:00.250Z INFO req=ab12 door 5 opened", 42))
     assert isinstance(rec, Record)
     assert rec.key == "ab12" and rec.level == "INFO" and rec.message == "req=ab12 door 5 opened"
     assert rec.ts == datetime(2026, 11, 30, 10, 0, 0, 250000, tzinfo=timezone.utc).timestamp()
@@ -37,7 +37,8 @@ def test_text_line_not_matching_is_kept_and_counted():
 
 
 def test_text_without_pattern_uses_whole_line():
-    [rec] = TextFormat(SourceConfig(name="x")).feed("hello world 17", 0)
+    rec = TextFormat(SourceConfig(name="x")).feed("hello world 17", 0)
+    assert isinstance(rec, Record)  # the one-line-one-record fast path returns it bare
     assert rec.message == "hello world 17" and rec.key is None
 
 
@@ -59,7 +60,7 @@ def test_python_logging_default_format_is_read():
     logger.removeHandler(handler)
     line = stream.getvalue().rstrip("\n")
     src = SourceConfig(name="py", line_pattern=r"^(?P<ts>\S+ \S+) (?P<level>[A-Z]+) (?P<logger>\S+) (?P<message>.*)$")
-    [rec] = TextFormat(src).feed(line, 0)
+    [rec] = items(TextFormat(src).feed(line, 0))
     assert rec.level == "WARNING" and rec.message == "compartment 7 jammed"
     assert abs(rec.ts - created[0]) < 0.001  # asctime keeps milliseconds
 

@@ -6,7 +6,7 @@ import numpy as np
 import pytest
 import scipy.sparse as sp
 from sklearn.cluster import KMeans
-from sklearn.metrics import silhouette_score
+from sklearn.metrics import adjusted_rand_score, silhouette_score
 
 from tracewatch.features import NgramVectorizer
 from tracewatch.model.fit import ClusterModel, kneedle, weighted_silhouette
@@ -98,3 +98,83 @@ def test_tiny_cluster_is_reported_as_contamination_not_learned():
     assert len(model.cluster_centers_) == 2
     assert len(model.contamination_) == 1 and model.contamination_[0]["sessions"] == 1
     assert model.labels_[2] == -1
+
+
+# -- streaming fit (mini-batches) ----------------------------------------------------------
+def _flows_and_matrix(n=600, seed=4):
+    """Sessions of three flows with optional extra steps: (flow of each distinct row, X, weights)."""
+    rng = np.random.default_rng(seed)
+    flows = [(1, 2, 3, 4), (5, 6, 7), (1, 8, 9, 9, 4)]
+    counts: dict[tuple[int, ...], int] = {}
+    flow_of: dict[tuple[int, ...], int] = {}
+    for _ in range(n):
+        f = int(rng.integers(0, 3))
+        seq = list(flows[f])
+        for _ in range(int(rng.integers(0, 3))):
+            seq.insert(int(rng.integers(1, len(seq))), int(rng.integers(10, 30)))
+        counts[tuple(seq)] = counts.get(tuple(seq), 0) + 1
+        flow_of[tuple(seq)] = f
+    distinct = list(counts)
+    w = np.array([counts[s] for s in distinct], dtype=float)
+    X = NgramVectorizer(3).fit(distinct, w).transform(distinct)[0]
+    return np.array([flow_of[s] for s in distinct]), X, w
+
+
+def test_forced_streaming_finds_the_three_flows():
+    flows, X, w = _flows_and_matrix()
+    model = ClusterModel(k="auto", k_max=8, restarts=3, seed=0, streaming=True).fit(X, w)
+    assert model.streaming_ and model.k_ == 3
+    # every flow is one cluster: the adjusted Rand index (sklearn.metrics.adjusted_rand_score,
+    # Hubert & Arabie 1985) is 1 exactly when the two partitions agree up to renaming
+    assert adjusted_rand_score(flows, model.labels_) == 1.0
+    assert [row["k"] for row in model.curve_] == list(range(1, 9))
+
+
+@pytest.mark.parametrize("streaming, rows, expected", [(False, 10, False), ("auto", 10, True),
+                                                       ("auto", 10_000, False), (True, 10_000, True)],
+                         ids=["off", "auto-above", "auto-below", "forced"])
+def test_streaming_switch(streaming, rows, expected):
+    _, X, w = _flows_and_matrix(200)
+    model = ClusterModel(k=3, seed=0, streaming=streaming, streaming_rows=rows).fit(X, w)
+    assert model.streaming_ is expected
+
+
+def test_streaming_spreads_and_medoids_match_the_definition():
+    # spreads_ are the weighted mean distance of members to their centre (before the floor);
+    # checked against a direct dense computation
+    _, X, w = _flows_and_matrix()
+    model = ClusterModel(k=3, seed=0, streaming=True).fit(X, w)
+    dense = X.toarray()
+    for c, center in enumerate(model.cluster_centers_):
+        rows = np.flatnonzero(model.labels_ == c)
+        d = np.linalg.norm(dense[rows] - center, axis=1)
+        assert np.isclose(max(np.sum(d * w[rows]) / np.sum(w[rows]), model.spreads_.min()), model.spreads_[c])
+        assert model.medoids_[c] == rows[np.argmin(d)]
+
+
+def test_silhouette_sample_is_bounded_and_close_to_the_full_value():
+    _, X, _ = _flows_and_matrix(3000, seed=7)
+    w = np.random.default_rng(8).pareto(1.5, size=X.shape[0]) + 1  # heavy-tailed repeat counts
+    full = ClusterModel(k="auto", k_max=4, restarts=2, seed=0, silhouette_sample=10**6,
+                        streaming=True).fit(X, w)
+    sampled = ClusterModel(k="auto", k_max=4, restarts=2, seed=0, silhouette_sample=400,
+                           streaming=True).fit(X, w)
+    assert full.silhouette_rows_ == X.shape[0] > 400
+    assert 0 < sampled.silhouette_rows_ <= 400
+    # the same fits (same seed), only the silhouette differs: the sample stands for sessions
+    # drawn ∝ weight, so its mean silhouette estimates the weighted one of all rows (drawing
+    # rows ∝ weight *and* weighting them again overshoots by about 0.015 here)
+    assert np.array_equal(sampled.labels_, full.labels_)
+    assert abs(sampled.curve_[2]["silhouette"] - full.curve_[2]["silhouette"]) < 0.008
+
+
+def test_streaming_config_key_is_validated(tmp_path):
+    from tracewatch.config import load_config
+    from tracewatch.errors import ConfigError
+
+    cfg = tmp_path / "tw.toml"
+    cfg.write_text('[[sources]]\nname = "api"\n[model]\nstreaming = "sometimes"\n')
+    with pytest.raises(ConfigError, match="streaming"):
+        load_config(cfg)
+    cfg.write_text('[[sources]]\nname = "api"\n[model]\nstreaming = true\nstreaming_rows = 1000\n')
+    assert load_config(cfg).model.streaming is True

@@ -4,13 +4,14 @@ re-sending firing incidents, and a receiver that is down while the process resta
 
 from __future__ import annotations
 
+import json
 import os
-import random
 import re
 import signal
 import subprocess
 import sys
 import time
+import urllib.request
 from datetime import datetime
 
 import pytest
@@ -21,7 +22,7 @@ from tracewatch.alerts.store import IncidentStore
 from tracewatch.config import parse_config
 
 from .conftest import ROOT
-from .incident_data import Receiver, toy_alert
+from .incident_data import Receiver, free_port, live_setup, scaled, storm_sessions, toy_alert
 
 # RFC 3339 §5.6 date-time (Alertmanager's openapi.yaml declares startsAt/endsAt "format: date-time")
 RFC3339 = re.compile(r"^\d{4}-\d{2}-\d{2}T\d{2}:\d{2}:\d{2}(\.\d+)?(Z|[+-]\d{2}:\d{2})$")
@@ -155,6 +156,23 @@ def test_a_refused_notification_is_not_retried_forever(store, receiver):
     assert store.cursors()["webhook"]["rejected"] == 1 and store.cursors()["webhook"]["delivered"] == 1
 
 
+
+@pytest.mark.parametrize("section, key, value, message", [
+    ("notify", "webhook_url", "ftp://127.0.0.1/x", "notify.webhook_url: must be an http:// or https:// URL"),
+    ("notify", "alertmanager_url", "127.0.0.1:9093", "notify.alertmanager_url: must be an http:// or https://"),
+    ("notify", "alertmanager_labels", {"team-name": "x"}, "not a valid Prometheus label name"),
+    ("incidents", "escalation_steps", [100, 10], "incidents.escalation_steps: increasing alert counts"),
+    ("incidents", "token", "short", "incidents.token: String should have at least 16 characters"),
+    ("incidents", "cut", 1.5, "incidents.cut: Input should be less than or equal to 1"),
+], ids=["webhook-scheme", "alertmanager-no-scheme", "label-name", "steps", "token", "cut"])
+def test_bad_incident_and_notify_config_is_one_clear_error(section, key, value, message):
+    from tracewatch.errors import ConfigError
+
+    with pytest.raises(ConfigError) as err:
+        parse_config({section: {key: value}})
+    assert message in str(err.value) and "\n" not in str(err.value)
+
+
 PROCESS = """
 import sys, time
 from tracewatch.alerts.incidents import Incidents
@@ -217,3 +235,88 @@ def test_receiver_down_across_restarts_nothing_lost_nothing_twice(tmp_path):
     assert [b["notification_id"].split(":")[1] for b in first] == ["1", "2", "3", "4"]
     assert again == first
 
+
+# -- the real daemon: `tracewatch run` while the receiver is down, restarted, then the receiver is back ----
+NOTIFY = """
+[incidents]
+escalation_steps = [5]
+
+[notify]
+webhook_url = "http://127.0.0.1:{hook}/hook"
+retry_initial_s = 0.05
+retry_max_s = 0.2
+"""
+
+
+def _api(port: int, path: str):
+    with urllib.request.urlopen(f"http://127.0.0.1:{port}{path}", timeout=5) as resp:
+        return json.loads(resp.read())
+
+
+def _until(check, what: str, timeout: float = 30.0):
+    end = time.monotonic() + timeout
+    while time.monotonic() < end:
+        try:
+            got = check()
+        except OSError:
+            got = None
+        if got:
+            return got
+        time.sleep(0.1)
+    raise AssertionError(f"timed out waiting for {what}")
+
+
+def test_daemon_restarts_while_the_webhook_is_down(tmp_path):
+    hook = free_port()  # nothing listens there yet: the receiver is down
+    cfg_path, port = live_setup(tmp_path, seed=51, tail=NOTIFY.format(hook=hook))
+    day = storm_sessions(40, 20, seed=52, span_s=20)
+    (tmp_path / "logs" / "app.log").write_text("\n".join(scaled(day)) + "\n")
+
+    def run() -> subprocess.Popen:
+        return subprocess.Popen([sys.executable, "-m", "tracewatch", "run", "--config", str(cfg_path)], cwd=ROOT,
+                                env=dict(os.environ, PYTHONPATH=str(ROOT)), stdout=subprocess.DEVNULL,
+                                stderr=subprocess.PIPE, text=True)
+
+    def stop(proc: subprocess.Popen) -> str:
+        proc.send_signal(signal.SIGTERM)
+        assert proc.wait(30) == 0
+        return proc.stderr.read()
+
+    first = run()
+    try:
+        _until(lambda: sum(s["sessions_scored"] for s in _api(port, "/api/status")["sources"]) == 60,
+               "60 sessions scored")
+        doc = _api(port, "/api/incidents")
+        spooled = doc["notify"]["webhook"]["pending"]
+        assert len(doc["incidents"]) >= 2 and spooled >= 4 and doc["notify"]["webhook"]["attempts"] >= 1
+    finally:
+        log = stop(first)
+    assert "Connection refused" in log
+    second = run()  # restarted while the receiver is still down
+    try:
+        _until(lambda: _api(port, "/api/incidents")["notify"]["webhook"]["attempts"] >= 1, "a failed attempt")
+    finally:
+        stop(second)
+    receiver = Receiver(hook).start()
+    try:
+        third = run()
+        try:
+            _until(lambda: _api(port, "/api/incidents")["notify"]["webhook"]["pending"] == 0, "the spool delivered")
+        finally:
+            stop(third)
+        fourth = run()  # and once more: nothing is sent twice
+        try:
+            _until(lambda: _api(port, "/api/incidents"), "the API")
+            time.sleep(0.5)
+        finally:
+            stop(fourth)
+        bodies = receiver.bodies()
+    finally:
+        receiver.stop()
+    incidents = doc["incidents"]
+    print(f"\n{len(incidents)} incidents, {spooled} notifications spooled across 2 restarts, {len(bodies)} received")
+    assert len(bodies) == spooled
+    ids = [b["notification_id"] for b in bodies]
+    assert len(set(ids)) == len(ids) and ids == sorted(ids, key=lambda i: int(i.split(":")[1]))
+    opened = sorted(b["incident"]["id"] for b in bodies if b["event"] == "opened")
+    assert opened == sorted(i["id"] for i in incidents)  # every incident announced once

@@ -76,7 +76,7 @@ class Baseline:
         self.normal_labels = normal_labels  # their cluster
         self.cluster_sources = cluster_sources  # the source each cluster belongs to
         self.normal_sources = normal_sources  # the source of each distinct fit sequence
-        self._by_cluster: dict[int, tuple[np.ndarray, sp.csc_matrix]] = {}
+        self._by_cluster: dict[int, tuple[np.ndarray, sp.csr_matrix]] = {}
         # one split-conformal threshold per source ("*": all sources pooled, for sources that
         # had no calibration sessions): each source keeps its own false-alarm rate
         self.calibration = calibration
@@ -100,11 +100,13 @@ class Baseline:
         cached = self._by_cluster.get(cluster)
         if cached is None:
             rows = np.flatnonzero(self.normal_labels == cluster)
-            cached = self._by_cluster[cluster] = (rows, self.knn_rows[rows].tocsc())
+            cached = self._by_cluster[cluster] = (rows, self.knn_rows[rows].tocsr())
         rows, members = cached
         if len(rows) == 0 or len(vec.indices) == 0:
             return self.medoids[cluster]
-        dots = members[:, vec.indices] @ vec.values
+        dense = np.zeros(members.shape[1])
+        dense[vec.indices] = vec.values
+        dots = members @ dense
         return self.normal_seqs[int(rows[int(np.argmax(dots))])]
 
     def make_scorer(self) -> SessionScorer:
@@ -136,7 +138,8 @@ def fit_baseline(sessions: list[tuple[str, tuple[int, ...]]], miner: TemplateMin
 
     vectorizer = NgramVectorizer(cfg.features.ngram_max).fit(distinct, weights)
     X, _ = vectorizer.transform(distinct)
-    model = ClusterModel(mcfg.k, mcfg.k_max, mcfg.restarts, mcfg.min_cluster_share, mcfg.seed).fit(X, weights)
+    model = ClusterModel(mcfg.k, mcfg.k_max, mcfg.restarts, mcfg.min_cluster_share, mcfg.seed,
+                         streaming=mcfg.streaming, streaming_rows=mcfg.streaming_rows).fit(X, weights)
 
     labels = model.labels_
     keep_rows = np.flatnonzero(labels >= 0)
@@ -175,6 +178,7 @@ def fit_baseline(sessions: list[tuple[str, tuple[int, ...]]], miner: TemplateMin
         "ngrams": len(vectorizer.vocabulary_),
         "k": int(model.k_),
         "k_auto": mcfg.k == "auto",
+        "streaming": model.streaming_,
         "knee": int(model.knee_),
         "curve": model.curve_,
         "notes": list(model.notes_),

@@ -79,7 +79,7 @@ def cmd_score(args) -> int:
 def cmd_templates(args) -> int:
     cfg = _config(args)
     pairs = assign_sources(cfg, args.inputs, args.source)
-    from .formats import make_format
+    from .formats import items, make_format
     from .records import Record
     from .sources.files import read_lines
     from .templates import TemplateMiner
@@ -101,7 +101,7 @@ def cmd_templates(args) -> int:
 
         for n, (line, offset, _) in enumerate(read_lines(path, cfg.source(source).max_line_bytes), 1):
             line_of[offset] = n
-            take(fmt.feed(line, offset))
+            take(items(fmt.feed(line, offset)))
         take(fmt.flush())
     tpls = miner.templates
     for line, idx in rows:

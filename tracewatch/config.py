@@ -150,6 +150,17 @@ class ModelConfig(_Section):
     min_cluster_share: float = Field(default=0.005, ge=0, lt=0.5)
     restarts: int = Field(default=4, ge=1)
     seed: int = 0
+    # large corpora: fit by mini-batches (bounded memory) — true, false, or "auto": when the
+    # baseline has more than streaming_rows distinct (source, sequence) rows
+    streaming: bool | Literal["auto"] = "auto"
+    streaming_rows: int = Field(default=50_000, ge=1)
+
+    @field_validator("streaming", mode="before")
+    @classmethod
+    def _streaming(cls, v: object) -> object:
+        if v is not True and v is not False and v != "auto":
+            raise ValueError('streaming must be true, false or "auto"')
+        return v
 
     @field_validator("k")
     @classmethod

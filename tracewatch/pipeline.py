@@ -18,7 +18,7 @@ import numpy as np
 from .alerts.alert import Redactor, build_verdict
 from .baselines import Baseline
 from .config import Config
-from .formats import Format, make_format
+from .formats import Format, items, make_format
 from .records import Record, Rejection
 from .sessions import Session, Sessionizer
 from .templates import TemplateMiner
@@ -71,7 +71,7 @@ class Pipeline:
         self.lines[source] += 1
         if repair is not None:
             self.repaired[(source, repair)] += 1
-        for item in self._format(source, stream).feed(line, offset):
+        for item in items(self._format(source, stream).feed(line, offset)):
             if type(item) is Record:
                 self.feed_record(item)
             else:
@@ -81,18 +81,25 @@ class Pipeline:
         """Feed ``(line, offset, repair)`` triples of one stream: the same as calling
         :meth:`feed_line` for each, with the per-line lookups done once."""
         feed = self._format(source, stream).feed
-        feed_record, take, repaired = self.feed_record, self._take, self.repaired
-        n = 0
+        add, take, repaired = self._add_record, self._take, self.repaired
+        n = n_records = 0
         for line, offset, repair in lines:
             n += 1
             if repair is not None:
                 repaired[(source, repair)] += 1
-            for item in feed(line, offset):
+            out = feed(line, offset)
+            if type(out) is Record:  # the common case: one line, one record
+                n_records += 1
+                add(out)
+                continue
+            for item in out:
                 if type(item) is Record:
-                    feed_record(item)
+                    n_records += 1
+                    add(item)
                 else:
                     take(source, item)
         self.lines[source] += n
+        self.records[source] += n_records
 
     def end_stream(self, source: str, stream: str) -> None:
         """A file ended (batch) or was rotated away: flush what its format holds.
@@ -124,6 +131,9 @@ class Pipeline:
 
     def feed_record(self, rec: Record) -> None:
         self.records[rec.source] += 1
+        self._add_record(rec)
+
+    def _add_record(self, rec: Record) -> None:
         idx = self.miner.add_event(rec.event) if rec.event is not None else self.miner.add(rec.message)
         ts = rec.ts
         if ts is not None:

@@ -2,7 +2,9 @@
 
 Stage: sources → **formats** → templates. One module per input format; each exposes a
 class with ``feed(line, offset)`` and ``flush()``, both returning a list of
-:class:`~tracewatch.records.Record` and :class:`~tracewatch.records.Rejection`. A format never
+:class:`~tracewatch.records.Record` and :class:`~tracewatch.records.Rejection` (``feed`` may
+return one bare Record instead: the common one-line-one-record case, which saves a list per
+line on the hot path; :func:`items` turns either into a sequence). A format never
 raises for bad data: it rejects the line with a reason, keeping it as a whole-line record
 when that still makes sense.
 """
@@ -16,11 +18,17 @@ from typing import Protocol
 from ..config import SourceConfig
 from ..records import Record, Rejection
 
-Output = list  # list[Record | Rejection]
+Output = list  # list[Record | Rejection]; ``feed`` may also return one bare Record
+
+
+def items(out: Record | Output) -> Output | tuple[Record]:
+    """What ``feed`` returned, as a sequence: a bare Record (the one-line-one-record fast
+    path) or a list of records and rejections."""
+    return (out,) if type(out) is Record else out
 
 
 class Format(Protocol):
-    def feed(self, line: str, offset: int) -> Output: ...
+    def feed(self, line: str, offset: int) -> Output | Record: ...
 
     def flush(self) -> Output: ...
 
@@ -65,7 +73,7 @@ def feed_lines(fmt: Format, lines) -> Output:
     whole input read at once, for tools and tests."""
     out: Output = []
     for offset, line in enumerate(lines):
-        out += fmt.feed(line, offset)
+        out += items(fmt.feed(line, offset))
     return out + fmt.flush()
 
 
@@ -94,4 +102,4 @@ def make_format(src: SourceConfig) -> Format:
     raise ValueError(f"unknown format {src.format!r}")  # unreachable: config validates it
 
 
-__all__ = ["Format", "Output", "Record", "Rejection", "feed_lines", "make_format", "parse_timestamp"]
+__all__ = ["Format", "Output", "Record", "Rejection", "feed_lines", "items", "make_format", "parse_timestamp"]

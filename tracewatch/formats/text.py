@@ -12,7 +12,7 @@ import re
 
 from ..config import SourceConfig
 from ..records import Record, Rejection
-from . import Output, parse_timestamp
+from . import Output, items, parse_timestamp
 
 
 class TextFormat:
@@ -46,13 +46,13 @@ class TextFormat:
             if not line.strip():
                 return [Rejection("empty", line)]
             rec = Record(self.source, self._key_of(line, None), None, None, line, line, offset)
-            return [rec] if pattern is None else [Rejection("no_match", line, rec)]
+            return rec if pattern is None else [Rejection("no_match", line, rec)]
         gm, gts, glevel, gkey = self._gi
         key = m.group(gkey) if gkey else None
         if key is None and self._key is not None:
             key = self._key_of(line, None)
-        return [Record(self.source, key, parse_timestamp(m.group(gts)) if gts else None,
-                       m.group(glevel) if glevel else None, m.group(gm) or "", line, offset)]
+        return Record(self.source, key, parse_timestamp(m.group(gts)) if gts else None,
+                      m.group(glevel) if glevel else None, m.group(gm) or "", line, offset)
 
     def _feed_multiline(self, line: str, offset: int) -> Output:
         pending = self._pending
@@ -64,7 +64,7 @@ class TextFormat:
                 return []
             return [Rejection("continuation_cap", line)]
         out = self.flush()
-        for item in self._parse(line, offset):
+        for item in items(self._parse(line, offset)):
             rec = item if isinstance(item, Record) else item.record
             if rec is not None and isinstance(item, Record):
                 self._pending, self._pending_lines = rec, 0

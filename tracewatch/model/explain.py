@@ -79,8 +79,8 @@ def explain(seq: Sequence[int], vec: SessionVector, cluster: int, center: np.nda
     # unexpected: n-grams outside the vocabulary first, then those most over-represented
     unexpected = [
         {"ngram": label(g), "weight": round(w, 4), "seen_at_fit": False}
-        for g, w in sorted(vec.unseen.items(), key=lambda kv: (len(kv[0]), -kv[1]))
-    ][:MAX_ITEMS]
+        for g, w in sorted(vec.unseen.items(), key=lambda kv: (len(kv[0]), -kv[1]))[:MAX_ITEMS]
+    ]
     if len(unexpected) < MAX_ITEMS and len(vec.indices):
         excess = vec.values - center[vec.indices]
         order = np.argsort(-excess)

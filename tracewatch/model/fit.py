@@ -10,6 +10,12 @@ many sessions share them, so a day of repetitive traffic costs what its variety 
   silhouette (Rousseeuw, J. Comput. Appl. Math. 20, 1987).
 - Clusters holding less than ``min_cluster_share`` of the sessions are treated as
   contamination of the baseline: reported, not learned.
+- Large corpora (many distinct rows) are fitted in a streaming way: the best of ``restarts``
+  k-means++ seedings on a bounded sample, then scikit-learn's ``MiniBatchKMeans.partial_fit``
+  over shuffled batches of rows (Sculley, "Web-scale k-means clustering", WWW 2010). The k
+  search runs on a bounded sample of sessions drawn ∝ weight; the chosen k then streams over
+  every row. Labels, inertia and spreads come from chunked passes and silhouettes from a
+  bounded sample, so memory grows with the rows' non-zeros, never with n × n or n × vocabulary.
 """
 
 from __future__ import annotations
@@ -18,11 +24,17 @@ import warnings
 
 import numpy as np
 import scipy.sparse as sp
-from sklearn.cluster import KMeans
+from sklearn.cluster import KMeans, MiniBatchKMeans, kmeans_plusplus
 from sklearn.exceptions import ConvergenceWarning
 from sklearn.metrics import pairwise_distances
 
-SILHOUETTE_SAMPLE = 3000
+SILHOUETTE_SAMPLE = 3000  # sessions drawn for the silhouette: a 3000 × 3000 distance matrix, 72 MB
+STREAMING_ROWS = 50_000  # with streaming="auto", more distinct rows than this fit by mini-batches
+BATCH_ROWS = 4096  # rows per mini-batch
+SEED_ROWS = 3072  # rows the k-means++ seedings are drawn from (sklearn's default init_size, 3 × 1024)
+EPOCHS = 2  # passes of mini-batches over the shuffled rows
+SEARCH_ROWS = 50_000  # streaming k search: on this many sessions drawn ∝ weight, not on every row
+CHUNK_ROWS = 8192  # rows per block in the assignment passes: CHUNK_ROWS × k floats at a time
 
 
 def kneedle(ks: np.ndarray, inertia: np.ndarray) -> int:
@@ -75,22 +87,102 @@ def _kmeans(X, weights, k: int, restarts: int, seed: int) -> KMeans:
                       algorithm="lloyd").fit(X, sample_weight=weights)
 
 
+class _Fit:
+    """What the k search keeps of one k-means fit: centres, row labels, inertia."""
+
+    __slots__ = ("cluster_centers_", "labels_", "inertia_")
+
+    def __init__(self, centers: np.ndarray, labels: np.ndarray, inertia: float) -> None:
+        self.cluster_centers_, self.labels_, self.inertia_ = centers, labels, inertia
+
+
+def _blocks(n: int, size: int):
+    for lo in range(0, n, size):
+        yield lo, min(n, lo + size)
+
+
+def _assign(X, w: np.ndarray, centers: np.ndarray) -> tuple[np.ndarray, np.ndarray, float]:
+    """Nearest centre of every row, the squared distance to it and the weighted inertia, in
+    blocks of ``CHUNK_ROWS`` rows (never an n × k matrix)."""
+    labels = np.empty(X.shape[0], dtype=np.int64)
+    d2min = np.empty(X.shape[0])
+    c_sq = np.sum(centers * centers, axis=1)
+    for lo, hi in _blocks(X.shape[0], CHUNK_ROWS):
+        block = X[lo:hi]
+        row_sq = np.asarray(block.multiply(block).sum(axis=1)).ravel()
+        d2 = row_sq[:, None] - 2.0 * np.asarray(block @ centers.T) + c_sq[None, :]
+        labels[lo:hi] = np.argmin(d2, axis=1)
+        d2min[lo:hi] = np.maximum(d2[np.arange(hi - lo), labels[lo:hi]], 0.0)
+    return labels, d2min, float(np.sum(d2min * w))
+
+
+def _draw(w: np.ndarray, m: int, seed: int) -> tuple[np.ndarray, np.ndarray]:
+    """``m`` sessions drawn with probability ∝ weight, with replacement: the distinct rows
+    drawn and how often each was (its weight in the sample) — an unbiased sample of sessions."""
+    drawn = np.random.default_rng(seed).choice(len(w), m, replace=True, p=w / w.sum())
+    rows, counts = np.unique(drawn, return_counts=True)
+    return rows, counts.astype(float)
+
+
+def _minibatch(X, w: np.ndarray, k: int, restarts: int, seed: int, init: np.ndarray | None = None) -> _Fit:
+    """Streaming k-means: the best of ``restarts`` k-means++ seedings on ``SEED_ROWS`` rows
+    (judged by the inertia on them, as ``MiniBatchKMeans`` judges its own inits) or the
+    centres given, then ``partial_fit`` over shuffled batches for ``EPOCHS`` passes."""
+    rng = np.random.default_rng(seed)
+    n = X.shape[0]
+    best = init
+    if best is None:
+        sample = np.sort(rng.choice(n, min(n, SEED_ROWS), replace=False))
+        Xs, ws = X[sample], w[sample]
+        best_inertia = np.inf
+        for r in range(restarts):
+            centers, _ = kmeans_plusplus(Xs, k, sample_weight=ws, random_state=seed + r)
+            inertia = _assign(Xs, ws, centers)[2]
+            if inertia < best_inertia:
+                best, best_inertia = centers, inertia
+    km = MiniBatchKMeans(n_clusters=k, init=best, n_init=1, batch_size=BATCH_ROWS, compute_labels=False,
+                         random_state=seed)
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", ConvergenceWarning)
+        for _ in range(EPOCHS):
+            order = rng.permutation(n)
+            for lo, hi in _blocks(n, BATCH_ROWS):
+                rows = np.sort(order[lo:hi])
+                km.partial_fit(X[rows], sample_weight=w[rows])
+    labels, _, inertia = _assign(X, w, km.cluster_centers_)
+    return _Fit(km.cluster_centers_, labels, inertia)
+
+
 class ClusterModel:
     """k-means baseline in the scikit-learn estimator shape.
 
     After ``fit(X, sample_weight)``: ``cluster_centers_`` (dense, contamination removed),
     ``spreads_`` (weighted mean member distance, floored), ``cluster_weights_``,
     ``medoids_`` (row index of each cluster's representative), ``labels_`` (per row, -1 for
-    contamination), ``curve_`` (k, inertia, silhouette), ``k_``, ``contamination_``.
+    contamination), ``curve_`` (k, inertia, silhouette), ``k_``, ``contamination_``,
+    ``streaming_`` (whether mini-batches were used), ``silhouette_rows_`` (distinct rows the
+    silhouettes were computed on).
+
+    ``streaming``: True, False, or "auto" (mini-batches when there are more than
+    ``streaming_rows`` distinct rows).
     """
 
     def __init__(self, k: int | str = "auto", k_max: int = 16, restarts: int = 4,
-                 min_cluster_share: float = 0.005, seed: int = 0) -> None:
+                 min_cluster_share: float = 0.005, seed: int = 0, *, streaming: bool | str = False,
+                 streaming_rows: int = STREAMING_ROWS, silhouette_sample: int = SILHOUETTE_SAMPLE) -> None:
         self.k = k
         self.k_max = k_max
         self.restarts = restarts
         self.min_cluster_share = min_cluster_share
         self.seed = seed
+        self.streaming = streaming
+        self.streaming_rows = streaming_rows
+        self.silhouette_sample = silhouette_sample
+
+    def _kmeans(self, X, w: np.ndarray, k: int):
+        if self.streaming_:
+            return _minibatch(X, w, k, self.restarts, self.seed)
+        return _kmeans(X, w, k, self.restarts, self.seed)
 
     def fit(self, X: sp.csr_matrix, sample_weight: np.ndarray | None = None) -> "ClusterModel":
         n = X.shape[0]
@@ -98,15 +190,21 @@ class ClusterModel:
             raise ValueError("no sessions to fit")
         w = np.ones(n) if sample_weight is None else np.asarray(sample_weight, dtype=float)
         self.notes_: list[str] = []
-        fits: dict[int, KMeans] = {}
+        self.streaming_ = bool(self.streaming is True or (self.streaming == "auto" and n > self.streaming_rows))
+        self.silhouette_rows_ = 0
+        fits: dict = {}
+        Xk, wk = X, w  # the rows the k search sees
         if self.k == "auto":
-            k_hi = max(1, min(self.k_max, n))
+            if self.streaming_ and n > SEARCH_ROWS:
+                rows, wk = _draw(w, SEARCH_ROWS, self.seed)
+                Xk = X[rows]
+            k_hi = max(1, min(self.k_max, Xk.shape[0]))
             ks = np.arange(1, k_hi + 1)
             for k in ks:
-                fits[int(k)] = _kmeans(X, w, int(k), self.restarts, self.seed)
+                fits[int(k)] = self._kmeans(Xk, wk, int(k))
             inertia = np.array([fits[int(k)].inertia_ for k in ks])
             knee = kneedle(ks, inertia)
-            sil = self._silhouettes(X, w, fits)
+            sil = self._silhouettes(Xk, wk, fits)
             chosen = knee
             if sil:
                 best = max(sil, key=sil.get)
@@ -122,20 +220,25 @@ class ClusterModel:
             if chosen > n:
                 self.notes_.append(f"k={chosen} asked but only {n} distinct sessions; k={n} used")
                 chosen = n
-            fits[chosen] = _kmeans(X, w, chosen, self.restarts, self.seed)
+            fits[chosen] = self._kmeans(X, w, chosen)
             self.curve_ = [{"k": chosen, "inertia": float(fits[chosen].inertia_), "silhouette": None}]
             self.knee_ = chosen
         km = fits[chosen]
+        if Xk is not X:  # the k was searched on a sample: the chosen model streams over every row
+            km = _minibatch(X, w, chosen, self.restarts, self.seed, init=km.cluster_centers_)
         self.k_ = chosen
         self._finish(X, w, km.cluster_centers_, km.labels_)
         return self
 
-    def _silhouettes(self, X, w, fits: dict[int, KMeans]) -> dict[int, float]:
-        rows = np.arange(X.shape[0])
-        if len(rows) > SILHOUETTE_SAMPLE:
-            rng = np.random.default_rng(self.seed)
-            rows = np.sort(rng.choice(rows, SILHOUETTE_SAMPLE, replace=False, p=w / w.sum()))
-        Xs, ws = X[rows], w[rows]
+    def _silhouettes(self, X, w, fits: dict) -> dict[int, float]:
+        """Silhouettes of every fit with k ≥ 2; beyond ``silhouette_sample`` distinct rows, on
+        that many sessions drawn with probability ∝ weight (with replacement, so a row drawn
+        m times weighs m): an unbiased sample of the sessions, at a bounded cost."""
+        rows, ws = np.arange(X.shape[0]), w
+        if len(rows) > self.silhouette_sample:
+            rows, ws = _draw(w, self.silhouette_sample, self.seed)
+        self.silhouette_rows_ = len(rows)
+        Xs = X[rows]
         out = {}
         for k, km in fits.items():
             labels = km.labels_[rows]
@@ -158,12 +261,19 @@ class ClusterModel:
         self.labels_ = remap[labels]
         self.cluster_centers_ = np.asarray(centers[keep], dtype=float)
         self.cluster_weights_ = sizes[keep]
-        # distances of every member row to its own centre
-        d = self._dist_to(X, np.zeros(X.shape[0]), self.cluster_centers_)
+        # distance of every member row to its own centre, in blocks
+        own = np.zeros(X.shape[0])
+        c_sq = np.sum(self.cluster_centers_ * self.cluster_centers_, axis=1)
+        for lo, hi in _blocks(X.shape[0], CHUNK_ROWS):
+            block, lab = X[lo:hi], self.labels_[lo:hi]
+            member = np.flatnonzero(lab >= 0)
+            row_sq = np.asarray(block.multiply(block).sum(axis=1)).ravel()
+            dots = np.asarray(block @ self.cluster_centers_.T)[member, lab[member]]
+            own[lo + member] = np.sqrt(np.maximum(row_sq[member] - 2.0 * dots + c_sq[lab[member]], 0.0))
         spreads, medoids = [], []
         for c in range(len(keep)):
             rows = np.flatnonzero(self.labels_ == c)
-            dc = d[rows, c]
+            dc = own[rows]
             spreads.append(float(np.sum(dc * w[rows]) / np.sum(w[rows])))
             medoids.append(int(rows[np.argmin(dc)]))
         spreads = np.array(spreads)

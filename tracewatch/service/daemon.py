@@ -33,6 +33,7 @@ import orjson
 from prometheus_client import CollectorRegistry
 
 from .. import __version__
+from ..alerts.incidents import Incidents
 from ..baselines import Baseline, baselines_dir, current_version, load_baseline, load_baseline_dir
 from ..config import Config
 from ..errors import BaselineError, InputError, StateError
@@ -71,6 +72,7 @@ class Daemon:
                                  rescan_interval_s=cfg.daemon.poll_interval_s, clock=monotonic,
                                  chunk_bytes=READ_CHUNK)
         self.metrics = DaemonMetrics(self.registry, self.snapshot)
+        self.incidents = Incidents(cfg)  # grouping, page, notifications (tracewatch/alerts/incidents.py)
         self.watcher: Watcher | None = None
         self.server = self.http_thread = None
         self.started = False
@@ -93,6 +95,7 @@ class Daemon:
         if not cfg.sources:
             raise InputError("config: no [[sources]] to follow")
         self._take_lock()
+        self.incidents.start()  # incidents: opens <state_dir>/incidents.db, starts the notifier
         self.server, self.http_thread = serve(cfg.server.listen, self, self.registry)
         current = load_baseline(self.state_dir)
         self._baseline_sig = self._signature(current.version)
@@ -176,6 +179,7 @@ class Daemon:
                     now = mono()
                     if now >= next_tick:
                         self.pipe.tick(self.live())
+                        self.incidents.tick(self.live())  # incidents: resolve quiet ones
                         next_tick = now + TICK_S
                     if now >= next_checkpoint:
                         self._checkpoint()
@@ -203,6 +207,7 @@ class Daemon:
         self.metrics.observe_score(verdict["source"], verdict["score"])
         if verdict["alert"]:
             self.journal.append(verdict)
+            self.incidents.add(verdict)  # recognises an alert raised again after a restart
 
     def _checkpoint(self) -> None:
         """Score what is closed, make the journal durable, then save everything (lock held)."""
@@ -323,6 +328,7 @@ class Daemon:
             self.server = None
         self.follower.close()
         self.journal.close()
+        self.incidents.close()  # incidents: stop the notifier, close the store
         if self._lock_fd >= 0:
             os.close(self._lock_fd)
             self._lock_fd = -1

@@ -12,7 +12,10 @@ nothing on. Endpoints, all GET:
                         alerts numbered after N, oldest first (JSON); pass the ``next`` of one
                         answer as ``since`` of the next
 
-Nothing here changes state. The server binds loopback by default; the answers carry
+    /, /incidents/{id}, /api/incidents[/{id}]   the incident page and API, and
+    POST /api/incidents/{id}/ack|resolve|expected (bearer token): see incidents_api.py
+
+Only those POSTs change state. The server binds loopback by default; the answers carry
 log-derived data.
 """
 
@@ -31,6 +34,7 @@ from prometheus_client import CollectorRegistry
 from prometheus_client.exposition import choose_encoder
 
 from ..errors import ConfigError
+from .incidents_api import route as route_incidents
 
 log = logging.getLogger("tracewatch.http")
 
@@ -115,12 +119,25 @@ class _Handler(BaseHTTPRequestHandler):
                 self._json(200, self.provider.status())
             elif url.path == "/api/alerts":
                 self._alerts(parse_qs(url.query))
+            elif route_incidents(self, getattr(self.provider, "incidents", None)):  # the incident page and API
+                pass
             else:
                 self._json(404, {"error": f"no such endpoint: {url.path}"})
         except (BrokenPipeError, ConnectionResetError):
             pass
         except Exception:  # a bug must not kill the server thread; it is logged
             log.exception("error answering %s", url.path)
+            self._json(500, {"error": "internal error; see the daemon's log"})
+
+    def do_POST(self) -> None:  # noqa: N802 - incident status changes (tracewatch/service/incidents_api.py)
+        try:
+            if not route_incidents(self, getattr(self.provider, "incidents", None)):
+                self.close_connection = True
+                self._json(404, {"error": f"no such endpoint: {urlsplit(self.path).path}"})
+        except (BrokenPipeError, ConnectionResetError):
+            pass
+        except Exception:
+            log.exception("error answering POST %s", self.path)
             self._json(500, {"error": "internal error; see the daemon's log"})
 
     def _alerts(self, query: dict[str, list[str]]) -> None:

@@ -1,0 +1,141 @@
+"""The incident page (tracewatch/service/page.py) served by the daemon's HTTP server: readable
+without JavaScript, refreshing itself, every log-derived string escaped — checked in the
+HTML, and in headless Chromium on a daemon that follows a real log file."""
+
+from __future__ import annotations
+
+import json
+import shutil
+import subprocess
+import tempfile
+import threading
+import time
+from datetime import datetime, timezone
+from html.parser import HTMLParser
+
+import pytest
+
+from tracewatch.config import load_config
+from tracewatch.demo.scenario import Step, generate, parcel_lockers
+from tracewatch.service.daemon import Daemon
+from tracewatch.service.page import CAUTION
+
+from .incident_data import Served, config, live_setup, request, scaled, toy_alert
+
+SCRIPT = "<script>document.title='pwned';document.body.innerHTML+='<p id=pwned>'</script>"
+EVIL_KEY = '"><img src=x onerror=alert(1)>'
+
+
+class Dom(HTMLParser):
+    """Tags, ids and text of an HTML document (Python's own parser, html.parser)."""
+
+    def __init__(self, html: str) -> None:
+        super().__init__(convert_charrefs=True)
+        self.tags: list[str] = []
+        self.ids: set[str] = set()
+        self.text: list[str] = []
+        self.title = ""
+        self._in_title = False
+        self.feed(html)
+
+    def handle_starttag(self, tag, attrs):
+        self.tags.append(tag)
+        self.ids.update(v for k, v in attrs if k == "id")
+        self._in_title = tag == "title"
+
+    def handle_endtag(self, tag):
+        self._in_title = False
+
+    def handle_data(self, data):
+        self.text.append(data)
+        if self._in_title:
+            self.title += data
+
+
+@pytest.fixture
+def served(tmp_path):
+    s = Served(config(tmp_path))
+    yield s
+    s.close()
+
+
+def test_pages_escape_everything_from_the_logs(served):
+    iid = served.incidents.add(toy_alert("1", "A", session_key=EVIL_KEY, samples=[f"GET /x {SCRIPT}"],
+                                         unseen_events=[{"template_id": "t1", "template": f"bad {SCRIPT}", "count": 1}]))
+    for path in ("/", f"/incidents/{iid}"):
+        status, headers, body = request(served.port, "GET", path)
+        html = body.decode()
+        assert status == 200 and headers["Content-Type"] == "text/html; charset=utf-8"
+        assert "script-src" not in headers["Content-Security-Policy"]  # default-src 'none': no script at all
+        assert '<meta http-equiv="refresh" content="30">' in html  # refreshes without JavaScript
+        dom = Dom(html)
+        assert "script" not in dom.tags and "img" not in dom.tags and "pwned" not in dom.ids
+        text = "".join(dom.text)
+        assert f"never-seen event 'bad {SCRIPT}'" in text  # shown as text, exactly
+        assert CAUTION in text
+    assert f"GET /x {SCRIPT}" in "".join(Dom(body.decode()).text) and EVIL_KEY in "".join(Dom(body.decode()).text)
+    status, _, body = request(served.port, "GET", "/incidents/999")
+    assert status == 404 and "No incident" in body.decode()
+    # the JSON API carries the text as data, unchanged
+    doc = json.loads(request(served.port, "GET", "/api/incidents")[2])
+    assert doc["incidents"][0]["title"] == f"never-seen event 'bad {SCRIPT}'" and doc["counts"] == {"open": 1}
+    detail = json.loads(request(served.port, "GET", f"/api/incidents/{iid}")[2])
+    assert detail["samples"] == [f"GET /x {SCRIPT}"] and detail["alert_ids"] == ["1"]
+    assert request(served.port, "GET", "/api/incidents?limit=0")[0] == 400
+    assert request(served.port, "GET", "/api/incidents?status=sleeping")[0] == 400
+    assert request(served.port, "GET", "/api/incidents/77")[0] == 404
+
+
+# -- the browser test: a daemon following a real log, Chromium reading its page ---------------------------
+
+
+def _chromium() -> str | None:
+    return shutil.which("chromium") or shutil.which("chromium-browser")
+
+
+def dump_dom(url: str) -> str:
+    """The DOM after load (scripts, if any ran, have run), from headless Chromium."""
+    with tempfile.TemporaryDirectory() as profile:
+        proc = subprocess.run([_chromium(), "--headless", "--no-sandbox", "--disable-gpu", "--no-first-run",
+                               "--disable-background-networking", "--disable-component-update", "--disable-sync",
+                               f"--user-data-dir={profile}", "--dump-dom", url],
+                              capture_output=True, text=True, timeout=60)
+    assert proc.returncode == 0, proc.stderr[-2000:]
+    return proc.stdout
+
+
+@pytest.mark.skipif(_chromium() is None, reason="Debian's chromium is not installed (make test installs it "
+                                                "with apt-get when it can)")
+def test_browser_shows_incidents_and_never_runs_log_markup(tmp_path):
+    sc = parcel_lockers()
+    cfg_path, port = live_setup(tmp_path, seed=41, top="redact = ['CR\\d{4}']\n")
+    cfg = load_config(cfg_path)
+    day = generate(sc, 40, 0, seed=42, start=datetime(2026, 11, 30, 4, tzinfo=timezone.utc), span_s=30)
+    for sess in day[:6]:  # a log line carrying markup, never seen at fit
+        sess.steps.insert(1, Step("markup", f"courier CR1234 sent {SCRIPT}", "ERROR"))
+    daemon = Daemon(cfg)
+    daemon.start()
+    runner = threading.Thread(target=daemon.run)
+    runner.start()
+    try:
+        (tmp_path / "logs" / "app.log").write_text("\n".join(scaled(day)) + "\n")
+        end = time.monotonic() + 30
+        while time.monotonic() < end and not daemon.incidents.store.incidents():
+            time.sleep(0.1)
+        rows = daemon.incidents.store.incidents()
+        assert rows, "the daemon raised no incident"
+        iid = [r["id"] for r in rows if "pwned" in r["title"]][0]
+        listing = Dom(dump_dom(f"http://127.0.0.1:{port}/"))
+        detail = Dom(dump_dom(f"http://127.0.0.1:{port}/incidents/{iid}"))
+    finally:
+        daemon.stop()
+        runner.join(15)
+    for dom, title in ((listing, "tracewatch incidents"), (detail, None)):
+        assert "script" not in dom.tags  # the markup never became an element …
+        assert "pwned" not in dom.ids  # … never ran (it would have added <p id=pwned>) …
+        assert dom.title != "pwned" and (title is None or dom.title == title)  # … nor renamed the page
+    text = "".join(listing.text)
+    assert all(r["title"] in text for r in rows)  # every incident's title is on the page
+    sample = "".join(detail.text)
+    assert f"courier «redacted» sent {SCRIPT}" in sample  # shown as text, after redaction
+    assert "CR1234" not in sample
