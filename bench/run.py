@@ -28,7 +28,8 @@ from pathlib import Path
 
 HERE = Path(__file__).resolve().parent
 OUT = HERE / "out"
-BENCHMARKS = {"score": "score_vs_script", "formats": "formats", "daemon": "daemon"}  # name -> module with run(ctx)
+BENCHMARKS = {"score": "score_vs_script", "formats": "formats", "daemon": "daemon",
+              "jsonl": "jsonl", "scoring": "scoring", "fit_scale": "fit_scale"}  # name -> module with run(ctx)
 DEFAULT_LINES = 1_000_000
 QUICK_LINES = 100_000
 BASELINE_SHARE = 0.2  # the baseline file is this share of the scored one (at least 50k lines)
@@ -50,7 +51,7 @@ if pid == 0:
 _, status, usage = os.wait4(pid, 0)
 seconds = time.perf_counter() - t0
 with open(usage_path, "w") as fh:
-    fh.write(f"{seconds} {usage.ru_maxrss}")
+    fh.write(f"{seconds} {usage.ru_maxrss} {usage.ru_utime + usage.ru_stime}")
 sys.exit(os.waitstatus_to_exitcode(status))
 """
 
@@ -61,6 +62,7 @@ class Proc:
     seconds: float
     rss_mb: float  # this child's own peak resident set size
     stdout: Path
+    cpu_seconds: float = 0.0  # user + system CPU time of the child: steadier than wall time on a busy machine
 
     def stdout_text(self) -> str:
         return self.stdout.read_text(encoding="utf-8")
@@ -112,8 +114,8 @@ class Context:
         if code != 0:
             sys.exit(f"bench: {' '.join(argv)} exited with {code}:\n"
                      f"{err_path.read_text(errors='replace')[-2000:]}")
-        seconds, max_rss_kib = usage_path.read_text().split()
-        return Proc(argv, float(seconds), int(max_rss_kib) / 1024.0, stdout)
+        seconds, max_rss_kib, cpu = usage_path.read_text().split()
+        return Proc(argv, float(seconds), int(max_rss_kib) / 1024.0, stdout, float(cpu))
 
     def row(self, bench: str, subject: str, lines: int, seconds: float, rss_mb: float | None,
             note: str = "") -> None:

@@ -33,6 +33,7 @@ from .templates import TemplateMiner
 
 SCHEMA_VERSION = 1
 MIN_SESSIONS = 10
+FIT_BLOCK = 50_000  # distinct rows vectorised (and counted per cluster) at a time
 POOLED = "*"
 
 
@@ -137,7 +138,9 @@ def fit_baseline(sessions: list[tuple[str, tuple[int, ...]]], miner: TemplateMin
     weights = np.array(list(counts.values()), dtype=float)
 
     vectorizer = NgramVectorizer(cfg.features.ngram_max).fit(distinct, weights)
-    X, _ = vectorizer.transform(distinct)
+    # in blocks: a block's per-row vectors are garbage before the next is made
+    X = sp.vstack([vectorizer.transform(distinct[lo:lo + FIT_BLOCK])[0]
+                   for lo in range(0, len(distinct), FIT_BLOCK)], format="csr")
     model = ClusterModel(mcfg.k, mcfg.k_max, mcfg.restarts, mcfg.min_cluster_share, mcfg.seed,
                          streaming=mcfg.streaming, streaming_rows=mcfg.streaming_rows).fit(X, weights)
 
@@ -145,8 +148,12 @@ def fit_baseline(sessions: list[tuple[str, tuple[int, ...]]], miner: TemplateMin
     keep_rows = np.flatnonzero(labels >= 0)
     k = len(model.cluster_centers_)
     onehot = sp.csr_matrix((weights[keep_rows], (keep_rows, labels[keep_rows])), shape=(len(distinct), k))
-    present = (X > 0).astype(float)
-    cluster_df = np.asarray((present.T @ onehot).T.toarray()) / model.cluster_weights_[:, None]
+    cluster_df = np.zeros((k, X.shape[1]))  # weighted share of each cluster's sessions holding each n-gram
+    for lo in range(0, X.shape[0], FIT_BLOCK):
+        block = X[lo:lo + FIT_BLOCK]
+        present = sp.csr_matrix((np.ones_like(block.data), block.indices, block.indptr), shape=block.shape)
+        cluster_df += (onehot[lo:lo + FIT_BLOCK].T @ present).toarray()
+    cluster_df /= model.cluster_weights_[:, None]
     medoids = [distinct[r] for r in model.medoids_]
     # each cluster belongs to the source most of its sessions come from
     by_source = Counter()
@@ -154,9 +161,10 @@ def fit_baseline(sessions: list[tuple[str, tuple[int, ...]]], miner: TemplateMin
         by_source[(int(labels[r]), row_sources[r])] += weights[r]
     cluster_sources = [max((w, src) for (c, src), w in by_source.items() if c == cl)[1] for cl in range(k)]
     kept_sources = [row_sources[r] for r in keep_rows]
+    X_kept = X if len(keep_rows) == X.shape[0] else X[keep_rows]
 
     scorer = SessionScorer(vectorizer, model.cluster_centers_, model.spreads_, mcfg.scorer,
-                           X[keep_rows], mcfg.knn_k, mcfg.unseen_weight,
+                           X_kept if mcfg.scorer == "knn" else None, mcfg.knn_k, mcfg.unseen_weight,
                            cluster_sources=cluster_sources, row_sources=kept_sources)
     cal_by_source: dict[str, list[tuple[int, ...]]] = {}
     for i in cal_idx:
@@ -220,7 +228,7 @@ def fit_baseline(sessions: list[tuple[str, tuple[int, ...]]], miner: TemplateMin
                     normal_seqs=[distinct[r] for r in keep_rows], normal_labels=labels[keep_rows],
                     cluster_sources=cluster_sources, normal_sources=kept_sources,
                     calibration=calibration,
-                    scorer=mcfg.scorer, knn_rows=X[keep_rows], knn_k=mcfg.knn_k,
+                    scorer=mcfg.scorer, knn_rows=X_kept, knn_k=mcfg.knn_k,
                     unseen_weight=mcfg.unseen_weight, report=report)
 
 
