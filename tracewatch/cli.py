@@ -253,6 +253,104 @@ def cmd_incidents(args) -> int:
 # -- end of `incidents` ---------------------------------------------------------------------------------
 
 
+# -- `label` (tracewatch/triage.py) ----------------------------------------------------------------
+LABEL_HELP = (
+    "Label an incident for triage: --expected (a harmless pattern: the incident is marked expected, "
+    "and new incidents like it are opened as expected, without a notification) or --known NAME (a "
+    "known problem: new incidents like it carry the suggestion NAME). Every label retrains the triage "
+    "model (<state_dir>/triage.json), which a running daemon picks up by itself. It needs incidents "
+    "with two different labels before it suggests anything, and abstains on incidents unlike every "
+    "labelled one. --list prints the labels and the model's state. Writes <state_dir>/incidents.db "
+    "directly: file permissions are the access control.")
+_KNOWN_NAME = r"[A-Za-z0-9][A-Za-z0-9_.:/-]{0,63}"
+
+
+def cmd_label(args) -> int:
+    import getpass
+    import re
+    import time
+
+    from .alerts import summary
+    from .alerts.incidents import set_status
+    from .alerts.store import IncidentStore
+    from .triage import EXPECTED, Triage
+
+    cfg = load_config(args.config)
+    if args.list:
+        if args.id is not None or args.expected or args.known is not None:
+            raise ConfigError("label --list: give no ID, --expected or --known")
+        store = IncidentStore.open(cfg.state_dir, create=False)
+        try:
+            rows = store.labels()
+        finally:
+            store.close()
+        triage = Triage(cfg.triage, cfg.state_dir)
+        triage.load()
+        if args.json:
+            _out({"labels": rows, "model": triage.info or None})
+        else:
+            print(format_labels(rows, triage.info))
+        return 0
+    if args.id is None:
+        raise ConfigError("label: give the incident ID (or --list)")
+    if args.expected == (args.known is not None):
+        raise ConfigError("label: give exactly one of --expected or --known NAME")
+    label = EXPECTED if args.expected else args.known
+    if not args.expected and (label == EXPECTED or not re.fullmatch(_KNOWN_NAME, label)):
+        raise ConfigError(f"--known: {summary.safe(label)!r} is not a usable name: letters, digits and _.:/- "
+                          f"(at most 64, not {EXPECTED!r}), for example latch-jam")
+    by, note = f"cli:{getpass.getuser()}", args.note or ""
+    store = IncidentStore.open(cfg.state_dir, create=False)
+    try:
+        if args.expected:  # the store's own status change: alerts like it are absorbed silently
+            code, out = set_status(store, args.id, "expected", by=by, note=note)
+            if code != 200:
+                print(f"tracewatch: {out['error']}", file=sys.stderr)
+                return 1
+        if not store.set_label(args.id, label, by=by, note=note, now=time.time()):
+            print(f"tracewatch: no incident {args.id}", file=sys.stderr)
+            return 1
+        triage = Triage(cfg.triage, cfg.state_dir)
+        info = triage.train_from_store(store) if cfg.triage.enabled else None
+        if info is not None:
+            triage.save()
+    finally:
+        store.close()
+    print(f"incident #{args.id} labelled {label!r}")
+    print("triage is disabled ([triage] enabled = false)" if info is None else format_model(info))
+    return 0
+
+
+def format_model(info: dict) -> str:
+    from .alerts.summary import safe
+
+    if not info:
+        return "triage model: none yet (label incidents to train it)"
+    per = ", ".join(f"{safe(k)}: {n}" for k, n in sorted(info["incidents"].items())) or "none"
+    head = (f"triage model ({info['kernel']} kernel): {info['examples']} alert(s) of labelled incidents "
+            f"({per})")
+    if not info.get("classes"):
+        return head + "; needs incidents with two different labels to learn — it abstains until then"
+    mistakes = info["mistakes"]
+    return (head + f"; {info['support']} support example(s); training mistakes per epoch "
+            f"{', '.join(map(str, mistakes[:10]))}{' …' if len(mistakes) > 10 else ''}")
+
+
+def format_labels(rows: list[dict], info: dict) -> str:
+    from datetime import datetime, timezone
+
+    from .alerts.summary import safe
+
+    lines = [f"labels ({len(rows)}):" if rows else "no labels yet"]
+    for r in rows:
+        t = datetime.fromtimestamp(r["labelled_at"], tz=timezone.utc).strftime("%Y-%m-%d %H:%M")
+        lines.append(f"  #{r['incident_id']:<5} {safe(r['label']):<20} {r['status']:<12} {r['count']:>6} alerts  "
+                     f"{t} by {safe(r['by'])}  {safe(r['title'])}")
+    lines.append(format_model(info))
+    return "\n".join(lines)
+# -- end of `label` ---------------------------------------------------------------------------------
+
+
 def cmd_demo(args) -> int:
     from .demo.run import run_demo
 
@@ -371,6 +469,19 @@ def build_parser() -> argparse.ArgumentParser:
     sp.add_argument("--note", help="a note kept with a status change")
     sp.set_defaults(func=cmd_incidents)
     # -- end of `incidents` --
+
+    # -- `label` --
+    sp = sub.add_parser("label", help="label an incident expected or a known problem; retrain triage",
+                        description=LABEL_HELP)
+    sp.add_argument("id", nargs="?", type=int, metavar="INCIDENT_ID")
+    sp.add_argument("--config", "-c", metavar="FILE", required=True, help="TOML config file")
+    sp.add_argument("--expected", action="store_true", help="a harmless pattern: suppress incidents like it")
+    sp.add_argument("--known", metavar="NAME", help="a known problem's name, suggested for incidents like it")
+    sp.add_argument("--note", help="a note kept with the label")
+    sp.add_argument("--list", action="store_true", help="print the labels and the triage model's state")
+    sp.add_argument("--json", action="store_true", help="with --list: one JSON object")
+    sp.set_defaults(func=cmd_label)
+    # -- end of `label` --
 
     sp = sub.add_parser("demo", help="generate the parcel-locker demo, fit, score and tally what was caught")
     sp.add_argument("--dir", default="./tracewatch-demo", help="where to write the demo (default ./tracewatch-demo)")

@@ -271,6 +271,27 @@ class NotifyConfig(_Section):
 # -- end of incidents and notifications -------------------------------------------------------
 
 
+# -- triage (tracewatch/triage.py) ------------------------------------------------------------
+class TriageConfig(_Section):
+    """Learning from on-call labels: which new incidents are expected, which a known problem."""
+
+    enabled: bool = True
+    # what the kernel perceptron compares: "cosine" or "rbf" on the alert's grouping vector
+    # (explanation and sequence n-grams), "spectrum" on its template-id sequence (which shares
+    # the normal steps with every fault of a workflow, so it abstains less on unlabelled faults)
+    kernel: Literal["cosine", "rbf", "spectrum"] = "cosine"
+    rbf_gamma: float = Field(default=1.0, gt=0, le=1000)
+    spectrum_n: int = Field(default=3, ge=1, le=8)
+    epochs: int = Field(default=20, ge=1, le=1000)
+    seed: int = 0
+    # below this confidence margin (0..1, the distance in feature space to the boundary between
+    # the best and the second-best label) triage abstains: no label is suggested
+    min_margin: float = Field(default=0.15, ge=0, le=1)
+    # a new incident triage calls expected is opened as "expected", without a notification
+    suppress_expected: bool = True
+# -- end of triage ----------------------------------------------------------------------------
+
+
 class Config(_Section):
     state_dir: Path = Path("./tracewatch-state")
     sources: list[SourceConfig] = Field(default_factory=list)
@@ -282,6 +303,7 @@ class Config(_Section):
     daemon: DaemonConfig = DaemonConfig()
     incidents: IncidentsConfig = IncidentsConfig()  # tracewatch/alerts/incidents.py
     notify: NotifyConfig = NotifyConfig()  # tracewatch/alerts/sinks.py
+    triage: TriageConfig = TriageConfig()  # tracewatch/triage.py
     # regexes whose matches are replaced by «redacted» in any raw line tracewatch stores or shows
     redact: list[str] = Field(default_factory=list)
 

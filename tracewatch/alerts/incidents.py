@@ -42,7 +42,7 @@ import orjson
 from ..config import Config, IncidentsConfig
 from ..errors import StateError
 from . import summary
-from .store import FIRING, IncidentStore, dumps
+from .store import _LIST_COLUMNS, FIRING, IncidentStore, dumps
 
 log = logging.getLogger("tracewatch.incidents")
 
@@ -148,14 +148,19 @@ class IncidentTracker:
     ``add(alert)`` for every alert; ``tick(now)`` now and then resolves quiet incidents.
     Times are the alerts' own (event time); ``clock`` stands in for alerts without one and
     stamps status changes. ``on_outbox`` is called after a transaction queued notifications.
+    ``triage`` (:meth:`tracewatch.triage.Triage.suggest`) is asked about the first alert of each
+    new incident; its suggestion is stored, and one saying "suppress" opens the incident as
+    expected, without a notification.
     """
 
     def __init__(self, store: IncidentStore, cfg: IncidentsConfig, *, clock: Callable[[], float] = time.time,
-                 on_outbox: Callable[[], None] | None = None) -> None:
+                 on_outbox: Callable[[], None] | None = None,
+                 triage: Callable[[dict], dict | None] | None = None) -> None:
         self.store = store
         self.cfg = cfg
         self.clock = clock
         self.on_outbox = on_outbox or (lambda: None)
+        self.triage = triage
         self._groups: dict[int, _Group] = {}
         self._last_tick = -math.inf
 
@@ -211,13 +216,18 @@ class IncidentTracker:
         stats: dict = {}
         _stats_add(stats, alert)
         now = self.clock()
+        hint = self.triage(alert) if self.triage is not None else None  # triage (tracewatch/triage.py)
+        quiet = hint is not None and hint.get("action") == "suppress"
         cur = db.execute(
             "INSERT INTO incidents (status, title, first_seen, last_seen, count, created, status_changed, stats, "
-            "centroid, representative) VALUES ('open', ?, ?, ?, 1, ?, ?, ?, ?, ?)",
-            (summary.title(alert), t, t, now, now, dumps(stats), dumps(x), dumps(alert)))
+            "centroid, representative, status_by, suggestion) VALUES (?, ?, ?, ?, 1, ?, ?, ?, ?, ?, ?, ?)",
+            ("expected" if quiet else "open", summary.title(alert), t, t, now, now, dumps(stats), dumps(x),
+             dumps(alert), "triage" if quiet else "", dumps(hint) if hint is not None else ""))
         iid = cur.lastrowid
         db.execute("INSERT INTO members VALUES (?, ?, ?, ?)", (iid, alert["alert_id"], dumps(x), dumps(alert)))
         changed[iid] = _Group(1, dict(x), [(alert["alert_id"], x)])
+        if quiet:
+            return iid, False
         queue(db, iid, "opened")
         return iid, True
 
@@ -287,11 +297,10 @@ class IncidentTracker:
 # -- status changes and notifications ------------------------------------------------------------------
 def queue(db: sqlite3.Connection, iid: int, event: str, **extra) -> None:
     """Queue a notification with the incident as it is now (inside the caller's transaction)."""
-    row = db.execute("SELECT id, status, title, first_seen, last_seen, count, escalated, created, status_changed, "
-                     "status_by, note, stats, json_extract(representative, '$.diff') FROM incidents WHERE id = ?",
+    row = db.execute(f"SELECT {_LIST_COLUMNS}, json_extract(representative, '$.diff') FROM incidents WHERE id = ?",
                      (iid,)).fetchone()
-    snap = summary.brief(IncidentStore._row(row[:12]))
-    snap["diff"] = (orjson.loads(row[12]) if row[12] else [])[:DIFF_IN_NOTES]
+    snap = summary.brief(IncidentStore._row(row[:-1]))
+    snap["diff"] = (orjson.loads(row[-1]) if row[-1] else [])[:DIFF_IN_NOTES]
     snap.update(extra)
     db.execute("INSERT INTO outbox (incident_id, event, created, payload) VALUES (?, ?, ?, ?)",
                (iid, event, time.time(), dumps(snap)))
@@ -345,8 +354,13 @@ class Incidents:
 
             self._store = IncidentStore.open(Path(self.cfg.state_dir))
             self.notifier = Notifier.from_config(self._store, self.cfg)
+            triage = None
+            if self.cfg.triage.enabled:
+                from ..triage import Triage
+
+                triage = Triage(self.cfg.triage, Path(self.cfg.state_dir)).suggest
             self.tracker = IncidentTracker(self._store, self.cfg.incidents, clock=self.clock,
-                                           on_outbox=self.notifier.wake)
+                                           on_outbox=self.notifier.wake, triage=triage)
         return self._store
 
     def start(self) -> None:

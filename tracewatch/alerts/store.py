@@ -15,6 +15,11 @@ Tables (schema version in ``meta``):
     alerts      every alert id once, with its incident (a replayed alert is recognised)
     outbox      notifications, in order, each with the incident as it was (JSON)
     cursors     per sink: the last outbox row delivered, attempts, last error
+    labels      the on-call label of an incident: "expected" or a known problem's name
+                (what tracewatch/triage.py learns from); incidents.suggestion holds triage's
+                suggestion for a new incident (JSON, '' for none)
+
+Schema 1 (before labels) is upgraded in place when opened.
 """
 
 from __future__ import annotations
@@ -30,7 +35,7 @@ import orjson
 
 from ..errors import StateError
 
-SCHEMA_VERSION = 1
+SCHEMA_VERSION = 2
 FILENAME = "incidents.db"
 STATUSES = ("open", "acknowledged", "resolved", "expected")
 FIRING = ("open", "acknowledged")
@@ -51,7 +56,8 @@ CREATE TABLE IF NOT EXISTS incidents (
     note TEXT NOT NULL DEFAULT '',
     stats TEXT NOT NULL,
     centroid TEXT NOT NULL,
-    representative TEXT NOT NULL
+    representative TEXT NOT NULL,
+    suggestion TEXT NOT NULL DEFAULT ''
 );
 CREATE INDEX IF NOT EXISTS incidents_status_seen ON incidents (status, last_seen);
 CREATE TABLE IF NOT EXISTS members (
@@ -82,11 +88,24 @@ CREATE TABLE IF NOT EXISTS cursors (
     rejected INTEGER NOT NULL DEFAULT 0,
     last_error TEXT NOT NULL DEFAULT ''
 );
+CREATE TABLE IF NOT EXISTS labels (
+    incident_id INTEGER PRIMARY KEY,
+    label TEXT NOT NULL,
+    by TEXT NOT NULL,
+    note TEXT NOT NULL DEFAULT '',
+    ts REAL NOT NULL
+);
 """
+# -- triage labels (tracewatch/triage.py): schema 1 → 2 --
+_MIGRATIONS = {1: ("ALTER TABLE incidents ADD COLUMN suggestion TEXT NOT NULL DEFAULT ''",
+                   "CREATE TABLE IF NOT EXISTS labels (incident_id INTEGER PRIMARY KEY, label TEXT NOT NULL, "
+                   "by TEXT NOT NULL, note TEXT NOT NULL DEFAULT '', ts REAL NOT NULL)")}
+# -- end of triage labels --
 
 # the columns every incident listing returns (the heavy JSON columns only on demand)
 _LIST_COLUMNS = ("id, status, title, first_seen, last_seen, count, escalated, created, status_changed, "
-                 "status_by, note, stats")
+                 "status_by, note, stats, suggestion, "
+                 "(SELECT label FROM labels WHERE labels.incident_id = incidents.id)")
 
 
 def dumps(obj) -> str:
@@ -150,7 +169,19 @@ class IncidentStore:
         elif int(row[0]) > SCHEMA_VERSION:
             raise StateError(f"{self.path} was written by a newer tracewatch (schema {row[0]}, this one "
                              f"reads {SCHEMA_VERSION}); upgrade tracewatch or move the file away")
+        elif int(row[0]) < SCHEMA_VERSION:
+            self._migrate()
         self.store_id = db.execute("SELECT value FROM meta WHERE key = 'store_id'").fetchone()[0]
+
+    def _migrate(self) -> None:
+        """Upgrade an older schema in place, one version at a time, in one transaction."""
+        with self.transaction() as tx:
+            version = int(tx.execute("SELECT value FROM meta WHERE key = 'schema_version'").fetchone()[0])
+            while version < SCHEMA_VERSION:
+                for stmt in _MIGRATIONS[version]:
+                    tx.execute(stmt)
+                version += 1
+            tx.execute("UPDATE meta SET value = ? WHERE key = 'schema_version'", (str(version),))
 
     # -- connections and transactions ------------------------------------------------------------
     @property
@@ -236,7 +267,33 @@ class IncidentStore:
                 "status_changed", "status_by", "note")
         out = dict(zip(keys, r[:11]))
         out["stats"] = orjson.loads(r[11])
+        out["suggestion"] = orjson.loads(r[12]) if r[12] else None
+        out["label"] = r[13]
         return out
+
+    # -- triage labels (tracewatch/triage.py) ------------------------------------------------------
+    def set_label(self, incident_id: int, label: str, *, by: str, note: str = "", now: float) -> bool:
+        """Record (or replace) an incident's label; False when there is no such incident."""
+        with self.transaction() as tx:
+            if tx.execute("SELECT 1 FROM incidents WHERE id = ?", (incident_id,)).fetchone() is None:
+                return False
+            tx.execute("INSERT OR REPLACE INTO labels (incident_id, label, by, note, ts) VALUES (?, ?, ?, ?, ?)",
+                       (incident_id, label, by[:200], note[:1000], now))
+        return True
+
+    def labels(self) -> list[dict]:
+        """Every label with its incident's title and status, newest first."""
+        rows = self.db.execute("SELECT l.incident_id, l.label, l.by, l.note, l.ts, i.title, i.status, i.count "
+                               "FROM labels l JOIN incidents i ON i.id = l.incident_id ORDER BY l.ts DESC")
+        keys = ("incident_id", "label", "by", "note", "labelled_at", "title", "status", "count")
+        return [dict(zip(keys, r)) for r in rows]
+
+    def labelled_alerts(self) -> list[tuple[dict, str, int]]:
+        """(alert, label, incident id) for the kept member alerts of every labelled incident."""
+        rows = self.db.execute("SELECT m.alert, l.label, l.incident_id FROM labels l JOIN members m "
+                               "ON m.incident_id = l.incident_id ORDER BY l.incident_id, m.alert_id")
+        return [(orjson.loads(a), label, iid) for a, label, iid in rows]
+    # -- end of triage labels --
 
     # -- outbox and delivery cursors -----------------------------------------------------------------
     def outbox_after(self, last_id: int, limit: int = 100) -> list[tuple[int, str, dict]]:

@@ -47,12 +47,15 @@ class TextFormat:
                 return [Rejection("empty", line)]
             rec = Record(self.source, self._key_of(line, None), None, None, line, line, offset)
             return rec if pattern is None else [Rejection("no_match", line, rec)]
+        # one call for all four groups; an absent group's index is 0 (the whole match), never used
+        message, ts, level, key = m.group(*self._gi)
         gm, gts, glevel, gkey = self._gi
-        key = m.group(gkey) if gkey else None
+        if not gkey:
+            key = None
         if key is None and self._key is not None:
             key = self._key_of(line, None)
-        return Record(self.source, key, parse_timestamp(m.group(gts)) if gts else None,
-                      m.group(glevel) if glevel else None, m.group(gm) or "", line, offset)
+        return Record(self.source, key, parse_timestamp(ts) if gts else None,
+                      level if glevel else None, message or "", line, offset)
 
     def _feed_multiline(self, line: str, offset: int) -> Output:
         pending = self._pending

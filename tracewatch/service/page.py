@@ -53,6 +53,21 @@ def _page(title: str, body: str, *, refresh_s: int) -> str:
             f'JSON: <a href="/api/incidents">/api/incidents</a>.</p></footer>\n</body></html>\n')
 
 
+# -- triage (tracewatch/triage.py): the on-call label and triage's suggestion --
+def triage_text(inc: dict) -> str:
+    """'label: NAME', 'triage suggests NAME (margin m)', 'triage: no suggestion (margin m)' or ''."""
+    if inc.get("label"):
+        return f"label: {inc['label']}"
+    hint = inc.get("suggestion")
+    if not isinstance(hint, dict):
+        return ""
+    if hint.get("label") is None:
+        return f"triage: no suggestion (margin {hint.get('margin')})"
+    verb = "suppressed as" if hint.get("action") == "suppress" else "suggests"
+    return f"triage {verb} {hint['label']} (margin {hint.get('margin')})"
+# -- end of triage --
+
+
 def list_page(incidents: list[dict], counts: dict[str, int], notify: dict[str, dict], *, refresh_s: int) -> str:
     """All incidents, most recently active first."""
     tally = ", ".join(f'<span class="{e(s)}">{counts.get(s, 0)} {e(s)}</span>'
@@ -63,9 +78,10 @@ def list_page(incidents: list[dict], counts: dict[str, int], notify: dict[str, d
             f'<tr><td><a href="/incidents/{int(inc["id"])}">#{int(inc["id"])}</a></td>'
             f'<td class="{e(inc["status"])}">{e(inc["status"])}</td><td class="n">{int(inc["count"])}</td>'
             f'<td>{e(when(inc["first_seen"]))}</td><td>{e(when(inc["last_seen"]))}</td>'
-            f'<td>{e(", ".join(inc.get("sources") or []))}</td><td class="title">{e(inc["title"])}</td></tr>')
+            f'<td>{e(", ".join(inc.get("sources") or []))}</td><td class="title">{e(inc["title"])}</td>'
+            f'<td class="triage">{e(triage_text(inc))}</td></tr>')
     table = ("<table><thead><tr><th>id</th><th>status</th><th>alerts</th><th>first seen</th><th>last seen</th>"
-             "<th>sources</th><th>what happened</th></tr></thead><tbody>\n" + "\n".join(rows) + "\n</tbody></table>"
+             "<th>sources</th><th>what happened</th><th>triage</th></tr></thead><tbody>\n" + "\n".join(rows) + "\n</tbody></table>"
              if rows else "<p>No incidents recorded.</p>")
     sinks = []
     for name, st in notify.items():
@@ -94,6 +110,8 @@ def detail_page(d: dict, *, refresh_s: int) -> str:
                                         f"(score {e(rep.get('score'))}, p = {e(rep.get('p_value'))})")]
     if d.get("note"):
         facts.append(("note", e(d["note"])))
+    if triage_text(d):
+        facts.append(("triage", e(triage_text(d))))
     parts = [f"<p><a href=\"/\">← all incidents</a></p><h1>#{iid}: {e(d['title'])}</h1>",
              "<table>" + "".join(f"<tr><th>{k}</th><td>{v}</td></tr>" for k, v in facts) + "</table>"]
     if d.get("diff"):
@@ -113,7 +131,8 @@ def detail_page(d: dict, *, refresh_s: int) -> str:
                      + "\n".join(e(s) for s in d["samples"]) + "</pre>")
     parts.append(f"<h2>Act on it</h2><p>With the bearer token: <code>tracewatch incidents ack {iid}</code>, "
                  f"<code>resolve {iid}</code> or <code>expected {iid}</code> "
-                 f"(or <code>POST /api/incidents/{iid}/ack</code>).</p>")
+                 f"(or <code>POST /api/incidents/{iid}/ack</code>). To teach triage: "
+                 f"<code>tracewatch label {iid} --expected</code> or <code>--known NAME</code>.</p>")
     return _page(f"#{iid} {d['title']} — tracewatch", "\n".join(parts), refresh_s=refresh_s)
 
 

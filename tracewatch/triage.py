@@ -1,0 +1,327 @@
+"""Triage: on-call labels teach tracewatch which incidents are expected and which are a known problem.
+
+Stage: incidents → **triage** → a suggestion stored with each new incident. An on-call engineer
+labels incidents ``expected`` or with the name of a known problem (``tracewatch label``); the
+alerts of the labelled incidents train a multi-class kernel perceptron
+(:class:`KernelPerceptron`). For the first alert of a new incident, :class:`Triage` answers
+``suppress`` (expected: the incident is opened as *expected*, without a notification),
+``suggest`` (a known problem's name) or ``abstain`` when the confidence margin is below
+``[triage] min_margin`` — an incident unlike every labelled one gets no label.
+
+The model is saved as JSON (``<state_dir>/triage.json``: classes, dual coefficients and the
+support examples), checked by pydantic on load — never pickle. The daemon re-reads it when
+the file changes, so a label given with the CLI takes effect without a restart.
+"""
+
+from __future__ import annotations
+
+import logging
+import math
+import os
+import time
+from collections import Counter
+from collections.abc import Mapping, Sequence
+from pathlib import Path
+from typing import Literal
+
+import numpy as np
+import orjson
+from pydantic import BaseModel, ConfigDict, ValidationError
+from sklearn.feature_extraction import DictVectorizer
+from sklearn.exceptions import NotFittedError
+
+from .config import TriageConfig
+from .errors import StateError
+
+log = logging.getLogger("tracewatch.triage")
+
+EXPECTED = "expected"
+FILENAME = "triage.json"
+SCHEMA_VERSION = 1
+KERNELS = ("cosine", "rbf", "spectrum")
+
+
+# -- kernels ---------------------------------------------------------------------------------------
+def spectrum(seq: Sequence[str], n: int) -> Counter:
+    """The n-spectrum feature map: how often each contiguous run of ``n`` template ids occurs."""
+    return Counter("\x1f".join(seq[i:i + n]) for i in range(len(seq) - n + 1))
+
+
+def spectrum_kernel(a: Sequence[str], b: Sequence[str], n: int) -> int:
+    """K(a, b) = Σ_s φ_s(a) φ_s(b) over all length-n runs s (Leslie, Eskin & Noble, PSB 2002)."""
+    fa, fb = spectrum(a, n), spectrum(b, n)
+    return sum(c * fb[s] for s, c in fa.items())
+
+
+class KernelPerceptron:
+    """Multi-class kernel perceptron in dual form.
+
+    The kernel perceptron (Aizerman, Braverman & Rozonoer, 1964) keeps, per class c, a weight
+    vector w_c = Σ_j α_cj φ(x_j) over training examples, so only kernel values K(x_i, x_j) are
+    needed. The multi-class update: when the true class t of x_i does not score strictly above
+    every rival, α_ti += 1 and α_ri −= 1 for the best rival r. With ``average`` the dual
+    coefficients are averaged over all steps of all epochs — the averaged perceptron of Freund &
+    Schapire, "Large margin classification using the perceptron algorithm" (1999), whose mistake
+    bound holds for any kernel.
+
+    Kernels (all normalised so that K(x, x) = 1):
+      - ``cosine``: items are sparse vectors (mappings term → weight) or rows of a 2-D array;
+      - ``rbf``: exp(−gamma ‖x − y‖²) on the same items;
+      - ``spectrum``: items are sequences of template ids; the n-spectrum kernel of Leslie, Eskin
+        & Noble (PSB 2002), divided by √(K(x,x) K(y,y)) (common practice, so long sessions do
+        not dominate).
+
+    Sign convention: ``decision_function`` gives one score per class, higher = more like that
+    class; the scores of a sample sum to 0 (every update adds +1 and −1), so with two classes
+    column 1 is positive exactly when ``classes_[1]`` is predicted.
+    """
+
+    def __init__(self, kernel: Literal["cosine", "rbf", "spectrum"] = "cosine", *, gamma: float = 1.0,
+                 spectrum_n: int = 3, epochs: int = 20, average: bool = True, shuffle: bool = True,
+                 seed: int = 0) -> None:
+        self.kernel = kernel
+        self.gamma = gamma
+        self.spectrum_n = spectrum_n
+        self.epochs = epochs
+        self.average = average
+        self.shuffle = shuffle
+        self.seed = seed
+
+    # -- public --------------------------------------------------------------------------------
+    def fit(self, X, y) -> "KernelPerceptron":
+        """Learn ``classes_``, ``alpha_`` (classes × support) and ``support_`` (the examples with a
+        non-zero coefficient); ``mistakes_`` counts the updates of each epoch."""
+        if self.kernel not in KERNELS:
+            raise ValueError(f"kernel must be one of {', '.join(KERNELS)}, not {self.kernel!r}")
+        items, y = _items(X), [str(v) for v in y]
+        if len(items) != len(y) or not items:
+            raise ValueError("X and y must be non-empty and of the same length")
+        classes = np.array(sorted(set(y)))
+        if len(classes) < 2:
+            raise ValueError("at least two classes are needed to learn anything")
+        feats = [self._features(it) for it in items]
+        sq = np.array([_sq(f) for f in feats])
+        vec = DictVectorizer().fit(feats)
+        m = vec.transform(feats)
+        gram = self._finish((m @ m.T).toarray(), sq, sq)
+        target = np.searchsorted(classes, y)
+        alpha = np.zeros((len(classes), len(items)))
+        total = np.zeros_like(alpha)
+        rng = np.random.default_rng(self.seed)
+        order = np.arange(len(items))
+        self.mistakes_ = []
+        for _ in range(self.epochs):
+            if self.shuffle:
+                rng.shuffle(order)
+            wrong = 0
+            for i in order:
+                f = alpha @ gram[:, i]
+                t = target[i]
+                score = f[t]
+                f[t] = -np.inf
+                rival = int(np.argmax(f))
+                if score <= f[rival]:  # a tie is a mistake: the true class must win outright
+                    alpha[t, i] += 1.0
+                    alpha[rival, i] -= 1.0
+                    wrong += 1
+                if self.average:
+                    total += alpha
+            self.mistakes_.append(wrong)
+            if wrong == 0 and not self.average:
+                break
+        if self.average:
+            alpha = total / (len(self.mistakes_) * len(items))
+        keep = np.flatnonzero(np.abs(alpha).sum(axis=0) > 0)
+        self.classes_ = classes
+        self.alpha_ = alpha[:, keep]
+        self.support_ = [items[i] for i in keep]
+        self._prepare()
+        return self
+
+    def decision_function(self, X) -> np.ndarray:
+        """Scores, shape (n_samples, n_classes): f_c(x) = Σ_j α_cj K(s_j, x)."""
+        if not hasattr(self, "alpha_"):
+            raise NotFittedError("this KernelPerceptron is not fitted yet: call fit(X, y) first")
+        return self._scores(_items(X))
+
+    def predict(self, X) -> np.ndarray:
+        scores = self.decision_function(X)
+        return self.classes_[np.argmax(scores, axis=1)]
+
+    def margin(self, X) -> tuple[np.ndarray, np.ndarray]:
+        """(predicted classes, geometric margins): the distance in feature space from φ(x) to the
+        boundary between the predicted class and the runner-up, (f_top − f_second) / ‖w_top −
+        w_second‖. With ‖φ(x)‖ = 1 it lies in [0, 1]: near 0 for an item unlike every
+        labelled one, or between two classes."""
+        scores = self.decision_function(X)
+        order = np.argsort(-scores, axis=1)
+        top, second = order[:, 0], order[:, 1]
+        rows = np.arange(len(scores))
+        diff = self.alpha_[top] - self.alpha_[second]  # (n, support)
+        norm = np.sqrt(np.maximum(np.einsum("ij,jk,ik->i", diff, self._gram, diff), 0.0))
+        gap = scores[rows, top] - scores[rows, second]
+        margins = np.divide(gap, norm, out=np.zeros_like(gap), where=norm > 0)
+        return self.classes_[top], margins
+
+    # -- workers -------------------------------------------------------------------------------
+    def _features(self, item) -> dict:
+        if self.kernel == "spectrum":
+            return dict(spectrum([str(t) for t in item], self.spectrum_n))
+        return {str(k): float(v) for k, v in item.items() if v}
+
+    def _finish(self, dots: np.ndarray, sq_rows: np.ndarray, sq_cols: np.ndarray) -> np.ndarray:
+        """Kernel values from dot products and squared norms of the feature maps."""
+        if self.kernel == "rbf":
+            dist = np.maximum(sq_rows[:, None] + sq_cols[None, :] - 2.0 * dots, 0.0)
+            return np.exp(-self.gamma * dist)
+        norms = np.sqrt(np.outer(sq_rows, sq_cols))
+        return np.divide(dots, norms, out=np.zeros_like(dots), where=norms > 0)
+
+    def _prepare(self) -> None:
+        """Index the support examples (after fit or load)."""
+        feats = [self._features(it) for it in self.support_]
+        self._vec = DictVectorizer().fit(feats)
+        self._support = self._vec.transform(feats)
+        self._support_sq = np.array([_sq(f) for f in feats])
+        self._gram = self._finish((self._support @ self._support.T).toarray(), self._support_sq, self._support_sq)
+
+    def _scores(self, items: list) -> np.ndarray:
+        feats = [self._features(it) for it in items]
+        dots = (self._vec.transform(feats) @ self._support.T).toarray()  # terms unseen at fit add 0
+        k = self._finish(dots, np.array([_sq(f) for f in feats]), self._support_sq)
+        return k @ self.alpha_.T
+
+
+def _sq(features: Mapping[str, float]) -> float:
+    return float(sum(v * v for v in features.values()))
+
+
+def _items(X) -> list:
+    """Rows of a 2-D array become sparse mappings; anything else is taken as a list of items."""
+    if isinstance(X, np.ndarray):
+        if X.ndim != 2:
+            raise ValueError("a numeric X must be 2-D (samples × features)")
+        return [{str(j): float(v) for j, v in enumerate(row) if v} for row in X]
+    return list(X)
+
+
+# -- triage of alerts and incidents -----------------------------------------------------------------
+class _Saved(BaseModel):
+    model_config = ConfigDict(extra="forbid")
+
+    kind: Literal["tracewatch-triage"]
+    schema_version: int
+    kernel: Literal["cosine", "rbf", "spectrum"]
+    gamma: float
+    spectrum_n: int
+    classes: list[str]
+    alpha: list[list[float]]
+    support: list[dict[str, float] | list[str]]
+    trained_at: float
+    examples: int
+    incidents: dict[str, int]
+    mistakes: list[int]
+
+
+def alert_item(alert: dict, kernel: str):
+    """What the kernel compares: the template-id sequence (spectrum) or the alert's grouping
+    vector — its explanation and sequence n-grams (cosine, rbf)."""
+    if kernel == "spectrum":
+        return [str(t) for t in alert.get("sequence") or []]
+    from .alerts.incidents import alert_vector
+
+    return alert_vector(alert)
+
+
+class Triage:
+    """The trained model of one state directory: ``train`` from labelled alerts, ``save``,
+    ``suggest`` for a new alert. ``suggest`` re-reads ``triage.json`` when it changed on disk."""
+
+    def __init__(self, cfg: TriageConfig, state_dir: Path) -> None:
+        self.cfg = cfg
+        self.path = Path(state_dir) / FILENAME
+        self.model: KernelPerceptron | None = None
+        self.info: dict = {}
+        self._sig: tuple | None = None
+
+    # -- training --------------------------------------------------------------------------------
+    def train(self, examples: Sequence[tuple[dict, str, int]]) -> dict:
+        """Fit on (alert, label, incident id) triples; returns what was learned. Fewer than two
+        different labels leave no model (triage abstains)."""
+        c = self.cfg
+        labels = {(iid, label) for _, label, iid in examples}
+        self.info = {"kernel": c.kernel, "examples": len(examples), "trained_at": time.time(),
+                     "incidents": dict(Counter(label for _, label in labels)), "mistakes": [], "support": 0}
+        self.model = None
+        if len(self.info["incidents"]) >= 2:
+            m = KernelPerceptron(c.kernel, gamma=c.rbf_gamma, spectrum_n=c.spectrum_n, epochs=c.epochs, seed=c.seed)
+            self.model = m.fit([alert_item(a, c.kernel) for a, _, _ in examples], [label for _, label, _ in examples])
+            self.info.update(mistakes=m.mistakes_, support=len(m.support_), classes=[str(c) for c in m.classes_])
+        return self.info
+
+    def train_from_store(self, store) -> dict:
+        return self.train(store.labelled_alerts())
+
+    def save(self) -> None:
+        from .baselines import atomic_write
+
+        m, info = self.model, self.info
+        doc = {"kind": "tracewatch-triage", "schema_version": SCHEMA_VERSION, "kernel": self.cfg.kernel,
+               "gamma": self.cfg.rbf_gamma, "spectrum_n": self.cfg.spectrum_n,
+               "classes": [] if m is None else [str(c) for c in m.classes_],
+               "alpha": [] if m is None else m.alpha_.tolist(), "support": [] if m is None else m.support_,
+               "trained_at": info["trained_at"], "examples": info["examples"], "incidents": info["incidents"],
+               "mistakes": info["mistakes"]}
+        atomic_write(self.path, orjson.dumps(doc))
+
+    # -- loading ---------------------------------------------------------------------------------
+    def load(self) -> bool:
+        """Read ``triage.json`` if it changed since the last read; False when there is none.
+        A damaged file is a StateError."""
+        try:
+            st = os.stat(self.path)
+        except FileNotFoundError:
+            self.model, self.info, self._sig = None, {}, None
+            return False
+        sig = (st.st_ino, st.st_mtime_ns, st.st_size)
+        if sig == self._sig:
+            return True
+        try:
+            saved = _Saved.model_validate_json(self.path.read_bytes())
+        except (OSError, ValidationError) as exc:
+            raise StateError(f"{self.path}: not a usable triage model ({str(exc).splitlines()[0]}); "
+                             "label an incident again to retrain it, or move the file away") from None
+        if saved.schema_version != SCHEMA_VERSION:
+            raise StateError(f"{self.path}: triage schema {saved.schema_version} is not supported "
+                             f"(this tracewatch reads {SCHEMA_VERSION}); label an incident again to retrain")
+        self.info = saved.model_dump(exclude={"kind", "schema_version", "alpha", "support", "gamma", "spectrum_n"})
+        self.info["support"] = len(saved.support)
+        self.model = None
+        if saved.classes:
+            m = KernelPerceptron(saved.kernel, gamma=saved.gamma, spectrum_n=saved.spectrum_n)
+            m.classes_ = np.array(saved.classes)
+            m.alpha_ = np.array(saved.alpha).reshape(len(saved.classes), len(saved.support))
+            m.support_ = saved.support
+            m._prepare()
+            self.model = m
+        self._sig = sig
+        return True
+
+    # -- suggesting ------------------------------------------------------------------------------
+    def suggest(self, alert: dict) -> dict | None:
+        """For the first alert of a new incident: ``{"action": "suppress" | "suggest" | "abstain",
+        "label", "margin"}``, or None without a trained model. Never raises: triage is advice,
+        and a damaged model file must not stop incidents from being recorded."""
+        try:
+            self.load()
+            if self.model is None:
+                return None
+            labels, margins = self.model.margin([alert_item(alert, self.model.kernel)])
+        except Exception as exc:  # noqa: BLE001 - logged; grouping goes on without a suggestion
+            log.error("triage: %s; no suggestion for alert %s", exc, alert.get("alert_id"))
+            return None
+        label, margin = str(labels[0]), float(margins[0])
+        if not math.isfinite(margin) or margin < self.cfg.min_margin:
+            return {"action": "abstain", "label": None, "margin": round(margin, 4)}
+        action = "suppress" if label == EXPECTED and self.cfg.suppress_expected else "suggest"
+        return {"action": action, "label": label, "margin": round(margin, 4)}
