@@ -42,7 +42,8 @@ class SessionScorer:
         self.spreads = spreads
         self.kind = scorer
         self.knn_k = knn_k
-        self.knn_rows_t = knn_rows.T.tocsr() if knn_rows is not None else None
+        # the transposed baseline rows are only needed by the knn scorer (a copy of every row)
+        self.knn_rows_t = knn_rows.T.tocsr() if knn_rows is not None and scorer == "knn" else None
         self.cluster_sources = np.asarray(cluster_sources if cluster_sources is not None
                                           else [""] * len(centers), dtype=object)
         self.row_sources = np.asarray(row_sources if row_sources is not None
