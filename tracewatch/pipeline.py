@@ -20,6 +20,7 @@ from .baselines import Baseline
 from .config import Config
 from .formats import Format, items, make_format
 from .records import Record, Rejection
+from .rejects import reject_log
 from .sessions import Session, Sessionizer
 from .templates import TemplateMiner
 
@@ -123,8 +124,7 @@ class Pipeline:
         if len(self.reject_samples) < MAX_REJECT_SAMPLES:
             self.reject_samples.append({"source": source, "reason": item.reason,
                                         "line": self.redact(item.raw[:500])})
-        # -- bounded, redacted sample on disk: <state_dir>/rejects.jsonl (tracewatch/rejects.py)
-        from .rejects import reject_log
+        # bounded, redacted sample on disk: <state_dir>/rejects.jsonl
         reject_log(self.cfg.state_dir).add(source, item.reason, item.raw, self.redact)
         if item.record is not None:
             self.feed_record(item.record)
