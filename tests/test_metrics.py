@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import math
+import tempfile
 
 from prometheus_client import CollectorRegistry, generate_latest
 from prometheus_client.parser import text_string_to_metric_families
@@ -14,7 +15,9 @@ from tracewatch.service.metrics import SCORE_BUCKETS, DaemonMetrics
 
 def _pipeline_snapshot() -> dict:
     """A real pipeline (fit mode: no baseline needed) fed a few lines, one of them unreadable."""
-    cfg = parse_config({"sources": [{"name": "api", "line_pattern": r"^(?P<ts>\S+) key=(?P<key>\S+) (?P<message>.*)$"}]})
+    # the rejected line's sample goes to <state_dir>/rejects.jsonl: keep it out of the work tree
+    cfg = parse_config({"state_dir": tempfile.mkdtemp(prefix="tw-metrics-"),
+                        "sources": [{"name": "api", "line_pattern": r"^(?P<ts>\S+) key=(?P<key>\S+) (?P<message>.*)$"}]})
     pipe = Pipeline(cfg)
     lines = ["2026-01-01T00:00:00Z key=a start", "2026-01-01T00:00:01Z key=a stop", "garbage without a key", ""]
     for i, line in enumerate(lines):
