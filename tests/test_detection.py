@@ -58,3 +58,37 @@ def test_recall_and_false_alarm_rate(tmp_path, scenario, scorer, seed):
         assert t[kind]["share"] >= 0.95, f"{kind}: recall {t[kind]['share']:.3f}"
     # at most 2× the configured rate (3000 normal sessions: 30 false alarms at most)
     assert t["normal"]["share"] <= 2 * RATE
+
+
+def test_block_path_and_line_path_give_the_same_verdicts(tmp_path, monkeypatch):
+    """Batch reading hands whole blocks to the format (match_block) when every line matches;
+    the result must be what feeding the same lines one by one gives."""
+    from tracewatch.formats.text import TextFormat
+    from tracewatch.pipeline import Pipeline
+    from tracewatch.sources import files
+    from tracewatch.sources.files import read_lines
+
+    monkeypatch.setattr(files, "CHUNK", 1 << 16)  # many blocks; only the last one has bad lines
+    used = []
+    original = TextFormat.match_block
+    monkeypatch.setattr(TextFormat, "match_block", lambda self, lines: used.append(original(self, lines)) or used[-1])
+
+    scenario = parcel_lockers()
+    base, day, _ = write_scenario(tmp_path, scenario, seed=31, n_baseline=1500, n_normal=600, per_kind=5)
+    with open(day, "a") as fh:  # a few lines that force the per-line path for their block
+        fh.write("not a log line at all\n\n")
+    cfg = parse_config({"state_dir": str(tmp_path / "state"),
+                        "sources": [{"name": "app", "line_pattern": scenario.line_pattern}],
+                        "model": {"false_alarm_rate": 0.01}})
+    baseline, _, _ = fit_files(cfg, assign_sources(cfg, [str(base)]))
+    by_block: list[dict] = []
+    blocked = score_files(cfg, assign_sources(cfg, [str(day)]), baseline, by_block.append, score_all=True)
+    by_line: list[dict] = []
+    fresh = fit_files(cfg, assign_sources(cfg, [str(base)]))[0]
+    pipe = Pipeline(cfg, fresh, on_verdict=by_line.append, score_all=True)
+    pipe.feed_lines("app", str(day), read_lines(day, 65536))
+    pipe.flush()
+    strip = lambda vs: sorted((v["alert_id"], v["alert"], v["score"], tuple(v["reasons"])) for v in vs)  # noqa: E731
+    assert strip(by_block) == strip(by_line) and len(by_block) > 600
+    assert sum(u is not None for u in used) >= 5 and None in used  # both paths were taken
+    assert blocked.records == pipe.records and blocked.lines == pipe.lines and blocked.rejected == pipe.rejected

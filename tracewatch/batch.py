@@ -13,7 +13,7 @@ from pathlib import Path
 from .config import Config
 from .errors import ConfigError, InputError
 from .pipeline import Pipeline
-from .sources.files import expand_inputs, read_lines
+from .sources.files import expand_inputs, read_blocks, read_lines
 
 
 def assign_sources(cfg: Config, inputs: list[str], source: str | None = None) -> list[tuple[str, Path]]:
@@ -55,7 +55,8 @@ def run_files(pipeline: Pipeline, pairs: list[tuple[str, Path]]) -> None:
     """Feed every file to the pipeline, in order, then flush it."""
     for source, path in pairs:
         stream = str(path)
-        pipeline.feed_lines(source, stream, iter_file(pipeline.cfg, source, path))
+        for lines, offsets, repairs in read_blocks(path, pipeline.cfg.source(source).max_line_bytes):
+            pipeline.feed_block(source, stream, lines, offsets, repairs)
         pipeline.end_stream(source, stream)
     pipeline.flush()
 

@@ -12,6 +12,7 @@ from __future__ import annotations
 
 from collections import Counter
 from collections.abc import Callable
+from itertools import repeat
 
 import numpy as np
 
@@ -101,6 +102,43 @@ class Pipeline:
                     take(source, item)
         self.lines[source] += n
         self.records[source] += n_records
+
+    def feed_block(self, source: str, stream: str, lines: list[str], offsets: list[int],
+                   repairs: list[str | None] | None = None) -> None:
+        """Feed a block of lines of one stream (``repairs`` None: all decoded cleanly). The same
+        as :meth:`feed_lines`; when the format can read the whole block at once
+        (``match_block``), its records go through the stages column by column."""
+        match_block = getattr(self._format(source, stream), "match_block", None)
+        columns = match_block(lines) if match_block is not None and repairs is None and lines else None
+        if columns is None:
+            self.feed_lines(source, stream, zip(lines, offsets, repairs or repeat(None)))
+            return
+        self.lines[source] += len(lines)
+        self.records[source] += len(lines)
+        keys, stamps, messages = columns
+        self._add_columns(source, keys, stamps, self.miner.add_many(messages), lines, offsets, messages)
+
+    def _add_columns(self, source: str, keys: list, stamps: list, idxs: list[int], raws: list[str],
+                     offsets: list[int], messages: list[str]) -> None:
+        """:meth:`_add_record` for many records whose template indices are already known."""
+        add, closed, clock, sessionizer = self.sessionizer.add, self._closed, self.clock, self.sessionizer
+        watermark, file_watermark, since = self._watermark, self._file_watermark, self._since_tick
+        for key, ts, idx, raw, offset, message in zip(keys, stamps, idxs, raws, offsets, messages):
+            if ts is not None:
+                if ts > watermark:
+                    watermark = ts
+                if ts > file_watermark:
+                    file_watermark = ts
+            add(source, key, ts, clock() if clock is not None else file_watermark, idx, raw, offset,
+                message, closed)
+            since += 1
+            if since >= TICK_EVERY and clock is None:
+                since = 0
+                sessionizer.tick(file_watermark, closed)
+            if len(closed) >= SCORE_BATCH:
+                self._drain()
+                closed = self._closed  # _drain starts a new list
+        self._watermark, self._file_watermark, self._since_tick = watermark, file_watermark, since
 
     def end_stream(self, source: str, stream: str) -> None:
         """A file ended (batch) or was rotated away: flush what its format holds.

@@ -12,6 +12,7 @@ when that still makes sense.
 from __future__ import annotations
 
 import re
+from operator import attrgetter, methodcaller
 from datetime import datetime, timezone
 from typing import Protocol
 
@@ -66,6 +67,25 @@ def parse_timestamp(text: str | None) -> float | None:
     if _EPOCH_MS.match(text):
         return int(text) / 1000.0
     return _iso(text)
+
+
+def timestamps(texts) -> list[float | None]:
+    """``parse_timestamp`` of many texts; when all are ISO 8601 of one kind (all with a zone or
+    all without), in C-level ``map``s."""
+    try:
+        dts = list(map(datetime.fromisoformat, texts))
+    except (ValueError, TypeError):
+        return list(map(parse_timestamp, texts))
+    zones = list(map(_tzinfo, dts))
+    if None not in zones:
+        return list(map(datetime.timestamp, dts))
+    if zones.count(None) == len(zones):
+        return list(map(datetime.timestamp, map(_as_utc, dts)))
+    return list(map(parse_timestamp, texts))
+
+
+_tzinfo = attrgetter("tzinfo")
+_as_utc = methodcaller("replace", tzinfo=timezone.utc)
 
 
 def feed_lines(fmt: Format, lines) -> Output:

@@ -9,10 +9,11 @@ lines matching it (stack traces, wrapped lines) are attached to the record befor
 from __future__ import annotations
 
 import re
+from operator import methodcaller
 
 from ..config import SourceConfig
 from ..records import Record, Rejection
-from . import Output, items, parse_timestamp
+from . import Output, items, parse_timestamp, timestamps
 
 
 class TextFormat:
@@ -27,6 +28,7 @@ class TextFormat:
         self._cont_max = src.continuation_max
         self._pending: Record | None = None
         self._pending_lines = 0
+        self._groups = methodcaller("group", *self._gi)
         # feed(line, offset) -> Output: the per-line entry point, chosen once per instance
         self.feed = self._feed_multiline if self._cont is not None else self._parse
 
@@ -74,6 +76,22 @@ class TextFormat:
             else:
                 out.append(item)
         return out
+
+    def match_block(self, lines: list[str]) -> tuple[list, list, list] | None:
+        """``(keys, timestamps, messages)`` of a block of lines when every line is a plain match
+        (the common case), computed with C-level ``map``s; None when any line needs the
+        per-line path (no pattern, continuation lines, a line that does not match)."""
+        if self._pattern is None or self._cont is not None:
+            return None
+        matches = list(map(self._pattern.match, lines))
+        if None in matches:
+            return None
+        gm, gts, glevel, gkey = self._gi
+        messages, stamps, _, keys = zip(*map(self._groups, matches))
+        keys = list(keys) if gkey else [None] * len(lines)
+        if self._key is not None and None in keys:
+            keys = [k if k is not None else self._key_of(line, None) for k, line in zip(keys, lines)]
+        return keys, timestamps(stamps) if gts else [None] * len(lines), list(messages)
 
     @property
     def held_from(self) -> int | None:

@@ -9,7 +9,10 @@ from __future__ import annotations
 
 import glob
 from collections.abc import Iterator
+from itertools import repeat
 from pathlib import Path
+
+import numpy as np
 
 from ..errors import InputError
 
@@ -51,30 +54,43 @@ def expand_inputs(patterns: list[str]) -> list[Path]:
 CHUNK = 1 << 20
 
 
-def _lines_of(block: bytes, offset: int, max_line_bytes: int) -> Iterator[tuple[str, int, str | None]]:
-    """Lines of a block that ends with a newline. An ASCII block (the usual case) is decoded
-    once and split as text, where character and byte offsets agree."""
+Block = tuple[list[str], list[int], list[str | None] | None]  # lines, offsets, repairs (None: all clean)
+
+
+def _block_of(block: bytes, offset: int, max_line_bytes: int) -> Block:
+    """The lines of a block that ends with a newline, as columns. An ASCII block (the usual
+    case) is decoded once and split as text, where character and byte offsets agree; its
+    offsets come from one cumulative sum."""
     if block.isascii():
-        for line in block.decode("ascii").split("\n")[:-1]:
-            size = len(line) + 1
-            if line and line[-1] == "\r":
-                line = line[:-1]
-            if len(line) <= max_line_bytes:
-                yield line, offset, None
-            else:
-                yield line[:max_line_bytes], offset, LINE_TOO_LONG
-            offset += size
-        return
+        text = block.decode("ascii")
+        lines = text.split("\n")
+        lines.pop()  # after the final newline
+        if "\r" not in text and (not lines or max(map(len, lines)) <= max_line_bytes):
+            sizes = np.fromiter(map(len, lines), dtype=np.int64, count=len(lines)) + 1
+            return lines, (np.cumsum(sizes) - sizes + offset).tolist(), None
+    out_lines: list[str] = []
+    offsets: list[int] = []
+    repairs: list[str | None] = []
     for raw in block.split(b"\n")[:-1]:
         text, problem = decode_line(raw[:-1] if raw.endswith(b"\r") else raw, max_line_bytes)
-        yield text, offset, problem
+        out_lines.append(text)
+        offsets.append(offset)
+        repairs.append(problem)
         offset += len(raw) + 1
+    return out_lines, offsets, repairs
 
 
 def read_lines(path: Path, max_line_bytes: int) -> Iterator[tuple[str, int, str | None]]:
     """Yield ``(text, offset, repair_reason)`` for every line of ``path``, the last one even
-    without a trailing newline. Memory stays bounded by the chunk size and ``max_line_bytes``
-    even for a file with no newline at all."""
+    without a trailing newline."""
+    for lines, offsets, repairs in read_blocks(path, max_line_bytes):
+        yield from zip(lines, offsets, repairs or repeat(None))
+
+
+def read_blocks(path: Path, max_line_bytes: int) -> Iterator[Block]:
+    """Yield the lines of ``path`` in blocks of about ``CHUNK`` bytes, as columns, the last line
+    even without a trailing newline. Memory stays bounded by the chunk size and
+    ``max_line_bytes`` even for a file with no newline at all."""
     try:
         fh = open(path, "rb")
     except OSError as exc:
@@ -101,17 +117,17 @@ def read_lines(path: Path, max_line_bytes: int) -> Iterator[tuple[str, int, str 
                 if cut == 0:
                     if len(data) > max_line_bytes:  # an over-long line: yield its start, skip the rest
                         text, _ = decode_line(data[:max_line_bytes], max_line_bytes)
-                        yield text, offset, LINE_TOO_LONG
+                        yield [text], [offset], [LINE_TOO_LONG]
                         offset += len(data)
                         rest, skipping = b"", True
                     else:
                         rest = data
                     continue
-                yield from _lines_of(data[:cut], offset, max_line_bytes)
+                yield _block_of(data[:cut], offset, max_line_bytes)
                 offset += cut
                 rest = data[cut:]
             if rest:
                 text, problem = decode_line(rest[:-1] if rest.endswith(b"\r") else rest, max_line_bytes)
-                yield text, offset, problem
+                yield [text], [offset], [problem]
         except OSError as exc:
             raise InputError(f"{path}: read failed at byte {offset}: {exc.strerror or exc}") from None
