@@ -120,25 +120,21 @@ class Pipeline:
 
     def _add_columns(self, source: str, keys: list, stamps: list, idxs: list[int], raws: list[str],
                      offsets: list[int], messages: list[str]) -> None:
-        """:meth:`_add_record` for many records whose template indices are already known."""
-        add, closed, clock, sessionizer = self.sessionizer.add, self._closed, self.clock, self.sessionizer
-        watermark, file_watermark, since = self._watermark, self._file_watermark, self._since_tick
-        for key, ts, idx, raw, offset, message in zip(keys, stamps, idxs, raws, offsets, messages):
-            if ts is not None:
-                if ts > watermark:
-                    watermark = ts
-                if ts > file_watermark:
-                    file_watermark = ts
-            add(source, key, ts, clock() if clock is not None else file_watermark, idx, raw, offset,
-                message, closed)
-            since += 1
-            if since >= TICK_EVERY and clock is None:
-                since = 0
-                sessionizer.tick(file_watermark, closed)
-            if len(closed) >= SCORE_BATCH:
+        """:meth:`_add_record` for many records whose template indices are already known: the
+        sessionizer takes them ``TICK_EVERY`` at a time, then idle sessions are closed and
+        closed sessions scored, as the per-record path does."""
+        for lo in range(0, len(keys), TICK_EVERY):
+            hi = lo + TICK_EVERY
+            now = self.clock() if self.clock is not None else self._file_watermark
+            newest = self.sessionizer.add_many(source, keys[lo:hi], stamps[lo:hi], idxs[lo:hi], raws[lo:hi],
+                                               offsets[lo:hi], messages[lo:hi], now, self._closed)
+            if newest is not None:
+                self._watermark = max(self._watermark, newest)
+                self._file_watermark = max(self._file_watermark, newest)
+            if self.clock is None:
+                self.sessionizer.tick(self._file_watermark, self._closed)
+            if len(self._closed) >= SCORE_BATCH:
                 self._drain()
-                closed = self._closed  # _drain starts a new list
-        self._watermark, self._file_watermark, self._since_tick = watermark, file_watermark, since
 
     def end_stream(self, source: str, stream: str) -> None:
         """A file ended (batch) or was rotated away: flush what its format holds.

@@ -73,32 +73,50 @@ class Sessionizer:
     def add(self, source: str, key: str | None, ts: float | None, now: float, event: int,
             raw: str, offset: int, message: str, closed: list[Session]) -> None:
         """Append one event; sessions that close because of it are appended to ``closed``."""
-        t = ts if ts is not None else now
-        if key is None:
-            key = self._window_key(source, ts)
-        skey = (source, key)
-        sess = self.open.get(skey)
-        if sess is not None and (t - sess.last_seen > self.idle or t - sess.first_ts > self.max_duration):
-            self._close(skey, "idle" if t - sess.last_seen > self.idle else "max_duration", closed)
-            sess = None
-        if sess is None:
-            if len(self.open) >= self.max_open:
-                oldest = next(iter(self.open))
-                self._close(oldest, "evicted", closed)
-                self.evicted += 1
-            sess = self.open[skey] = Session(source, key, t, raw, offset)
-        else:
-            self.open.move_to_end(skey)
-        sess.events.append(event)
-        if t > sess.last_ts:
-            sess.last_ts = t
-        sess.last_seen = t
-        if len(sess.samples) < MAX_SAMPLES:
-            sess.samples.append(raw)
-        if self._end is not None and self._end.search(message):
-            self._close(skey, "end", closed)
-        elif len(sess.events) >= self.max_events:
-            self._close(skey, "max_events", closed)
+        self.add_many(source, (key,), (ts,), (event,), (raw,), (offset,), (message,), now, closed)
+
+    def add_many(self, source: str, keys, stamps, events, raws, offsets, messages, now: float,
+                 closed: list[Session]) -> float | None:
+        """Append events of one source in order (the loop of :meth:`add`, with its lookups done
+        once). A record without a time takes ``now``, moved on by the times of the records
+        before it; returns the newest record time, or None when no record had one."""
+        newest = None
+        open_, get, move_to_end = self.open, self.open.get, self.open.move_to_end
+        idle, max_duration, max_events, end = self.idle, self.max_duration, self.max_events, self._end
+        for key, ts, event, raw, offset, message in zip(keys, stamps, events, raws, offsets, messages):
+            if ts is None:
+                t = now
+            else:
+                t = ts
+                if ts > now:
+                    now = ts
+                if newest is None or ts > newest:
+                    newest = ts
+            if key is None:
+                key = self._window_key(source, ts)
+            skey = (source, key)
+            sess = get(skey)
+            if sess is not None and (t - sess.last_seen > idle or t - sess.first_ts > max_duration):
+                self._close(skey, "idle" if t - sess.last_seen > idle else "max_duration", closed)
+                sess = None
+            if sess is None:
+                if len(open_) >= self.max_open:
+                    self._close(next(iter(open_)), "evicted", closed)
+                    self.evicted += 1
+                sess = open_[skey] = Session(source, key, t, raw, offset)
+            else:
+                move_to_end(skey)
+            sess.events.append(event)
+            if t > sess.last_ts:
+                sess.last_ts = t
+            sess.last_seen = t
+            if len(sess.samples) < MAX_SAMPLES:
+                sess.samples.append(raw)
+            if end is not None and end.search(message):
+                self._close(skey, "end", closed)
+            elif len(sess.events) >= max_events:
+                self._close(skey, "max_events", closed)
+        return newest
 
     def _window_key(self, source: str, ts: float | None) -> str:
         if ts is not None:
