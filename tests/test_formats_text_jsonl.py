@@ -108,3 +108,21 @@ def test_parse_timestamp_equals_datetime():
             assert parse_timestamp(text + zone) == expected
         comma = text.replace(".", ",")
         assert parse_timestamp(comma) == parse_timestamp(text)
+
+
+def test_match_block_equals_the_per_line_path():
+    """The block readers (text and jsonl) give exactly the fields the per-line path gives,
+    and decline (None) a block holding any line the per-line path would reject."""
+    text_src = SourceConfig(name="t", line_pattern=r"^(?P<ts>\S+) (?P<level>[A-Z]+) (?P<message>.*)$",
+                            session_key=r"req=(?P<key>\w+)")
+    json_src = SourceConfig(name="j", format="jsonl", message_field="msg", session_key="req", time_field="t")
+    text_lines = [f"2026-11-30T10:00:0{i}.5Z INFO req=k{i % 3} door {i} opened" for i in range(9)]
+    json_lines = [orjson.dumps({"t": t, "msg": f"door {i} opened", "req": i % 3}).decode()
+                  for i, t in enumerate(["2026-11-30T10:00:00Z", 1764496800, 1764496800123] * 3)]
+    for fmt, lines in ((TextFormat(text_src), text_lines), (JsonlFormat(json_src), json_lines)):
+        keys, stamps, messages = fmt.match_block(lines)
+        one_by_one = [r for line in lines for r in items(fmt.feed(line, 0))]
+        assert keys == [r.key for r in one_by_one]
+        assert stamps == [r.ts for r in one_by_one]
+        assert messages == [r.message for r in one_by_one]
+        assert fmt.match_block(lines + ["", "{not json"]) is None
