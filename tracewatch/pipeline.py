@@ -81,7 +81,13 @@ class Pipeline:
 
     def feed_lines(self, source: str, stream: str, lines) -> None:
         """Feed ``(line, offset, repair)`` triples of one stream: the same as calling
-        :meth:`feed_line` for each, with the per-line lookups done once."""
+        :meth:`feed_line` for each, with the per-line lookups done once. A list of cleanly
+        decoded lines (what the daemon's followers hand on) goes the block way."""
+        if type(lines) is list and lines:
+            texts, offsets, repairs = zip(*lines)
+            if not any(repairs):
+                self.feed_block(source, stream, list(texts), list(offsets))
+                return
         feed = self._format(source, stream).feed
         add, take, repaired = self._add_record, self._take, self.repaired
         n = n_records = 0
