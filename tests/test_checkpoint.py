@@ -13,7 +13,8 @@ from tracewatch.demo.run import write_scenario
 from tracewatch.demo.scenario import parcel_lockers
 from tracewatch.errors import StateError
 from tracewatch.pipeline import Pipeline
-from tracewatch.sources.checkpoint import AlertJournal, JournalMark, capture, load_checkpoint, restore
+from tracewatch.sources.checkpoint import (AlertJournal, JournalMark, capture, capture_chunks, load_checkpoint,
+                                          restore, save_checkpoint)
 
 
 @pytest.fixture(scope="module")
@@ -88,6 +89,23 @@ def test_a_session_naming_an_unknown_template_is_refused(fitted, tmp_path):
     path.write_bytes(orjson.dumps(state))
     with pytest.raises(StateError, match="template that does not exist"):
         restore(Pipeline(cfg, load_baseline(cfg.state_dir)), load_checkpoint(path))
+
+
+def test_checkpoint_written_in_pieces_is_the_same_document(fitted, tmp_path):
+    # the daemon writes the open sessions a few at a time; the file must be one valid checkpoint
+    cfg, lines = fitted
+    pipe = Pipeline(cfg, load_baseline(cfg.state_dir))
+    _feed(pipe, lines[:200], 0)
+    n_open = len(pipe.sessionizer.open)
+    assert n_open > 3
+    pieces = list(capture_chunks(pipe, [], {"offset": 0, "count": 0}, per_chunk=2))
+    assert len(pieces) >= 2 + (n_open + 1) // 2
+    path = tmp_path / "checkpoint.json"
+    save_checkpoint(path, iter(pieces))
+    ckpt = load_checkpoint(path)
+    assert len(ckpt.pipeline.sessions.open) == n_open
+    assert orjson.loads(path.read_bytes())["pipeline"]["sessions"]["open"] == \
+        orjson.loads(capture(pipe, [], {"offset": 0, "count": 0}))["pipeline"]["sessions"]["open"]
 
 
 def _alert(n: int) -> dict:

@@ -16,6 +16,7 @@ import tempfile
 import time
 import zipfile
 from collections import Counter
+from collections.abc import Iterable
 from pathlib import Path
 
 import numpy as np
@@ -241,13 +242,18 @@ def _sha256(path: Path) -> str:
     return hashlib.sha256(path.read_bytes()).hexdigest()
 
 
-def atomic_write(path: Path, data: bytes) -> None:
-    """Write ``data`` to ``path`` via a temp file, fsync and rename: never a half-written file."""
+def atomic_write(path: Path, data: bytes | Iterable[bytes]) -> None:
+    """Write ``data`` (bytes, or pieces of bytes) to ``path`` via a temp file, fsync and rename:
+    never a half-written file."""
     path.parent.mkdir(parents=True, exist_ok=True)
     fd, tmp = tempfile.mkstemp(dir=path.parent, prefix=f".{path.name}.")
     try:
         with os.fdopen(fd, "wb") as fh:
-            fh.write(data)
+            if isinstance(data, bytes):
+                fh.write(data)
+            else:
+                for piece in data:
+                    fh.write(piece)
             fh.flush()
             os.fsync(fh.fileno())
         os.replace(tmp, path)

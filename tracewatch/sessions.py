@@ -33,7 +33,7 @@ from collections.abc import Callable, Sequence
 
 from .config import SessionsConfig
 
-MAX_SAMPLES = 5
+MAX_SAMPLES = 3  # raw sample lines kept per session for its alert (bounds memory per open session)
 
 
 class Session:
@@ -147,14 +147,24 @@ class Sessionizer:
             self._close(skey, "flush", closed)
 
     # -- live operation: checkpoints and baseline switches (daemon) -----------------------
-    def to_state(self) -> dict:
+    def to_state(self, *, with_open: bool = True) -> dict:
         """Open sessions (oldest activity first) and counters, JSON-ready, for a checkpoint."""
-        return {
-            "open": [[s.source, s.key, s.events, s.first_ts, s.last_ts, s.last_seen, s.first_raw,
-                      s.first_offset, s.samples] for s in self.open.values()],
-            "run_counts": dict(self._counts),
-            "evicted": self.evicted,
-        }
+        state = {"run_counts": dict(self._counts), "evicted": self.evicted}
+        if with_open:
+            state["open"] = [entry for part in self.open_state() for entry in part]
+        return state
+
+    def open_state(self, per_part: int = 5000):
+        """The open sessions as checkpoint entries, ``per_part`` at a time."""
+        part = []
+        for s in self.open.values():
+            part.append([s.source, s.key, s.events, s.first_ts, s.last_ts, s.last_seen, s.first_raw,
+                         s.first_offset, s.samples])
+            if len(part) >= per_part:
+                yield part
+                part = []
+        if part:
+            yield part
 
     def restore_state(self, state: dict) -> None:
         """Put back what :meth:`to_state` saved; replaces any open sessions."""

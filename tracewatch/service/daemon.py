@@ -39,7 +39,7 @@ from ..config import Config
 from ..errors import BaselineError, InputError, StateError
 from ..pipeline import Pipeline
 from ..sessions import LiveTime
-from ..sources.checkpoint import AlertJournal, capture, load_checkpoint, restore, save_checkpoint
+from ..sources.checkpoint import AlertJournal, capture_chunks, load_checkpoint, restore, save_checkpoint
 from ..sources.follow import Follower, Watcher, watch_dirs
 from .http import serve
 from .metrics import DaemonMetrics
@@ -214,8 +214,8 @@ class Daemon:
         self.pipe.tick(self.live())
         t0 = time.perf_counter()
         mark = self.journal.sync()
-        data = capture(self.pipe, self.follower.positions(self.pipe.held_from), mark)
-        save_checkpoint(self.checkpoint_path, data)
+        save_checkpoint(self.checkpoint_path,
+                        capture_chunks(self.pipe, self.follower.positions(self.pipe.held_from), mark))
         self.checkpoint_time = time.time()
         self.checkpoint_seconds = time.perf_counter() - t0
 

@@ -22,6 +22,7 @@ import logging
 import os
 import time
 from collections import Counter, deque
+from collections.abc import Iterable, Iterator
 from pathlib import Path
 from typing import Literal
 
@@ -99,24 +100,35 @@ class Checkpoint(_Strict):
 
 
 # -- save and load ------------------------------------------------------------------------------
-def capture(pipeline, files: list[dict], mark: dict) -> bytes:
+def capture_chunks(pipeline, files: list[dict], mark: dict, per_chunk: int = 5000) -> Iterator[bytes]:
     """The checkpoint of a pipeline (whose closed sessions are already scored), file positions
-    and the journal mark, serialised."""
+    and the journal mark, serialised as JSON in pieces: the open sessions go out a few thousand
+    at a time, so a checkpoint of 100k open sessions never sits in memory whole."""
     counters = {}
     for name in COUNTERS:
         counters[name] = [[list(k) if isinstance(k, tuple) else [k], n] for k, n in getattr(pipeline, name).items()]
-    state = {
-        "schema_version": SCHEMA_VERSION, "kind": "tracewatch-checkpoint", "written": time.time(),
-        "baseline_version": pipeline.baseline.version, "files": files,
-        "pipeline": {"watermark": pipeline.watermark, "counters": counters,
-                     "sessions": pipeline.sessionizer.to_state(),
-                     "templates": pipeline.miner.learned_state()},
-        "alerts": mark,
-    }
-    return orjson.dumps(state)
+    sessions = pipeline.sessionizer.to_state(with_open=False)
+    dumps = orjson.dumps
+    yield (b'{"schema_version":' + dumps(SCHEMA_VERSION) + b',"kind":"tracewatch-checkpoint","written":'
+           + dumps(time.time()) + b',"baseline_version":' + dumps(pipeline.baseline.version)
+           + b',"files":' + dumps(files) + b',"alerts":' + dumps(mark)
+           + b',"pipeline":{"watermark":' + dumps(pipeline.watermark) + b',"counters":' + dumps(counters)
+           + b',"templates":' + dumps(pipeline.miner.learned_state())
+           + b',"sessions":{"run_counts":' + dumps(sessions["run_counts"]) + b',"evicted":'
+           + dumps(sessions["evicted"]) + b',"open":[')
+    first = True
+    for part in pipeline.sessionizer.open_state(per_chunk):
+        yield (b"" if first else b",") + b",".join(map(dumps, part))
+        first = False
+    yield b"]}}}"
 
 
-def save_checkpoint(path: Path, data: bytes) -> None:
+def capture(pipeline, files: list[dict], mark: dict) -> bytes:
+    """:func:`capture_chunks` joined."""
+    return b"".join(capture_chunks(pipeline, files, mark))
+
+
+def save_checkpoint(path: Path, data: bytes | Iterable[bytes]) -> None:
     atomic_write(path, data)
 
 
