@@ -160,9 +160,9 @@ def toy_alert(alert_id: str, *unseen: str, t: float = 1_800_000_000.0, source: s
     alert = {"alert": True, "alert_id": alert_id, "source": source, "session_key": f"k-{alert_id}",
              "score": 9.0, "p_value": 0.001, "reasons": ["unseen_event"] if unseen else ["far_from_baseline"],
              "cluster": 0, "events": 3, "sequence": [], "start": t - 1, "end": t,
-             "unseen_events": [{"template_id": u, "template": f"event {u} <*>", "count": 1} for u in unseen],
-             "unexpected": [], "missing": [], "diff": [f"not seen before: event {u} <*>" for u in unseen],
-             "closest_normal": ["begin <*>", "end <*>"], "samples": [f"line of {alert_id}"]}
+             "unseen_events": [{"template_id": u, "template": f"event {u} <var>", "count": 1} for u in unseen],
+             "unexpected": [], "missing": [], "diff": [f"not seen before: event {u} <var>" for u in unseen],
+             "closest_normal": ["begin <var>", "end <var>"], "samples": [f"line of {alert_id}"]}
     alert.update(fields)
     return alert
 

@@ -29,7 +29,7 @@ def test_templates_without_config(tmp_path):
     proc = run_cli("templates", "--format", "text", str(log), check=True)
     rows = [orjson.loads(x) for x in proc.stdout.splitlines()]
     assert [r["line"] for r in rows] == [1, 2, 4]
-    assert rows[0]["template"] == rows[1]["template"] == "door <*> opened"
+    assert rows[0]["template"] == rows[1]["template"] == "door <var> opened"
     assert rows[0]["template_id"] == rows[1]["template_id"] != rows[2]["template_id"]
 
 

@@ -64,7 +64,7 @@ def test_medoid_is_the_representative(store):
     # the three {A} alerts are each at distance 0, 0, 0.282 from the others (sum 0.282); {A,B}
     # is at 0.282 from all three (sum 0.846): the medoid is an {A} alert
     assert rep["alert_id"] in {"a0", "a1", "a2"}
-    assert store.incident(iid)["title"] == "never-seen event 'event A <*>'"
+    assert store.incident(iid)["title"] == "never-seen event 'event A <var>'"
 
 
 def test_time_window(store):
@@ -158,8 +158,8 @@ def test_storm_gives_two_incidents_not_hundreds_of_notifications(storm_data, tmp
     # each fault is one incident, and each incident is one fault
     assert sorted(sorted(c) for c in by_incident.values()) == [[RETRY], [UNSEEN]]
     titles = sorted(r["title"] for r in rows)
-    assert titles[0].startswith("never-seen event 'latch sensor on door <*> reports jammed bolt'")
-    assert titles[1].startswith("retry of 'door <*> opened on locker <*>' repeated ")
+    assert titles[0].startswith("never-seen event 'latch sensor on door <var> reports jammed bolt'")
+    assert titles[1].startswith("retry of 'door <var> opened on locker <var>' repeated ")
     # per incident: opened, escalated at 10 and at 100 alerts — six in all, not hundreds
     assert len(received) == queued == 6
     got = Counter((b["incident"]["id"], b["event"], b["incident"].get("step")) for b in received)

@@ -84,7 +84,7 @@ def test_alertmanager_payload_resend_and_resolve(store, receiver):
     assert "endsAt" not in firing  # still firing: Alertmanager keeps it while we re-send
     assert firing["labels"] == {"team": "lockers", "alertname": "TracewatchIncident", "incident": str(iid),
                                 "tracewatch_store": store.store_id[:12]}
-    assert firing["annotations"]["summary"] == "never-seen event 'event A <*>'"
+    assert firing["annotations"]["summary"] == "never-seen event 'event A <var>'"
     assert firing["generatorURL"] == f"http://127.0.0.1:9464/incidents/{iid}"
     assert datetime.fromisoformat(firing["startsAt"]).timestamp() == pytest.approx(1_800_000_000.0)
     # clients re-send active alerts periodically (prometheus.io/docs/alerting/latest/clients/)

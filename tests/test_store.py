@@ -72,7 +72,7 @@ def test_cli_reads_while_the_daemon_writes(filled):
         writer.execute("ROLLBACK")
         writer.close()
     assert proc.returncode == 0, proc.stderr
-    assert "never-seen event 'event B <*>'" in proc.stdout and "not committed" not in proc.stdout
+    assert "never-seen event 'event B <var>'" in proc.stdout and "not committed" not in proc.stdout
 
 
 def test_cli_table_json_since_show_and_status(filled):
@@ -86,10 +86,10 @@ def test_cli_table_json_since_show_and_status(filled):
     recent = run_cli("incidents", *c, "--since", "1h", "--json", check=True).stdout.splitlines()
     assert [json.loads(x)["id"] for x in recent] == [2]
     shown = run_cli("incidents", "show", "2", *c, check=True).stdout
-    assert "incident #2: never-seen event 'event B <*>'" in shown
+    assert "incident #2: never-seen event 'event B <var>'" in shown
     assert "\x1b" not in shown and "?[31mred?[0m <b>bold</b>" in shown  # terminal-safe sample
     detail = json.loads(run_cli("incidents", "show", "2", *c, "--json", check=True).stdout)
-    assert detail["diff"] == ["not seen before: event B <*>"] and detail["representative"]["alert_id"] == "new"
+    assert detail["diff"] == ["not seen before: event B <var>"] and detail["representative"]["alert_id"] == "new"
     out = run_cli("incidents", "ack", "1", *c, "--note", "on it", check=True).stdout
     assert out.startswith("incident #1 is now acknowledged")
     assert json.loads(run_cli("incidents", "show", "1", *c, "--json", check=True).stdout)["note"] == "on it"

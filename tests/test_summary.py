@@ -13,14 +13,14 @@ from tracewatch.alerts.summary import MAX_SAMPLE, detail, safe, table, text, tit
 
 from .incident_data import config, storm, toy_alert
 
-DOOR = "door <*> opened on locker <*>"
+DOOR = "door <var> opened on locker <var>"
 
 
 @pytest.mark.parametrize("fields, expected", [
-    ({"unseen_events": [{"template_id": "t9", "template": "latch <*> jammed", "count": 2},
+    ({"unseen_events": [{"template_id": "t9", "template": "latch <var> jammed", "count": 2},
                         {"template_id": "t8", "template": "gateway timeout", "count": 1}]},
-     "never-seen event 'latch <*> jammed' (+1 more)"),
-    ({"diff": ["extra: x", f"repeated ×37 (normally ×1): {DOOR}", "repeated ×4: retry <*>"]},
+     "never-seen event 'latch <var> jammed' (+1 more)"),
+    ({"diff": ["extra: x", f"repeated ×37 (normally ×1): {DOOR}", "repeated ×4: retry <var>"]},
      f"retry of '{DOOR}' repeated 37× (+1 more)"),
     ({"diff": ["repeated ×2 (normally ×1): a"], "missing": [{"ngram": "a → b", "cluster_share": 1.0},
                                                            {"ngram": "deposit recorded", "cluster_share": 0.97}]},

@@ -14,15 +14,15 @@ from tracewatch.templates import TemplateMiner, mask
 @pytest.mark.parametrize(
     "message, masked",
     [
-        ("door 17 opened", "door <*> opened"),
-        ("GET /api/v1/lockers/42 from 10.1.2.3:5544 took 12.5ms", "GET <*> from <*> took <*>"),
-        ("user id 3f2a9c1e-1111-2222-3333-444455556666 ok", "user id <*> ok"),
-        ('label "fragile parcel" applied', "label <*> applied"),
-        ("crc 0xdeadbeef mismatch on blob a1b2c3d4e5", "crc <*> mismatch on blob <*>"),
-        ("fetch https://example.invalid/x?y=1 failed", "fetch <*> failed"),
-        ("retry 3/5 after 200ms", "retry <*> after <*>"),
-        ("weight=1234g, size=S", "weight=<*>, size=S"),
-        ("humidity 45% (room 3)", "humidity <*> (room <*>)"),
+        ("door 17 opened", "door <var> opened"),
+        ("GET /api/v1/lockers/42 from 10.1.2.3:5544 took 12.5ms", "GET <var> from <var> took <var>"),
+        ("user id 3f2a9c1e-1111-2222-3333-444455556666 ok", "user id <var> ok"),
+        ('label "fragile parcel" applied', "label <var> applied"),
+        ("crc 0xdeadbeef mismatch on blob a1b2c3d4e5", "crc <var> mismatch on blob <var>"),
+        ("fetch https://example.invalid/x?y=1 failed", "fetch <var> failed"),
+        ("retry 3/5 after 200ms", "retry <var> after <var>"),
+        ("weight=1234g, size=S", "weight=<var>, size=S"),
+        ("humidity 45% (room 3)", "humidity <var> (room <var>)"),
         ("connection reset by peer", "connection reset by peer"),
         ("  spaced   out  ", "spaced out"),
     ],
@@ -37,7 +37,7 @@ def test_miner_merges_similar_messages_and_keeps_routes_apart():
     m = TemplateMiner(depth=4, similarity=0.5)
     a = m.add("compartment 5 reserved for parcel PX1 by courier alice")
     b = m.add("compartment 9 reserved for parcel PX2 by courier bob")
-    assert a == b and m.text(a) == "compartment <*> reserved for parcel <*> by courier <*>"
+    assert a == b and m.text(a) == "compartment <var> reserved for parcel <var> by courier <var>"
     # with depth 4 the first two tokens route a message: a different second token leads to
     # another leaf and is never merged (He et al. 2017, section on the fixed-depth tree)
     r1 = m.add("parcel returned to sender PX1 today")
@@ -45,7 +45,7 @@ def test_miner_merges_similar_messages_and_keeps_routes_apart():
     assert r1 != r2
     # past the routing tokens, similar messages merge: 5 of 6 tokens equal ≥ similarity 0.5
     c = m.add("compartment 5 released for parcel PX1 by courier alice")
-    assert c == a and m.text(a) == "compartment <*> <*> for parcel <*> by courier <*>"
+    assert c == a and m.text(a) == "compartment <var> <var> for parcel <var> by courier <var>"
     # a different token count is a different template
     assert m.add("compartment 5 reserved") not in (a, c)
 

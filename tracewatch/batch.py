@@ -7,13 +7,12 @@ from the config's ``paths`` globs, or — with a single source — is that sourc
 from __future__ import annotations
 
 import fnmatch
-from collections.abc import Iterator
 from pathlib import Path
 
 from .config import Config
 from .errors import ConfigError, InputError
 from .pipeline import Pipeline
-from .sources.files import expand_inputs, read_blocks, read_lines
+from .sources.files import expand_inputs, read_blocks
 
 
 def assign_sources(cfg: Config, inputs: list[str], source: str | None = None) -> list[tuple[str, Path]]:
@@ -45,10 +44,6 @@ def assign_sources(cfg: Config, inputs: list[str], source: str | None = None) ->
                 raise InputError(f"{path}: {why}; say which with --source NAME")
             pairs.append((hits[0], path))
     return pairs
-
-
-def iter_file(cfg: Config, source: str, path: Path) -> Iterator[tuple[str, int, str | None]]:
-    return read_lines(path, cfg.source(source).max_line_bytes)
 
 
 def run_files(pipeline: Pipeline, pairs: list[tuple[str, Path]]) -> None:

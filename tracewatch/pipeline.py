@@ -27,7 +27,6 @@ from .templates import TemplateMiner
 
 SCORE_BATCH = 256
 TICK_EVERY = 1024
-MAX_REJECT_SAMPLES = 100
 
 
 class Pipeline:
@@ -59,7 +58,6 @@ class Pipeline:
         self.lines = Counter()  # source -> lines read
         self.sessions_scored = Counter()  # source -> sessions
         self.alerts = Counter()  # (source, reason) -> alerts
-        self.reject_samples: list[dict] = []
 
     # -- input ---------------------------------------------------------------------------
     def _format(self, source: str, stream: str) -> Format:
@@ -70,14 +68,7 @@ class Pipeline:
 
     def feed_line(self, source: str, stream: str, line: str, offset: int = -1,
                   repair: str | None = None) -> None:
-        self.lines[source] += 1
-        if repair is not None:
-            self.repaired[(source, repair)] += 1
-        for item in items(self._format(source, stream).feed(line, offset)):
-            if type(item) is Record:
-                self.feed_record(item)
-            else:
-                self._take(source, item)
+        self.feed_lines(source, stream, ((line, offset, repair),))
 
     def feed_lines(self, source: str, stream: str, lines) -> None:
         """Feed ``(line, offset, repair)`` triples of one stream: the same as calling
@@ -161,9 +152,6 @@ class Pipeline:
             self.feed_record(item)
             return
         self.rejected[(source, item.reason)] += 1
-        if len(self.reject_samples) < MAX_REJECT_SAMPLES:
-            self.reject_samples.append({"source": source, "reason": item.reason,
-                                        "line": self.redact(item.raw[:500])})
         # bounded, redacted sample on disk: <state_dir>/rejects.jsonl
         reject_log(self.cfg.state_dir).add(source, item.reason, item.raw, self.redact)
         if item.record is not None:

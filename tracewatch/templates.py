@@ -1,12 +1,12 @@
 """Templates: a record's message becomes an event template.
 
 Stage: formats → **templates** → sessions. Variable parts (quoted values, URLs, paths and any
-token holding a digit: numbers, ids, hex, UUIDs, IPs, durations) are masked to ``<*>``;
+token holding a digit: numbers, ids, hex, UUIDs, IPs, durations) are masked to ``<var>``;
 then an online miner groups messages by token count and leading tokens and merges similar
 ones into templates with wildcards — the fixed-depth prefix-tree method:
 
-    P. He, J. Zhu, Z. Zheng, M. R. Lyu, "Drain: An Online Log Parsing Approach with Fixed
-    Depth Tree", IEEE ICWS 2017.
+    P. He, J. Zhu, Z. Zheng, M. R. Lyu, IEEE International Conference on Web Services
+    (ICWS) 2017, pp. 33–40.
 
 Each template gets a stable id (a hash of the first masked message that created it) and a
 dense index used by the feature stage. Structured records (span names, syscalls) carry an
@@ -22,7 +22,7 @@ from collections import Counter
 from operator import methodcaller
 from dataclasses import dataclass
 
-WILDCARD = "<*>"
+WILDCARD = "<var>"
 
 _QUOTED = re.compile(r'"[^"]*"')
 _TRAILING = ",;:.)]}>'"
@@ -52,7 +52,7 @@ def _mask_token(tok: str) -> str:
 
 
 def mask(message: str) -> str:
-    """The message with every variable part replaced by ``<*>``, whitespace normalised.
+    """The message with every variable part replaced by ``<var>``, whitespace normalised.
 
     Variable parts: double-quoted values, URLs, absolute paths, and any token holding a digit
     (numbers, ids, hex, UUIDs, IPs, durations, versions — common practice in template mining),
@@ -88,7 +88,7 @@ class TemplateMiner:
 
     ``depth`` counts the tree levels including the root and the length layer, so the first
     ``depth - 2`` tokens route a message; ``similarity`` is the share of equal tokens needed to
-    join a template; a node with ``max_children`` children sends new tokens to ``<*>``.
+    join a template; a node with ``max_children`` children sends new tokens to ``<var>``.
     """
 
     def __init__(self, depth: int = 4, similarity: float = 0.5, max_children: int = 100,
@@ -102,40 +102,32 @@ class TemplateMiner:
         self._tree: dict = {}
         self._events: dict[str, int] = {}
         self._masked: dict[str, int] = {}  # masked message -> template index
-        self._raw: dict[bytes, int] = {}  # message shape (digits as 0) -> template index (bounded)
+        self._by_shape: dict[bytes, int] = {}  # message shape (digits as 0) -> template index (bounded)
         self.frozen = False
         self.n_seen = 0  # templates with index < n_seen belong to the baseline
 
     # -- public -----------------------------------------------------------------
     def add(self, message: str) -> int:
         """Template index for a message (creating or generalising a template as needed)."""
-        # Messages that differ only in their digits mask alike (a token with a digit keeps
-        # one), so the message with every digit turned into 0 is a cache key that skips the
-        # masking for most lines seen before.
-        shape = message.encode("utf-8", "surrogatepass").translate(_ZERO_DIGITS)  # = _shape_of, inlined
-        idx = self._raw.get(shape)
-        if idx is None:
-            idx = self._add_masked(mask(message))
-            if len(self._raw) < self.cache_size:
-                self._raw[shape] = idx
-        self.templates[idx].count += 1
-        return idx
+        return self.add_many([message])[0]
 
     def add_many(self, messages: list[str]) -> list[int]:
-        """Template indices of many messages: the same as :meth:`add` on each in order, with
-        the cache lookups done in C (``map``) and only new shapes handled one by one."""
+        """Template indices of many messages, in order. Messages that differ only in their
+        digits mask alike (a token with a digit becomes one wildcard), so the message with every
+        digit turned into 0 keys a cache that skips the masking for most lines seen before;
+        the lookups run in C (``map``) and only new shapes are handled one by one."""
         shapes = list(map(_shape_of, messages))
-        idxs = list(map(self._raw.get, shapes))
+        idxs = list(map(self._by_shape.get, shapes))
         if None in idxs:
-            raw, full = self._raw, len(self._raw) >= self.cache_size
+            by_shape, full = self._by_shape, len(self._by_shape) >= self.cache_size
             for i, idx in enumerate(idxs):
                 if idx is None:
-                    idx = raw.get(shapes[i])  # an earlier message of this block may have added it
+                    idx = by_shape.get(shapes[i])  # an earlier message of this block may have added it
                     if idx is None:
                         idx = self._add_masked(mask(messages[i]))
                         if not full:
-                            raw[shapes[i]] = idx
-                            full = len(raw) >= self.cache_size
+                            by_shape[shapes[i]] = idx
+                            full = len(by_shape) >= self.cache_size
                     idxs[i] = idx
         templates = self.templates
         for idx, n in Counter(idxs).items():
@@ -155,7 +147,7 @@ class TemplateMiner:
         """From now on baseline templates never change; new ones are marked unseen."""
         self.frozen = True
         self.n_seen = len(self.templates)
-        self._raw.clear()
+        self._by_shape.clear()
 
     def text(self, idx: int) -> str:
         return self.templates[idx].text

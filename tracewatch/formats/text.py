@@ -32,9 +32,8 @@ class TextFormat:
         # feed(line, offset) -> Output: the per-line entry point, chosen once per instance
         self.feed = self._feed_multiline if self._cont is not None else self._parse
 
-    def _key_of(self, line: str, key: str | None) -> str | None:
-        if key is not None:
-            return key
+    def _key_of(self, line: str) -> str | None:
+        """The session key found by the ``session_key`` regex, if any."""
         if self._key is not None:
             m = self._key.search(line)
             if m is not None:
@@ -47,7 +46,7 @@ class TextFormat:
         if m is None:
             if not line.strip():
                 return [Rejection("empty", line)]
-            rec = Record(self.source, self._key_of(line, None), None, None, line, line, offset)
+            rec = Record(self.source, self._key_of(line), None, None, line, line, offset)
             return rec if pattern is None else [Rejection("no_match", line, rec)]
         # one call for all four groups; an absent group's index is 0 (the whole match), never used
         message, ts, level, key = m.group(*self._gi)
@@ -55,7 +54,7 @@ class TextFormat:
         if not gkey:
             key = None
         if key is None and self._key is not None:
-            key = self._key_of(line, None)
+            key = self._key_of(line)
         return Record(self.source, key, parse_timestamp(ts) if gts else None,
                       level if glevel else None, message or "", line, offset)
 
@@ -90,7 +89,7 @@ class TextFormat:
         messages, stamps, _, keys = zip(*map(self._groups, matches))
         keys = list(keys) if gkey else [None] * len(lines)
         if self._key is not None and None in keys:
-            keys = [k if k is not None else self._key_of(line, None) for k, line in zip(keys, lines)]
+            keys = [k if k is not None else self._key_of(line) for k, line in zip(keys, lines)]
         return keys, timestamps(stamps) if gts else [None] * len(lines), list(messages)
 
     @property
