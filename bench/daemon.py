@@ -12,7 +12,9 @@ daemon is started and queried with the integration tests' helpers, tests/test_da
    writing; for each alert, the time from its session's last line to the alert appearing in
    alerts.jsonl (sessions closed by the end pattern, and by the idle timeout beyond the timeout);
 3. memory: sessions opened and never closed (idle timeout of an hour), more of them than
-   ``max_open_sessions``; peak RSS (VmHWM) of the daemon for two bounds, and the checkpoint size.
+   ``max_open_sessions``; peak RSS (VmHWM) of the daemon for two bounds, and the checkpoint size;
+   then all of them open with a wide baseline of about 50k n-grams (``fit_wide``: 5,000 sessions
+   of 300 kinds of locker self-test in random order).
 
 Also usable from bench/run.py (``run(ctx)``). Prints a table and writes bench/out/daemon.json.
 Nothing here asserts a timing.
@@ -170,13 +172,17 @@ def delay(root: Path, baselines: Path, seconds: float, rate: float) -> dict:
             "idle_p99_ms": 1000 * percentile(by_idle, 99)}
 
 
-def memory(root: Path, baselines: Path, n_open: int, bound: int) -> dict:
-    """``n_open`` whole normal sessions (health checks) written within ten minutes of event time
-    and never closed (idle timeout of an hour, no end pattern); at most ``bound`` are kept."""
-    sc = parcel_lockers()
-    only_health = Scenario(sc.service, {"health": (1.0, health)}, sc.novel)
-    lines = render_text(only_health, generate(only_health, n_open, 0, seed=23, span_s=600))
-    ws = Workspace(root, f"memory-{bound}", baselines, idle=3600, max_open=bound, end_pattern="(?!)")
+def memory(root: Path, baselines: Path, n_open: int, bound: int, *, wide: int = 0) -> dict:
+    """``n_open`` whole normal sessions (health checks; with ``wide``, two self-tests each from the
+    wide baseline's traffic) written within ten minutes of event time and never closed (idle
+    timeout of an hour, no end pattern); at most ``bound`` are kept."""
+    if wide:
+        lines = wide_lines(n_open, 2, seed=25, per_s=n_open / 600)
+    else:
+        sc = parcel_lockers()
+        only_health = Scenario(sc.service, {"health": (1.0, health)}, sc.novel)
+        lines = render_text(only_health, generate(only_health, n_open, 0, seed=23, span_s=600))
+    ws = Workspace(root, f"memory-{bound}-{wide}", baselines, idle=3600, max_open=bound, end_pattern="(?!)")
     ws.start()
     idle_rss = ws.peak_rss_mb()
     t0 = time.perf_counter()
@@ -192,10 +198,49 @@ def memory(root: Path, baselines: Path, n_open: int, bound: int) -> dict:
     s0 = time.perf_counter()
     ws.stop()  # the final checkpoint
     stop_s = time.perf_counter() - s0
-    return {"bound": bound, "sessions_written": n_open, "lines": len(lines), "open": status["sessions_open"],
+    return {"bound": bound, "ngrams": wide, "sessions_written": n_open, "lines": len(lines),
+            "open": status["sessions_open"],
             "evicted": status["sessions_evicted"], "idle_rss_mb": idle_rss, "peak_rss_mb": rss,
             "checkpoint_mb": ckpt_mb, "checkpoint_s": status["checkpoint"]["seconds"],
             "ingest_s": ingest_s, "stop_s": stop_s}
+
+
+# the wide baseline: locker self-tests, 300 kinds, run in random order, so that the baseline holds
+# tens of thousands of event n-grams (the memory target names a baseline of 50k n-grams)
+PARTS = ("door", "latch", "heater", "display", "keypad", "camera", "scale", "lock", "fan", "light",
+         "relay", "battery")
+CHECKS = ("probe", "reset", "sync", "report", "calibrate", "sweep", "drain", "charge", "flash", "verify",
+          "rotate", "purge", "scan", "pulse", "align", "warmup", "cooldown", "lookup", "measure", "record",
+          "compare", "rinse", "park", "wake", "seal")
+
+
+def wide_lines(n_sessions: int, steps: int, seed: int, per_s: float = 2.0, start: float = 1_764_460_800.0
+               ) -> list[str]:
+    """Text lines (the demo's line layout) of ``n_sessions`` self-test sessions of ``steps`` random
+    self-tests each, ``per_s`` sessions a second, each session's steps 10 ms apart."""
+    import random
+
+    rng = random.Random(seed)
+    kinds = [f"{part} {check}" for part in PARTS for check in CHECKS]  # two leading words: 300 templates
+    timed = []
+    for i in range(n_sessions):
+        key, t0 = f"{rng.getrandbits(64):016x}", start + i / per_s
+        for j in range(steps):
+            stamp = datetime.fromtimestamp(t0 + j / 100, tz=timezone.utc).isoformat(timespec="milliseconds")
+            timed.append((t0 + j / 100, f"{stamp[:-6]}Z INFO [locker-api] req={key} {rng.choice(kinds)} "
+                                        f"self-test passed on locker LK-{rng.randrange(1000)}"))
+    timed.sort(key=lambda x: x[0])
+    return [line for _, line in timed]
+
+
+def fit_wide(root: Path, n_sessions: int) -> tuple[Path, int]:
+    """A baseline fitted on wide self-test traffic; returns its folder and its n-gram count."""
+    cfg_path = write_config(root / "fit-wide", 1, idle=IDLE_S, end_pattern=END_PATTERN)
+    cfg = load_config(cfg_path)
+    base = root / "fit-wide" / "baseline.txt"
+    base.write_text("\n".join(wide_lines(n_sessions, 8, seed=24)) + "\n")
+    baseline, _, _ = fit_files(cfg, assign_sources(cfg, [str(base)]))
+    return root / "fit-wide" / "state" / "baselines", len(baseline.vectorizer.vocabulary_)
 
 
 # -- driver -------------------------------------------------------------------------------------------
@@ -212,9 +257,11 @@ def measure(n_lines: int, n_open: int, delay_s: float, rate: float) -> dict:
     root = Path(tempfile.mkdtemp(prefix="tracewatch-bench-daemon-"))
     try:
         baselines = fit(root)
+        wide, n_grams = fit_wide(root, 5000)
         out = {"throughput": throughput(root, baselines, n_lines),
                "delay": delay(root, baselines, delay_s, rate),
-               "memory": [memory(root, baselines, n_open, bound) for bound in (n_open // 5, n_open)]}
+               "memory": [memory(root, baselines, n_open, bound) for bound in (n_open // 5, n_open)]
+               + [memory(root, wide, n_open, n_open, wide=n_grams)]}
     finally:
         shutil.rmtree(root, ignore_errors=True)
     return out
@@ -232,7 +279,8 @@ def report(r: dict) -> str:
            f"p50 {d['idle_p50_ms']:.0f} ms, p99 {d['idle_p99_ms']:.0f} ms",
            "memory (sessions opened and never closed):"]
     for m in r["memory"]:
-        out.append(f"  max_open_sessions {m['bound']:>7}: {m['sessions_written']} written, {m['open']} open, "
+        base = f"baseline of {m['ngrams']} n-grams" if m["ngrams"] else "demo baseline"
+        out.append(f"  {base}, max_open_sessions {m['bound']:>7}: {m['sessions_written']} written, {m['open']} open, "
                    f"{m['evicted']} evicted; peak RSS {m['peak_rss_mb']:.0f} MB (idle daemon "
                    f"{m['idle_rss_mb']:.0f} MB); checkpoint {m['checkpoint_mb']:.1f} MB written in "
                    f"{m['checkpoint_s']:.2f} s; {m['lines']} lines ingested in {m['ingest_s']:.1f} s; "
@@ -246,7 +294,8 @@ def run(ctx) -> None:
     t = r["throughput"]
     ctx.row("daemon", "live ingest + scoring", t["lines"], t["ingest_s"], t["rss_mb"])
     for m in r["memory"]:
-        ctx.row("daemon", f"{m['sessions_written']} open, cap {m['bound']}", m["lines"],
+        base = f", {m['ngrams']} n-gram baseline" if m["ngrams"] else ""
+        ctx.row("daemon", f"{m['sessions_written']} open, cap {m['bound']}{base}", m["lines"],
                 m["ingest_s"], m["peak_rss_mb"])
     print(report(r), file=sys.stderr)
 

@@ -30,8 +30,7 @@ def fitted(tmp_path_factory):
 
 
 def _feed(pipe: Pipeline, lines: list[str], start: int) -> None:
-    for i, line in enumerate(lines, start):
-        pipe.feed_line("api", "day", line, i)
+    pipe.feed_lines("api", "day", [(line, i, None) for i, line in enumerate(lines, start)])
 
 
 def test_restored_pipeline_gives_the_verdicts_of_an_uninterrupted_run(fitted, tmp_path):
@@ -94,7 +93,7 @@ def test_a_session_naming_an_unknown_template_is_refused(fitted, tmp_path):
 def test_checkpoint_written_in_pieces_is_the_same_document(fitted, tmp_path):
     # the daemon writes the open sessions a few at a time; the file must be one valid checkpoint
     cfg, lines = fitted
-    pipe = Pipeline(cfg, load_baseline(cfg.state_dir))
+    pipe = Pipeline(cfg, load_baseline(cfg.state_dir), clock=lambda: 0.0)  # ticks only when told, as the daemon's
     _feed(pipe, lines[:200], 0)
     n_open = len(pipe.sessionizer.open)
     assert n_open > 3

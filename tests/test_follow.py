@@ -27,8 +27,9 @@ class Recorder:
         self.lines: list[tuple[str, str, str, int, str | None]] = []
         self.ended: list[tuple[str, str]] = []
 
-    def feed_lines(self, source, stream, lines) -> None:
-        self.lines.extend((source, stream, line, offset, repair) for line, offset, repair in lines)
+    def feed_block(self, source, stream, lines, offsets, repairs) -> None:
+        self.lines.extend((source, stream, line, offset, repair)
+                          for line, offset, repair in zip(lines, offsets, repairs or [None] * len(lines)))
 
     def end_stream(self, source, stream) -> None:
         self.ended.append((source, stream))

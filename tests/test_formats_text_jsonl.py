@@ -8,9 +8,12 @@ import time
 from datetime import datetime, timezone
 
 import orjson
+import pytest
+from hypothesis import given, settings
+from hypothesis import strategies as st
 
 from tracewatch.config import SourceConfig
-from tracewatch.formats import items, parse_timestamp
+from tracewatch.formats import _iso_block, items, parse_timestamp, timestamps
 from tracewatch.formats.jsonl import JsonlFormat
 from tracewatch.formats.text import TextFormat
 from tracewatch.records import Record, Rejection
@@ -126,3 +129,41 @@ def test_match_block_equals_the_per_line_path():
         assert stamps == [r.ts for r in one_by_one]
         assert messages == [r.message for r in one_by_one]
         assert fmt.match_block(lines + ["", "{not json"]) is None
+
+
+_LAYOUT = st.tuples(st.sampled_from("T "), st.integers(0, 6), st.sampled_from(".,"),
+                    st.sampled_from(["", "Z", "+00:00", "+05:30", "-08:00", "+14:00", "-23:59"]))
+_MOMENT = st.datetimes(min_value=datetime(1700, 1, 1), max_value=datetime(2255, 1, 1))  # exact as doubles
+
+
+@settings(max_examples=300, deadline=None)
+@given(layout=_LAYOUT, moments=st.lists(_MOMENT, min_size=1, max_size=40))
+def test_block_timestamps_equal_datetime(layout, moments):
+    """``timestamps`` of a block sharing one layout (the numpy path) equals, exactly,
+    Python's own ``datetime.fromisoformat(...).timestamp()`` of each text (the reference;
+    times without a zone taken as UTC, as parse_timestamp does)."""
+    sep, frac, dot, zone = layout
+    texts = []
+    for m in moments:
+        text = m.strftime(f"%Y-%m-%d{sep}%H:%M:%S")
+        if frac:
+            text += dot + f"{m.microsecond:06d}"[:frac]
+        texts.append(text + zone)
+    expected = []
+    for text in texts:
+        dt = datetime.fromisoformat(text.replace(",", "."))
+        expected.append(dt.replace(tzinfo=dt.tzinfo or timezone.utc).timestamp())
+    assert _iso_block(texts) is not None  # this layout takes the block path
+    assert timestamps(texts) == expected
+
+
+@pytest.mark.parametrize("texts", [
+    ["2026-11-30T10:00:00Z", "2026-11-30T10:00:01+01:00"],  # layouts differ
+    ["2026-02-30T10:00:00Z"],  # no such day
+    ["2026-11-30T24:00:00Z"],  # no such hour
+    ["2026-11-30T10:00:00.1234567Z"],  # beyond microseconds
+    ["2026-11-30T10:00:00Z", "2026-11-30T10:00:0xZ"],  # not a digit
+], ids=["mixed-layouts", "february-30", "hour-24", "nanoseconds", "not-a-digit"])
+def test_block_timestamps_fall_back_to_the_general_path(texts):
+    assert _iso_block(texts) is None
+    assert timestamps(texts) == [parse_timestamp(t) for t in texts]

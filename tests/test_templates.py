@@ -6,9 +6,11 @@ import random
 from collections import defaultdict
 
 import pytest
+from hypothesis import given, settings
+from hypothesis import strategies as st
 
 from tracewatch.demo.scenario import deposit, health, pickup, returns
-from tracewatch.templates import TemplateMiner, mask
+from tracewatch.templates import TemplateMiner, _coarse, _shapes, mask
 
 
 @pytest.mark.parametrize(
@@ -98,3 +100,31 @@ def test_grouping_accuracy_on_generated_corpus():
     print(f"grouping accuracy {acc:.4f} over {len(msgs)} messages, {len(set(truth))} true templates, "
           f"{len(miner.templates)} mined")
     assert acc >= 0.98
+
+
+_TOKEN = st.text(alphabet="abcdefxyzABCF0123456789-=/:.,;)]'\"", min_size=1, max_size=10)
+_MESSAGE = st.lists(st.one_of(_TOKEN, st.sampled_from(["door", "opened", "req=", "id=7", "http://x/1"])),
+                    min_size=1, max_size=6).map(" ".join)
+
+
+@settings(max_examples=500, deadline=None)
+@given(st.lists(_MESSAGE, min_size=2, max_size=30))
+def test_cache_keys_never_join_messages_that_mask_differently(messages):
+    """Both template caches (the digit shape and the coarse shape with id-like runs as one 0)
+    may only put together messages that ``mask`` alike; so ``add_many`` must give exactly the
+    templates a miner without caches (``mask`` of every message) gives."""
+    shapes = _shapes(messages)
+    for message, shape, coarse in zip(messages, shapes, _coarse(shapes)):
+        # a key read as a message masks as the message does, so messages sharing a key agree
+        assert mask(shape.decode()) == mask(message)
+        assert mask(coarse.decode()) == mask(message)
+    cached, plain = TemplateMiner(), TemplateMiner()
+    assert cached.add_many(messages) == [plain._add_masked(mask(m)) for m in messages]
+
+
+def test_ids_share_one_coarse_key():
+    uuids = ["3f2a9c1e-1111-2222-3333-444455556666", "aafed3de-70ae-c116-c3c0-29786e69a8c4"]
+    shapes = _shapes([f"notification queued for recipient {u} via app" for u in uuids])
+    assert shapes[0] != shapes[1] and len(set(_coarse(shapes))) == 1
+    # a long run of hex letters with no digit is scanned once, not once per position
+    assert _coarse([b"a" * 100_000]) == [b"a" * 100_000]

@@ -32,7 +32,7 @@ from .model.calibrate import ConformalThreshold
 from .model.score import SessionScorer
 from .templates import TemplateMiner
 
-SCHEMA_VERSION = 1
+SCHEMA_VERSION = 2  # 2: templates masked to <var> (schema 1 baselines used another marker)
 MIN_SESSIONS = 10
 FIT_BLOCK = 50_000  # distinct rows vectorised (and counted per cluster) at a time
 POOLED = "*"

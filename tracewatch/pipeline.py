@@ -20,7 +20,7 @@ from .alerts.alert import Redactor, build_verdict
 from .baselines import Baseline
 from .config import Config
 from .formats import Format, items, make_format
-from .records import Record, Rejection
+from .records import Record
 from .rejects import reject_log
 from .sessions import Session, Sessionizer
 from .templates import TemplateMiner
@@ -32,8 +32,12 @@ TICK_EVERY = 1024
 class Pipeline:
     def __init__(self, cfg: Config, baseline: Baseline | None = None, *,
                  on_verdict: Callable[[dict], None] | None = None, score_all: bool = False,
-                 clock: Callable[[], float] | None = None) -> None:
+                 clock: Callable[[], float] | None = None,
+                 on_quiet: Callable[[str, tuple[int, ...]], None] | None = None) -> None:
         self.cfg = cfg
+        # refit (tracewatch/refit.py): called with (source, event sequence) of every scored
+        # session that raised nothing
+        self.on_quiet = on_quiet
         self.baseline = baseline
         tcfg = cfg.templates
         self.miner = baseline.miner if baseline else TemplateMiner(tcfg.depth, tcfg.similarity, tcfg.max_children)
@@ -48,7 +52,6 @@ class Pipeline:
         self._closed: list[Session] = []
         self._watermark = 0.0
         self._file_watermark = 0.0  # batch: newest record time of the file being read
-        self._since_tick = 0
         # fit mode: (source, key, sequence) of every closed session
         self.collected: list[tuple[str, str, tuple[int, ...]]] = []
         # plain counters; the metrics module exports them
@@ -71,40 +74,31 @@ class Pipeline:
         self.feed_lines(source, stream, ((line, offset, repair),))
 
     def feed_lines(self, source: str, stream: str, lines) -> None:
-        """Feed ``(line, offset, repair)`` triples of one stream: the same as calling
-        :meth:`feed_line` for each, with the per-line lookups done once. A list of cleanly
-        decoded lines (what the daemon's followers hand on) goes the block way."""
-        if type(lines) is list and lines:
-            texts, offsets, repairs = zip(*lines)
-            if not any(repairs):
-                self.feed_block(source, stream, list(texts), list(offsets))
-                return
-        feed = self._format(source, stream).feed
-        add, take, repaired = self._add_record, self._take, self.repaired
-        n = n_records = 0
+        """Feed ``(line, offset, repair)`` triples of one stream, line by line through the
+        format; its records go on through the stages ``TICK_EVERY`` at a time."""
+        feed, repaired = self._format(source, stream).feed, self.repaired
+        records: list[Record] = []
+        n = 0
         for line, offset, repair in lines:
             n += 1
             if repair is not None:
                 repaired[(source, repair)] += 1
             out = feed(line, offset)
             if type(out) is Record:  # the common case: one line, one record
-                n_records += 1
-                add(out)
-                continue
-            for item in out:
-                if type(item) is Record:
-                    n_records += 1
-                    add(item)
-                else:
-                    take(source, item)
+                records.append(out)
+            else:
+                records += self._accept(source, out)
+            if len(records) >= TICK_EVERY:
+                self._add_records(source, records)
+                records = []
         self.lines[source] += n
-        self.records[source] += n_records
+        self._add_records(source, records)
 
     def feed_block(self, source: str, stream: str, lines: list[str], offsets: list[int],
                    repairs: list[str | None] | None = None) -> None:
-        """Feed a block of lines of one stream (``repairs`` None: all decoded cleanly). The same
-        as :meth:`feed_lines`; when the format can read the whole block at once
-        (``match_block``), its records go through the stages column by column."""
+        """Feed a block of lines of one stream (``repairs`` None: all decoded cleanly) — what
+        the batch reader and the daemon's followers hand on. The same as :meth:`feed_lines`;
+        when the format can read the whole block at once (``match_block``), it does."""
         match_block = getattr(self._format(source, stream), "match_block", None)
         columns = match_block(lines) if match_block is not None and repairs is None and lines else None
         if columns is None:
@@ -115,11 +109,41 @@ class Pipeline:
         keys, stamps, messages = columns
         self._add_columns(source, keys, stamps, self.miner.add_many(messages), lines, offsets, messages)
 
+    def _accept(self, source: str, out) -> list[Record]:
+        """The records among a format's output; rejections are counted and sampled, and the
+        whole-line record a rejection may carry is kept."""
+        records = []
+        for item in out:
+            if type(item) is not Record:
+                self.rejected[(source, item.reason)] += 1
+                # bounded, redacted sample on disk: <state_dir>/rejects.jsonl
+                reject_log(self.cfg.state_dir).add(source, item.reason, item.raw, self.redact)
+                item = item.record
+            if item is not None:
+                records.append(item)
+        return records
+
+    def _add_records(self, source: str, records: list[Record]) -> None:
+        """Records of one source as columns: messages become templates in one go (structured
+        events one by one), then :meth:`_add_columns`."""
+        if not records:
+            return
+        self.records[source] += len(records)
+        messages = [r.message for r in records]
+        events = [r.event for r in records]
+        if events.count(None) == len(events):
+            idxs = self.miner.add_many(messages)
+        else:
+            miner = self.miner
+            idxs = [miner.add(m) if e is None else miner.add_event(e) for m, e in zip(messages, events)]
+        self._add_columns(source, [r.key for r in records], [r.ts for r in records], idxs,
+                          [r.raw for r in records], [r.offset for r in records], messages)
+
     def _add_columns(self, source: str, keys: list, stamps: list, idxs: list[int], raws: list[str],
                      offsets: list[int], messages: list[str]) -> None:
-        """:meth:`_add_record` for many records whose template indices are already known: the
-        sessionizer takes them ``TICK_EVERY`` at a time, then idle sessions are closed and
-        closed sessions scored, as the per-record path does."""
+        """Records whose template indices are known, as columns: the sessionizer takes them
+        ``TICK_EVERY`` at a time, then (batch) idle sessions are closed, and closed sessions
+        are scored ``SCORE_BATCH`` at a time."""
         for lo in range(0, len(keys), TICK_EVERY):
             hi = lo + TICK_EVERY
             now = self.clock() if self.clock is not None else self._file_watermark
@@ -142,42 +166,9 @@ class Pipeline:
         time of the file before."""
         fmt = self._formats.pop((source, stream), None)
         if fmt is not None:
-            for item in fmt.flush():
-                self._take(source, item)
+            self._add_records(source, self._accept(source, fmt.flush()))
         if self.clock is None:
             self._file_watermark = 0.0
-
-    def _take(self, source: str, item: Record | Rejection) -> None:
-        if type(item) is Record:
-            self.feed_record(item)
-            return
-        self.rejected[(source, item.reason)] += 1
-        # bounded, redacted sample on disk: <state_dir>/rejects.jsonl
-        reject_log(self.cfg.state_dir).add(source, item.reason, item.raw, self.redact)
-        if item.record is not None:
-            self.feed_record(item.record)
-
-    def feed_record(self, rec: Record) -> None:
-        self.records[rec.source] += 1
-        self._add_record(rec)
-
-    def _add_record(self, rec: Record) -> None:
-        idx = self.miner.add_event(rec.event) if rec.event is not None else self.miner.add(rec.message)
-        ts = rec.ts
-        if ts is not None:
-            if ts > self._watermark:
-                self._watermark = ts
-            if ts > self._file_watermark:
-                self._file_watermark = ts
-        now = self.clock() if self.clock is not None else self._file_watermark
-        closed = self._closed
-        self.sessionizer.add(rec.source, rec.key, ts, now, idx, rec.raw, rec.offset, rec.message, closed)
-        self._since_tick += 1
-        if self._since_tick >= TICK_EVERY and self.clock is None:
-            self._since_tick = 0
-            self.sessionizer.tick(self._file_watermark, closed)
-        if len(closed) >= SCORE_BATCH:
-            self._drain()
 
     # -- time and the end ------------------------------------------------------------------
     def tick(self, now: float) -> None:
@@ -215,10 +206,13 @@ class Pipeline:
             p_values[rows] = b.conformal(source).p_values([results[i][0] for i in rows])
         rate = b.false_alarm_rate
         n_seen = self.miner.n_seen
+        on_quiet = self.on_quiet
         for sess, seq, (score, cluster, dist, unseen_share), p in zip(sessions, seqs, results, p_values):
             self.sessions_scored[sess.source] += 1
             far = p <= rate
             unseen = max(seq) >= n_seen
+            if on_quiet is not None and not (far or unseen):
+                on_quiet(sess.source, seq)  # refit: a quiet session for the pool
             if not (far or unseen or self.score_all):
                 continue
             alarm = far or unseen

@@ -37,6 +37,31 @@ def _shape_of(message: str) -> bytes:
     return _zero(_encode(message))
 
 
+def _shapes(messages: list[str]) -> list[bytes]:
+    """``_shape_of`` of every message, with one encode, one translate and one split for the
+    whole list when no message holds the NUL separator (nearly always)."""
+    joined = "\0".join(messages)
+    if len(messages) < 2 or joined.count("\0") != len(messages) - 1:
+        return list(map(_shape_of, messages))
+    return _zero(_encode(joined)).split(b"\0")
+
+
+# a run of hex digits and dashes holding a digit (ids, hex, UUIDs); the look-behind starts a
+# match only where a run starts, so a long run without a digit costs one scan, not one per char
+_ID_RUN = re.compile(rb"(?<![0-9a-fA-F-])[a-fA-F-]*+[0-9][0-9a-fA-F-]*+")
+
+
+def _coarse(shapes: list[bytes]) -> list[bytes]:
+    """Coarse cache keys: every id-like run (``_ID_RUN``) of a shape turned into one 0.
+    Messages with equal coarse keys mask alike: such a run lies inside one token, keeps a digit,
+    and touches none of what masking looks at besides digits (whitespace, quotes, ``=``, ``/``,
+    ``://``, trailing punctuation)."""
+    joined = b"\0".join(shapes)
+    if joined.count(b"\0") != len(shapes) - 1:
+        return [_ID_RUN.sub(b"0", s) for s in shapes]
+    return _ID_RUN.sub(b"0", joined).split(b"\0")
+
+
 def _mask_token(tok: str) -> str:
     if "://" in tok or tok[0] == "/":  # URLs and absolute paths
         return WILDCARD
@@ -92,7 +117,7 @@ class TemplateMiner:
     """
 
     def __init__(self, depth: int = 4, similarity: float = 0.5, max_children: int = 100,
-                 cache_size: int = 200_000) -> None:
+                 cache_size: int = 100_000) -> None:
         self.depth = depth
         self.similarity = similarity
         self.max_children = max_children
@@ -103,6 +128,7 @@ class TemplateMiner:
         self._events: dict[str, int] = {}
         self._masked: dict[str, int] = {}  # masked message -> template index
         self._by_shape: dict[bytes, int] = {}  # message shape (digits as 0) -> template index (bounded)
+        self._by_coarse: dict[bytes, int] = {}  # coarse shape (ids as 0) -> template index (bounded)
         self.frozen = False
         self.n_seen = 0  # templates with index < n_seen belong to the baseline
 
@@ -115,24 +141,31 @@ class TemplateMiner:
         """Template indices of many messages, in order. Messages that differ only in their
         digits mask alike (a token with a digit becomes one wildcard), so the message with every
         digit turned into 0 keys a cache that skips the masking for most lines seen before;
-        the lookups run in C (``map``) and only new shapes are handled one by one."""
-        shapes = list(map(_shape_of, messages))
+        the lookups run in C (``map``) and only the misses are handled one by one."""
+        shapes = _shapes(messages)
         idxs = list(map(self._by_shape.get, shapes))
         if None in idxs:
-            by_shape, full = self._by_shape, len(self._by_shape) >= self.cache_size
-            for i, idx in enumerate(idxs):
-                if idx is None:
-                    idx = by_shape.get(shapes[i])  # an earlier message of this block may have added it
-                    if idx is None:
-                        idx = self._add_masked(mask(messages[i]))
-                        if not full:
-                            by_shape[shapes[i]] = idx
-                            full = len(by_shape) >= self.cache_size
-                    idxs[i] = idx
+            self._add_missed(messages, shapes, idxs)
         templates = self.templates
         for idx, n in Counter(idxs).items():
             templates[idx].count += n
         return idxs
+
+    def _add_missed(self, messages: list[str], shapes: list[bytes], idxs: list[int | None]) -> None:
+        """Fill in the indices of messages whose shape missed the cache. Their coarse shapes
+        (``_coarse``: ids and UUIDs as one 0) key a second cache that stays small however many
+        distinct ids a log carries; only messages whose coarse shape is new too are masked."""
+        miss = [i for i, idx in enumerate(idxs) if idx is None]
+        by_shape, by_coarse, room = self._by_shape, self._by_coarse, self.cache_size
+        for i, key in zip(miss, _coarse([shapes[i] for i in miss])):
+            idx = by_coarse.get(key)
+            if idx is None:
+                idx = self._add_masked(mask(messages[i]))
+                if len(by_coarse) < room:
+                    by_coarse[key] = idx
+            idxs[i] = idx
+            if len(by_shape) < room:
+                by_shape[shapes[i]] = idx
 
     def add_event(self, event: str) -> int:
         """Template index for a structured event type (no masking, no merging)."""
@@ -148,6 +181,7 @@ class TemplateMiner:
         self.frozen = True
         self.n_seen = len(self.templates)
         self._by_shape.clear()
+        self._by_coarse.clear()
 
     def text(self, idx: int) -> str:
         return self.templates[idx].text

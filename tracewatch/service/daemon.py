@@ -337,10 +337,10 @@ class Daemon:
 class _Unready:
     """The follower's sink until the pipeline exists (nothing is read before that)."""
 
-    def feed_lines(self, *args) -> None:
+    def feed_block(self, *args) -> None:
         raise RuntimeError("the follower read before the pipeline was ready")
 
-    end_stream = feed_lines
+    end_stream = feed_block
 
 
 def _iso(ts: float) -> str:

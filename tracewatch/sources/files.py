@@ -57,7 +57,7 @@ CHUNK = 1 << 20
 Block = tuple[list[str], list[int], list[str | None] | None]  # lines, offsets, repairs (None: all clean)
 
 
-def _block_of(block: bytes, offset: int, max_line_bytes: int) -> Block:
+def block_of(block: bytes, offset: int, max_line_bytes: int) -> Block:
     """The lines of a block that ends with a newline, as columns. An ASCII block (the usual
     case) is decoded once and split as text, where character and byte offsets agree; its
     offsets come from one cumulative sum."""
@@ -65,8 +65,8 @@ def _block_of(block: bytes, offset: int, max_line_bytes: int) -> Block:
         text = block.decode("ascii")
         lines = text.split("\n")
         lines.pop()  # after the final newline
-        if "\r" not in text and (not lines or max(map(len, lines)) <= max_line_bytes):
-            sizes = np.fromiter(map(len, lines), dtype=np.int64, count=len(lines)) + 1
+        sizes = np.fromiter(map(len, lines), dtype=np.int64, count=len(lines)) + 1
+        if "\r" not in text and (not lines or sizes.max() <= max_line_bytes + 1):
             return lines, (np.cumsum(sizes) - sizes + offset).tolist(), None
     out_lines: list[str] = []
     offsets: list[int] = []
@@ -123,7 +123,7 @@ def read_blocks(path: Path, max_line_bytes: int) -> Iterator[Block]:
                     else:
                         rest = data
                     continue
-                yield _block_of(data[:cut], offset, max_line_bytes)
+                yield block_of(data[:cut], offset, max_line_bytes)
                 offset += cut
                 rest = data[cut:]
             if rest:

@@ -1,9 +1,9 @@
 """Live source: follow files as they grow.
 
-Stage: **sources** (daemon) → formats. Hands complete new lines on to a sink as
-``feed_lines(source, stream, [(line, offset, repair), ...])`` and says ``end_stream(source, stream)``
-when a file is finished — the sink is the pipeline. The decoding policy is the batch reader's
-(:func:`tracewatch.sources.files.decode_line`).
+Stage: **sources** (daemon) → formats. Hands complete new lines on to a sink in blocks, as
+``feed_block(source, stream, lines, offsets, repairs)``, and says ``end_stream(source, stream)``
+when a file is finished — the sink is the pipeline. Lines are decoded as the batch reader
+decodes them (:func:`tracewatch.sources.files.block_of`).
 
 Filesystem notifications (watchdog: inotify, or a polling observer for network filesystems)
 only wake the follower up; ``stat`` decides what happened. A file is known by its device and
@@ -35,7 +35,7 @@ from typing import Protocol
 
 from ..config import SourceConfig
 from ..errors import InputError
-from .files import decode_line
+from .files import block_of, decode_line
 
 log = logging.getLogger("tracewatch.follow")
 
@@ -46,7 +46,8 @@ _WILD = frozenset("*?[")
 
 
 class LineSink(Protocol):
-    def feed_lines(self, source: str, stream: str, lines: list[tuple[str, int, str | None]]) -> None: ...
+    def feed_block(self, source: str, stream: str, lines: list[str], offsets: list[int],
+                   repairs: list[str | None] | None) -> None: ...
 
     def end_stream(self, source: str, stream: str) -> None: ...
 
@@ -99,28 +100,26 @@ class Tail:
         return any(n >= 64 and _head(fd, n) == (fp, n) for fp, n in ((self.fp, self.fp_len), self.former))
 
     def consume(self, data: bytes, sink: LineSink) -> None:
-        """Hand on every complete line in ``data`` (which follows ``pos``); hold the rest."""
+        """Hand on every complete line in ``data`` (which follows ``pos``) as a block, decoded as
+        the batch reader decodes (:func:`~tracewatch.sources.files.block_of`); hold the rest."""
         self.pos += len(data)
-        pieces = data.split(b"\n")
-        tail = pieces.pop()
+        cut = data.rfind(b"\n") + 1
+        body, tail = data[:cut], data[cut:]
         cap = self.max_line_bytes + 1  # enough to know that a line is too long
         offset = self.offset
-        lines = []
-        for piece in pieces:
-            size = len(piece) + 1
-            if self.partial_len:
-                size += self.partial_len
-                piece = bytes(self.partial) + piece[:max(0, cap - len(self.partial))]
-                self.partial.clear()
-                self.partial_len = 0
-            elif len(piece) > cap:
-                piece = piece[:cap]
-            text, repair = decode_line(piece.rstrip(b"\r"), self.max_line_bytes)
-            lines.append((text, offset, repair))
-            offset += size
+        if body and self.partial_len:  # the first line began in an earlier read
+            end = body.index(b"\n")
+            first = bytes(self.partial) + body[:max(0, min(end, cap - len(self.partial)))]
+            text, repair = decode_line(first[:-1] if first.endswith(b"\r") else first, self.max_line_bytes)
+            sink.feed_block(self.source, self.stream, [text], [offset], [repair])
+            offset += self.partial_len + end + 1
+            self.partial.clear()
+            self.partial_len = 0
+            body = body[end + 1:]
+        if body:
+            sink.feed_block(self.source, self.stream, *block_of(body, offset, self.max_line_bytes))
+            offset += len(body)
         self.offset = offset
-        if lines:
-            sink.feed_lines(self.source, self.stream, lines)
         if tail:
             if len(self.partial) < cap:
                 self.partial += tail[:cap - len(self.partial)]
