@@ -44,6 +44,32 @@ def test_max_duration():
     assert closed[0].close_reason == "max_duration" and closed[0].events == [0, 20, 40]
 
 
+def test_max_duration_by_tick_closes_exactly_the_sessions_past_it():
+    # every session is busy (never idle), so only the maximum duration can close one by tick
+    sz = Sessionizer(SessionsConfig(idle_timeout_s=1000, max_duration_s=50))
+    closed = []
+    for t in range(100):
+        _add(sz, f"k{t}", float(t), 0, closed)
+        _add(sz, "long", float(t), 1, closed)  # re-opened every 50 s
+        sz.tick(float(t), closed)
+    by_tick = {s.key for s in closed if s.close_reason == "max_duration"}
+    # sessions k0..k48 started more than 50 s before t = 99 (hand count: 99 - 50 = 49 > start)
+    assert by_tick == {f"k{t}" for t in range(49)} | {"long"}
+    assert {s.key for s in sz.open.values()} == {f"k{t}" for t in range(49, 100)} | {"long"}
+
+
+def test_max_duration_bookkeeping_stays_bounded():
+    sz = Sessionizer(SessionsConfig(idle_timeout_s=1000, max_duration_s=3600, end_pattern="done"))
+    closed = []
+    for t in range(20_000):  # short sessions closed by their end line, each one tracked
+        _add(sz, f"k{t}", float(t) / 100, 0, closed)
+        _add(sz, f"k{t}", float(t) / 100, 1, closed, msg="done")
+        if t % 100 == 0:
+            sz.tick(float(t) / 100, closed)
+    assert len(closed) == 20_000 and not sz.open
+    assert len(sz._deadlines) <= 1024 + 100  # rebuilt from the open ones, not one per session ever
+
+
 def test_open_sessions_are_bounded_oldest_evicted():
     sz = Sessionizer(SessionsConfig(max_open_sessions=3))
     closed = []

@@ -26,6 +26,8 @@ Without any timestamps, ``now`` is the wall clock.
 
 from __future__ import annotations
 
+import heapq
+import itertools
 import re
 import time
 from collections import OrderedDict
@@ -67,6 +69,10 @@ class Sessionizer:
         self.max_open = cfg.max_open_sessions
         self._end = re.compile(cfg.end_pattern) if cfg.end_pattern else None
         self.open: OrderedDict[tuple[str, str], Session] = OrderedDict()
+        # (first time + max_duration, creation number, session) of open sessions, earliest first;
+        # entries of sessions closed otherwise are dropped when they come up
+        self._deadlines: list[tuple[float, int, Session]] = []
+        self._created = itertools.count()
         self._counts: dict[str, int] = {}
         self.evicted = 0
 
@@ -82,6 +88,7 @@ class Sessionizer:
         before it; returns the newest record time, or None when no record had one."""
         newest = None
         open_, get, move_to_end = self.open, self.open.get, self.open.move_to_end
+        deadlines = self._deadlines if self.max_duration < float("inf") else None
         idle, max_duration, max_events, end = self.idle, self.max_duration, self.max_events, self._end
         for key, ts, event, raw, offset, message in zip(keys, stamps, events, raws, offsets, messages):
             if ts is None:
@@ -104,6 +111,8 @@ class Sessionizer:
                     self._close(next(iter(open_)), "evicted", closed)
                     self.evicted += 1
                 sess = open_[skey] = Session(source, key, t, raw, offset)
+                if deadlines is not None:
+                    heapq.heappush(deadlines, (t + max_duration, next(self._created), sess))
             else:
                 move_to_end(skey)
             sess.events.append(event)
@@ -138,13 +147,25 @@ class Sessionizer:
                 self._close(skey, "idle", closed)
             else:
                 break
-        if self.max_duration < float("inf"):
-            for skey in [k for k, s in self.open.items() if now - s.first_ts > self.max_duration]:
+        deadlines = self._deadlines
+        while deadlines and deadlines[0][0] < now:
+            sess = heapq.heappop(deadlines)[2]
+            skey = (sess.source, sess.key)
+            if self.open.get(skey) is sess:
                 self._close(skey, "max_duration", closed)
+        if len(deadlines) > 2 * len(self.open) + 1024:  # mostly sessions closed otherwise: rebuild
+            self._track_deadlines()
+
+    def _track_deadlines(self) -> None:
+        self._deadlines = []
+        if self.max_duration < float("inf"):
+            self._deadlines = [(s.first_ts + self.max_duration, next(self._created), s) for s in self.open.values()]
+            heapq.heapify(self._deadlines)
 
     def flush(self, closed: list[Session]) -> None:
         for skey in list(self.open):
             self._close(skey, "flush", closed)
+        self._deadlines.clear()
 
     # -- live operation: checkpoints and baseline switches (daemon) -----------------------
     def to_state(self, *, with_open: bool = True) -> dict:
@@ -174,6 +195,7 @@ class Sessionizer:
             sess.events = list(events)
             sess.last_ts, sess.last_seen, sess.samples = last_ts, last_seen, list(samples)
             self.open[(source, key)] = sess
+        self._track_deadlines()
         self._counts = dict(state["run_counts"])
         self.evicted = int(state["evicted"])
 
