@@ -27,8 +27,19 @@ CAUTION = ("Logs can hold secrets and personal data: keep state_dir private and 
 
 
 class _Parser(argparse.ArgumentParser):
+    intermixed = False  # positionals may follow options (`baselines refit --config F INPUT...`)
+
     def error(self, message: str):  # one line, exit code 2, as for a bad config
         self.exit(2, f"tracewatch: error: {message}\n")
+
+    def parse_known_args(self, args=None, namespace=None):
+        if not self.intermixed:
+            return super().parse_known_args(args, namespace)
+        self.intermixed = False  # parse_known_intermixed_args calls back into parse_known_args
+        try:
+            return self.parse_known_intermixed_args(args, namespace)
+        finally:
+            self.intermixed = True
 
 
 def _config(args) -> Config:
@@ -112,6 +123,10 @@ def cmd_templates(args) -> int:
 
 def cmd_baselines(args) -> int:
     cfg = _config(args)
+    if args.action == "refit":
+        return _refit(cfg, args)
+    if args.inputs:
+        raise ConfigError(f"baselines {args.action}: unexpected {' '.join(args.inputs)!r}")
     if args.action == "use":
         if not args.version:
             raise ConfigError("baselines use: name the VERSION to make current")
@@ -130,6 +145,36 @@ def cmd_baselines(args) -> int:
     for v in versions:
         print(f"{'*' if v == current else ' '} {v}")
     return 0
+
+
+# -- `baselines refit` (tracewatch/refit.py) -------------------------------------------------------
+BASELINES_HELP = (
+    "Without an action, list the baseline versions (* marks the current one); 'show VERSION' prints "
+    "a version's fit report; 'use VERSION' makes it current (roll back). 'refit INPUT...' scores the "
+    "files with the current baseline, fits a candidate on the sessions that raised nothing (and those "
+    "whose alert belongs to an incident labelled expected), and applies the gates: enough sessions, "
+    "enough calibration sessions, a false-alarm rate on the most recent sessions consistent with "
+    "false_alarm_rate, and every alert of incidents labelled a known problem (and of open incidents) "
+    "still flagged. A candidate that passes is saved and made current; one that fails is saved and "
+    "left aside (exit code 3). --dry-run saves nothing. The gates cannot see a problem that never "
+    "raised an alert: a refit learns whatever the quiet traffic shows.")
+
+
+def _refit(cfg: Config, args) -> int:
+    from .refit import format_refit, refit_files
+
+    inputs = ([args.version] if args.version else []) + args.inputs
+    report = refit_files(cfg, assign_sources(cfg, inputs, args.source), dry_run=args.dry_run)
+    if args.json:
+        _out(report)
+    else:
+        print(format_refit(report))
+    if report["outcome"] in ("refused", "skipped"):
+        failed = ", ".join(g["gate"] for g in report["gates"] if not g["passed"])
+        print(f"tracewatch: refit refused: {failed} gate failed; the current baseline is kept", file=sys.stderr)
+        return 3
+    return 0
+# -- end of `baselines refit` -----------------------------------------------------------------------
 
 
 # -- `run` (the daemon) ---------------------------------------------------------------------------
@@ -390,6 +435,11 @@ def format_report(r: dict, version: str, path, pipeline: Pipeline | None) -> str
             lines.append(f"  {c['sessions']} session(s) ({c['share']:.2%}): {' | '.join(c['representative'])}")
     else:
         lines.append("contamination: none found")
+    if r.get("refit"):  # a candidate of `baselines refit` or the daemon's refit
+        from .refit import format_gates
+
+        lines.append(f"refit of {r['refit']['based_on']}: {r['refit']['outcome']}")
+        lines += format_gates(r["refit"])
     lines.append(f"thresholds (false_alarm_rate {r['false_alarm_rate']}, split-conformal on held-out sessions):")
     for src, t in r["thresholds"].items():
         if src == "*" and len(r["thresholds"]) == 2:
@@ -441,10 +491,18 @@ def build_parser() -> argparse.ArgumentParser:
     sp.add_argument("inputs", nargs="+", metavar="INPUT")
     sp.set_defaults(func=cmd_templates)
 
-    sp = sub.add_parser("baselines", help="list baseline versions, show one, or make one current (roll back)")
+    sp = sub.add_parser("baselines", help="list baseline versions, show one, make one current (roll back), "
+                        "or refit the current one on recent files", description=BASELINES_HELP)
     with_config(sp)
-    sp.add_argument("action", nargs="?", choices=["list", "show", "use"], default="list")
-    sp.add_argument("version", nargs="?")
+    sp.add_argument("action", nargs="?", choices=["list", "show", "use", "refit"], default="list")
+    sp.add_argument("version", nargs="?", metavar="VERSION", help="show, use: the version")
+    # -- `baselines refit` --
+    sp.add_argument("inputs", nargs="*", metavar="INPUT", help="refit: the files to take sessions from")
+    sp.add_argument("--source", metavar="NAME", help="refit: the source the INPUT files belong to")
+    sp.add_argument("--dry-run", action="store_true", help="refit: fit and apply the gates, save nothing")
+    sp.add_argument("--json", action="store_true", help="refit: print the report as JSON")
+    sp.intermixed = True
+    # -- end of `baselines refit` --
     sp.set_defaults(func=cmd_baselines)
 
     sp = sub.add_parser("run", help="run the daemon: follow files live, alert, serve metrics",

@@ -292,6 +292,35 @@ class TriageConfig(_Section):
 # -- end of triage ----------------------------------------------------------------------------
 
 
+# -- baseline refit (tracewatch/refit.py) ----------------------------------------------------
+class RefitConfig(_Section):
+    """Periodic refit of the baseline from recent quiet sessions, gated (``tracewatch run``
+    and ``tracewatch baselines refit``)."""
+
+    # the daemon refits by itself only when enabled; the command works either way
+    enabled: bool = False
+    # how often the daemon fits a candidate (wall-clock seconds; the schedule survives restarts)
+    interval_s: float = Field(default=86_400.0, ge=60)
+    # quiet sessions kept per source for the next refit (a uniform sample of those since the
+    # current baseline was put in use)
+    pool_size: int = Field(default=5000, ge=20, le=1_000_000)
+    # fewer quiet sessions than this in the pool (all sources): no candidate is fitted
+    min_sessions: int = Field(default=1000, ge=20)
+    # the most recent share of each source's pool is held out to test the candidate's false alarms
+    holdout_share: float = Field(default=0.2, gt=0, lt=0.9)
+    # the holdout gate fails when a false-alarm count this unlikely (or less) under
+    # [model] false_alarm_rate is observed (one-sided binomial test)
+    significance: float = Field(default=0.01, gt=0, lt=0.5)
+    # make a candidate that passes every gate current (false: save it for `baselines use`)
+    promote: bool = True
+    # sessions whose alert joined an incident labelled expected are pooled (learned as normal) too
+    learn_expected: bool = True
+    # open and acknowledged incidents (not only those labelled a known problem) must still be flagged
+    gate_open_incidents: bool = True
+    seed: int = 0
+# -- end of baseline refit --------------------------------------------------------------------
+
+
 class Config(_Section):
     state_dir: Path = Path("./tracewatch-state")
     sources: list[SourceConfig] = Field(default_factory=list)
@@ -304,6 +333,7 @@ class Config(_Section):
     incidents: IncidentsConfig = IncidentsConfig()  # tracewatch/alerts/incidents.py
     notify: NotifyConfig = NotifyConfig()  # tracewatch/alerts/sinks.py
     triage: TriageConfig = TriageConfig()  # tracewatch/triage.py
+    refit: RefitConfig = RefitConfig()  # tracewatch/refit.py
     # regexes whose matches are replaced by «redacted» in any raw line tracewatch stores or shows
     redact: list[str] = Field(default_factory=list)
 

@@ -8,7 +8,9 @@ One thread runs the loop: wait for a filesystem notification or the tick → rea
 (:class:`~tracewatch.sources.follow.Follower`) → close idle sessions
 (``pipeline.tick`` with :class:`~tracewatch.sessions.LiveTime`) → switch to a new current
 baseline if there is one → checkpoint when due. HTTP answers from its own threads under the
-same lock.
+same lock. With ``[refit] enabled``, quiet sessions feed a pool and a candidate baseline is
+fitted now and then on a thread of its own (:mod:`tracewatch.refit`); one that passes the gates
+is made current, and the hot reload switches to it.
 
 Shutdown (SIGTERM / SIGINT): stop reading, score the sessions already closed, fsync the
 journal, write the checkpoint — open sessions included, so they go on after a restart — and
@@ -22,9 +24,11 @@ import fcntl
 import logging
 import os
 import signal
+import sqlite3
 import sys
 import threading
 import time
+from collections import Counter
 from collections.abc import Callable
 from datetime import datetime, timezone
 from pathlib import Path
@@ -36,8 +40,10 @@ from .. import __version__
 from ..alerts.incidents import Incidents
 from ..baselines import Baseline, baselines_dir, current_version, load_baseline, load_baseline_dir
 from ..config import Config
-from ..errors import BaselineError, InputError, StateError
+from ..errors import BaselineError, InputError, StateError, TracewatchError
 from ..pipeline import Pipeline
+from ..refit import (OUTCOMES, POOL_FILE, QuietPool, RefitData, add_incidents, expected_incidents, refit,
+                     refit_data, summary_line)
 from ..sessions import LiveTime
 from ..sources.checkpoint import AlertJournal, capture_chunks, load_checkpoint, restore, save_checkpoint
 from ..sources.follow import Follower, Watcher, watch_dirs
@@ -60,6 +66,7 @@ class Daemon:
         self.cfg = cfg
         self.registry = registry if registry is not None else CollectorRegistry()
         self.monotonic = monotonic
+        self.wall = wall
         self.lock = threading.Lock()
         self.wake = threading.Event()
         self.stopping = threading.Event()
@@ -81,6 +88,12 @@ class Daemon:
         self.checkpoint_seconds = 0.0
         self._baseline_sig: tuple | None = None
         self._lock_fd = -1
+        # -- refit (tracewatch/refit.py) --
+        self.pool: QuietPool | None = None  # quiet sessions for the next refit ([refit] enabled)
+        self.pool_path = self.state_dir / POOL_FILE
+        self.refits: Counter = Counter()  # outcome -> refits
+        self.refit_thread: threading.Thread | None = None
+        self._expected: set[int] = set()  # incidents labelled expected: their sessions are pooled
 
     # -- start -----------------------------------------------------------------------------
     def start(self) -> None:
@@ -118,6 +131,8 @@ class Daemon:
             self.pipe.use_baseline(current)
             log.info("switched from baseline %s (of the checkpoint) to the current %s",
                      base.version, current.version)
+        if cfg.refit.enabled:
+            self._open_pool()
         self.journal.open(ckpt.alerts if ckpt is not None else None)
         self.follower.sink = self.pipe
         self.follower.attach([f.model_dump() for f in ckpt.files] if ckpt is not None else None)
@@ -187,6 +202,7 @@ class Daemon:
                 if now >= next_check:
                     self.watcher.refresh()
                     self._check_baseline()
+                    self._maybe_refit()
                     next_check = now + RELOAD_CHECK_S
                 if behind:
                     time.sleep(0.0005)  # let HTTP threads in between chunks
@@ -207,7 +223,9 @@ class Daemon:
         self.metrics.observe_score(verdict["source"], verdict["score"])
         if verdict["alert"]:
             self.journal.append(verdict)
-            self.incidents.add(verdict)  # recognises an alert raised again after a restart
+            iid = self.incidents.add(verdict)  # recognises an alert raised again after a restart
+            if self.pool is not None and iid in self._expected:
+                self.pool.offer_alert(verdict)  # refit: on-call said this pattern is normal
 
     def _checkpoint(self) -> None:
         """Score what is closed, make the journal durable, then save everything (lock held)."""
@@ -216,6 +234,7 @@ class Daemon:
         mark = self.journal.sync()
         save_checkpoint(self.checkpoint_path,
                         capture_chunks(self.pipe, self.follower.positions(self.pipe.held_from), mark))
+        self._save_pool()
         self.checkpoint_time = time.time()
         self.checkpoint_seconds = time.perf_counter() - t0
 
@@ -248,8 +267,90 @@ class Daemon:
         with self.lock:
             old = self.pipe.baseline.version
             self.pipe.use_baseline(baseline)
+            if self.pool is not None:
+                self.pool.clear(version)  # what the old baseline called quiet says nothing now
         log.info("switched baseline %s → %s; %d open sessions carried over", old, version,
                  len(self.pipe.sessionizer.open))
+
+    # -- refit (tracewatch/refit.py) ------------------------------------------------------------
+    def _open_pool(self) -> None:
+        """Load the pool (a corrupt file is moved aside: the pool is a sample, starting afresh
+        loses no alert); start afresh when it belongs to another baseline."""
+        rcfg = self.cfg.refit
+        try:
+            self.pool = QuietPool.load(self.pool_path, rcfg.pool_size, rcfg.seed)
+        except StateError as exc:
+            aside = self.pool_path.with_name(self.pool_path.name + ".corrupt")
+            try:
+                os.replace(self.pool_path, aside)
+                log.error("%s; moved to %s, starting an empty pool", exc, aside)
+            except OSError as err:
+                log.error("%s; cannot move it aside (%s), starting an empty pool", exc, err.strerror or err)
+            self.pool = QuietPool(rcfg.pool_size, rcfg.seed)
+        version = self.pipe.baseline.version
+        if self.pool.baseline_version != version:
+            self.pool.clear(version)
+        if self.pool.last_refit is None:
+            self.pool.last_refit = self.wall()  # the first refit comes one interval after the first start
+        self.pipe.on_quiet = self._on_quiet
+        self.refits.update(dict.fromkeys(OUTCOMES, 0))  # every outcome's series exists from the start
+        self._refresh_expected()
+
+    def _on_quiet(self, source: str, seq: tuple[int, ...]) -> None:
+        self.pool.offer(source, seq, self.pipe.miner.templates)
+
+    def _save_pool(self) -> None:
+        if self.pool is not None and self.pool.dirty:
+            try:
+                self.pool.save(self.pool_path)
+            except OSError as exc:
+                log.error("%s: cannot save the refit pool: %s", self.pool_path, exc.strerror or exc)
+
+    def _refresh_expected(self) -> None:
+        if not self.cfg.refit.learn_expected:
+            return
+        try:
+            ids = expected_incidents(self.incidents.store)
+        except (sqlite3.Error, StateError, OSError) as exc:
+            log.error("incident store: %s; the labels of expected incidents were not re-read", exc)
+            return
+        with self.lock:
+            self._expected = ids
+
+    def _maybe_refit(self) -> None:
+        """Start a refit on its own thread when one is due and none is running."""
+        if self.pool is None:
+            return
+        self._refresh_expected()
+        if self.refit_thread is not None and self.refit_thread.is_alive():
+            return
+        if self.wall() < self.pool.last_refit + self.cfg.refit.interval_s:
+            return
+        with self.lock:
+            data = refit_data(self.pool, self.pipe.miner, self.pipe.baseline.version)
+            self.pool.last_refit = self.wall()
+            self.pool.dirty = True
+        self.refit_thread = threading.Thread(target=self._refit, args=(data,), name="tracewatch-refit")
+        self.refit_thread.start()
+
+    def _refit(self, data: RefitData) -> None:
+        """Fit, gate, save (and promote): the whole refit, off the ingest thread."""
+        outcome = "error"
+        try:
+            store = self.incidents.store
+            try:
+                add_incidents(data, store)
+            finally:
+                store.release()
+            report, _ = refit(data, self.cfg, self.state_dir, promote=self.cfg.refit.promote)
+            outcome = report["outcome"]
+            log.log(logging.WARNING if outcome == "refused" else logging.INFO, "%s", summary_line(report))
+        except (TracewatchError, sqlite3.Error, OSError) as exc:
+            log.error("refit failed: %s; the baseline in use is kept", exc)
+        except Exception:
+            log.exception("refit failed; the baseline in use is kept")
+        with self.lock:
+            self.refits[outcome] += 1
 
     # -- what HTTP and metrics read ------------------------------------------------------------
     def ready(self) -> tuple[bool, str]:
@@ -277,6 +378,7 @@ class Daemon:
                 "baseline_version": p.baseline.version, "files": self.follower.status(),
                 "sources": [s.name for s in self.cfg.sources], "checkpoint_time": self.checkpoint_time,
                 "checkpoint_seconds": self.checkpoint_seconds,
+                "refits": dict(self.refits), "refit_pool": self.pool.sizes() if self.pool is not None else {},
             }
 
     def status(self) -> dict:
@@ -308,6 +410,9 @@ class Daemon:
                            "written": _iso(self.checkpoint_time) if self.checkpoint_time else None,
                            "seconds": round(self.checkpoint_seconds, 4)},
             "sources": sources,
+            "refit": None if self.pool is None else {  # tracewatch/refit.py
+                "pool": snap.get("refit_pool", {}), "outcomes": snap.get("refits", {}),
+                "last": _iso(self.pool.last_refit) if self.pool.last_refit else None},
         }
 
     def alerts_since(self, since: int, limit: int) -> dict:
@@ -316,6 +421,8 @@ class Daemon:
 
     # -- the end -------------------------------------------------------------------------------
     def close(self, *, checkpoint: bool) -> None:
+        if self.refit_thread is not None:
+            self.refit_thread.join()  # a fit in progress finishes (and saves its candidate)
         if checkpoint and self.started:
             with self.lock:
                 self._checkpoint()

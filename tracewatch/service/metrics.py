@@ -19,6 +19,8 @@ The snapshot is a dict with these keys (all optional):
     files                                    [{"source", "lag_bytes", "lag_seconds"}, ...]
     checkpoint_time, checkpoint_seconds      when the last checkpoint was written (epoch), and
                                              how long it took
+    refits                                   {outcome: n} baseline refits (tracewatch/refit.py)
+    refit_pool                               {source: n} sessions held for the next refit
 """
 
 from __future__ import annotations
@@ -97,6 +99,19 @@ class _SnapshotCollector(Collector):
         yield lag_b
         yield lag_s
         yield files
+        # -- refit (tracewatch/refit.py) --
+        refits = CounterMetricFamily("tracewatch_refits_total", "Baseline refits by outcome: promoted, "
+                                     "passed (the gates, but not made current), refused (a gate failed), "
+                                     "skipped (too few quiet sessions), error.", labels=["outcome"])
+        for outcome, n in sorted(snap.get("refits", {}).items()):
+            refits.add_metric([outcome], n)
+        yield refits
+        pool = GaugeMetricFamily("tracewatch_refit_pool_sessions", "Quiet sessions held for the next "
+                                 "baseline refit.", labels=["source"])
+        for source, n in sorted(snap.get("refit_pool", {}).items()):
+            pool.add_metric([source], n)
+        yield pool
+        # -- end of refit --
         if snap.get("checkpoint_time"):
             yield GaugeMetricFamily("tracewatch_checkpoint_timestamp_seconds",
                                     "When the last checkpoint was written.", value=snap["checkpoint_time"])
