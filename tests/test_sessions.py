@@ -81,6 +81,21 @@ def test_open_sessions_are_bounded_oldest_evicted():
     assert sz.evicted == 2 and len(sz.open) == 3
 
 
+def test_evicted_sessions_and_their_rest_are_partial():
+    sz = Sessionizer(SessionsConfig(max_open_sessions=2, idle_timeout_s=10))
+    closed = []
+    _add(sz, "a", 0.0, 1, closed)
+    _add(sz, "b", 1.0, 1, closed)
+    _add(sz, "c", 2.0, 1, closed)  # evicts a
+    assert [(s.key, s.close_reason, s.partial) for s in closed] == [("a", "evicted", True)]
+    _add(sz, "a", 3.0, 2, closed)  # the rest of a (evicts b): cut short, so partial too
+    assert sz.open[("s", "a")].partial and closed[-1].key == "b"
+    _add(sz, "d", 4.0, 1, closed)  # evicts c
+    _add(sz, "b", 30.0, 1, closed)  # b again, long after its idle timeout: a session of its own
+    assert not sz.open[("s", "b")].partial
+    assert sz.evicted == 4
+
+
 def test_keyless_records_fall_into_time_windows():
     sz = Sessionizer(SessionsConfig(window_s=60, idle_timeout_s=1000))
     closed = []

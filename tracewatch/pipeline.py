@@ -184,7 +184,7 @@ class Pipeline:
     # -- sessions out ------------------------------------------------------------------------
     def _drain(self) -> None:
         closed, self._closed = self._closed, []
-        closed = [s for s in closed if s.events]
+        closed = [s for s in closed if s.events and not s.partial]  # partial: see Sessionizer._evict
         if not closed:
             return
         if self.scorer is None:

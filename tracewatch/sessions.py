@@ -40,7 +40,7 @@ MAX_SAMPLES = 3  # raw sample lines kept per session for its alert (bounds memor
 
 class Session:
     __slots__ = ("source", "key", "events", "first_ts", "last_ts", "last_seen", "first_raw",
-                 "first_offset", "samples", "close_reason")
+                 "first_offset", "samples", "close_reason", "partial")
 
     def __init__(self, source: str, key: str, now: float, first_raw: str, offset: int) -> None:
         self.source = source
@@ -53,6 +53,7 @@ class Session:
         self.first_offset = offset
         self.samples: list[str] = []
         self.close_reason = ""
+        self.partial = False  # cut short by an eviction, or the rest of one: never judged
 
     def __repr__(self) -> str:
         return f"Session({self.source}:{self.key}, {len(self.events)} events, {self.close_reason or 'open'})"
@@ -75,6 +76,9 @@ class Sessionizer:
         self._created = itertools.count()
         self._counts: dict[str, int] = {}
         self.evicted = 0
+        # key -> last activity of sessions evicted lately (bounded): what comes later for such a
+        # key within the idle timeout is the rest of a session cut short, not a session of its own
+        self._evicted_keys: OrderedDict[tuple[str, str], float] = OrderedDict()
 
     def add(self, source: str, key: str | None, ts: float | None, now: float, event: int,
             raw: str, offset: int, message: str, closed: list[Session]) -> None:
@@ -89,6 +93,7 @@ class Sessionizer:
         newest = None
         open_, get, move_to_end = self.open, self.open.get, self.open.move_to_end
         deadlines = self._deadlines if self.max_duration < float("inf") else None
+        evicted_keys = self._evicted_keys
         idle, max_duration, max_events, end = self.idle, self.max_duration, self.max_events, self._end
         for key, ts, event, raw, offset, message in zip(keys, stamps, events, raws, offsets, messages):
             if ts is None:
@@ -108,9 +113,10 @@ class Sessionizer:
                 sess = None
             if sess is None:
                 if len(open_) >= self.max_open:
-                    self._close(next(iter(open_)), "evicted", closed)
-                    self.evicted += 1
+                    self._evict(closed)
                 sess = open_[skey] = Session(source, key, t, raw, offset)
+                if evicted_keys and skey in evicted_keys and t - evicted_keys.pop(skey) <= idle:
+                    sess.partial = True
                 if deadlines is not None:
                     heapq.heappush(deadlines, (t + max_duration, next(self._created), sess))
             else:
@@ -133,6 +139,19 @@ class Sessionizer:
         n = self._counts.get(source, 0)
         self._counts[source] = n + 1
         return f"run#{n // self.max_events}"
+
+    def _evict(self, closed: list[Session]) -> None:
+        """Close the least recently active session early to make room; it and what comes later
+        for its key are marked ``partial``. An eviction is tracewatch out of room, not the
+        application misbehaving, so judging the pieces would only raise false alarms."""
+        skey, sess = next(iter(self.open.items()))
+        sess.partial = True
+        self._close(skey, "evicted", closed)
+        self.evicted += 1
+        keys = self._evicted_keys
+        keys[skey] = sess.last_seen
+        if len(keys) > self.max_open:
+            keys.popitem(last=False)
 
     def _close(self, skey: tuple[str, str], reason: str, closed: list[Session]) -> None:
         sess = self.open.pop(skey)
