@@ -18,10 +18,10 @@ import zipfile
 from collections import Counter
 from collections.abc import Iterable
 from pathlib import Path
+from typing import TYPE_CHECKING
 
 import numpy as np
 import orjson
-import scipy.sparse as sp
 from pydantic import BaseModel, ConfigDict, ValidationError
 
 from . import __version__
@@ -31,6 +31,9 @@ from .features import NgramVectorizer
 from .model.calibrate import ConformalThreshold
 from .model.score import SessionScorer
 from .templates import TemplateMiner
+
+if TYPE_CHECKING:
+    import scipy.sparse as sp
 
 SCHEMA_VERSION = 2  # 2: templates masked to <var> (schema 1 baselines used another marker)
 MIN_SESSIONS = 10
@@ -78,12 +81,12 @@ class Baseline:
         self.normal_labels = normal_labels  # their cluster
         self.cluster_sources = cluster_sources  # the source each cluster belongs to
         self.normal_sources = normal_sources  # the source of each distinct fit sequence
-        self._by_cluster: dict[int, tuple[np.ndarray, sp.csr_matrix]] = {}
+        self._by_cluster: dict[int, tuple[np.ndarray, ...]] = {}
         # one split-conformal threshold per source ("*": all sources pooled, for sources that
         # had no calibration sessions): each source keeps its own false-alarm rate
         self.calibration = calibration
         self.scorer_kind = scorer
-        self.knn_rows = knn_rows
+        self._knn = knn_rows  # a CSR matrix, or its (data, indices, indptr, shape) when loaded
         self.knn_k = knn_k
         self.report = report
         self.version = version
@@ -97,30 +100,50 @@ class Baseline:
         own = self.calibration.get(source)
         return own if own is not None and own.usable_ else self.calibration[POOLED]
 
+    @property
+    def knn_rows(self) -> sp.csr_matrix:
+        """The distinct fit sessions' vectors, one row each, as a CSR matrix. Built (and scipy
+        imported) on first use: scoring against centres never needs it."""
+        if isinstance(self._knn, tuple):
+            import scipy.sparse as sp
+
+            data, indices, indptr, shape = self._knn
+            self._knn = sp.csr_matrix((data, indices, indptr), shape=shape)
+        return self._knn
+
     def closest_normal(self, vec, cluster: int) -> tuple[int, ...]:
         """The distinct baseline session of ``cluster`` closest to a session vector."""
         cached = self._by_cluster.get(cluster)
         if cached is None:
             rows = np.flatnonzero(self.normal_labels == cluster)
-            cached = self._by_cluster[cluster] = (rows, self.knn_rows[rows].tocsr())
-        rows, members = cached
+            data, indices, indptr = self._knn[:3] if isinstance(self._knn, tuple) else (
+                self._knn.data, self._knn.indices, self._knn.indptr)
+            sizes = indptr[rows + 1] - indptr[rows]
+            # positions of the cluster's rows' entries, and the row (0..len(rows)) of each
+            take = np.repeat(indptr[rows] - (np.cumsum(sizes) - sizes), sizes) + np.arange(int(sizes.sum()))
+            cached = self._by_cluster[cluster] = (rows, data[take], indices[take],
+                                                  np.repeat(np.arange(len(rows)), sizes))
+        rows, data, indices, row_of = cached
         if len(rows) == 0 or len(vec.indices) == 0:
             return self.medoids[cluster]
-        dense = np.zeros(members.shape[1])
+        dense = np.zeros(self.centers.shape[1])
         dense[vec.indices] = vec.values
-        dots = members @ dense
+        dots = np.bincount(row_of, weights=data * dense[indices], minlength=len(rows))
         return self.normal_seqs[int(rows[int(np.argmax(dots))])]
 
     def make_scorer(self) -> SessionScorer:
         return SessionScorer(self.vectorizer, self.centers, self.spreads, self.scorer_kind,
-                             self.knn_rows, self.knn_k, self.unseen_weight,
-                             cluster_sources=self.cluster_sources, row_sources=self.normal_sources)
+                             self.knn_rows if self.scorer_kind == "knn" else None, self.knn_k,
+                             self.unseen_weight, cluster_sources=self.cluster_sources,
+                             row_sources=self.normal_sources)
 
 
 # -- fitting -------------------------------------------------------------------------------
 def fit_baseline(sessions: list[tuple[str, tuple[int, ...]]], miner: TemplateMiner, cfg: Config) -> Baseline:
     """Fit on normal ``(source, event sequence)`` sessions: split train / calibration,
     vectorise, cluster, then calibrate each source on its own held-out sessions."""
+    import scipy.sparse as sp
+
     from .model.fit import ClusterModel  # scikit-learn loads only when fitting (≈1 s at start-up)
 
     sequences = [seq for _, seq in sessions]
@@ -267,6 +290,17 @@ def atomic_write(path: Path, data: bytes | Iterable[bytes]) -> None:
         os.close(dir_fd)
 
 
+def _rows(arrays: dict, n_cols: int) -> tuple:
+    """The distinct fit sessions' CSR parts, checked (the matrix itself is built on first use)."""
+    data, indices, indptr = arrays["knn_data"], arrays["knn_indices"], arrays["knn_indptr"]
+    shape = tuple(int(x) for x in arrays["knn_shape"])
+    if (len(shape) != 2 or shape[1] != n_cols or indptr.ndim != 1 or len(indptr) != shape[0] + 1
+            or len(data) != len(indices) or indptr[0] != 0 or indptr[-1] != len(data)
+            or (np.diff(indptr) < 0).any() or (len(indices) and not 0 <= indices.min() <= indices.max() < n_cols)):
+        raise ValueError("the baseline sessions' vectors are malformed")
+    return data, indices, indptr, shape
+
+
 def _source_index(names: list[str]) -> np.ndarray:
     order = sorted(set(names))
     return np.array([order.index(n) for n in names], dtype=np.int64)
@@ -401,8 +435,7 @@ def load_baseline_dir(path: Path) -> Baseline:
         with np.load(path / "model.npz", allow_pickle=False) as z:
             arrays = {key: z[key] for key in z.files}
         vectorizer = NgramVectorizer.from_arrays(manifest.ngram_max, arrays)
-        knn = sp.csr_matrix((arrays["knn_data"], arrays["knn_indices"], arrays["knn_indptr"]),
-                            shape=tuple(int(x) for x in arrays["knn_shape"]))
+        knn = _rows(arrays, len(vectorizer.vocabulary_))
         scores, offsets = arrays["calibration_scores"], arrays["calibration_offsets"].tolist()
         calibration = {src: ConformalThreshold(manifest.false_alarm_rate).fit(scores[a:b])
                        for src, a, b in zip(manifest.calibration_sources, offsets, offsets[1:])}

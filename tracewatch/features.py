@@ -14,8 +14,12 @@ import math
 from collections import Counter
 from collections.abc import Sequence
 
+from typing import TYPE_CHECKING
+
 import numpy as np
-import scipy.sparse as sp
+
+if TYPE_CHECKING:
+    import scipy.sparse as sp
 
 START, END = -1, -2
 NGram = tuple[int, ...]
@@ -142,6 +146,10 @@ class NgramVectorizer:
 
 
 def stack(vecs: Sequence[SessionVector], n_cols: int) -> sp.csr_matrix:
+    """Session vectors as the rows of a CSR matrix (fitting and the knn scorer; scipy is
+    imported here, so scoring with centres alone never loads it)."""
+    import scipy.sparse as sp
+
     indptr = np.zeros(len(vecs) + 1, dtype=np.int64)
     np.cumsum([len(v.indices) for v in vecs], out=indptr[1:])
     indices = np.concatenate([v.indices for v in vecs]) if vecs else np.zeros(0, np.int64)

@@ -18,10 +18,14 @@ from __future__ import annotations
 
 from collections.abc import Sequence
 
+from typing import TYPE_CHECKING
+
 import numpy as np
-import scipy.sparse as sp
 
 from ..features import NgramVectorizer, SessionVector, stack
+
+if TYPE_CHECKING:
+    import scipy.sparse as sp
 
 KNN_BLOCK = 256
 
@@ -89,10 +93,9 @@ class SessionScorer:
         return out
 
     def score_vectors(self, source: str, vecs: Sequence[SessionVector]) -> list[tuple[float, int, float, float]]:
-        X = stack(vecs, len(self.vectorizer.vocabulary_))
         unseen = np.array([v.unseen_mass for v in vecs])
         other_clusters, other_rows = self._mask(source)
-        d = self._center_distances(X, unseen)
+        d = self._center_distances(vecs)
         # nearest in units of each cluster's own spread: a session between a tight cluster and a
         # varied one belongs to the varied one
         scaled = d / self.spreads[None, :]
@@ -101,17 +104,29 @@ class SessionScorer:
         nearest = np.argmin(scaled, axis=1)
         dist = d[np.arange(len(vecs)), nearest]
         if self.kind == "knn" and self.knn_rows_t is not None:
-            scores = self._knn(X, other_rows)
+            scores = self._knn(stack(vecs, len(self.vectorizer.vocabulary_)), other_rows)
         else:
             scores = dist / self.spreads[nearest] + self.unseen_weight * unseen
         return [(float(s), int(c), float(x), float(u)) for s, c, x, u in zip(scores, nearest, dist, unseen)]
 
-    def _center_distances(self, X: sp.csr_matrix, unseen: np.ndarray) -> np.ndarray:
+    def _center_distances(self, vecs: Sequence[SessionVector]) -> np.ndarray:
         # every session vector has norm 1 (unseen n-grams included), so
         # |x - c|² = 1 - 2 x·c + |c|²
-        dots = X @ self.centers_t
-        d2 = 1.0 - 2.0 * dots + self.center_sq[None, :]
+        d2 = 1.0 - 2.0 * self._center_dots(vecs) + self.center_sq[None, :]
         return np.sqrt(np.maximum(d2, 0.0))
+
+    def _center_dots(self, vecs: Sequence[SessionVector]) -> np.ndarray:
+        """x·c for every session and centre, straight from the sessions' sparse parts: each
+        session sums its columns' rows of the centres (numpy only; no sparse matrix)."""
+        sizes = np.fromiter(map(len, (v.indices for v in vecs)), dtype=np.int64, count=len(vecs))
+        dots = np.zeros((len(vecs), self.centers_t.shape[1]))
+        filled = sizes > 0
+        if filled.any():
+            cols = np.concatenate([v.indices for v in vecs])
+            weights = np.concatenate([v.values for v in vecs])
+            starts = (np.cumsum(sizes) - sizes)[filled]
+            dots[filled] = np.add.reduceat(self.centers_t[cols] * weights[:, None], starts, axis=0)
+        return dots
 
     def _knn(self, X: sp.csr_matrix, other_rows: np.ndarray | None) -> np.ndarray:
         n_rows = self.knn_rows_t.shape[1] - (0 if other_rows is None else int(other_rows.sum()))
