@@ -3,7 +3,7 @@
     bench/daemon.py [--quick] [--lines N] [--open N]
 
 Three measurements, each with a fresh state folder holding the same fitted baseline (the
-daemon is started and queried with the integration tests' helpers, tests/test_daemon.py):
+daemon is started and queried with the integration tests' helpers, tests/daemon_helpers.py):
 
 1. throughput: N lines appended at once; seconds from the append until every line is a
    record and every session closed within the data is scored (lines/s), next to
@@ -36,7 +36,7 @@ HERE = Path(__file__).resolve().parent
 ROOT = HERE.parent
 sys.path.insert(0, str(ROOT))
 
-from tests.test_daemon import DaemonProcess, free_port, scaled_lines, write_config  # noqa: E402
+from tests.daemon_helpers import DaemonProcess, free_port, scaled_lines, write_config  # noqa: E402
 from tracewatch.baselines import load_baseline  # noqa: E402
 from tracewatch.batch import assign_sources, fit_files, score_files  # noqa: E402
 from tracewatch.config import load_config  # noqa: E402
@@ -290,13 +290,17 @@ def report(r: dict) -> str:
 
 def run(ctx) -> None:
     """bench/run.py entry point."""
-    r = measure(min(ctx.lines, 200_000), 100_000, 10.0, 2000.0)
-    t = r["throughput"]
+    r = measure(min(ctx.lines, 1_000_000), 100_000, 10.0, 2000.0)  # sustained: about ten seconds of input
+    t, d = r["throughput"], r["delay"]
     ctx.row("daemon", "live ingest + scoring", t["lines"], t["ingest_s"], t["rss_mb"])
+    ctx.check("daemon: lines/s ÷ 100k", t["lines_per_s"] / 100_000, 1.0)  # issue 6
+    ctx.check("daemon: 1 s ÷ p99 delay beyond the idle timeout", 1000 / max(d["idle_p99_ms"], 1e-9), 1.0)
     for m in r["memory"]:
         base = f", {m['ngrams']} n-gram baseline" if m["ngrams"] else ""
         ctx.row("daemon", f"{m['sessions_written']} open, cap {m['bound']}{base}", m["lines"],
                 m["ingest_s"], m["peak_rss_mb"])
+        if m["ngrams"]:
+            ctx.check(f"daemon: 300 MB ÷ peak RSS, 100k open, {m['ngrams']} n-grams", 300 / m["peak_rss_mb"], 1.0)
     print(report(r), file=sys.stderr)
 
 

@@ -1,14 +1,23 @@
-"""Shared fixtures: configs built in tmp folders, generated scenarios, the CLI as a subprocess."""
+"""Shared fixtures: configs built in tmp folders, generated scenarios, a demo baseline fitted
+once per run, the CLI as a subprocess."""
 
 from __future__ import annotations
 
 import os
+import shutil
 import subprocess
 import sys
 import threading
 from pathlib import Path
+from typing import NamedTuple
 
 import pytest
+
+from tracewatch.baselines import Baseline
+from tracewatch.batch import assign_sources, fit_files
+from tracewatch.config import Config, parse_config
+from tracewatch.demo.run import write_scenario
+from tracewatch.demo.scenario import parcel_lockers
 
 ROOT = Path(__file__).resolve().parent.parent
 
@@ -30,3 +39,30 @@ def _no_thread_leaks():
     yield
     leaked = [t for t in threading.enumerate() if t not in before and t.is_alive() and not t.daemon]
     assert not leaked, f"threads left running: {leaked}"
+
+
+class DemoFit(NamedTuple):
+    cfg: Config
+    baseline: Baseline
+    day: Path  # a day to score: 150 normal sessions and 4 anomalies of each kind
+
+
+@pytest.fixture(scope="session")
+def demo_fit(tmp_path_factory) -> DemoFit:
+    """A baseline fitted once on 400 sessions of the parcel-locker demo (source "api"). Shared by
+    every test that asks: read it, never change it; a test that changes the state takes
+    :func:`demo_state`."""
+    tmp = tmp_path_factory.mktemp("demo-fit")
+    sc = parcel_lockers()
+    base, day, _ = write_scenario(tmp, sc, seed=3, n_baseline=400, n_normal=150, per_kind=4)
+    cfg = parse_config({"state_dir": str(tmp / "state"),
+                        "sources": [{"name": "api", "line_pattern": sc.line_pattern}],
+                        "sessions": {"idle_timeout_s": 5}, "model": {"false_alarm_rate": 0.02}})
+    baseline, _, _ = fit_files(cfg, assign_sources(cfg, [str(base)]))
+    return DemoFit(cfg, baseline, day)
+
+
+@pytest.fixture
+def demo_state(demo_fit, tmp_path) -> Path:
+    """This test's own copy of :func:`demo_fit`'s state folder, free to change."""
+    return Path(shutil.copytree(demo_fit.cfg.state_dir, tmp_path / "state"))

@@ -23,8 +23,8 @@ from prometheus_client.parser import text_string_to_metric_families
 
 from tracewatch.demo.scenario import GeneratedSession, generate, parcel_lockers, render_text
 
-from .daemon_helpers import DEPLOY, Neighbour, http_json, need_program, neighbours  # noqa: F401
-from .test_daemon import DaemonProcess, _no_daemon_left, _workspace, _write, fitted, free_port  # noqa: F401
+from .daemon_helpers import (DEPLOY, DaemonProcess, Neighbour, fitted, free_port, http_json, need_program,  # noqa: F401
+                             neighbours, no_daemon_left, workspace, write_burst)
 
 AM_CONFIG = DEPLOY / "alertmanager" / "alertmanager.yml"
 EXAMPLE_RECEIVER_PORT = ":5001/"
@@ -79,7 +79,7 @@ def am_samples(am: Neighbour) -> dict[tuple, float]:
 
 def test_a_real_alertmanager_shows_two_incidents_then_their_resolution(fitted, tmp_path, alertmanager):
     token = secrets.token_hex(16)
-    cfg_path = _workspace(fitted, tmp_path)
+    cfg_path = workspace(fitted, tmp_path)
     with open(cfg_path, "a") as fh:
         fh.write(f'\n[incidents]\nauto_resolve_s = 0\ntoken = "{token}"\n\n'
                  f'[notify]\nalertmanager_url = "{alertmanager.base}"\nalertmanager_labels = {{team = "lockers"}}\n'
@@ -87,7 +87,7 @@ def test_a_real_alertmanager_shows_two_incidents_then_their_resolution(fitted, t
     daemon = DaemonProcess(cfg_path).ready()
     base = f"http://127.0.0.1:{daemon.port}"
     lines = two_faults(time.time() - 60)
-    _write(tmp_path / "logs" / "app.log", lines)
+    write_burst(tmp_path / "logs" / "app.log", lines)
     daemon.caught_up(len(lines))
 
     _, listed = http_json(base, "/api/incidents")

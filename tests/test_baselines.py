@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import hashlib
 import json
 
 import numpy as np
@@ -9,51 +10,27 @@ import pytest
 
 from tracewatch.baselines import (current_version, list_versions, load_baseline, load_baseline_dir,
                                   set_current)
-from tracewatch.batch import assign_sources, fit_files
-from tracewatch.config import parse_config
-from tracewatch.demo.run import write_scenario
-from tracewatch.demo.scenario import parcel_lockers
 from tracewatch.errors import BaselineError, NoBaselineError
 
 from .conftest import run_cli
 
 
-@pytest.fixture(scope="module")
-def fitted(tmp_path_factory):
-    tmp = tmp_path_factory.mktemp("baseline")
-    sc = parcel_lockers()
-    base, day, labels = write_scenario(tmp, sc, seed=5, n_baseline=1200, n_normal=300, per_kind=5)
-    cfg = parse_config({"state_dir": str(tmp / "state"),
-                        "sources": [{"name": "locker-api", "line_pattern": sc.line_pattern}],
-                        "model": {"false_alarm_rate": 0.01}})
-    baseline, path, _ = fit_files(cfg, assign_sources(cfg, [str(base)]))
-    return cfg, baseline, path, day
-
-
-def test_round_trip_scores_identically(fitted):
-    cfg, baseline, path, _ = fitted
+def test_round_trip_scores_identically(demo_fit):
+    cfg, baseline, _ = demo_fit
     loaded = load_baseline(cfg.state_dir)
     assert loaded.version == baseline.version == "v0001" == current_version(cfg.state_dir)
     seqs = list({s for s in loaded.normal_seqs[:50]}) + [(0, 1, 2, 3, 999)]
-    a = baseline.make_scorer().score("locker-api", seqs)
-    b = loaded.make_scorer().score("locker-api", seqs)
+    a = baseline.make_scorer().score("api", seqs)
+    b = loaded.make_scorer().score("api", seqs)
     assert np.allclose([x[0] for x in a], [x[0] for x in b])
     assert [x[1] for x in a] == [x[1] for x in b]
-    assert loaded.conformal("locker-api").threshold_ == baseline.conformal("locker-api").threshold_
+    assert loaded.conformal("api").threshold_ == baseline.conformal("api").threshold_
     assert np.array_equal(loaded.calibration["*"].calibration_scores_, baseline.calibration["*"].calibration_scores_)
     assert [t.id for t in loaded.miner.templates] == [t.id for t in baseline.miner.templates]
 
 
-def _copy(path, tmp_path):
-    import shutil
-
-    dst = tmp_path / "copy"
-    shutil.copytree(path, dst)
-    return dst
-
-
-def test_corrupt_model_file_is_refused(fitted, tmp_path):
-    dst = _copy(fitted[2], tmp_path)
+def test_corrupt_model_file_is_refused(demo_state):
+    dst = demo_state / "baselines" / "v0001"
     data = bytearray((dst / "model.npz").read_bytes())
     data[len(data) // 2] ^= 0xFF
     (dst / "model.npz").write_bytes(bytes(data))
@@ -61,8 +38,8 @@ def test_corrupt_model_file_is_refused(fitted, tmp_path):
         load_baseline_dir(dst)
 
 
-def test_foreign_and_newer_manifests_are_refused(fitted, tmp_path):
-    dst = _copy(fitted[2], tmp_path)
+def test_foreign_and_newer_manifests_are_refused(demo_state, tmp_path):
+    dst = demo_state / "baselines" / "v0001"
     manifest = json.loads((dst / "manifest.json").read_text())
     (dst / "manifest.json").write_text(json.dumps({**manifest, "schema_version": 99}))
     with pytest.raises(BaselineError, match="schema 99 is not supported"):
@@ -77,11 +54,9 @@ def test_foreign_and_newer_manifests_are_refused(fitted, tmp_path):
         load_baseline_dir(tmp_path)
 
 
-def test_npz_with_pickled_object_is_not_loaded(fitted, tmp_path):
+def test_npz_with_pickled_object_is_not_loaded(demo_state):
     # A model.npz carrying a pickled object array must never be unpickled (numpy allow_pickle=False).
-    dst = _copy(fitted[2], tmp_path)
-    import hashlib
-
+    dst = demo_state / "baselines" / "v0001"
     with np.load(dst / "model.npz", allow_pickle=False) as z:
         arrays = {k: z[k] for k in z.files}
     arrays["centers"] = np.array([object()], dtype=object)
@@ -99,23 +74,18 @@ def test_no_baseline_says_how_to_fit(tmp_path):
         load_baseline(tmp_path)
 
 
-def test_versions_and_rollback(fitted):
-    cfg, *_ = fitted
+def test_versions_and_rollback(demo_fit):
+    cfg = demo_fit.cfg
     assert list_versions(cfg.state_dir) == ["v0001"]
     with pytest.raises(BaselineError, match="no baseline version 'v0007'"):
         set_current(cfg.state_dir, "v0007")
 
 
-def test_score_command_with_corrupt_baseline_is_one_line(fitted, tmp_path):
-    cfg, _, path, day = fitted
-    state = tmp_path / "state"
-    import shutil
-
-    shutil.copytree(cfg.state_dir, state)
-    (state / "baselines" / "v0001" / "templates.json").write_text("[]")
+def test_score_command_with_corrupt_baseline_is_one_line(demo_fit, demo_state, tmp_path):
+    (demo_state / "baselines" / "v0001" / "templates.json").write_text("[]")
     conf = tmp_path / "tw.toml"
-    conf.write_text(f'state_dir = "{state}"\n[[sources]]\nname = "x"\n')
-    proc = run_cli("score", "--config", str(conf), str(day))
+    conf.write_text(f'state_dir = "{demo_state}"\n[[sources]]\nname = "x"\n')
+    proc = run_cli("score", "--config", str(conf), str(demo_fit.day))
     assert proc.returncode == 1
     assert "templates.json does not match its checksum" in proc.stderr
     assert len(proc.stderr.strip().splitlines()) == 1 and "Traceback" not in proc.stderr

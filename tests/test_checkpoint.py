@@ -7,10 +7,6 @@ import orjson
 import pytest
 
 from tracewatch.baselines import load_baseline
-from tracewatch.batch import assign_sources, fit_files
-from tracewatch.config import parse_config
-from tracewatch.demo.run import write_scenario
-from tracewatch.demo.scenario import parcel_lockers
 from tracewatch.errors import StateError
 from tracewatch.pipeline import Pipeline
 from tracewatch.sources.checkpoint import (AlertJournal, JournalMark, capture, capture_chunks, load_checkpoint,
@@ -18,15 +14,8 @@ from tracewatch.sources.checkpoint import (AlertJournal, JournalMark, capture, c
 
 
 @pytest.fixture(scope="module")
-def fitted(tmp_path_factory):
-    tmp = tmp_path_factory.mktemp("ckpt")
-    sc = parcel_lockers()
-    base, day, _ = write_scenario(tmp, sc, seed=3, n_baseline=400, n_normal=150, per_kind=4)
-    cfg = parse_config({"state_dir": str(tmp / "state"),
-                        "sources": [{"name": "api", "line_pattern": sc.line_pattern}],
-                        "sessions": {"idle_timeout_s": 5}, "model": {"false_alarm_rate": 0.02}})
-    fit_files(cfg, assign_sources(cfg, [str(base)]))
-    return cfg, day.read_text().splitlines()
+def fitted(demo_fit):
+    return demo_fit.cfg, demo_fit.day.read_text().splitlines()
 
 
 def _feed(pipe: Pipeline, lines: list[str], start: int) -> None:

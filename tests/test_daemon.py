@@ -7,113 +7,29 @@ several kill -9 — with no line lost and no alert twice."""
 
 from __future__ import annotations
 
-import ctypes
-import http.client
 import json
 import os
 import shutil
-import signal
 import socket
-import subprocess
-import sys
 import threading
 import time
 from pathlib import Path
 
 import numpy as np
 import pytest
-from prometheus_client import CollectorRegistry
 from prometheus_client.parser import text_string_to_metric_families
 
 from tracewatch.baselines import atomic_write, baselines_dir, load_baseline
 from tracewatch.batch import assign_sources, fit_files
 from tracewatch.config import load_config
-from tracewatch.demo.scenario import generate, parcel_lockers, render_text
 from tracewatch.pipeline import Pipeline
-from tracewatch.service.daemon import Daemon
 from tracewatch.sessions import LiveTime
 
-from .conftest import ROOT, run_cli
+from .conftest import run_cli
+from .daemon_helpers import (IDLE_S, DaemonProcess, FakeWall, InProcess, fitted, free_port,  # noqa: F401
+                             no_daemon_left, workspace, write_burst, write_config)
 
-IDLE_S = 1.5
-TIME_SCALE = 0.2  # the demo's steps are 0.02-1.5 s apart; scaled, at most 0.3 s (< IDLE_S)
 PAUSE_S = 0.05  # writer pauses stay far below IDLE_S - 0.3 s (the live/batch rule in sessions.py)
-
-CONFIG = """\
-state_dir = "state"
-
-[[sources]]
-name = "api"
-paths = ["{logs}/*.log"]
-format = "text"
-line_pattern = '{pattern}'
-start_at = "beginning"
-
-[sessions]
-idle_timeout_s = {idle}
-max_open_sessions = {max_open}
-end_pattern = '{end}'
-
-[model]
-false_alarm_rate = 0.05
-
-[server]
-listen = "127.0.0.1:{port}"
-
-[daemon]
-poll_interval_s = 0.2
-rotation_grace_s = 0.5
-checkpoint_interval_s = {checkpoint_s}
-"""
-
-
-def scaled_lines(n: int, per_kind: int, seed: int, span_s: float) -> list[str]:
-    """Demo sessions (with ``per_kind`` anomalies of each kind) whose steps are at most 0.3 s apart."""
-    sc = parcel_lockers()
-    sessions = generate(sc, n, per_kind, seed=seed, span_s=span_s)
-    for s in sessions:
-        s.times = [s.start + (t - s.start) * TIME_SCALE for t in s.times]
-    return render_text(sc, sessions)
-
-
-def free_port() -> int:
-    with socket.socket() as s:
-        s.bind(("127.0.0.1", 0))
-        return s.getsockname()[1]
-
-
-def write_config(folder: Path, port: int, *, max_open: int = 100_000, idle: float = IDLE_S,
-                 end_pattern: str = "(?!)", checkpoint_s: float = 0.5) -> Path:
-    """A config following ``folder``/logs/*.log (``(?!)``: an end pattern that never matches)."""
-    (folder / "logs").mkdir(parents=True, exist_ok=True)
-    path = folder / "tracewatch.toml"
-    path.write_text(CONFIG.format(logs=folder / "logs", pattern=parcel_lockers().line_pattern, idle=idle,
-                                  max_open=max_open, port=port, end=end_pattern, checkpoint_s=checkpoint_s))
-    return path
-
-
-@pytest.fixture(scope="module")
-def fitted(tmp_path_factory):
-    """A baseline fitted once, the day's lines, and what `tracewatch score` says about them."""
-    root = tmp_path_factory.mktemp("daemon")
-    cfg_path = write_config(root, 1)
-    cfg = load_config(cfg_path)
-    base = root / "baseline.txt"
-    base.write_text("\n".join(scaled_lines(400, 0, seed=11, span_s=400)) + "\n")
-    fit_files(cfg, assign_sources(cfg, [str(base)]))
-    lines = scaled_lines(260, 4, seed=12, span_s=60)
-    day = root / "day.txt"
-    day.write_text("\n".join(lines) + "\n")
-    batch = run_cli("score", "--config", str(cfg_path), str(day), check=True).stdout
-    expected = [json.loads(x) for x in batch.splitlines()]
-    assert len(expected) >= 10, "the day needs alerts to compare"
-    return root, cfg_path, base, lines, expected
-
-
-def _workspace(fitted, tmp_path: Path, **config) -> Path:
-    """A fresh state folder holding a copy of the fitted baseline; returns the config path."""
-    shutil.copytree(baselines_dir(fitted[0] / "state"), baselines_dir(tmp_path / "state"))
-    return write_config(tmp_path, free_port(), **config)
 
 
 def _comparable(alerts: list[dict]) -> dict[str, dict]:
@@ -121,104 +37,6 @@ def _comparable(alerts: list[dict]) -> dict[str, dict]:
     whether the session was closed by the idle timeout (live) or the end of the input (batch)."""
     return {a["alert_id"]: {k: v for k, v in a.items() if k not in ("closed_by", "first_offset")}
             for a in alerts}
-
-
-def _die_with_parent() -> None:
-    """Linux prctl(PR_SET_PDEATHSIG, SIGKILL): a daemon never outlives the test that started it
-    (man 2 prctl)."""
-    libc = ctypes.CDLL(None, use_errno=True)
-    libc.prctl(1, signal.SIGKILL, 0, 0, 0)  # 1 = PR_SET_PDEATHSIG
-
-
-class DaemonProcess:
-    """`tracewatch run` as a subprocess; every one started is killed at the end of the test
-    (:func:`_no_daemon_left`) if the test did not stop it."""
-
-    started: list[DaemonProcess] = []
-
-    def __init__(self, cfg_path: Path, *extra: str) -> None:
-        self.cfg = load_config(cfg_path)
-        self.port = int(self.cfg.server.listen.rsplit(":", 1)[1])
-        self.err_path = cfg_path.parent / f"daemon-{time.monotonic_ns()}.err"
-        self.err = open(self.err_path, "wb")
-        env = dict(os.environ, PYTHONPATH=str(ROOT))
-        self.proc = subprocess.Popen([sys.executable, "-m", "tracewatch", "run", "--config", str(cfg_path), *extra],
-                                     stdout=subprocess.DEVNULL, stderr=self.err, env=env,
-                                     preexec_fn=_die_with_parent if sys.platform == "linux" else None)
-        DaemonProcess.started.append(self)
-
-    def get(self, path: str) -> tuple[int, bytes]:
-        conn = http.client.HTTPConnection("127.0.0.1", self.port, timeout=10)
-        try:
-            conn.request("GET", path)
-            resp = conn.getresponse()
-            return resp.status, resp.read()
-        finally:
-            conn.close()
-
-    def status(self) -> dict:
-        return json.loads(self.get("/api/status")[1])
-
-    def until(self, pred, what: str, timeout: float = 40.0, step: float = 0.05) -> float:
-        """Wait for ``pred()``; returns the perf_counter time it held."""
-        deadline = time.monotonic() + timeout
-        while time.monotonic() < deadline:
-            assert self.proc.poll() is None, f"the daemon exited ({self.proc.returncode}):\n{self.stderr()}"
-            try:
-                if pred():
-                    return time.perf_counter()
-            except (OSError, http.client.HTTPException):
-                pass  # not listening yet
-            time.sleep(step)
-        raise AssertionError(f"gave up waiting for {what}:\n{self.stderr()[-3000:]}")
-
-    def ready(self) -> DaemonProcess:
-        self.until(lambda: self.get("/readyz")[0] == 200, "readiness")
-        return self
-
-    def caught_up(self, n_lines: int) -> dict:
-        def done() -> bool:
-            s = self.status()
-            return s["sources"][0]["records"] == n_lines and s["sessions_open"] == 0
-        self.until(done, f"{n_lines} records and every session closed")
-        return self.status()
-
-    def terminate(self) -> int:
-        self.proc.send_signal(signal.SIGTERM)
-        code = self.proc.wait(timeout=15)
-        self.err.close()
-        return code
-
-    def kill(self) -> None:
-        self.proc.kill()
-        self.proc.wait(timeout=15)
-        if not self.err.closed:
-            self.err.close()
-
-    def stderr(self) -> str:
-        if not self.err.closed:
-            self.err.flush()
-        return self.err_path.read_text(errors="replace")
-
-
-@pytest.fixture(autouse=True)
-def _no_daemon_left():
-    yield
-    while DaemonProcess.started:
-        daemon = DaemonProcess.started.pop()
-        if daemon.proc.poll() is None:
-            daemon.kill()
-
-
-def _write(path: Path, lines: list[str]) -> None:
-    """One burst, delivered in two writes cut inside a line (the daemon must hold the half line)."""
-    data = "".join(line + "\n" for line in lines).encode()
-    cut = len(data) // 2 + 3
-    with open(path, "ab") as fh:
-        fh.write(data[:cut])
-        fh.flush()
-        time.sleep(0.005)
-        fh.write(data[cut:])
 
 
 def _rotate(logs: Path) -> None:
@@ -236,7 +54,7 @@ def _journal(cfg_path: Path) -> list[dict]:
 
 def test_live_alerts_equal_the_batch_through_rotation_copytruncate_and_restart(fitted, tmp_path):
     _, _, _, lines, expected = fitted
-    cfg_path = _workspace(fitted, tmp_path)
+    cfg_path = workspace(fitted, tmp_path)
     logs = tmp_path / "logs"
     daemon = DaemonProcess(cfg_path, "--log-format", "json").ready()
     bursts = [lines[i:i + 150] for i in range(0, len(lines), 150)]
@@ -250,7 +68,7 @@ def test_live_alerts_equal_the_batch_through_rotation_copytruncate_and_restart(f
             assert daemon.terminate() == 0
             assert all(json.loads(x)["level"] for x in daemon.stderr().splitlines())  # JSON lines
             daemon = DaemonProcess(cfg_path).ready()
-        _write(logs / "app.log", burst)
+        write_burst(logs / "app.log", burst)
         time.sleep(PAUSE_S)
     status = daemon.caught_up(len(lines))
     _, metrics = daemon.get("/metrics")
@@ -271,7 +89,7 @@ def test_live_alerts_equal_the_batch_through_rotation_copytruncate_and_restart(f
 
 def test_kill_9_while_writing_loses_nothing_and_repeats_nothing(fitted, tmp_path):
     _, _, _, lines, expected = fitted
-    cfg_path = _workspace(fitted, tmp_path)
+    cfg_path = workspace(fitted, tmp_path)
     logs = tmp_path / "logs"
     bursts = [lines[i:i + 60] for i in range(0, len(lines), 60)]
     done = threading.Event()
@@ -280,7 +98,7 @@ def test_kill_9_while_writing_loses_nothing_and_repeats_nothing(fitted, tmp_path
         for i, burst in enumerate(bursts):
             if i == len(bursts) // 2:
                 _rotate(logs)
-            _write(logs / "app.log", burst)
+            write_burst(logs / "app.log", burst)
             time.sleep(0.15)
         done.set()
 
@@ -311,7 +129,7 @@ def test_kill_9_while_writing_loses_nothing_and_repeats_nothing(fitted, tmp_path
     ("missing-folder", 1, "does not exist"),
 ], ids=["no-baseline", "port-in-use", "missing-folder"])
 def test_start_up_errors_are_one_clear_line(fitted, tmp_path, problem, code, message):
-    cfg_path = write_config(tmp_path, free_port()) if problem == "no-baseline" else _workspace(fitted, tmp_path)
+    cfg_path = write_config(tmp_path, free_port()) if problem == "no-baseline" else workspace(fitted, tmp_path)
     blocker = None
     if problem == "port-in-use":
         blocker = socket.socket()
@@ -330,37 +148,13 @@ def test_start_up_errors_are_one_clear_line(fitted, tmp_path, problem, code, mes
 
 
 # -- in-process: the same Daemon object, driven from a thread --------------------------------------
-class InProcess:
-    def __init__(self, cfg_path: Path) -> None:
-        self.registry = CollectorRegistry()
-        self.daemon = Daemon(load_config(cfg_path), registry=self.registry)
-        self.daemon.start()
-        self.thread = threading.Thread(target=self.daemon.run)
-        self.thread.start()
-
-    def until(self, pred, what: str, timeout: float = 30.0) -> None:
-        deadline = time.monotonic() + timeout
-        while time.monotonic() < deadline:
-            if pred():
-                return
-            time.sleep(0.05)
-        raise AssertionError(f"gave up waiting for {what}; status: {self.daemon.status()}")
-
-    def metric(self, name: str, labels: dict | None = None) -> float | None:
-        return self.registry.get_sample_value(name, labels or {})
-
-    def stop(self) -> None:
-        self.daemon.stop()
-        self.thread.join(15)
-
-
 def test_hot_reload_refuses_a_corrupt_baseline_and_keeps_open_sessions(fitted, tmp_path):
     _, _, base, lines, _ = fitted
-    cfg_path = _workspace(fitted, tmp_path, idle=600)  # nothing closes while the test refits
+    cfg_path = workspace(fitted, tmp_path, idle=600)  # nothing closes while the test refits
     cfg = load_config(cfg_path)
     live = InProcess(cfg_path)
     try:
-        _write(tmp_path / "logs" / "app.log", lines[:200])
+        write_burst(tmp_path / "logs" / "app.log", lines[:200])
         live.until(lambda: live.metric("tracewatch_records_total", {"source": "api"}) == 200, "200 records")
         open_before = live.daemon.status()["sessions_open"]
         assert open_before > 0
@@ -384,12 +178,12 @@ def test_hot_reload_refuses_a_corrupt_baseline_and_keeps_open_sessions(fitted, t
 
 
 def test_max_open_sessions_evicts_the_oldest_and_counts_it(fitted, tmp_path):
-    cfg_path = _workspace(fitted, tmp_path, max_open=20)
+    cfg_path = workspace(fitted, tmp_path, max_open=20)
     live = InProcess(cfg_path)
     try:
-        _write(tmp_path / "logs" / "app.log",
-               [f"2026-11-30T10:00:{i:02d}.000Z INFO [locker-api] req=k{i:03d} health probe from monitor 10.0.0.{i}"
-                for i in range(50)])
+        write_burst(tmp_path / "logs" / "app.log",
+                    [f"2026-11-30T10:00:{i:02d}.000Z INFO [locker-api] req=k{i:03d} health probe from monitor "
+                     f"10.0.0.{i}" for i in range(50)])
         live.until(lambda: live.metric("tracewatch_records_total", {"source": "api"}) == 50, "50 records")
         live.until(lambda: live.metric("tracewatch_sessions_evicted_total") == 30, "30 evictions")
         assert live.metric("tracewatch_sessions_open") == 20
@@ -398,7 +192,7 @@ def test_max_open_sessions_evicts_the_oldest_and_counts_it(fitted, tmp_path):
 
 
 def test_readiness_follows_the_watched_folder(fitted, tmp_path):
-    cfg_path = _workspace(fitted, tmp_path)
+    cfg_path = workspace(fitted, tmp_path)
     live = InProcess(cfg_path)
     try:
         assert live.daemon.ready() == (True, "")
@@ -407,21 +201,13 @@ def test_readiness_follows_the_watched_folder(fitted, tmp_path):
         assert "source api is not attached: folder" in live.daemon.ready()[1]
         (tmp_path / "logs").mkdir()
         live.until(lambda: live.daemon.ready()[0], "ready again")
-        _write(tmp_path / "logs" / "app.log", fitted[3][:10])  # watched again: new files are read
+        write_burst(tmp_path / "logs" / "app.log", fitted[3][:10])  # watched again: new files are read
         live.until(lambda: live.metric("tracewatch_records_total", {"source": "api"}) == 10, "10 records")
     finally:
         live.stop()
 
 
 # -- the live clock ---------------------------------------------------------------------------------
-class FakeWall:
-    def __init__(self) -> None:
-        self.t = 5_000.0
-
-    def __call__(self) -> float:
-        return self.t
-
-
 def test_live_time_follows_records_and_moves_on_only_while_quiet():
     wall, mark = FakeWall(), [0.0]
     live = LiveTime(lambda: mark[0], wall)

@@ -25,8 +25,8 @@ from prometheus_client.parser import text_string_to_metric_families
 
 from tracewatch.demo.scenario import parcel_lockers
 
-from .daemon_helpers import DEPLOY, Neighbour, need_program, neighbours  # noqa: F401
-from .test_daemon import DaemonProcess, _no_daemon_left, _workspace, _write, fitted, free_port  # noqa: F401
+from .daemon_helpers import (DEPLOY, DaemonProcess, Neighbour, fitted, free_port, need_program,  # noqa: F401
+                             neighbours, no_daemon_left, workspace, write_burst)
 
 PROM_DIR = DEPLOY / "prometheus"
 RULES = ("TracewatchDown", "TracewatchIngestLagGrowing", "TracewatchRecordsRejected", "TracewatchNoBaseline")
@@ -74,8 +74,8 @@ def by(prom: Neighbour, label: str, expr: str) -> dict[str, float]:
 
 def test_a_real_prometheus_stores_what_the_daemon_processed(fitted, tmp_path, prometheus):
     _, _, _, lines, expected = fitted
-    daemon = DaemonProcess(_workspace(fitted, tmp_path)).ready()
-    _write(tmp_path / "logs" / "app.log", lines)
+    daemon = DaemonProcess(workspace(fitted, tmp_path)).ready()
+    write_burst(tmp_path / "logs" / "app.log", lines)
     status = daemon.caught_up(len(lines))
     _, text = daemon.get("/metrics")
     exposed = {(s.name, tuple(sorted(s.labels.items()))): s.value

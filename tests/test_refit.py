@@ -12,30 +12,26 @@ from __future__ import annotations
 import json
 import logging
 import shutil
-import threading
-import time
 from collections import defaultdict
 from datetime import datetime, timezone
 from pathlib import Path
 
 import pytest
-from prometheus_client import CollectorRegistry
 
 from tracewatch.alerts.incidents import IncidentTracker
 from tracewatch.alerts.store import IncidentStore
 from tracewatch.baselines import baselines_dir, current_version, list_versions, load_baseline
 from tracewatch.batch import assign_sources, fit_files, run_files, score_files
-from tracewatch.config import Config, load_config, parse_config
+from tracewatch.config import Config, parse_config
 from tracewatch.demo.scenario import (ANOMALY_KINDS, Scenario, Step, _novel_jam, generate, parcel_lockers, pickup,
                                       render_text)
 from tracewatch.errors import ConfigError, StateError
 from tracewatch.pipeline import Pipeline
 from tracewatch.refit import (POOL_FILE, QuietPool, add_incidents, binomial_tail, refit, refit_data,
                               refit_files)
-from tracewatch.service.daemon import Daemon
 
 from .conftest import run_cli
-from .test_daemon import FakeWall, InProcess, free_port
+from .daemon_helpers import FakeWall, InProcess, free_port
 
 RATE = 0.02  # small pools: a calibration set needs 1/RATE - 1 = 49 sessions
 SC = parcel_lockers()
@@ -335,26 +331,6 @@ def test_command_user_errors_are_one_line(fitted, tmp_path):
 
 
 # -- the daemon --------------------------------------------------------------------------------------------
-class Live(InProcess):
-    """The real Daemon in-process (as in test_daemon.py), on a fake wall clock."""
-
-    def __init__(self, cfg_path: Path, wall: FakeWall) -> None:
-        self.registry = CollectorRegistry()
-        self.daemon = Daemon(load_config(cfg_path), registry=self.registry, wall=wall)
-        self.daemon.start()
-        self.thread = threading.Thread(target=self.daemon.run)
-        self.thread.start()
-
-    def advance(self, wall: FakeWall, pred, what: str, step: float = 10.0) -> None:
-        """Move the wall clock on ``step`` seconds at a time until ``pred()`` holds (the live
-        clock counts quiet time only from the moment it has seen the newest record)."""
-        def moved() -> bool:
-            wall.t += step
-            time.sleep(0.1)
-            return pred()
-        self.until(moved, what)
-
-
 def _daemon_config(fitted: Path, tmp_path: Path) -> Path:
     workspace(fitted, tmp_path)
     d = config_dict(tmp_path, enabled=True, interval_s=3600)
@@ -372,22 +348,22 @@ def test_daemon_pools_refits_on_its_clock_and_switches_baseline(fitted, tmp_path
     n_lines = sum(len(s.steps) for s in lines)
     wall = FakeWall()
     first_start = wall.t
-    live = Live(cfg_path, wall)
+    live = InProcess(cfg_path, wall)
     try:
         live.until(lambda: live.metric("tracewatch_records_total", {"source": "api"}) == n_lines, "every record")
         # quiet for longer than idle_timeout_s: every session closes and is scored
-        live.advance(wall, lambda: live.daemon.status()["sessions_open"] == 0, "every session closed")
+        live.advance(lambda: live.daemon.status()["sessions_open"] == 0, "every session closed")
         pooled = live.metric("tracewatch_refit_pool_sessions", {"source": "api"})
         assert pooled > 500 and live.metric("tracewatch_refits_total", {"outcome": "promoted"}) == 0
     finally:
         live.stop()
     assert json.loads((tmp_path / "state" / POOL_FILE).read_bytes())["baseline_version"] == "v0001"
 
-    live = Live(cfg_path, wall)  # the pool survives a restart, and so does the refit schedule
+    live = InProcess(cfg_path, wall)  # the pool survives a restart, and so does the refit schedule
     try:
         assert live.metric("tracewatch_refit_pool_sessions", {"source": "api"}) == pooled
         wall.t += 1800  # open incidents (false alarms) resolve after auto_resolve_s
-        live.advance(wall, lambda: not live.daemon.incidents.store.counts().get("open"), "incidents resolved")
+        live.advance(lambda: not live.daemon.incidents.store.counts().get("open"), "incidents resolved")
         assert wall.t < first_start + 3600  # the first start + interval_s
         assert live.metric("tracewatch_refits_total", {"outcome": "promoted"}) == 0  # not due yet
         wall.t = first_start + 3600
@@ -404,7 +380,7 @@ def test_daemon_pools_refits_on_its_clock_and_switches_baseline(fitted, tmp_path
 def test_daemon_moves_a_corrupt_pool_aside_and_starts(fitted, tmp_path, caplog):
     cfg_path = _daemon_config(fitted, tmp_path)
     (tmp_path / "state" / POOL_FILE).write_bytes(b"{ not json")
-    live = Live(cfg_path, FakeWall())
+    live = InProcess(cfg_path, FakeWall())
     try:
         assert live.daemon.ready() == (True, "")
         assert (tmp_path / "state" / (POOL_FILE + ".corrupt")).read_bytes() == b"{ not json"
