@@ -57,7 +57,7 @@ max_open_sessions = {max_open}
 end_pattern = '{end}'
 
 [model]
-false_alarm_rate = 0.05
+false_alarm_rate = {rate}
 
 [server]
 listen = "127.0.0.1:{port}"
@@ -84,12 +84,13 @@ def free_port() -> int:
 
 
 def write_config(folder: Path, port: int, *, max_open: int = 100_000, idle: float = IDLE_S,
-                 end_pattern: str = "(?!)", checkpoint_s: float = 0.5) -> Path:
+                 end_pattern: str = "(?!)", checkpoint_s: float = 0.5, false_alarm_rate: float = 0.05) -> Path:
     """A config following ``folder``/logs/*.log (``(?!)``: an end pattern that never matches)."""
     (folder / "logs").mkdir(parents=True, exist_ok=True)
     path = folder / "tracewatch.toml"
     path.write_text(CONFIG.format(logs=folder / "logs", pattern=parcel_lockers().line_pattern, idle=idle,
-                                  max_open=max_open, port=port, end=end_pattern, checkpoint_s=checkpoint_s))
+                                  max_open=max_open, port=port, end=end_pattern, checkpoint_s=checkpoint_s,
+                                  rate=false_alarm_rate))
     return path
 
 

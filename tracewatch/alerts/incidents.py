@@ -35,6 +35,8 @@ import sqlite3
 import time
 from collections import Counter
 from collections.abc import Callable, Iterable
+from itertools import repeat
+from operator import mul
 from pathlib import Path
 
 import orjson
@@ -99,7 +101,7 @@ def alert_vector(alert: dict) -> Vector:
 def dot(a: Vector, b: Vector) -> float:
     if len(a) > len(b):
         a, b = b, a
-    return sum(w * b.get(k, 0.0) for k, w in a.items())
+    return sum(map(mul, a.values(), map(b.get, a, repeat(0.0))))  # the loop runs in C
 
 
 def _trim(v: Vector, keep: int) -> Vector:
@@ -243,16 +245,19 @@ class IncidentTracker:
         count = g.count + 1
         aid = alert["alert_id"]
         members = list(g.members)
+        closeness = [dot(v, total) for _, v in members]  # to the centre: the medoid has the most
         if len(members) < self.cfg.max_members:
             members.append((aid, x))
+            closeness.append(dot(x, total))
             db.execute("INSERT INTO members VALUES (?, ?, ?, ?)", (iid, aid, dumps(x), dumps(alert)))
         else:  # keep the candidates closest to the centre
-            worst = min(range(len(members)), key=lambda i: dot(members[i][1], total))
-            if dot(x, total) > dot(members[worst][1], total):
+            worst = min(range(len(members)), key=closeness.__getitem__)
+            mine = dot(x, total)
+            if mine > closeness[worst]:
                 db.execute("DELETE FROM members WHERE incident_id = ? AND alert_id = ?", (iid, members[worst][0]))
-                members[worst] = (aid, x)
+                members[worst], closeness[worst] = (aid, x), mine
                 db.execute("INSERT INTO members VALUES (?, ?, ?, ?)", (iid, aid, dumps(x), dumps(alert)))
-        medoid = max(members, key=lambda m: dot(m[1], total))[0]
+        medoid = members[max(range(len(members)), key=closeness.__getitem__)][0]
         stats = orjson.loads(stats_json)
         _stats_add(stats, alert)
         sets = ["count = ?", "first_seen = ?", "last_seen = ?", "stats = ?", "centroid = ?"]
