@@ -98,7 +98,7 @@ class Context:
     lines: int
     baseline_lines: int
     regen: bool = False
-    repeat: int = 2  # runs per timed subject; the fastest counts
+    repeat: int = 3  # runs per timed subject; the fastest counts
     out: Path = OUT
     rows: list[Row] = field(default_factory=list)
     checks: list[Check] = field(default_factory=list)
@@ -208,7 +208,7 @@ def main(argv: list[str] | None = None) -> int:
     size.add_argument("--lines", type=int, help="lines in the scored file (env TRACEWATCH_BENCH_LINES)")
     ap.add_argument("--only", nargs="+", choices=sorted(BENCHMARKS), help="run only these benchmarks")
     ap.add_argument("--regen", action="store_true", help="rewrite the generated input files")
-    ap.add_argument("--repeat", type=int, default=2, help="runs per timed subject, the fastest counts (default 2)")
+    ap.add_argument("--repeat", type=int, default=3, help="runs per timed subject, the fastest counts (default 3)")
     ap.add_argument("--profile", action="store_true", help="also profile tracewatch on the same input")
     a = ap.parse_args(argv)
     lines = QUICK_LINES if a.quick else a.lines or int(os.environ.get("TRACEWATCH_BENCH_LINES", DEFAULT_LINES))

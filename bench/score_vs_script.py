@@ -91,27 +91,31 @@ def run(ctx) -> None:
     startup_s = min(ctx.process([*tw, "score", "--config", str(cfg), str(tiny)], stdout=work / "tiny.jsonl").seconds
                     for _ in range(ctx.repeat))
 
-    # each subject runs ctx.repeat times; the fastest run counts (other load on the machine only
-    # ever slows a run down), peak RSS is the largest seen
+    # each subject runs ctx.repeat times, the subjects taking turns (a slow spell of this shared
+    # machine then hits both); the fastest run counts (other load on the machine only ever slows
+    # a run down), peak RSS is the largest seen
     alerts = work / "alerts.jsonl"
     score_cmd = [*tw, "score", "--config", str(cfg), str(scored.path)]
-    tw_runs = [ctx.process(score_cmd, stdout=alerts) for _ in range(ctx.repeat)]
+    flagged = work / "script-flagged.jsonl"
+    script_cmd = [sys.executable, str(HERE / "script_baseline.py"), "--baseline", str(base.path),
+                  "--score", str(scored.path), "--out", str(flagged)]
+    tw_runs, sc_runs, bare_runs = [], [], []
+    for i in range(ctx.repeat):
+        tw_runs.append(ctx.process(score_cmd, stdout=alerts))
+        sc_runs.append(ctx.process(script_cmd, stdout=work / f"script-{i}.json"))
+        bare_runs.append(bare_loop(scored.path))
     tw_s = min(r.seconds for r in tw_runs)
     tw_quality = detection(_keys(alerts, True), scored.labels)
     ctx.row("text score", "tracewatch score", scored.lines, tw_s, max(r.rss_mb for r in tw_runs),
             f"whole process, start-up {startup_s:.2f} s of it; {_quality(tw_quality)}")
 
-    flagged = work / "script-flagged.jsonl"
-    script_cmd = [sys.executable, str(HERE / "script_baseline.py"), "--baseline", str(base.path),
-                  "--score", str(scored.path), "--out", str(flagged)]
-    sc_runs = [ctx.process(script_cmd, stdout=work / f"script-{i}.json") for i in range(ctx.repeat)]
     reports = [json.loads(r.stdout_text()) for r in sc_runs]
     best = min(reports, key=lambda r: r["score_s"])
     sc_quality = detection(_keys(flagged, False), scored.labels)
     ctx.row("text score", "scikit-learn script", best["lines"], best["score_s"], max(r.rss_mb for r in sc_runs),
             f"scoring pass only (fit {best['fit_s']:.1f} s excluded; RSS covers both); {_quality(sc_quality)}")
 
-    n_bare, bare_s = min((bare_loop(scored.path) for _ in range(ctx.repeat)), key=lambda r: r[1])
+    n_bare, bare_s = min(bare_runs, key=lambda r: r[1])
     ctx.row("text score", "bare read+split loop", n_bare, bare_s, None, "in the runner's process")
 
     tw_rate = scored.lines / tw_s

@@ -121,14 +121,16 @@ class Baseline:
             sizes = indptr[rows + 1] - indptr[rows]
             # positions of the cluster's rows' entries, and the row (0..len(rows)) of each
             take = np.repeat(indptr[rows] - (np.cumsum(sizes) - sizes), sizes) + np.arange(int(sizes.sum()))
-            cached = self._by_cluster[cluster] = (rows, data[take], indices[take],
-                                                  np.repeat(np.arange(len(rows)), sizes))
-        rows, data, indices, row_of = cached
-        if len(rows) == 0 or len(vec.indices) == 0:
+            filled = sizes > 0
+            starts = (np.cumsum(sizes) - sizes)[filled]  # of the cluster's rows in data[take]
+            cached = self._by_cluster[cluster] = (rows, data[take], indices[take], filled, starts)
+        rows, data, indices, filled, starts = cached
+        if not filled.any() or len(vec.indices) == 0:
             return self.medoids[cluster]
         dense = np.zeros(self.centers.shape[1])
         dense[vec.indices] = vec.values
-        dots = np.bincount(row_of, weights=data * dense[indices], minlength=len(rows))
+        dots = np.zeros(len(rows))
+        dots[filled] = np.add.reduceat(data * dense[indices], starts)  # row sums of the products
         return self.normal_seqs[int(rows[int(np.argmax(dots))])]
 
     def make_scorer(self) -> SessionScorer:

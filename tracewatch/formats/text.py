@@ -9,7 +9,7 @@ lines matching it (stack traces, wrapped lines) are attached to the record befor
 from __future__ import annotations
 
 import re
-from operator import methodcaller
+from itertools import repeat
 
 from ..config import SourceConfig
 from ..records import Record, Rejection
@@ -28,7 +28,6 @@ class TextFormat:
         self._cont_max = src.continuation_max
         self._pending: Record | None = None
         self._pending_lines = 0
-        self._groups = methodcaller("group", *self._gi)
         # feed(line, offset) -> Output: the per-line entry point, chosen once per instance
         self.feed = self._feed_multiline if self._cont is not None else self._parse
 
@@ -83,14 +82,15 @@ class TextFormat:
         if self._pattern is None or self._cont is not None:
             return None
         matches = list(map(self._pattern.match, lines))
-        if None in matches:
+        if None in matches or not matches:
             return None
         gm, gts, glevel, gkey = self._gi
-        messages, stamps, _, keys = zip(*map(self._groups, matches))
-        keys = list(keys) if gkey else [None] * len(lines)
+        group = type(matches[0]).group  # one column at a time: far quicker than zip(*rows)
+        keys = list(map(group, matches, repeat(gkey))) if gkey else [None] * len(lines)
         if self._key is not None and None in keys:
             keys = [k if k is not None else self._key_of(line) for k, line in zip(keys, lines)]
-        return keys, timestamps(stamps) if gts else [None] * len(lines), list(messages)
+        stamps = timestamps(list(map(group, matches, repeat(gts)))) if gts else [None] * len(lines)
+        return keys, stamps, list(map(group, matches, repeat(gm)))
 
     @property
     def held_from(self) -> int | None:
