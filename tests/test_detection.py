@@ -75,8 +75,11 @@ def test_block_path_and_line_path_give_the_same_verdicts(tmp_path, monkeypatch):
 
     scenario = parcel_lockers()
     base, day, _ = write_scenario(tmp_path, scenario, seed=31, n_baseline=1500, n_normal=600, per_kind=5)
-    with open(day, "a") as fh:  # a few lines that force the per-line path for their block
-        fh.write("not a log line at all\n\n")
+    with open(day, "ab") as fh:  # non-ASCII text (the block's own decoding path), then lines that
+        # force the per-line path for their part: invalid UTF-8, no match, blank
+        fh.write("2026-11-30T23:59:59.000Z INFO [locker-api] req=zz01 courier Zoë authenticated\n".encode())
+        fh.write(b"2026-11-30T23:59:59.500Z INFO [locker-api] req=zz02 bad \xff byte\n")
+        fh.write(b"not a log line at all\n\n")
     cfg = parse_config({"state_dir": str(tmp_path / "state"),
                         "sources": [{"name": "app", "line_pattern": scenario.line_pattern}],
                         "model": {"false_alarm_rate": 0.01}})
@@ -90,5 +93,8 @@ def test_block_path_and_line_path_give_the_same_verdicts(tmp_path, monkeypatch):
     pipe.flush()
     strip = lambda vs: sorted((v["alert_id"], v["alert"], v["score"], tuple(v["reasons"])) for v in vs)  # noqa: E731
     assert strip(by_block) == strip(by_line) and len(by_block) > 600
-    assert sum(u is not None for u in used) >= 5 and None in used  # both paths were taken
+    # both paths were taken: blocks read in bulk, and the part with unreadable lines line by line
+    # (only the per-line path rejects lines)
+    assert sum(u is not None for u in used) >= 5 and sum(blocked.rejected.values()) == 2
     assert blocked.records == pipe.records and blocked.lines == pipe.lines and blocked.rejected == pipe.rejected
+    assert blocked.repaired == pipe.repaired == {("app", "invalid_utf8"): 1}

@@ -100,14 +100,23 @@ class Pipeline:
         the batch reader and the daemon's followers hand on. The same as :meth:`feed_lines`;
         when the format can read the whole block at once (``match_block``), it does."""
         match_block = getattr(self._format(source, stream), "match_block", None)
-        columns = match_block(lines) if match_block is not None and repairs is None and lines else None
-        if columns is None:
+        if match_block is None:
             self.feed_lines(source, stream, zip(lines, offsets, repairs or repeat(None)))
             return
-        self.lines[source] += len(lines)
-        self.records[source] += len(lines)
-        keys, stamps, messages = columns
-        self._add_columns(source, keys, stamps, self.miner.add_many(messages), lines, offsets, messages)
+        # TICK_EVERY lines at a time: a line the format cannot read in bulk (no match, bad JSON,
+        # repaired bytes) sends only its part down the per-line path, and what a part allocates
+        # (a JSON object per line) is freed before the next one
+        for lo in range(0, len(lines), TICK_EVERY):
+            part, part_offsets = lines[lo:lo + TICK_EVERY], offsets[lo:lo + TICK_EVERY]
+            part_repairs = repairs[lo:lo + TICK_EVERY] if repairs is not None else None
+            columns = None if part_repairs is not None and any(part_repairs) else match_block(part)
+            if columns is None:  # a line the per-line path must see: this part goes that way
+                self.feed_lines(source, stream, zip(part, part_offsets, part_repairs or repeat(None)))
+                continue
+            self.lines[source] += len(part)
+            self.records[source] += len(part)
+            keys, stamps, messages = columns
+            self._add_columns(source, keys, stamps, self.miner.add_many(messages), part, part_offsets, messages)
 
     def _accept(self, source: str, out) -> list[Record]:
         """The records among a format's output; rejections are counted and sampled, and the

@@ -77,7 +77,7 @@ def block_of(block: bytes, offset: int, max_line_bytes: int) -> Block:
         offsets.append(offset)
         repairs.append(problem)
         offset += len(raw) + 1
-    return out_lines, offsets, repairs
+    return out_lines, offsets, repairs if any(repairs) else None
 
 
 def read_lines(path: Path, max_line_bytes: int) -> Iterator[tuple[str, int, str | None]]:
