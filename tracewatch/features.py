@@ -29,11 +29,9 @@ def ngrams(seq: Sequence[int], n_max: int) -> Counter:
     """Counts of all 1..n_max-grams of ``seq`` framed by the START/END markers (which never
     stand alone as unigrams)."""
     framed = (START, *seq, END)
-    counts: Counter = Counter()
-    size = len(framed)
-    for n in range(1, n_max + 1):
-        lo, hi = (1, size - 1) if n == 1 else (0, size - n + 1)
-        counts.update(framed[i:i + n] for i in range(lo, hi))
+    counts = Counter(zip(framed[1:-1]))  # 1-tuples; zip of shifted copies counts in C
+    for n in range(2, n_max + 1):
+        counts.update(zip(*(framed[k:] for k in range(n))))
     return counts
 
 

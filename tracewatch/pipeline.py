@@ -213,11 +213,11 @@ class Pipeline:
             for i, res in zip(rows, self.scorer.score(source, [seqs[i] for i in rows])):
                 results[i] = res
             p_values[rows] = b.conformal(source).p_values([results[i][0] for i in rows])
+            self.sessions_scored[source] += len(rows)
         rate = b.false_alarm_rate
         n_seen = self.miner.n_seen
         on_quiet = self.on_quiet
-        for sess, seq, (score, cluster, dist, unseen_share), p in zip(sessions, seqs, results, p_values):
-            self.sessions_scored[sess.source] += 1
+        for sess, seq, (score, cluster, dist, unseen_share), p in zip(sessions, seqs, results, p_values.tolist()):
             far = p <= rate
             unseen = max(seq) >= n_seen
             if on_quiet is not None and not (far or unseen):
@@ -225,7 +225,7 @@ class Pipeline:
             if not (far or unseen or self.score_all):
                 continue
             alarm = far or unseen
-            verdict = build_verdict(sess, seq, score, cluster, dist, unseen_share, float(p), far, b,
+            verdict = build_verdict(sess, seq, score, cluster, dist, unseen_share, p, far, b,
                                     self.redact, explain_it=alarm)
             for reason in verdict["reasons"]:
                 self.alerts[(sess.source, reason)] += 1
