@@ -11,6 +11,7 @@ when that still makes sense.
 
 from __future__ import annotations
 
+import functools
 import re
 from operator import attrgetter, methodcaller
 from datetime import datetime, timezone
@@ -102,6 +103,19 @@ def _iso_layout(text: str) -> tuple[list[int], int, int, str] | None:
 _ZEROS = str.maketrans("123456789", "000000000")
 
 
+@functools.lru_cache(maxsize=64)
+def _place_values(frac: int, sign: int) -> np.ndarray:
+    """digits × fields matrix: a layout's digits (year 4, month, day, hour, minute, second 2 each,
+    ``frac`` fraction digits, zone hours and minutes when ``sign``) times it give the fields."""
+    sizes = [4, 2, 2, 2, 2, 2, frac] + ([2, 2] if sign else [])
+    place = np.zeros((sum(sizes), len(sizes)))
+    at = 0
+    for j, size in enumerate(sizes):
+        place[at:at + size, j] = 10.0 ** np.arange(size - 1, -1, -1)
+        at += size
+    return place
+
+
 def _iso_block(texts: list) -> list[float] | None:
     """Seconds since the epoch of many ISO 8601 texts of one layout (a log's usual case),
     computed with numpy over the whole block: equal to ``_iso`` of each (times without a zone
@@ -128,16 +142,8 @@ def _iso_block(texts: list) -> list[float] | None:
     d = raw[:, digits] - 48  # uint8: a non-digit wraps above 9
     if (d > 9).any():
         return None
-    d = d.astype(np.int64)
-
-    def num(*cols: int) -> np.ndarray:
-        out = np.zeros(n, dtype=np.int64)
-        for c in cols:
-            out = out * 10 + d[:, c]
-        return out
-
-    year, month, day = num(0, 1, 2, 3), num(4, 5), num(6, 7)
-    hour, minute, second = num(8, 9), num(10, 11), num(12, 13)
+    fields = (d @ _place_values(frac, sign)).astype(np.int64)  # exact: every field is below 10**6
+    year, month, day, hour, minute, second, fraction = fields.T[:7]
     if ((month < 1) | (month > 12) | (day < 1) | (hour > 23) | (minute > 59) | (second > 59) | (year < 1)).any():
         return None
     months = (year - 1970) * 12 + (month - 1)
@@ -146,13 +152,11 @@ def _iso_block(texts: list) -> list[float] | None:
         return None
     seconds = days.astype(np.int64) * 86400 + hour * 3600 + minute * 60 + second
     if sign:
-        zh, zm = num(14 + frac, 15 + frac), num(16 + frac, 17 + frac)
+        zh, zm = fields[:, 7], fields[:, 8]
         if ((zh > 23) | (zm > 59)).any():
             return None
         seconds -= sign * (zh * 3600 + zm * 60)
-    micros = seconds * 1_000_000
-    if frac:
-        micros += num(*range(14, 14 + frac)) * 10 ** (6 - frac)
+    micros = seconds * 1_000_000 + fraction * 10 ** (6 - frac)
     if np.abs(micros).max() >= 2 ** 53:  # beyond the year 2255: not exact as a double
         return None
     return (micros / 1e6).tolist()  # as timedelta.total_seconds(): whole microseconds / 10**6
