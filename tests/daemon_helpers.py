@@ -77,6 +77,32 @@ def scaled_lines(n: int, per_kind: int, seed: int, span_s: float) -> list[str]:
     return render_text(sc, sessions)
 
 
+def wait_for(pred: Callable[[], object], what: str, *, timeout: float, step: float,
+             alive: Callable[[], None] = lambda: None, tail: Callable[[], str] = lambda: "",
+             ignore: tuple[type[BaseException], ...] = ()):
+    """Poll ``pred()`` every ``step`` s until it returns something true, and return that (bounded
+    by ``timeout``). ``alive()`` fails the test if the program waited on has died; errors in
+    ``ignore`` count as "not yet" (a server not listening yet); ``tail()`` is shown on giving up."""
+    deadline = time.monotonic() + timeout
+    while time.monotonic() < deadline:
+        alive()
+        try:
+            got = pred()
+            if got:
+                return got
+        except ignore:
+            pass
+        time.sleep(step)
+    raise AssertionError(f"gave up waiting for {what}:\n{tail()}")
+
+
+def running(name: str, proc: subprocess.Popen, output: Callable[[], str]) -> Callable[[], None]:
+    """An ``alive`` check for :func:`wait_for`: fails with the program's output once it exited."""
+    def check() -> None:
+        assert proc.poll() is None, f"{name} exited ({proc.returncode}):\n{output()}"
+    return check
+
+
 def free_port() -> int:
     with socket.socket() as s:
         s.bind(("127.0.0.1", 0))
@@ -166,17 +192,10 @@ class DaemonProcess:
         return json.loads(self.get("/api/status")[1])
 
     def until(self, pred, what: str, timeout: float = 40.0, step: float = 0.05) -> float:
-        """Wait for ``pred()``; returns the perf_counter time it held."""
-        deadline = time.monotonic() + timeout
-        while time.monotonic() < deadline:
-            assert self.proc.poll() is None, f"the daemon exited ({self.proc.returncode}):\n{self.stderr()}"
-            try:
-                if pred():
-                    return time.perf_counter()
-            except (OSError, http.client.HTTPException):
-                pass  # not listening yet
-            time.sleep(step)
-        raise AssertionError(f"gave up waiting for {what}:\n{self.stderr()[-3000:]}")
+        """Wait for ``pred()``; returns the perf_counter time it held (bench/daemon.py times with it)."""
+        wait_for(pred, what, timeout=timeout, step=step, alive=running("the daemon", self.proc, self.stderr),
+                 tail=lambda: self.stderr()[-3000:], ignore=(OSError, http.client.HTTPException))
+        return time.perf_counter()
 
     def ready(self) -> DaemonProcess:
         self.until(lambda: self.get("/readyz")[0] == 200, "readiness")
@@ -240,12 +259,7 @@ class InProcess:
         self.thread.start()
 
     def until(self, pred, what: str, timeout: float = 30.0) -> None:
-        deadline = time.monotonic() + timeout
-        while time.monotonic() < deadline:
-            if pred():
-                return
-            time.sleep(0.05)
-        raise AssertionError(f"gave up waiting for {what}; status: {self.daemon.status()}")
+        wait_for(pred, what, timeout=timeout, step=0.05, tail=lambda: f"status: {self.daemon.status()}")
 
     def advance(self, pred, what: str, step: float = 10.0) -> None:
         """Move the fake wall clock on ``step`` seconds at a time until ``pred()`` holds (the live
@@ -311,17 +325,8 @@ class Neighbour:
 
     def until(self, pred, what: str, timeout: float = 20.0, step: float = 0.1):
         """Wait for ``pred()`` to return something true and return it (bounded)."""
-        deadline = time.monotonic() + timeout
-        while time.monotonic() < deadline:
-            assert self.proc.poll() is None, f"{self.proc.args[0]} exited ({self.proc.returncode}):\n{self.output()}"
-            try:
-                got = pred()
-                if got:
-                    return got
-            except (OSError, urllib.error.URLError):
-                pass  # not listening yet
-            time.sleep(step)
-        raise AssertionError(f"gave up waiting for {what}:\n{self.output()[-3000:]}")
+        return wait_for(pred, what, timeout=timeout, step=step, alive=running(self.proc.args[0], self.proc, self.output),
+                        tail=lambda: self.output()[-3000:], ignore=(OSError,))  # URLError is an OSError
 
     def ready(self, path: str) -> Neighbour:
         self.until(lambda: self.request(path)[0] == 200, f"{self.proc.args[0]} to answer {path}")

@@ -1,6 +1,6 @@
 """Detection quality end to end: generated scenarios with labelled anomalies, fit, score, tally.
 
-Acceptance (issue: the core pipeline): with false_alarm_rate = 0.005, recall ≥ 0.95 for every
+Acceptance: with false_alarm_rate = 0.005, recall ≥ 0.95 for every
 anomaly kind and a false-alarm rate on normal sessions at most 2× the configured rate, on the
 demo scenario and on a second scenario with different workflows.
 """

@@ -82,9 +82,10 @@ def test_jsonl_fields_and_rejects():
                        time_field="t", level_field="lvl", event_field="kind")
     fmt = JsonlFormat(src)
     line = orjson.dumps({"t": 1700000000.5, "lvl": "info", "msg": "door 3 opened", "ctx": {"req": 77}}).decode()
-    [rec] = fmt.feed(line, 5)
+    rec = fmt.feed(line, 5)
+    assert isinstance(rec, Record)  # handed on bare
     assert (rec.key, rec.ts, rec.level, rec.message, rec.event) == ("77", 1700000000.5, "info", "door 3 opened", None)
-    [rec] = fmt.feed('{"kind": "door.open", "ctx": {"req": "a"}}', 0)
+    [rec] = items(fmt.feed('{"kind": "door.open", "ctx": {"req": "a"}}', 0))
     assert rec.event == "door.open"
     [bad] = fmt.feed('{"msg": "unterminated', 0)
     assert bad.reason == "bad_json" and bad.record is None

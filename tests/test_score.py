@@ -37,8 +37,8 @@ def test_center_distances_equal_the_sparse_product():
 
 
 def test_closest_normal_equals_the_sparse_argmax(demo_fit):
-    b = demo_fit.baseline  # as fitted: its rows are a scipy CSR matrix (the reference)
-    loaded = load_baseline(demo_fit.cfg.state_dir)  # as loaded: raw arrays, read with numpy
+    b = demo_fit.baseline  # its rows as a scipy CSR matrix: the reference
+    loaded = load_baseline(demo_fit.cfg.state_dir)  # as saved and loaded, read with numpy
     for cluster in range(len(b.centers)):
         rows = np.flatnonzero(b.normal_labels == cluster)
         for seq in b.normal_seqs[:30] + [(0, 1, 2, 999)]:

@@ -16,7 +16,8 @@ import tempfile
 import time
 import zipfile
 from collections import Counter
-from collections.abc import Iterable
+from collections.abc import Iterable, Sequence
+from functools import cached_property
 from pathlib import Path
 from typing import TYPE_CHECKING
 
@@ -67,7 +68,7 @@ class Baseline:
                  spreads: np.ndarray, cluster_weights: np.ndarray, cluster_df: np.ndarray,
                  medoids: list[tuple[int, ...]], normal_seqs: list[tuple[int, ...]],
                  normal_labels: np.ndarray, cluster_sources: list[str], normal_sources: list[str], calibration: dict[str, ConformalThreshold], scorer: str,
-                 knn_rows: sp.csr_matrix, knn_k: int, unseen_weight: float, report: dict,
+                 knn_parts: tuple, knn_k: int, unseen_weight: float, report: dict,
                  version: str = "unsaved") -> None:
         self.unseen_weight = unseen_weight
         self.miner = miner
@@ -77,7 +78,7 @@ class Baseline:
         self.cluster_weights = cluster_weights
         self.cluster_df = cluster_df
         self.medoids = medoids
-        self.normal_seqs = normal_seqs  # distinct fit sequences, one per row of knn_rows
+        self.normal_seqs = normal_seqs  # distinct fit sequences, one per row of knn_parts
         self.normal_labels = normal_labels  # their cluster
         self.cluster_sources = cluster_sources  # the source each cluster belongs to
         self.normal_sources = normal_sources  # the source of each distinct fit sequence
@@ -86,7 +87,7 @@ class Baseline:
         # had no calibration sessions): each source keeps its own false-alarm rate
         self.calibration = calibration
         self.scorer_kind = scorer
-        self._knn = knn_rows  # a CSR matrix, or its (data, indices, indptr, shape) when loaded
+        self.knn_parts = knn_parts  # (data, indices, indptr, shape): their vectors as CSR parts
         self.knn_k = knn_k
         self.report = report
         self.version = version
@@ -100,24 +101,21 @@ class Baseline:
         own = self.calibration.get(source)
         return own if own is not None and own.usable_ else self.calibration[POOLED]
 
-    @property
+    @cached_property
     def knn_rows(self) -> sp.csr_matrix:
         """The distinct fit sessions' vectors, one row each, as a CSR matrix. Built (and scipy
         imported) on first use: scoring against centres never needs it."""
-        if isinstance(self._knn, tuple):
-            import scipy.sparse as sp
+        import scipy.sparse as sp
 
-            data, indices, indptr, shape = self._knn
-            self._knn = sp.csr_matrix((data, indices, indptr), shape=shape)
-        return self._knn
+        data, indices, indptr, shape = self.knn_parts
+        return sp.csr_matrix((data, indices, indptr), shape=shape)
 
     def closest_normal(self, vec, cluster: int) -> tuple[int, ...]:
         """The distinct baseline session of ``cluster`` closest to a session vector."""
         cached = self._by_cluster.get(cluster)
         if cached is None:
             rows = np.flatnonzero(self.normal_labels == cluster)
-            data, indices, indptr = self._knn[:3] if isinstance(self._knn, tuple) else (
-                self._knn.data, self._knn.indices, self._knn.indptr)
+            data, indices, indptr, _ = self.knn_parts
             sizes = indptr[rows + 1] - indptr[rows]
             # positions of the cluster's rows' entries, and the row (0..len(rows)) of each
             take = np.repeat(indptr[rows] - (np.cumsum(sizes) - sizes), sizes) + np.arange(int(sizes.sum()))
@@ -138,6 +136,24 @@ class Baseline:
                              self.knn_rows if self.scorer_kind == "knn" else None, self.knn_k,
                              self.unseen_weight, cluster_sources=self.cluster_sources,
                              row_sources=self.normal_sources)
+
+    def judge(self, scorer: SessionScorer, sources: Sequence[str], seqs: Sequence[tuple[int, ...]]
+              ) -> tuple[list[tuple[float, int, float, float]], np.ndarray, np.ndarray, np.ndarray]:
+        """Score non-empty sessions, each source against its own clusters and calibration:
+        ``scorer``'s results, the conformal p-values, ``far`` (p ≤ false_alarm_rate) and
+        ``unseen`` (holds an event this baseline never saw). A session is flagged when either."""
+        rows: dict[str, list[int]] = {}
+        for i, source in enumerate(sources):
+            rows.setdefault(source, []).append(i)
+        results: list = [None] * len(seqs)
+        p_values = np.empty(len(seqs))
+        for source, idx in rows.items():
+            for i, res in zip(idx, scorer.score(source, [seqs[i] for i in idx])):
+                results[i] = res
+            p_values[idx] = self.conformal(source).p_values([results[i][0] for i in idx])
+        n_seen = self.miner.n_seen
+        unseen = np.fromiter((max(s) >= n_seen for s in seqs), dtype=bool, count=len(seqs))
+        return results, p_values, p_values <= self.false_alarm_rate, unseen
 
 
 # -- fitting -------------------------------------------------------------------------------
@@ -188,14 +204,19 @@ def fit_baseline(sessions: list[tuple[str, tuple[int, ...]]], miner: TemplateMin
     cluster_sources = [max((w, src) for (c, src), w in by_source.items() if c == cl)[1] for cl in range(k)]
     kept_sources = [row_sources[r] for r in keep_rows]
     X_kept = X if len(keep_rows) == X.shape[0] else X[keep_rows]
+    baseline = Baseline(miner=miner, vectorizer=vectorizer, centers=model.cluster_centers_,
+                        spreads=model.spreads_, cluster_weights=model.cluster_weights_,
+                        cluster_df=cluster_df.astype(np.float32), medoids=medoids,
+                        normal_seqs=[distinct[r] for r in keep_rows], normal_labels=labels[keep_rows],
+                        cluster_sources=cluster_sources, normal_sources=kept_sources, calibration={},
+                        scorer=mcfg.scorer, knn_parts=(X_kept.data, X_kept.indices, X_kept.indptr, X_kept.shape),
+                        knn_k=mcfg.knn_k, unseen_weight=mcfg.unseen_weight, report={})
 
-    scorer = SessionScorer(vectorizer, model.cluster_centers_, model.spreads_, mcfg.scorer,
-                           X_kept if mcfg.scorer == "knn" else None, mcfg.knn_k, mcfg.unseen_weight,
-                           cluster_sources=cluster_sources, row_sources=kept_sources)
+    scorer = baseline.make_scorer()
     cal_by_source: dict[str, list[tuple[int, ...]]] = {}
     for i in cal_idx:
         cal_by_source.setdefault(sessions[i][0], []).append(sequences[i])
-    calibration: dict[str, ConformalThreshold] = {}
+    calibration = baseline.calibration
     for source in sorted(cal_by_source):
         scores = [r[0] for r in scorer.score(source, cal_by_source[source])]
         calibration[source] = ConformalThreshold(mcfg.false_alarm_rate).fit(scores)
@@ -203,7 +224,8 @@ def fit_baseline(sessions: list[tuple[str, tuple[int, ...]]], miner: TemplateMin
         np.concatenate([c.calibration_scores_ for c in calibration.values()]))
 
     text = miner.text
-    report = {
+    report = baseline.report
+    report.update({
         "sessions": n,
         "train_sessions": int(len(train_idx)),
         "calibration_sessions": int(n_cal),
@@ -233,7 +255,7 @@ def fit_baseline(sessions: list[tuple[str, tuple[int, ...]]], miner: TemplateMin
         "false_alarm_rate": mcfg.false_alarm_rate,
         "scorer": mcfg.scorer,
         "unseen_weight": mcfg.unseen_weight,
-    }
+    })
     need = int(np.ceil(1 / mcfg.false_alarm_rate)) - 1
     for src, c in calibration.items():
         if c.usable_:
@@ -248,14 +270,7 @@ def fit_baseline(sessions: list[tuple[str, tuple[int, ...]]], miner: TemplateMin
                 f"source {src!r} has {len(c.calibration_scores_)} calibration sessions, fewer than the "
                 f"{need} its own threshold needs; it uses the threshold of all sources pooled")
     miner.freeze()
-    return Baseline(miner=miner, vectorizer=vectorizer, centers=model.cluster_centers_,
-                    spreads=model.spreads_, cluster_weights=model.cluster_weights_,
-                    cluster_df=cluster_df.astype(np.float32), medoids=medoids,
-                    normal_seqs=[distinct[r] for r in keep_rows], normal_labels=labels[keep_rows],
-                    cluster_sources=cluster_sources, normal_sources=kept_sources,
-                    calibration=calibration,
-                    scorer=mcfg.scorer, knn_rows=X_kept, knn_k=mcfg.knn_k,
-                    unseen_weight=mcfg.unseen_weight, report=report)
+    return baseline
 
 
 # -- the artifact --------------------------------------------------------------------------
@@ -356,7 +371,7 @@ def save_baseline(b: Baseline, state_dir: Path, *, make_current: bool = True) ->
         (tmp / "templates.json").write_bytes(orjson.dumps(b.miner.to_dict()))
         medoid_flat, medoid_offsets = _flat(b.medoids)
         normal_flat, normal_offsets = _flat(b.normal_seqs)
-        knn = b.knn_rows.tocsr()
+        data, indices, indptr, shape = b.knn_parts
         arrays = {
             **b.vectorizer.to_arrays(),
             "centers": b.centers, "spreads": b.spreads, "cluster_weights": b.cluster_weights,
@@ -366,8 +381,8 @@ def save_baseline(b: Baseline, state_dir: Path, *, make_current: bool = True) ->
             "cluster_sources": _source_index(b.cluster_sources), "normal_sources": _source_index(b.normal_sources),
             "calibration_scores": np.concatenate([c.calibration_scores_ for c in b.calibration.values()]),
             "calibration_offsets": np.cumsum([0] + [len(c.calibration_scores_) for c in b.calibration.values()]),
-            "knn_data": knn.data, "knn_indices": knn.indices.astype(np.int64),
-            "knn_indptr": knn.indptr.astype(np.int64), "knn_shape": np.array(knn.shape, dtype=np.int64),
+            "knn_data": data, "knn_indices": indices.astype(np.int64),
+            "knn_indptr": indptr.astype(np.int64), "knn_shape": np.array(shape, dtype=np.int64),
         }
         with open(tmp / "model.npz", "wb") as fh:
             np.savez_compressed(fh, **arrays)
@@ -450,7 +465,7 @@ def load_baseline_dir(path: Path) -> Baseline:
             medoids=medoids, normal_seqs=_unflat(arrays["normal_flat"], arrays["normal_offsets"]),
             normal_labels=arrays["normal_labels"], calibration=calibration,
             cluster_sources=[manifest.sources[i] for i in arrays["cluster_sources"].tolist()],
-            normal_sources=[manifest.sources[i] for i in arrays["normal_sources"].tolist()], scorer=manifest.scorer, knn_rows=knn,
+            normal_sources=[manifest.sources[i] for i in arrays["normal_sources"].tolist()], scorer=manifest.scorer, knn_parts=knn,
             knn_k=manifest.knn_k, unseen_weight=manifest.unseen_weight, report=manifest.report, version=manifest.version)
     except (KeyError, ValueError, TypeError, zipfile.BadZipFile, OSError, orjson.JSONDecodeError) as exc:
         raise BaselineError(f"{where}: the baseline files are unreadable ({exc}); refit it") from None

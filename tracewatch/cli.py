@@ -14,10 +14,11 @@ from pathlib import Path
 import orjson
 
 from . import __version__
+from .alerts.store import STATUSES
 from .baselines import (baselines_dir, current_version, list_versions, load_baseline, load_baseline_dir,
                         set_current)
 from .batch import assign_sources, fit_files, score_files
-from .config import Config, adhoc_config, load_config
+from .config import Config, IncidentsConfig, adhoc_config, load_config
 from .errors import ConfigError, TracewatchError
 from .pipeline import Pipeline
 
@@ -251,11 +252,7 @@ def cmd_incidents(args) -> int:
         elif action == "show":
             code, doc = api_request(args.url, f"/api/incidents/{args.id}")
         else:
-            token = incident_token(cfg.incidents) if cfg is not None else None
-            if token is None:
-                import os
-
-                token = os.environ.get("TRACEWATCH_INCIDENT_TOKEN") or None
+            token = incident_token(cfg.incidents if cfg is not None else IncidentsConfig())
             code, doc = api_request(args.url, f"/api/incidents/{args.id}/{action}", method="POST", token=token,
                                     body={"note": args.note} if args.note else None)
         if code != 200:
@@ -523,7 +520,7 @@ def build_parser() -> argparse.ArgumentParser:
     sp.add_argument("--url", metavar="URL", help="a running daemon's address, e.g. http://127.0.0.1:9464")
     sp.add_argument("--json", action="store_true", help="JSON (one object per incident for a list)")
     sp.add_argument("--since", metavar="WHEN", help="only incidents with an alert since: 30m, 2h, 1d or an ISO time")
-    sp.add_argument("--status", choices=["open", "acknowledged", "resolved", "expected"])
+    sp.add_argument("--status", choices=STATUSES)
     sp.add_argument("--limit", type=int, default=50, help="at most this many (default 50)")
     sp.add_argument("--note", help="a note kept with a status change")
     sp.set_defaults(func=cmd_incidents)

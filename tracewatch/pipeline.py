@@ -14,12 +14,10 @@ from collections import Counter
 from collections.abc import Callable
 from itertools import repeat
 
-import numpy as np
-
 from .alerts.alert import Redactor, build_verdict
 from .baselines import Baseline
 from .config import Config
-from .formats import Format, items, make_format
+from .formats import Format, make_format
 from .records import Record
 from .rejects import reject_log
 from .sessions import Session, Sessionizer
@@ -204,22 +202,12 @@ class Pipeline:
     def _score(self, sessions: list[Session]) -> None:
         b = self.baseline
         seqs = [tuple(s.events) for s in sessions]
-        by_source: dict[str, list[int]] = {}
-        for i, sess in enumerate(sessions):
-            by_source.setdefault(sess.source, []).append(i)
-        results: list = [None] * len(sessions)
-        p_values = np.empty(len(sessions))
-        for source, rows in by_source.items():  # each source: its own clusters and calibration
-            for i, res in zip(rows, self.scorer.score(source, [seqs[i] for i in rows])):
-                results[i] = res
-            p_values[rows] = b.conformal(source).p_values([results[i][0] for i in rows])
-            self.sessions_scored[source] += len(rows)
-        rate = b.false_alarm_rate
-        n_seen = self.miner.n_seen
+        sources = [s.source for s in sessions]
+        results, p_values, fars, unseens = b.judge(self.scorer, sources, seqs)
+        self.sessions_scored.update(sources)
         on_quiet = self.on_quiet
-        for sess, seq, (score, cluster, dist, unseen_share), p in zip(sessions, seqs, results, p_values.tolist()):
-            far = p <= rate
-            unseen = max(seq) >= n_seen
+        for sess, seq, (score, cluster, dist, unseen_share), p, far, unseen in zip(
+                sessions, seqs, results, p_values.tolist(), fars.tolist(), unseens.tolist()):
             if on_quiet is not None and not (far or unseen):
                 on_quiet(sess.source, seq)  # refit: a quiet session for the pool
             if not (far or unseen or self.score_all):

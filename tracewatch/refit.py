@@ -37,7 +37,7 @@ import numpy as np
 import orjson
 from pydantic import BaseModel, ConfigDict, ValidationError
 
-from .baselines import Baseline, atomic_write, current_version, fit_baseline, load_baseline, save_baseline
+from .baselines import POOLED, Baseline, atomic_write, current_version, fit_baseline, load_baseline, save_baseline
 from .config import Config
 from .errors import StateError
 from .templates import Template, TemplateMiner
@@ -255,8 +255,8 @@ def binomial_tail(k: int, n: int, p: float) -> float:
 
 
 class _Judge:
-    """Which sessions (template-id sequences) a baseline flags — the rule of the pipeline's
-    scoring stage: conformal p-value ≤ false_alarm_rate, or an event the baseline never saw."""
+    """Which sessions (template-id sequences) a baseline flags, by the pipeline's own rule
+    (:meth:`tracewatch.baselines.Baseline.judge`)."""
 
     def __init__(self, baseline: Baseline) -> None:
         self.baseline = baseline
@@ -275,18 +275,9 @@ class _Judge:
         return tuple(out)
 
     def flagged(self, sessions: list[tuple[str, IdSeq]]) -> np.ndarray:
-        b = self.baseline
-        out = np.zeros(len(sessions), dtype=bool)
-        rows: dict[str, list[int]] = defaultdict(list)
-        for i, (src, ids) in enumerate(sessions):
-            rows[src].append(i)
-        for src, idx in rows.items():
-            seqs = [self.indices(sessions[i][1]) for i in idx]
-            scores = [r[0] for r in self.scorer.score(src, seqs)]
-            far = b.conformal(src).p_values(scores) <= b.false_alarm_rate
-            unseen = np.array([max(s) >= b.miner.n_seen for s in seqs])
-            out[idx] = far | unseen
-        return out
+        _, _, far, unseen = self.baseline.judge(self.scorer, [src for src, _ in sessions],
+                                                [self.indices(ids) for _, ids in sessions])
+        return far | unseen
 
 
 # -- the refit ---------------------------------------------------------------------------------------
@@ -381,7 +372,7 @@ def _candidate_gates(candidate: Baseline, holdout: list[tuple[str, IdSeq]], data
     judge = _Judge(candidate)
     need = math.ceil(1 / rate) - 1
     n_cal = candidate.report["calibration_sessions"]
-    gates = [_gate("calibration", candidate.calibration["*"].usable_,
+    gates = [_gate("calibration", candidate.calibration[POOLED].usable_,
                    f"{n_cal} calibration sessions, at least {need} needed for false_alarm_rate={rate}",
                    sessions=n_cal, minimum=need)]
     alarms, n = int(judge.flagged(holdout).sum()), len(holdout)

@@ -134,8 +134,16 @@ class TemplateMiner:
 
     # -- public -----------------------------------------------------------------
     def add(self, message: str) -> int:
-        """Template index for a message (creating or generalising a template as needed)."""
-        return self.add_many([message])[0]
+        """Template index for a message (creating or generalising a template as needed); the
+        one-message form of :meth:`add_many`, without its per-block lists."""
+        shape = _shape_of(message)
+        idx = self._by_shape.get(shape)
+        if idx is None:
+            found: list[int | None] = [None]
+            self._add_missed([message], [shape], found)
+            idx = found[0]
+        self.templates[idx].count += 1
+        return idx
 
     def add_many(self, messages: list[str]) -> list[int]:
         """Template indices of many messages, in order. Messages that differ only in their

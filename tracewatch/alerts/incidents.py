@@ -43,6 +43,7 @@ import orjson
 
 from ..config import Config, IncidentsConfig
 from ..errors import StateError
+from ..features import END, START, ngrams
 from . import summary
 from .store import _LIST_COLUMNS, FIRING, IncidentStore, dumps
 
@@ -70,14 +71,13 @@ def _term(text: str) -> str:
     return hashlib.blake2b(text.encode("utf-8", "replace"), digest_size=6).hexdigest()
 
 
+_MARKERS = {START: "^", END: "$"}
+
+
 def sequence_ngrams(seq: Iterable[str], n_max: int = NGRAM_MAX) -> Counter:
-    """Counts of the 1..n_max-grams of a template-id sequence framed by start/end markers."""
-    framed = ("^", *seq, "$")
-    counts: Counter = Counter()
-    for n in range(1, n_max + 1):
-        lo, hi = (1, len(framed) - 1) if n == 1 else (0, len(framed) - n + 1)
-        counts.update(" ".join(framed[i:i + n]) for i in range(lo, hi))
-    return counts
+    """Counts of the 1..n_max-grams of a template-id sequence framed by start/end markers
+    (:func:`tracewatch.features.ngrams`), each n-gram as its ids joined by spaces."""
+    return Counter({" ".join([_MARKERS.get(t, t) for t in g]): n for g, n in ngrams(tuple(seq), n_max).items()})
 
 
 def alert_vector(alert: dict) -> Vector:
@@ -300,13 +300,18 @@ class IncidentTracker:
 
 
 # -- status changes and notifications ------------------------------------------------------------------
+def notices(db: sqlite3.Connection, where: str, args: tuple = (), limit: int = -1) -> list[dict]:
+    """Incidents as notifications carry them, most recently active first: the list form and
+    the first steps of the representative's difference."""
+    rows = db.execute(f"SELECT {_LIST_COLUMNS}, json_extract(representative, '$.diff') FROM incidents "
+                      f"WHERE {where} ORDER BY last_seen DESC, id DESC LIMIT ?", (*args, limit))
+    return [{**summary.brief(IncidentStore._row(r[:-1])), "diff": (orjson.loads(r[-1]) if r[-1] else [])[:DIFF_IN_NOTES]}
+            for r in rows]
+
+
 def queue(db: sqlite3.Connection, iid: int, event: str, **extra) -> None:
     """Queue a notification with the incident as it is now (inside the caller's transaction)."""
-    row = db.execute(f"SELECT {_LIST_COLUMNS}, json_extract(representative, '$.diff') FROM incidents WHERE id = ?",
-                     (iid,)).fetchone()
-    snap = summary.brief(IncidentStore._row(row[:-1]))
-    snap["diff"] = (orjson.loads(row[-1]) if row[-1] else [])[:DIFF_IN_NOTES]
-    snap.update(extra)
+    snap = {**notices(db, "id = ?", (iid,))[0], **extra}
     db.execute("INSERT INTO outbox (incident_id, event, created, payload) VALUES (?, ?, ?, ?)",
                (iid, event, time.time(), dumps(snap)))
 

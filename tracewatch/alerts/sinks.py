@@ -36,6 +36,7 @@ import orjson
 
 from .. import __version__
 from ..config import Config, NotifyConfig
+from .incidents import notices
 from .store import FIRING, IncidentStore
 
 log = logging.getLogger("tracewatch.notify")
@@ -245,7 +246,7 @@ class Notifier:
                     sent += 1
                 cursor = row_id
         if now >= self._next_resend[name]:
-            firing = [i for st in FIRING for i in self._firing(st)]
+            firing = notices(self.store.db, "status IN ('open', 'acknowledged')", limit=2000)
             try:
                 sink.refresh(firing, now)
                 self._next_resend[name] = now + self.resend_s
@@ -253,16 +254,6 @@ class Notifier:
                 self._next_resend[name] = now + min(self.resend_s, self.retry_initial_s)
                 log.warning("%s: re-sending %d firing incident(s) failed: %s", name, len(firing), exc)
         return sent
-
-    def _firing(self, status: str) -> list[dict]:
-        from .summary import brief
-
-        out = []
-        for inc in self.store.incidents(status=status, limit=1000):
-            rep_diff = self.store.db.execute("SELECT json_extract(representative, '$.diff') FROM incidents "
-                                             "WHERE id = ?", (inc["id"],)).fetchone()[0]
-            out.append({**brief(inc), "diff": (orjson.loads(rep_diff) if rep_diff else [])[:5]})
-        return out
 
     # -- the thread ----------------------------------------------------------------------------------
     def wake(self) -> None:

@@ -9,14 +9,13 @@ from __future__ import annotations
 
 import time
 from collections import Counter
-from datetime import datetime, timezone
 from pathlib import Path
 
 import orjson
 
 from ..batch import assign_sources, fit_files, score_files
 from ..config import load_config
-from .scenario import ANOMALY_KINDS, Scenario, generate, labels, parcel_lockers, render_text
+from .scenario import ANOMALY_KINDS, Scenario, baseline_and_day, labels, parcel_lockers, render_text
 from .traces import TRACE_SOURCE, write_trace_scenario
 
 CONFIG = """\
@@ -46,8 +45,7 @@ def write_scenario(folder: Path, scenario: Scenario, *, seed: int, n_baseline: i
     """Baseline log, day-to-score log and labels; returns their paths."""
     logs = folder / "logs"
     logs.mkdir(parents=True, exist_ok=True)
-    base = generate(scenario, n_baseline, 0, seed=seed, start=datetime(2026, 11, 29, tzinfo=timezone.utc))
-    day = generate(scenario, n_normal, per_kind, seed=seed + 1, start=datetime(2026, 11, 30, tzinfo=timezone.utc))
+    base, day = baseline_and_day(scenario, seed=seed, n_baseline=n_baseline, n_normal=n_normal, per_kind=per_kind)
     base_path, day_path = logs / "baseline.log", folder / "today" / "today.log"
     day_path.parent.mkdir(exist_ok=True)
     base_path.write_text("\n".join(render_text(scenario, base)) + "\n")

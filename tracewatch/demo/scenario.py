@@ -20,7 +20,7 @@ import random
 import uuid
 from collections.abc import Callable
 from dataclasses import dataclass, field
-from datetime import datetime, timedelta, timezone
+from datetime import datetime, timezone
 
 ANOMALY_KINDS = ("missing_step", "unseen_event", "retry_loop", "out_of_order", "cut_short", "mixed_workflows")
 
@@ -150,8 +150,18 @@ def render_text(scenario: Scenario, sessions: list[GeneratedSession]) -> list[st
     return out
 
 
-def labels(sessions: list[GeneratedSession]) -> list[dict]:
-    return [{"session_key": s.key, "workflow": s.workflow, "label": s.label, "detail": s.detail}
+def baseline_and_day(scenario: Scenario, *, seed: int, n_baseline: int, n_normal: int,
+                     per_kind: int) -> tuple[list[GeneratedSession], list[GeneratedSession]]:
+    """A normal baseline day (29 Nov) and a day to score with ``per_kind`` anomalies of each kind (30 Nov)."""
+    base = generate(scenario, n_baseline, 0, seed=seed, start=datetime(2026, 11, 29, tzinfo=timezone.utc))
+    day = generate(scenario, n_normal, per_kind, seed=seed + 1, start=datetime(2026, 11, 30, tzinfo=timezone.utc))
+    return base, day
+
+
+def labels(sessions: list[GeneratedSession],
+           key: Callable[[GeneratedSession], str] = lambda s: s.key) -> list[dict]:
+    """One label row per session; ``key`` gives the session key the source will see."""
+    return [{"session_key": key(s), "workflow": s.workflow, "label": s.label, "detail": s.detail}
             for s in sessions]
 
 

@@ -14,12 +14,11 @@ from __future__ import annotations
 
 import hashlib
 import random
-from datetime import datetime, timezone
 from pathlib import Path
 
 import orjson
 
-from .scenario import GeneratedSession, Scenario, Step, generate, parcel_lockers
+from .scenario import GeneratedSession, Scenario, Step, baseline_and_day, labels, parcel_lockers
 
 INTERNAL, SERVER, CLIENT, PRODUCER, CONSUMER = 1, 2, 3, 4, 5  # OTLP Span.SpanKind values
 STATUS_ERROR = 2  # OTLP Status.StatusCode
@@ -136,23 +135,16 @@ def render_otlp(sessions: list[GeneratedSession], *, seed: int = 0, traces_per_l
     return lines
 
 
-def trace_labels(sessions: list[GeneratedSession]) -> list[dict]:
-    """The labels of the sessions, keyed by trace id (the session key of the trace source)."""
-    return [{"session_key": trace_id(s), "workflow": s.workflow, "label": s.label, "detail": s.detail}
-            for s in sessions]
-
-
 def write_trace_scenario(folder: Path, scenario: Scenario | None = None, *, seed: int, n_baseline: int = 3000,
                          n_normal: int = 2000, per_kind: int = 25) -> tuple[Path, Path, Path]:
     """A baseline day and a day to score as OTLP/JSON, and the labels; returns their paths
     (``traces/baseline.jsonl``, ``today/traces.jsonl``, ``trace-labels.jsonl``)."""
     scenario = scenario or parcel_lockers()
-    base = generate(scenario, n_baseline, 0, seed=seed, start=datetime(2026, 11, 29, tzinfo=timezone.utc))
-    day = generate(scenario, n_normal, per_kind, seed=seed + 1, start=datetime(2026, 11, 30, tzinfo=timezone.utc))
+    base, day = baseline_and_day(scenario, seed=seed, n_baseline=n_baseline, n_normal=n_normal, per_kind=per_kind)
     base_path, day_path = folder / "traces" / "baseline.jsonl", folder / "today" / "traces.jsonl"
     for path, sessions, s in ((base_path, base, seed), (day_path, day, seed + 1)):
         path.parent.mkdir(parents=True, exist_ok=True)
         path.write_text("\n".join(render_otlp(sessions, seed=s)) + "\n")
     label_path = folder / "trace-labels.jsonl"
-    label_path.write_bytes(b"".join(orjson.dumps(x) + b"\n" for x in trace_labels(day)))
+    label_path.write_bytes(b"".join(orjson.dumps(x) + b"\n" for x in labels(day, key=trace_id)))
     return base_path, day_path, label_path

@@ -56,7 +56,7 @@ class JsonlFormat:
                        (self._key, src.session_key), (self._ts, src.time_field))
                        if type(g) is methodcaller}
 
-    def feed(self, line: str, offset: int) -> Output:
+    def feed(self, line: str, offset: int) -> Output | Record:
         if not line.strip():
             return [Rejection("empty", line)]
         try:
@@ -73,7 +73,7 @@ class JsonlFormat:
         if message is None and event is None:
             rec = Record(self.source, key, ts, level, line, line, offset)
             return [Rejection("no_message_field", line, rec)]
-        return [Record(self.source, key, ts, level, message or event or "", line, offset, event)]
+        return Record(self.source, key, ts, level, message or event or "", line, offset, event)
 
     def match_block(self, lines: list[str]) -> tuple[list, list, list] | None:
         """``(keys, timestamps, messages)`` of a block when every line is a JSON object with a

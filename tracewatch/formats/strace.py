@@ -101,7 +101,7 @@ class StraceFormat:
             self._root.setdefault(ret, self._key(pid))
 
     # -- lines --------------------------------------------------------------------------------
-    def feed(self, line: str, offset: int) -> Output:
+    def feed(self, line: str, offset: int) -> Output | Record:
         m = _PREFIX.match(line)
         pid = m.group(1) or m.group(2) or MAIN
         if m.group(3) is not None:
@@ -112,8 +112,8 @@ class StraceFormat:
         if not body.strip():
             return [Rejection("empty", line)]
         c = _CALL.match(body)
-        if c is not None:
-            return [self._record(pid, ts, self._result(pid, c), line, offset)]
+        if c is not None:  # the common case: one line, one record, handed on bare
+            return self._record(pid, ts, self._result(pid, c), line, offset)
         c = _RESUMED.match(body)
         if c is not None:
             event = self._result(pid, c)

@@ -217,7 +217,7 @@ class SyslogFormat:
             key = m.group("key") if m else None
         return key
 
-    def feed(self, line: str, offset: int) -> Output:
+    def feed(self, line: str, offset: int) -> Output | Record:
         if not line.strip():
             return [Rejection("empty", line)]
         msg = parse(line, self.clock())
@@ -225,7 +225,7 @@ class SyslogFormat:
             rec = Record(self.source, self._key(None, line), None, None, line, line, offset)
             return [Rejection("not_syslog", line, rec)]
         rec = Record(self.source, self._key(msg, msg.message), msg.ts, msg.severity, msg.message, line, offset)
-        return [rec] if msg.problem is None else [Rejection(msg.problem, line, rec)]
+        return rec if msg.problem is None else [Rejection(msg.problem, line, rec)]
 
     def flush(self) -> Output:
         return []

@@ -39,7 +39,7 @@ class TextFormat:
                 return m.group("key")
         return None
 
-    def _parse(self, line: str, offset: int) -> Output:
+    def _parse(self, line: str, offset: int) -> Output | Record:
         pattern = self._pattern
         m = pattern.match(line) if pattern is not None else None
         if m is None:
@@ -49,7 +49,7 @@ class TextFormat:
             return rec if pattern is None else [Rejection("no_match", line, rec)]
         # one call for all four groups; an absent group's index is 0 (the whole match), never used
         message, ts, level, key = m.group(*self._gi)
-        gm, gts, glevel, gkey = self._gi
+        _, gts, glevel, gkey = self._gi
         if not gkey:
             key = None
         if key is None and self._key is not None:
@@ -68,9 +68,8 @@ class TextFormat:
             return [Rejection("continuation_cap", line)]
         out = self.flush()
         for item in items(self._parse(line, offset)):
-            rec = item if isinstance(item, Record) else item.record
-            if rec is not None and isinstance(item, Record):
-                self._pending, self._pending_lines = rec, 0
+            if type(item) is Record:  # held for its continuation lines
+                self._pending, self._pending_lines = item, 0
             else:
                 out.append(item)
         return out

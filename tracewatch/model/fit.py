@@ -281,16 +281,3 @@ class ClusterModel:
         self.spreads_ = np.maximum(spreads, floor)
         self.medoids_ = np.array(medoids, dtype=np.int64)
 
-    @staticmethod
-    def _dist_to(X, unseen_mass: np.ndarray, centers: np.ndarray) -> np.ndarray:
-        """Euclidean distances between rows (whose full norm is 1, ``unseen_mass`` of it
-        outside the vocabulary) and centres."""
-        dots = np.asarray(X @ centers.T)
-        row_sq = np.asarray(X.multiply(X).sum(axis=1)).ravel() + unseen_mass
-        d2 = row_sq[:, None] - 2.0 * dots + np.sum(centers * centers, axis=1)[None, :]
-        return np.sqrt(np.maximum(d2, 0.0))
-
-    def distances(self, X, unseen_mass: np.ndarray) -> np.ndarray:
-        if not hasattr(self, "cluster_centers_"):
-            raise RuntimeError("ClusterModel is not fitted yet; call fit first")
-        return self._dist_to(X, unseen_mass, self.cluster_centers_)

@@ -3,6 +3,8 @@
     daemon.py    follows files, drives the pipeline, checkpoints, hot-reloads baselines
     http.py      /metrics, /healthz, /readyz, /api/status, /api/alerts (standard library server)
     metrics.py   every Prometheus metric, on a registry passed in (never imports http.py)
+    incidents_api.py  the incident page and API routes, and the CLI's client for them
+    page.py      the incident page's HTML (log text escaped)
 """
 
 from __future__ import annotations

@@ -235,7 +235,7 @@ class Daemon:
         save_checkpoint(self.checkpoint_path,
                         capture_chunks(self.pipe, self.follower.positions(self.pipe.held_from), mark))
         self._save_pool()
-        self.checkpoint_time = time.time()
+        self.checkpoint_time = self.wall()
         self.checkpoint_seconds = time.perf_counter() - t0
 
     # -- baseline hot reload -----------------------------------------------------------------

@@ -29,12 +29,11 @@ from http.server import BaseHTTPRequestHandler, ThreadingHTTPServer
 from typing import Protocol
 from urllib.parse import parse_qs, urlsplit
 
-import orjson
 from prometheus_client import CollectorRegistry
 from prometheus_client.exposition import choose_encoder
 
 from ..errors import ConfigError
-from .incidents_api import route as route_incidents
+from .incidents_api import route as route_incidents, send, send_json
 
 log = logging.getLogger("tracewatch.http")
 
@@ -89,27 +88,18 @@ class _Handler(BaseHTTPRequestHandler):
     def log_message(self, format: str, *args) -> None:  # noqa: A002 - the base class's name
         log.debug("%s %s", self.address_string(), format % args)
 
-    def _send(self, code: int, body: bytes, content_type: str) -> None:
-        self.send_response(code)
-        self.send_header("Content-Type", content_type)
-        self.send_header("Content-Length", str(len(body)))
-        self.send_header("Cache-Control", "no-store")
-        self.send_header("X-Content-Type-Options", "nosniff")
-        self.end_headers()
-        self.wfile.write(body)
-
     def _text(self, code: int, text: str) -> None:
-        self._send(code, text.encode() + b"\n", "text/plain; charset=utf-8")
+        send(self, code, text.encode() + b"\n", "text/plain; charset=utf-8")
 
     def _json(self, code: int, obj) -> None:
-        self._send(code, orjson.dumps(obj, option=orjson.OPT_SERIALIZE_NUMPY), "application/json")
+        send_json(self, code, obj)
 
     def do_GET(self) -> None:  # noqa: N802 - the base class's name
         url = urlsplit(self.path)
         try:
             if url.path == "/metrics":
                 encoder, content_type = choose_encoder(self.headers.get("Accept", ""))
-                self._send(200, encoder(self.registry), content_type)
+                send(self, 200, encoder(self.registry), content_type)
             elif url.path == "/healthz":
                 self._text(200, "ok")
             elif url.path == "/readyz":

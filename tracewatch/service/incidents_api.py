@@ -25,7 +25,7 @@ import logging
 import os
 import re
 from collections.abc import Mapping
-from datetime import datetime
+from datetime import datetime, timezone
 from http.server import BaseHTTPRequestHandler
 from urllib.parse import parse_qs, urlsplit
 
@@ -66,13 +66,12 @@ def parse_since(value: str) -> float:
     except ValueError:
         raise ValueError(f"since: {value!r} is neither seconds since the epoch nor an ISO 8601 time") from None
     if t.tzinfo is None:
-        from datetime import timezone
-
         t = t.replace(tzinfo=timezone.utc)
     return t.timestamp()
 
 
-def _send(h: BaseHTTPRequestHandler, code: int, body: bytes, content_type: str, headers: dict | None = None) -> None:
+def send(h: BaseHTTPRequestHandler, code: int, body: bytes, content_type: str, headers: dict | None = None) -> None:
+    """One complete answer, never cached or content-sniffed (both HTTP modules answer through it)."""
     h.send_response(code)
     h.send_header("Content-Type", content_type)
     h.send_header("Content-Length", str(len(body)))
@@ -81,16 +80,15 @@ def _send(h: BaseHTTPRequestHandler, code: int, body: bytes, content_type: str, 
     for k, v in (headers or {}).items():
         h.send_header(k, v)
     h.end_headers()
-    if h.command != "HEAD":
-        h.wfile.write(body)
+    h.wfile.write(body)
 
 
-def _json(h: BaseHTTPRequestHandler, code: int, obj, headers: dict | None = None) -> None:
-    _send(h, code, orjson.dumps(obj, option=orjson.OPT_SERIALIZE_NUMPY), "application/json", headers)
+def send_json(h: BaseHTTPRequestHandler, code: int, obj, headers: dict | None = None) -> None:
+    send(h, code, orjson.dumps(obj, option=orjson.OPT_SERIALIZE_NUMPY), "application/json", headers)
 
 
 def _html(h: BaseHTTPRequestHandler, code: int, text: str) -> None:
-    _send(h, code, text.encode("utf-8"), "text/html; charset=utf-8",
+    send(h, code, text.encode("utf-8"), "text/html; charset=utf-8",
           {"Content-Security-Policy": page.CSP, "X-Frame-Options": "DENY", "Referrer-Policy": "no-referrer"})
 
 
@@ -102,17 +100,15 @@ def route(h: BaseHTTPRequestHandler, incidents: Incidents | None) -> bool:
     if not (is_page or path == "/api/incidents" or path.startswith("/api/incidents/")):
         return False
     if incidents is None:
-        _json(h, 404, {"error": "incidents are not served here"})
+        send_json(h, 404, {"error": "incidents are not served here"})
         return True
     try:
         if h.command == "POST":
             _post(h, incidents, path)
-        elif h.command in ("GET", "HEAD"):
-            _get(h, incidents, path, parse_qs(url.query))
         else:
-            _json(h, 405, {"error": "use GET, or POST for a state change"}, {"Allow": "GET, POST"})
+            _get(h, incidents, path, parse_qs(url.query))
     except TracewatchError as exc:  # the store cannot be opened, for example
-        _json(h, 503, {"error": str(exc)})
+        send_json(h, 503, {"error": str(exc)})
     finally:
         if incidents._store is not None:
             incidents._store.release()  # each request runs in a thread of its own
@@ -138,24 +134,24 @@ def _get(h: BaseHTTPRequestHandler, inc: Incidents, path: str, query: dict[str, 
             if not 1 <= limit <= MAX_LIST or offset < 0:
                 raise ValueError(f"limit must be between 1 and {MAX_LIST}, offset >= 0")
         except ValueError as exc:
-            _json(h, 400, {"error": str(exc)})
+            send_json(h, 400, {"error": str(exc)})
             return
         rows = [brief(i) for i in store.incidents(status=status, since=since, limit=limit, offset=offset)]
         notify = inc.notifier.status() if inc.notifier is not None else {}
-        _json(h, 200, {"incidents": rows, "counts": store.counts(), "notify": notify})
+        send_json(h, 200, {"incidents": rows, "counts": store.counts(), "notify": notify})
         return
     m = _DETAIL.match(path)
     found = store.incident(int(m.group(1))) if m else None
     if found is None:
         if path.startswith("/api/"):
-            _json(h, 404, {"error": f"no such incident or endpoint: {path}"})
+            send_json(h, 404, {"error": f"no such incident or endpoint: {path}"})
         else:
             _html(h, 404, page.message_page("Not found", f"No incident at {path}.", refresh_s=cfg.page_refresh_s))
         return
     d = detail(found, max_samples=cfg.max_samples, redact=Redactor(inc.cfg.redact))
     if path.startswith("/api/"):
         d["alert_ids"] = store.alert_ids(d["id"])
-        _json(h, 200, d)
+        send_json(h, 200, d)
     else:
         _html(h, 200, page.detail_page(d, refresh_s=cfg.page_refresh_s))
 
@@ -167,27 +163,27 @@ def _post(h: BaseHTTPRequestHandler, inc: Incidents, path: str) -> None:
         length = -1
     if not 0 <= length <= MAX_BODY:
         h.close_connection = True
-        _json(h, 413, {"error": f"request body must be at most {MAX_BODY} bytes"})
+        send_json(h, 413, {"error": f"request body must be at most {MAX_BODY} bytes"})
         return
     raw = h.rfile.read(length) if length else b""
     token = incident_token(inc.cfg.incidents)
     if token is None:
-        _json(h, 403, {"error": "state changes are disabled: set [incidents] token, or the environment "
+        send_json(h, 403, {"error": "state changes are disabled: set [incidents] token, or the environment "
                                 f"variable {inc.cfg.incidents.token_env}, for the daemon"})
         return
     given = h.headers.get("Authorization", "")
     scheme, _, credentials = given.partition(" ")
     if scheme.lower() != "bearer" or not credentials:
-        _json(h, 401, {"error": "a bearer token is required"}, {"WWW-Authenticate": 'Bearer realm="tracewatch"'})
+        send_json(h, 401, {"error": "a bearer token is required"}, {"WWW-Authenticate": 'Bearer realm="tracewatch"'})
         return
     if not hmac.compare_digest(credentials.strip().encode("utf-8", "replace"), token.encode("utf-8")):
         log.warning("refused a state change with a wrong token from %s", h.client_address[0])
-        _json(h, 401, {"error": "wrong token"},
+        send_json(h, 401, {"error": "wrong token"},
               {"WWW-Authenticate": 'Bearer realm="tracewatch", error="invalid_token"'})
         return
     m = _ACTION.match(path)
     if m is None or m.group(2) not in ACTIONS:
-        _json(h, 404, {"error": f"no such action: {path}; use /api/incidents/ID/{{{','.join(ACTIONS)}}}"})
+        send_json(h, 404, {"error": f"no such action: {path}; use /api/incidents/ID/{{{','.join(ACTIONS)}}}"})
         return
     note = ""
     if raw.strip():
@@ -195,10 +191,10 @@ def _post(h: BaseHTTPRequestHandler, inc: Incidents, path: str) -> None:
             body = orjson.loads(raw)
             note = str(body.get("note", "")) if isinstance(body, dict) else ""
         except orjson.JSONDecodeError:
-            _json(h, 400, {"error": 'the body must be JSON, e.g. {"note": "known deploy"}'})
+            send_json(h, 400, {"error": 'the body must be JSON, e.g. {"note": "known deploy"}'})
             return
     code, out = inc.set_status(int(m.group(1)), m.group(2), by="api", note=note)
-    _json(h, code, {"incident": brief(out)} if code == 200 else out)
+    send_json(h, code, {"incident": brief(out)} if code == 200 else out)
 
 
 # -- a client for the CLI's --url ---------------------------------------------------------------------

@@ -14,6 +14,8 @@ from __future__ import annotations
 import html
 from datetime import datetime, timezone
 
+from ..alerts.store import STATUSES
+
 CAUTION = ("This page shows text taken from logs (after the configured redaction patterns); logs can hold "
            "secrets and personal data. Keep this port on loopback or behind your own access control. "
            "A quiet page is not proof of health: tracewatch sees only the logs it follows, and misses what "
@@ -71,7 +73,7 @@ def triage_text(inc: dict) -> str:
 def list_page(incidents: list[dict], counts: dict[str, int], notify: dict[str, dict], *, refresh_s: int) -> str:
     """All incidents, most recently active first."""
     tally = ", ".join(f'<span class="{e(s)}">{counts.get(s, 0)} {e(s)}</span>'
-                      for s in ("open", "acknowledged", "resolved", "expected"))
+                      for s in STATUSES)
     rows = []
     for inc in incidents:
         rows.append(
