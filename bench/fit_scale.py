@@ -9,7 +9,7 @@ the per-line path, timed by the ``score`` benchmark); the child builds the sessi
 
 - ``realistic``: sessions of the parcel-locker scenario (``tracewatch.demo.scenario``'s
   workflows, the traffic mix of ``parcel_lockers()``), each step mapped to the template a
-  ``TemplateMiner`` gives its message — a day of repetitive traffic, few distinct rows;
+  ``TemplateTree`` gives its message — a day of repetitive traffic, few distinct rows;
 - ``varied``: sessions of 10 made-up flows over 20 event types each, steps swapped and
   inserted at random, so almost every session is a distinct row (the worst case for the fit).
 
@@ -39,12 +39,12 @@ SOURCE = "locker-api"
 def realistic(n: int, seed: int = 3):
     """``n`` normal parcel-locker sessions as template-id sequences, and the miner."""
     from tracewatch.demo.scenario import parcel_lockers
-    from tracewatch.templates import TemplateMiner
+    from tracewatch.templates import TemplateTree
 
     scenario = parcel_lockers()
     names = list(scenario.workflows)
     shares = [scenario.workflows[w][0] for w in names]
-    miner = TemplateMiner()
+    miner = TemplateTree()
     ids: dict[str, int] = {}  # step name -> template of its message (variable fields masked)
     rng = random.Random(seed)
     out = []
@@ -65,9 +65,9 @@ def varied(n: int, seed: int = 3, flows: int = 10, pool: int = 20):
     probability 0.3 and up to 3 extra steps are inserted."""
     import numpy as np
 
-    from tracewatch.templates import TemplateMiner
+    from tracewatch.templates import TemplateTree
 
-    miner = TemplateMiner()
+    miner = TemplateTree()
     events = [miner.add_event(f"flow{f}.step{e}") for f in range(flows) for e in range(pool)]
     rng = np.random.default_rng(seed)
     bases = [rng.integers(0, pool, size=int(rng.integers(6, 13))) for _ in range(flows)]

@@ -14,7 +14,7 @@ pipeline uses), in four ways:
 
 each in batches of the pipeline's ``SCORE_BATCH`` closed sessions (the batch path) and one session
 per call (a quiet daemon closing sessions one at a time). Sessions map to templates by step name
-(each step's first message mined by a ``TemplateMiner``), so no log parsing is in the time.
+(each step's first message mined by a ``TemplateTree``), so no log parsing is in the time.
 The fastest of ``--repeat`` runs counts. Nothing here asserts a timing.
 """
 
@@ -32,7 +32,7 @@ from tracewatch.baselines import fit_baseline  # noqa: E402
 from tracewatch.config import Config  # noqa: E402
 from tracewatch.demo.scenario import generate, parcel_lockers  # noqa: E402
 from tracewatch.pipeline import SCORE_BATCH  # noqa: E402
-from tracewatch.templates import TemplateMiner  # noqa: E402
+from tracewatch.templates import TemplateTree  # noqa: E402
 
 SOURCE = "locker-api"
 TARGET_CACHED_US = 50.0  # issue 6
@@ -43,7 +43,7 @@ ANOMALY_SHARE = 0.002  # per anomaly kind, as bench/gen.py
 def corpus(n_scored: int, n_baseline: int = 20_000):
     """A fitted baseline and the scored day's event sequences."""
     scenario = parcel_lockers()
-    miner = TemplateMiner()
+    miner = TemplateTree()
     ids: dict[str, int] = {}
 
     def seqs(sessions):

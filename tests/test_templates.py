@@ -10,7 +10,7 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 
 from tracewatch.demo.scenario import deposit, health, pickup, returns
-from tracewatch.templates import TemplateMiner, _coarse, _shapes, mask
+from tracewatch.templates import TemplateTree, _coarse, _shapes, mask
 
 
 @pytest.mark.parametrize(
@@ -36,7 +36,7 @@ def test_mask(message, masked):
 
 
 def test_miner_merges_similar_messages_and_keeps_routes_apart():
-    m = TemplateMiner(depth=4, similarity=0.5)
+    m = TemplateTree(routing_tokens=2, join_share=0.5)
     a = m.add("compartment 5 reserved for parcel PX1 by courier alice")
     b = m.add("compartment 9 reserved for parcel PX2 by courier bob")
     assert a == b and m.text(a) == "compartment <var> reserved for parcel <var> by courier <var>"
@@ -45,7 +45,7 @@ def test_miner_merges_similar_messages_and_keeps_routes_apart():
     r1 = m.add("parcel returned to sender PX1 today")
     r2 = m.add("parcel collected by recipient PX1 today")
     assert r1 != r2
-    # past the routing tokens, similar messages merge: 5 of 6 tokens equal ≥ similarity 0.5
+    # past the routing tokens, similar messages merge: 5 of 6 tokens equal ≥ join_share 0.5
     c = m.add("compartment 5 released for parcel PX1 by courier alice")
     assert c == a and m.text(a) == "compartment <var> <var> for parcel <var> by courier <var>"
     # a different token count is a different template
@@ -54,18 +54,18 @@ def test_miner_merges_similar_messages_and_keeps_routes_apart():
 
 def test_ids_are_stable_and_persistence_round_trips():
     msgs = [f"door {i} opened on locker LK-{i % 7}" for i in range(20)] + ["battery low on LK-1"] * 3
-    m1, m2 = TemplateMiner(), TemplateMiner()
+    m1, m2 = TemplateTree(), TemplateTree()
     ids1 = [m1.templates[m1.add(x)].id for x in msgs]
     ids2 = [m2.templates[m2.add(x)].id for x in msgs]
     assert ids1 == ids2
-    loaded = TemplateMiner.from_dict(m1.to_dict())
+    loaded = TemplateTree.from_dict(m1.to_dict())
     loaded.freeze()
     assert [loaded.templates[loaded.add(x)].id for x in msgs] == ids1
     assert all(loaded.is_seen(loaded.add(x)) for x in msgs)
 
 
 def test_frozen_miner_marks_new_templates_unseen_and_keeps_baseline_unchanged():
-    m = TemplateMiner()
+    m = TemplateTree()
     base = m.add("door 1 opened on locker LK-1")
     m.freeze()
     text_before = m.text(base)
@@ -77,9 +77,9 @@ def test_frozen_miner_marks_new_templates_unseen_and_keeps_baseline_unchanged():
     assert not m.is_seen(ev) and m.add_event("GET /reserve") == ev
 
 
-def grouping_accuracy(truth: list[str], groups: list[int]) -> float:
-    """Share of messages whose mined group holds exactly the messages of their true template —
-    the usual grouping-accuracy measure for template miners (common practice)."""
+def template_agreement(truth: list[str], groups: list[int]) -> float:
+    """Share of messages whose learned template holds exactly the messages of their true
+    template (a message counts only when its whole group is right)."""
     by_truth, by_group = defaultdict(set), defaultdict(set)
     for i, (t, g) in enumerate(zip(truth, groups)):
         by_truth[t].add(i)
@@ -87,17 +87,17 @@ def grouping_accuracy(truth: list[str], groups: list[int]) -> float:
     return sum(1 for t, g in zip(truth, groups) if by_truth[t] == by_group[g]) / len(truth)
 
 
-def test_grouping_accuracy_on_generated_corpus():
+def test_template_agreement_on_generated_corpus():
     rng = random.Random(3)
     truth, msgs = [], []
     for _ in range(2000):
         for step in rng.choice([deposit, pickup, returns, health])(rng):
             truth.append(step.name)
             msgs.append(step.message)
-    miner = TemplateMiner()
+    miner = TemplateTree()
     groups = [miner.add(x) for x in msgs]
-    acc = grouping_accuracy(truth, groups)
-    print(f"grouping accuracy {acc:.4f} over {len(msgs)} messages, {len(set(truth))} true templates, "
+    acc = template_agreement(truth, groups)
+    print(f"template agreement {acc:.4f} over {len(msgs)} messages, {len(set(truth))} true templates, "
           f"{len(miner.templates)} mined")
     assert acc >= 0.98
 
@@ -118,7 +118,7 @@ def test_cache_keys_never_join_messages_that_mask_differently(messages):
         # a key read as a message masks as the message does, so messages sharing a key agree
         assert mask(shape.decode()) == mask(message)
         assert mask(coarse.decode()) == mask(message)
-    cached, plain = TemplateMiner(), TemplateMiner()
+    cached, plain = TemplateTree(), TemplateTree()
     assert cached.add_many(messages) == [plain._add_masked(mask(m)) for m in messages]
 
 

@@ -31,12 +31,12 @@ from .errors import BaselineError, NoBaselineError
 from .features import NgramVectorizer
 from .model.calibrate import ConformalThreshold
 from .model.score import SessionScorer
-from .templates import TemplateMiner
+from .templates import TemplateTree
 
 if TYPE_CHECKING:
     import scipy.sparse as sp
 
-SCHEMA_VERSION = 2  # 2: templates masked to <var> (schema 1 baselines used another marker)
+SCHEMA_VERSION = 3  # 2: templates masked to <var>; 3: the template tree's settings renamed
 MIN_SESSIONS = 10
 FIT_BLOCK = 50_000  # distinct rows vectorised (and counted per cluster) at a time
 POOLED = "*"
@@ -64,7 +64,7 @@ class Manifest(BaseModel):
 class Baseline:
     """A fitted baseline: templates, vectoriser, clusters, calibration."""
 
-    def __init__(self, *, miner: TemplateMiner, vectorizer: NgramVectorizer, centers: np.ndarray,
+    def __init__(self, *, miner: TemplateTree, vectorizer: NgramVectorizer, centers: np.ndarray,
                  spreads: np.ndarray, cluster_weights: np.ndarray, cluster_df: np.ndarray,
                  medoids: list[tuple[int, ...]], normal_seqs: list[tuple[int, ...]],
                  normal_labels: np.ndarray, cluster_sources: list[str], normal_sources: list[str], calibration: dict[str, ConformalThreshold], scorer: str,
@@ -157,7 +157,7 @@ class Baseline:
 
 
 # -- fitting -------------------------------------------------------------------------------
-def fit_baseline(sessions: list[tuple[str, tuple[int, ...]]], miner: TemplateMiner, cfg: Config) -> Baseline:
+def fit_baseline(sessions: list[tuple[str, tuple[int, ...]]], miner: TemplateTree, cfg: Config) -> Baseline:
     """Fit on normal ``(source, event sequence)`` sessions: split train / calibration,
     vectorise, cluster, then calibrate each source on its own held-out sessions."""
     import scipy.sparse as sp
@@ -448,7 +448,7 @@ def load_baseline_dir(path: Path) -> Baseline:
             raise BaselineError(f"{where}: {name} does not match its checksum; the baseline is "
                                 "corrupt (refit it, or roll back to another version)")
     try:
-        miner = TemplateMiner.from_dict(orjson.loads((path / "templates.json").read_bytes()))
+        miner = TemplateTree.from_dict(orjson.loads((path / "templates.json").read_bytes()))
         with np.load(path / "model.npz", allow_pickle=False) as z:
             arrays = {key: z[key] for key in z.files}
         vectorizer = NgramVectorizer.from_arrays(manifest.ngram_max, arrays)

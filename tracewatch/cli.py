@@ -95,10 +95,10 @@ def cmd_templates(args) -> int:
     from .formats import items, make_format
     from .records import Record
     from .sources.files import read_lines
-    from .templates import TemplateMiner
+    from .templates import TemplateTree
 
     t = cfg.templates
-    miner = TemplateMiner(t.depth, t.similarity, t.max_children)
+    miner = TemplateTree(t.routing_tokens, t.join_share, t.max_branches)
     rows: list[tuple[int, int]] = []
     for source, path in pairs:
         fmt = make_format(cfg.source(source))
@@ -175,7 +175,6 @@ def _refit(cfg: Config, args) -> int:
         print(f"tracewatch: refit refused: {failed} gate failed; the current baseline is kept", file=sys.stderr)
         return 3
     return 0
-# -- end of `baselines refit` -----------------------------------------------------------------------
 
 
 # -- `run` (the daemon) ---------------------------------------------------------------------------
@@ -194,7 +193,6 @@ def cmd_run(args) -> int:
     from .service.daemon import run_daemon
 
     return run_daemon(load_config(args.config), log_level=args.log_level, log_format=args.log_format)
-# -- end of `run` -----------------------------------------------------------------------------------
 
 
 # -- `incidents` (tracewatch/alerts/incidents.py, tracewatch/service/incidents_api.py) ------------------
@@ -293,7 +291,6 @@ def cmd_incidents(args) -> int:
     else:
         print(f"incident #{detail['id']} is now {detail['status']}: {summary.safe(detail['title'])}")
     return 0
-# -- end of `incidents` ---------------------------------------------------------------------------------
 
 
 # -- `label` (tracewatch/triage.py) ----------------------------------------------------------------
@@ -391,7 +388,6 @@ def format_labels(rows: list[dict], info: dict) -> str:
                      f"{t} by {safe(r['by'])}  {safe(r['title'])}")
     lines.append(format_model(info))
     return "\n".join(lines)
-# -- end of `label` ---------------------------------------------------------------------------------
 
 
 def cmd_demo(args) -> int:
@@ -499,7 +495,6 @@ def build_parser() -> argparse.ArgumentParser:
     sp.add_argument("--dry-run", action="store_true", help="refit: fit and apply the gates, save nothing")
     sp.add_argument("--json", action="store_true", help="refit: print the report as JSON")
     sp.intermixed = True
-    # -- end of `baselines refit` --
     sp.set_defaults(func=cmd_baselines)
 
     sp = sub.add_parser("run", help="run the daemon: follow files live, alert, serve metrics",
@@ -524,7 +519,6 @@ def build_parser() -> argparse.ArgumentParser:
     sp.add_argument("--limit", type=int, default=50, help="at most this many (default 50)")
     sp.add_argument("--note", help="a note kept with a status change")
     sp.set_defaults(func=cmd_incidents)
-    # -- end of `incidents` --
 
     # -- `label` --
     sp = sub.add_parser("label", help="label an incident expected or a known problem; retrain triage",
@@ -537,7 +531,6 @@ def build_parser() -> argparse.ArgumentParser:
     sp.add_argument("--list", action="store_true", help="print the labels and the triage model's state")
     sp.add_argument("--json", action="store_true", help="with --list: one JSON object")
     sp.set_defaults(func=cmd_label)
-    # -- end of `label` --
 
     sp = sub.add_parser("demo", help="generate the parcel-locker demo, fit, score and tally what was caught")
     sp.add_argument("--dir", default="./tracewatch-demo", help="where to write the demo (default ./tracewatch-demo)")

@@ -127,9 +127,9 @@ class SessionsConfig(_Section):
 
 
 class TemplatesConfig(_Section):
-    depth: int = Field(default=4, ge=3, le=8)
-    similarity: float = Field(default=0.5, gt=0, le=1)
-    max_children: int = Field(default=100, ge=2)
+    routing_tokens: int = Field(default=2, ge=1, le=6)  # leading tokens that route a message in the tree
+    join_share: float = Field(default=0.5, gt=0, le=1)  # share of equal tokens to join a template
+    max_branches: int = Field(default=100, ge=2)  # per tree node; beyond it new tokens go to <var>
 
 
 class FeaturesConfig(_Section):
@@ -268,7 +268,6 @@ class NotifyConfig(_Section):
             if not re.fullmatch(r"[a-zA-Z_][a-zA-Z0-9_]*", name) or name.startswith("__"):
                 raise ValueError(f"{name!r} is not a valid Prometheus label name")
         return v
-# -- end of incidents and notifications -------------------------------------------------------
 
 
 # -- triage (tracewatch/triage.py) ------------------------------------------------------------
@@ -289,7 +288,6 @@ class TriageConfig(_Section):
     min_margin: float = Field(default=0.15, ge=0, le=1)
     # a new incident triage calls expected is opened as "expected", without a notification
     suppress_expected: bool = True
-# -- end of triage ----------------------------------------------------------------------------
 
 
 # -- baseline refit (tracewatch/refit.py) ----------------------------------------------------
@@ -318,7 +316,6 @@ class RefitConfig(_Section):
     # open and acknowledged incidents (not only those labelled a known problem) must still be flagged
     gate_open_incidents: bool = True
     seed: int = 0
-# -- end of baseline refit --------------------------------------------------------------------
 
 
 class Config(_Section):

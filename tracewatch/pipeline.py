@@ -21,7 +21,7 @@ from .formats import Format, make_format
 from .records import Record
 from .rejects import reject_log
 from .sessions import Session, Sessionizer
-from .templates import TemplateMiner
+from .templates import TemplateTree
 
 SCORE_BATCH = 256
 TICK_EVERY = 1024
@@ -38,7 +38,7 @@ class Pipeline:
         self.on_quiet = on_quiet
         self.baseline = baseline
         tcfg = cfg.templates
-        self.miner = baseline.miner if baseline else TemplateMiner(tcfg.depth, tcfg.similarity, tcfg.max_children)
+        self.miner = baseline.miner if baseline else TemplateTree(tcfg.routing_tokens, tcfg.join_share, tcfg.max_branches)
         self.scorer = baseline.make_scorer() if baseline else None
         self.sessionizer = Sessionizer(cfg.sessions)
         self.on_verdict = on_verdict or (lambda v: None)

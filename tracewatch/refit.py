@@ -40,7 +40,7 @@ from pydantic import BaseModel, ConfigDict, ValidationError
 from .baselines import POOLED, Baseline, atomic_write, current_version, fit_baseline, load_baseline, save_baseline
 from .config import Config
 from .errors import StateError
-from .templates import Template, TemplateMiner
+from .templates import Template, TemplateTree
 
 POOL_FILE = "refit-pool.json"
 POOL_KIND = "tracewatch-refit-pool"
@@ -206,14 +206,14 @@ class RefitData:
 
     based_on: str  # the baseline in use, which judged the pool
     quiet: list[tuple[str, int, IdSeq]]  # QuietPool.sessions()
-    templates: dict  # the live template miner (TemplateMiner.to_dict()), learned templates included
+    templates: dict  # the live template miner (TemplateTree.to_dict()), learned templates included
     n_seen: int  # how many of those belong to the baseline in use
     known: list[tuple[int, str, dict]] = field(default_factory=list)  # (incident, label, alert)
     firing: list[tuple[int, dict]] = field(default_factory=list)  # (incident, representative alert)
     notes: list[str] = field(default_factory=list)
 
 
-def refit_data(pool: QuietPool, miner: TemplateMiner, based_on: str) -> RefitData:
+def refit_data(pool: QuietPool, miner: TemplateTree, based_on: str) -> RefitData:
     """The pool and the live miner now (call it where they cannot change meanwhile)."""
     return RefitData(based_on=based_on, quiet=pool.sessions(), templates=miner.to_dict(), n_seen=miner.n_seen)
 
@@ -299,11 +299,11 @@ def _split(quiet: list[tuple[str, int, IdSeq]], share: float) -> tuple[list, lis
     return fit, hold
 
 
-def _candidate_miner(templates: dict, n_seen: int, used: set[str]) -> TemplateMiner:
+def _candidate_miner(templates: dict, n_seen: int, used: set[str]) -> TemplateTree:
     """The baseline's templates plus those the fit sessions use; templates learned live only
     from alerts stay unseen for the candidate."""
     entries = [e for i, e in enumerate(templates["templates"]) if i < n_seen or e["id"] in used]
-    return TemplateMiner.from_dict({**templates, "templates": entries})
+    return TemplateTree.from_dict({**templates, "templates": entries})
 
 
 def _incident_gate(name: str, judge: _Judge, alerts: list[tuple[int, dict]], what: str) -> dict:

@@ -108,19 +108,19 @@ class Template:
         return " ".join(self.tokens)
 
 
-class TemplateMiner:
-    """Online fixed-depth prefix-tree template miner (He et al., ICWS 2017).
+class TemplateTree:
+    """Online template learning with the fixed-depth prefix-tree method (He et al., ICWS 2017).
 
-    ``depth`` counts the tree levels including the root and the length layer, so the first
-    ``depth - 2`` tokens route a message; ``similarity`` is the share of equal tokens needed to
-    join a template; a node with ``max_children`` children sends new tokens to ``<var>``.
+    Messages are routed by their token count and then by their first ``routing_tokens``
+    tokens; ``join_share`` is the share of equal tokens needed to join a template there; a
+    node with ``max_branches`` branches sends new tokens to ``<var>``.
     """
 
-    def __init__(self, depth: int = 4, similarity: float = 0.5, max_children: int = 100,
+    def __init__(self, routing_tokens: int = 2, join_share: float = 0.5, max_branches: int = 100,
                  cache_size: int = 100_000) -> None:
-        self.depth = depth
-        self.similarity = similarity
-        self.max_children = max_children
+        self.routing_tokens = routing_tokens
+        self.join_share = join_share
+        self.max_branches = max_branches
         self.cache_size = cache_size
         self.templates: list[Template] = []
         self._ids: dict[str, int] = {}
@@ -201,14 +201,14 @@ class TemplateMiner:
     def _route(self, tokens: list[str], create: bool) -> tuple[list[int] | None, tuple[str, ...]]:
         node = self._tree.setdefault(len(tokens), {}) if create else self._tree.get(len(tokens))
         path: list[str] = []
-        for token in tokens[: self.depth - 2]:
+        for token in tokens[: self.routing_tokens]:
             if node is None:
                 return None, ()
             key = token if _DIGITS.isdisjoint(token) else WILDCARD
             if key not in node:
                 if not create:
                     key = WILDCARD
-                elif len(node) >= self.max_children:
+                elif len(node) >= self.max_branches:
                     key = WILDCARD
             path.append(key)
             nxt = node.get(key)
@@ -240,7 +240,7 @@ class TemplateMiner:
             sim = same / len(tokens)
             if sim > best_sim or (sim == best_sim and wild > best_wild):
                 best, best_sim, best_wild = cand, sim, wild
-        if best is not None and best_sim >= self.similarity:
+        if best is not None and best_sim >= self.join_share:
             tpl = self.templates[best]
             if not (self.frozen and best < self.n_seen):
                 tpl.tokens = [a if a == b else WILDCARD for a, b in zip(tpl.tokens, tokens)]
@@ -269,9 +269,9 @@ class TemplateMiner:
 
     def to_dict(self) -> dict:
         return {
-            "depth": self.depth,
-            "similarity": self.similarity,
-            "max_children": self.max_children,
+            "routing_tokens": self.routing_tokens,
+            "join_share": self.join_share,
+            "max_branches": self.max_branches,
             "templates": [self._entry(t) for t in self.templates],
         }
 
@@ -291,8 +291,8 @@ class TemplateMiner:
         node.setdefault("", []).append(idx)
 
     @classmethod
-    def from_dict(cls, data: dict) -> "TemplateMiner":
-        miner = cls(data["depth"], data["similarity"], data["max_children"])
+    def from_dict(cls, data: dict) -> "TemplateTree":
+        miner = cls(data["routing_tokens"], data["join_share"], data["max_branches"])
         for entry in data["templates"]:
             miner._insert(entry)
         return miner
@@ -318,7 +318,7 @@ class TemplateMiner:
                 raise ValueError(f"template index {idx} out of range")
             self._masked[masked] = idx
 
-    def adopt(self, other: "TemplateMiner") -> list[int]:
+    def adopt(self, other: "TemplateTree") -> list[int]:
         """This miner's index for every template of ``other``: the template with the same id,
         else the one its text mines to (a new, unseen template if need be). Used to carry open
         sessions over to a newly loaded baseline."""

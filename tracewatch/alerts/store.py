@@ -100,7 +100,6 @@ CREATE TABLE IF NOT EXISTS labels (
 _MIGRATIONS = {1: ("ALTER TABLE incidents ADD COLUMN suggestion TEXT NOT NULL DEFAULT ''",
                    "CREATE TABLE IF NOT EXISTS labels (incident_id INTEGER PRIMARY KEY, label TEXT NOT NULL, "
                    "by TEXT NOT NULL, note TEXT NOT NULL DEFAULT '', ts REAL NOT NULL)")}
-# -- end of triage labels --
 
 # the columns every incident listing returns (the heavy JSON columns only on demand)
 _LIST_COLUMNS = ("id, status, title, first_seen, last_seen, count, escalated, created, status_changed, "
@@ -293,7 +292,6 @@ class IncidentStore:
         rows = self.db.execute("SELECT m.alert, l.label, l.incident_id FROM labels l JOIN members m "
                                "ON m.incident_id = l.incident_id ORDER BY l.incident_id, m.alert_id")
         return [(orjson.loads(a), label, iid) for a, label, iid in rows]
-    # -- end of triage labels --
 
     # -- outbox and delivery cursors -----------------------------------------------------------------
     def outbox_after(self, last_id: int, limit: int = 100) -> list[tuple[int, str, dict]]:

@@ -111,7 +111,6 @@ class _SnapshotCollector(Collector):
         for source, n in sorted(snap.get("refit_pool", {}).items()):
             pool.add_metric([source], n)
         yield pool
-        # -- end of refit --
         if snap.get("checkpoint_time"):
             yield GaugeMetricFamily("tracewatch_checkpoint_timestamp_seconds",
                                     "When the last checkpoint was written.", value=snap["checkpoint_time"])

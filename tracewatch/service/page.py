@@ -67,7 +67,6 @@ def triage_text(inc: dict) -> str:
         return f"triage: no suggestion (margin {hint.get('margin')})"
     verb = "suppressed as" if hint.get("action") == "suppress" else "suggests"
     return f"triage {verb} {hint['label']} (margin {hint.get('margin')})"
-# -- end of triage --
 
 
 def list_page(incidents: list[dict], counts: dict[str, int], notify: dict[str, dict], *, refresh_s: int) -> str:
