@@ -19,7 +19,8 @@ import numpy as np
 import pytest
 from prometheus_client.parser import text_string_to_metric_families
 
-from tracewatch.baselines import atomic_write, baselines_dir, load_baseline
+from tracewatch.baselines import baselines_dir, load_baseline
+from tracewatch.fs import atomic_write
 from tracewatch.batch import assign_sources, fit_files
 from tracewatch.config import load_config
 from tracewatch.pipeline import Pipeline

@@ -16,7 +16,7 @@ import tempfile
 import time
 import zipfile
 from collections import Counter
-from collections.abc import Iterable, Sequence
+from collections.abc import Sequence
 from functools import cached_property
 from pathlib import Path
 from typing import TYPE_CHECKING
@@ -28,6 +28,7 @@ from pydantic import BaseModel, ConfigDict, ValidationError
 from . import __version__
 from .config import Config
 from .errors import BaselineError, NoBaselineError
+from .fs import atomic_write
 from .features import NgramVectorizer
 from .model.calibrate import ConformalThreshold
 from .model.score import SessionScorer
@@ -282,31 +283,6 @@ def _sha256(path: Path) -> str:
     return hashlib.sha256(path.read_bytes()).hexdigest()
 
 
-def atomic_write(path: Path, data: bytes | Iterable[bytes]) -> None:
-    """Write ``data`` (bytes, or pieces of bytes) to ``path`` via a temp file, fsync and rename:
-    never a half-written file."""
-    path.parent.mkdir(parents=True, exist_ok=True)
-    fd, tmp = tempfile.mkstemp(dir=path.parent, prefix=f".{path.name}.")
-    try:
-        with os.fdopen(fd, "wb") as fh:
-            if isinstance(data, bytes):
-                fh.write(data)
-            else:
-                for piece in data:
-                    fh.write(piece)
-            fh.flush()
-            os.fsync(fh.fileno())
-        os.replace(tmp, path)
-    except BaseException:
-        Path(tmp).unlink(missing_ok=True)
-        raise
-    dir_fd = os.open(path.parent, os.O_RDONLY)
-    try:
-        os.fsync(dir_fd)
-    finally:
-        os.close(dir_fd)
-
-
 def _rows(arrays: dict, n_cols: int) -> tuple:
     """The distinct fit sessions' CSR parts, checked (the matrix itself is built on first use)."""
     data, indices, indptr = arrays["knn_data"], arrays["knn_indices"], arrays["knn_indptr"]
@@ -349,7 +325,7 @@ def current_version(state_dir: Path) -> str | None:
     except FileNotFoundError:
         return None
     except OSError as exc:
-        raise BaselineError(f"{pointer}: cannot read: {exc.strerror or exc}") from None
+        raise BaselineError(f"{pointer}: cannot read: {exc.strerror or exc}") from exc
     return name or None
 
 
@@ -427,13 +403,13 @@ def load_baseline_dir(path: Path) -> Baseline:
     where = str(path)
     try:
         manifest = Manifest.model_validate(orjson.loads((path / "manifest.json").read_bytes()))
-    except FileNotFoundError:
-        raise BaselineError(f"{where}: not a baseline (no manifest.json)") from None
+    except FileNotFoundError as exc:
+        raise BaselineError(f"{where}: not a baseline (no manifest.json)") from exc
     except OSError as exc:
-        raise BaselineError(f"{where}: cannot read manifest.json: {exc.strerror or exc}") from None
+        raise BaselineError(f"{where}: cannot read manifest.json: {exc.strerror or exc}") from exc
     except (orjson.JSONDecodeError, ValidationError) as exc:
         raise BaselineError(f"{where}: manifest.json is corrupt or not a tracewatch baseline "
-                            f"({str(exc).splitlines()[0]})") from None
+                            f"({str(exc).splitlines()[0]})") from exc
     if manifest.kind != "tracewatch-baseline":
         raise BaselineError(f"{where}: manifest.json is not a tracewatch baseline")
     if manifest.schema_version != SCHEMA_VERSION:
@@ -443,7 +419,7 @@ def load_baseline_dir(path: Path) -> Baseline:
         try:
             digest = _sha256(path / name)
         except OSError as exc:
-            raise BaselineError(f"{where}: cannot read {name}: {exc.strerror or exc}") from None
+            raise BaselineError(f"{where}: cannot read {name}: {exc.strerror or exc}") from exc
         if manifest.files.get(name) != digest:
             raise BaselineError(f"{where}: {name} does not match its checksum; the baseline is "
                                 "corrupt (refit it, or roll back to another version)")
@@ -468,7 +444,7 @@ def load_baseline_dir(path: Path) -> Baseline:
             normal_sources=[manifest.sources[i] for i in arrays["normal_sources"].tolist()], scorer=manifest.scorer, knn_parts=knn,
             knn_k=manifest.knn_k, unseen_weight=manifest.unseen_weight, report=manifest.report, version=manifest.version)
     except (KeyError, ValueError, TypeError, zipfile.BadZipFile, OSError, orjson.JSONDecodeError) as exc:
-        raise BaselineError(f"{where}: the baseline files are unreadable ({exc}); refit it") from None
+        raise BaselineError(f"{where}: the baseline files are unreadable ({exc}); refit it") from exc
     if baseline.centers.shape[1] != len(vectorizer.vocabulary_):
         raise BaselineError(f"{where}: the model does not match its vocabulary; refit it")
     miner.freeze()

@@ -221,7 +221,7 @@ def _since(value: str | None) -> float | None:
     try:
         return parse_since(value)
     except ValueError as exc:
-        raise ConfigError(f"--since: {exc}; or give a duration such as 30m, 2h, 1d") from None
+        raise ConfigError(f"--since: {exc}; or give a duration such as 30m, 2h, 1d") from exc
 
 
 def cmd_incidents(args) -> int:

@@ -28,7 +28,7 @@ def _check_regex(value: str | None, *, groups: tuple[str, ...] = ()) -> str | No
     try:
         compiled = re.compile(value)
     except re.error as exc:
-        raise ValueError(f"invalid regular expression: {exc}") from None
+        raise ValueError(f"invalid regular expression: {exc}") from exc
     for group in groups:
         if group not in compiled.groupindex:
             raise ValueError(f"the regular expression needs a named group (?P<{group}>...)")
@@ -102,7 +102,7 @@ class SourceConfig(_Section):
             try:
                 _check_regex(self.session_key, groups=("key",))
             except ValueError as exc:
-                raise ValueError(f"session_key: {exc}") from None
+                raise ValueError(f"session_key: {exc}") from exc
         self._check_format_options()
         if self.format == "jsonl" and self.session_key is not None:
             if not re.fullmatch(r"[^.\s]+(\.[^.\s]+)*", self.session_key):
@@ -374,7 +374,7 @@ def parse_config(data: dict, *, origin: str = "config") -> Config:
     try:
         return Config.model_validate(data)
     except ValidationError as exc:
-        raise ConfigError(f"{origin}: {_describe(exc)}") from None
+        raise ConfigError(f"{origin}: {_describe(exc)}") from exc
 
 
 def load_config(path: str | Path) -> Config:
@@ -383,11 +383,11 @@ def load_config(path: str | Path) -> Config:
     try:
         raw = path.read_bytes()
     except OSError as exc:
-        raise ConfigError(f"{path}: cannot read config file: {exc.strerror or exc}") from None
+        raise ConfigError(f"{path}: cannot read config file: {exc.strerror or exc}") from exc
     try:
         data = tomllib.loads(raw.decode("utf-8"))
     except (tomllib.TOMLDecodeError, UnicodeDecodeError) as exc:
-        raise ConfigError(f"{path}: not valid TOML: {exc}") from None
+        raise ConfigError(f"{path}: not valid TOML: {exc}") from exc
     cfg = parse_config(data, origin=str(path))
     if not cfg.state_dir.is_absolute():
         cfg = cfg.model_copy(update={"state_dir": (path.parent / cfg.state_dir).resolve()})

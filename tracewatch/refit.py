@@ -37,9 +37,10 @@ import numpy as np
 import orjson
 from pydantic import BaseModel, ConfigDict, ValidationError
 
-from .baselines import POOLED, Baseline, atomic_write, current_version, fit_baseline, load_baseline, save_baseline
+from .baselines import POOLED, Baseline, current_version, fit_baseline, load_baseline, save_baseline
 from .config import Config
 from .errors import StateError
+from .fs import atomic_write
 from .templates import Template, TemplateTree
 
 POOL_FILE = "refit-pool.json"
@@ -149,7 +150,7 @@ class QuietPool:
         except FileNotFoundError:
             return pool
         except OSError as exc:
-            raise StateError(f"{path}: cannot read the refit pool: {exc.strerror or exc}") from None
+            raise StateError(f"{path}: cannot read the refit pool: {exc.strerror or exc}") from exc
         try:
             doc = _PoolFile.model_validate(orjson.loads(raw))
             if doc.kind != POOL_KIND:
@@ -176,7 +177,7 @@ class QuietPool:
             else:
                 why = str(exc).splitlines()[0]
             raise StateError(f"{path}: not a usable refit pool ({why}); move it away to start an empty "
-                             "pool") from None
+                             "pool") from exc
         pool.baseline_version, pool.last_refit = doc.baseline_version, doc.last_refit
         return pool
 

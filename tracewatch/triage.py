@@ -32,6 +32,7 @@ from sklearn.exceptions import NotFittedError
 
 from .config import TriageConfig
 from .errors import StateError
+from .fs import atomic_write
 
 log = logging.getLogger("tracewatch.triage")
 
@@ -263,8 +264,6 @@ class Triage:
         return self.train(store.labelled_alerts())
 
     def save(self) -> None:
-        from .baselines import atomic_write
-
         m, info = self.model, self.info
         doc = {"kind": "tracewatch-triage", "schema_version": SCHEMA_VERSION, "kernel": self.cfg.kernel,
                "gamma": self.cfg.rbf_gamma, "spectrum_n": self.cfg.spectrum_n,
@@ -290,7 +289,7 @@ class Triage:
             saved = _Saved.model_validate_json(self.path.read_bytes())
         except (OSError, ValidationError) as exc:
             raise StateError(f"{self.path}: not a usable triage model ({str(exc).splitlines()[0]}); "
-                             "label an incident again to retrain it, or move the file away") from None
+                             "label an incident again to retrain it, or move the file away") from exc
         if saved.schema_version != SCHEMA_VERSION:
             raise StateError(f"{self.path}: triage schema {saved.schema_version} is not supported "
                              f"(this tracewatch reads {SCHEMA_VERSION}); label an incident again to retrain")

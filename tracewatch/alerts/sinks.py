@@ -94,10 +94,10 @@ def post_json(url: str, body, *, timeout: float) -> int:
     except urllib.error.HTTPError as exc:
         code = exc.code
         exc.close()
-        raise DeliveryError(f"{url} answered HTTP {code}", retry=code in RETRY_STATUS or code >= 500) from None
+        raise DeliveryError(f"{url} answered HTTP {code}", retry=code in RETRY_STATUS or code >= 500) from exc
     except (urllib.error.URLError, OSError, ValueError) as exc:
         reason = getattr(exc, "reason", exc)
-        raise DeliveryError(f"{url}: {reason}", retry=True) from None
+        raise DeliveryError(f"{url}: {reason}", retry=True) from exc
 
 
 # -- the two sinks -------------------------------------------------------------------------------------

@@ -135,14 +135,14 @@ class IncidentStore:
         except sqlite3.OperationalError as exc:
             store.close()
             if "locked" in str(exc) or "busy" in str(exc):
-                raise StateError(f"{path}: busy (another process has held it for seconds); try again") from None
-            raise StateError(f"{path}: not a usable incident store ({exc}); move it away to start afresh") from None
+                raise StateError(f"{path}: busy (another process has held it for seconds); try again") from exc
+            raise StateError(f"{path}: not a usable incident store ({exc}); move it away to start afresh") from exc
         except sqlite3.DatabaseError as exc:
             store.close()
-            raise StateError(f"{path}: not a usable incident store ({exc}); move it away to start afresh") from None
+            raise StateError(f"{path}: not a usable incident store ({exc}); move it away to start afresh") from exc
         except OSError as exc:
             store.close()
-            raise StateError(f"{path}: cannot open: {exc.strerror or exc}") from None
+            raise StateError(f"{path}: cannot open: {exc.strerror or exc}") from exc
         return store
 
     def _init(self) -> None:

@@ -8,7 +8,6 @@ and what was caught (per anomaly kind) or raised in vain (false alarms).
 from __future__ import annotations
 
 import time
-from collections import Counter
 from pathlib import Path
 
 import orjson

@@ -121,7 +121,7 @@ class Daemon:
             except BaselineError as exc:
                 raise StateError(f"{self.checkpoint_path} was written with baseline {ckpt.baseline_version}, "
                                  f"which cannot be loaded ({exc}); move the checkpoint away to start afresh"
-                                 ) from None
+                                 ) from exc
         self.pipe = Pipeline(cfg, base, on_verdict=self._on_verdict, score_all=True, clock=self.live)
         if ckpt is not None:
             restore(self.pipe, ckpt)
@@ -157,13 +157,13 @@ class Daemon:
         try:
             fd = os.open(path, os.O_RDWR | os.O_CREAT | os.O_CLOEXEC, 0o600)
         except OSError as exc:
-            raise StateError(f"{path}: cannot open: {exc.strerror or exc}") from None
+            raise StateError(f"{path}: cannot open: {exc.strerror or exc}") from exc
         try:
             fcntl.flock(fd, fcntl.LOCK_EX | fcntl.LOCK_NB)
-        except OSError:
+        except OSError as exc:
             os.close(fd)
             raise StateError(f"another tracewatch daemon is running with state_dir {self.state_dir}; "
-                             "stop it first, or give this one its own state_dir") from None
+                             "stop it first, or give this one its own state_dir") from exc
         os.ftruncate(fd, 0)
         os.write(fd, f"{os.getpid()}\n".encode())
         self._lock_fd = fd
@@ -490,5 +490,5 @@ def run_daemon(cfg: Config, *, log_level: str = "info", log_format: str = "plain
         daemon.start()
     except OSError as exc:  # a state_dir that cannot be written, for example
         raise StateError(f"cannot start: {exc.strerror or exc}"
-                         + (f" ({exc.filename})" if exc.filename else "")) from None
+                         + (f" ({exc.filename})" if exc.filename else "")) from exc
     return daemon.run()

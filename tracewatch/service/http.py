@@ -71,8 +71,8 @@ def serve(listen: str, provider: StatusProvider, registry: CollectorRegistry
     except OSError as exc:
         if exc.errno == errno.EADDRINUSE:
             raise ConfigError(f"server.listen: {listen} is already in use (another tracewatch, or another "
-                              "program); stop it or choose another port in [server] listen") from None
-        raise ConfigError(f"server.listen: cannot listen on {listen}: {exc.strerror or exc}") from None
+                              "program); stop it or choose another port in [server] listen") from exc
+        raise ConfigError(f"server.listen: cannot listen on {listen}: {exc.strerror or exc}") from exc
     thread = threading.Thread(target=server.serve_forever, kwargs={"poll_interval": 0.2},
                               name="tracewatch-http", daemon=True)
     thread.start()

@@ -63,8 +63,8 @@ def parse_since(value: str) -> float:
         pass
     try:
         t = datetime.fromisoformat(value.replace("Z", "+00:00"))
-    except ValueError:
-        raise ValueError(f"since: {value!r} is neither seconds since the epoch nor an ISO 8601 time") from None
+    except ValueError as exc:
+        raise ValueError(f"since: {value!r} is neither seconds since the epoch nor an ISO 8601 time") from exc
     if t.tzinfo is None:
         t = t.replace(tzinfo=timezone.utc)
     return t.timestamp()
@@ -222,6 +222,6 @@ def api_request(base_url: str, path: str, *, method: str = "GET", token: str | N
         except orjson.JSONDecodeError:
             return exc.code, {"error": raw[:200].decode("utf-8", "replace")}
     except (urllib.error.URLError, OSError, ValueError) as exc:
-        raise InputError(f"{base_url}: cannot reach the daemon: {getattr(exc, 'reason', exc)}") from None
-    except orjson.JSONDecodeError:
-        raise InputError(f"{base_url}{path}: the answer is not JSON; is this a tracewatch daemon?") from None
+        raise InputError(f"{base_url}: cannot reach the daemon: {getattr(exc, 'reason', exc)}") from exc
+    except orjson.JSONDecodeError as exc:
+        raise InputError(f"{base_url}{path}: the answer is not JSON; is this a tracewatch daemon?") from exc

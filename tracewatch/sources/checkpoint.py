@@ -29,7 +29,7 @@ from typing import Literal
 import orjson
 from pydantic import BaseModel, ConfigDict, Field, ValidationError
 
-from ..baselines import atomic_write
+from ..fs import atomic_write
 from ..errors import StateError
 
 log = logging.getLogger("tracewatch.checkpoint")
@@ -139,13 +139,13 @@ def load_checkpoint(path: Path) -> Checkpoint | None:
     except FileNotFoundError:
         return None
     except OSError as exc:
-        raise StateError(f"{path}: cannot read the checkpoint: {exc.strerror or exc}") from None
+        raise StateError(f"{path}: cannot read the checkpoint: {exc.strerror or exc}") from exc
     advice = ("; move it away to start afresh (files are then read as on a first start, and alerts "
               "already in alerts.jsonl stay)")
     try:
         ckpt = Checkpoint.model_validate_json(raw)
     except ValidationError as exc:
-        raise StateError(f"{path}: the checkpoint is damaged ({str(exc).splitlines()[0]}){advice}") from None
+        raise StateError(f"{path}: the checkpoint is damaged ({str(exc).splitlines()[0]}){advice}") from exc
     if ckpt.schema_version != SCHEMA_VERSION:
         raise StateError(f"{path}: checkpoint schema {ckpt.schema_version} is not supported by this "
                          f"tracewatch (schema {SCHEMA_VERSION}){advice}")
@@ -159,7 +159,7 @@ def restore(pipeline, ckpt: Checkpoint) -> None:
     try:
         miner.restore_learned(saved.templates.model_dump())
     except ValueError as exc:
-        raise StateError(f"checkpoint: {exc}") from None
+        raise StateError(f"checkpoint: {exc}") from exc
     n = len(miner.templates)
     for entry in saved.sessions.open:
         if any(not 0 <= e < n for e in entry[2]):

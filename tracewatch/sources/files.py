@@ -94,7 +94,7 @@ def read_blocks(path: Path, max_line_bytes: int) -> Iterator[Block]:
     try:
         fh = open(path, "rb")
     except OSError as exc:
-        raise InputError(f"{path}: cannot read: {exc.strerror or exc}") from None
+        raise InputError(f"{path}: cannot read: {exc.strerror or exc}") from exc
     with fh:
         offset = 0
         rest = b""
@@ -130,4 +130,4 @@ def read_blocks(path: Path, max_line_bytes: int) -> Iterator[Block]:
                 text, problem = decode_line(rest[:-1] if rest.endswith(b"\r") else rest, max_line_bytes)
                 yield [text], [offset], [problem]
         except OSError as exc:
-            raise InputError(f"{path}: read failed at byte {offset}: {exc.strerror or exc}") from None
+            raise InputError(f"{path}: read failed at byte {offset}: {exc.strerror or exc}") from exc

@@ -374,7 +374,7 @@ class Follower:
             opened = self._open(path)
         except OSError as exc:
             if startup:
-                raise InputError(f"{path}: cannot read: {exc.strerror or exc}") from None
+                raise InputError(f"{path}: cannot read: {exc.strerror or exc}") from exc
             if path not in self._unreadable:
                 self._unreadable.add(path)
                 log.warning("%s: cannot read (%s); will retry", path, exc.strerror or exc)
