@@ -175,8 +175,8 @@ def test_bad_incident_and_notify_config_is_one_clear_error(section, key, value, 
 
 PROCESS = """
 import sys, time
-from tracewatch.alerts.incidents import Incidents
 from tracewatch.config import parse_config
+from tracewatch.service.incidents import Incidents
 from tests.incident_data import toy_alert
 
 state, url, linger, *actions = sys.argv[1:]
