@@ -171,3 +171,20 @@ def test_storm_gives_two_incidents_not_hundreds_of_notifications(storm_data, tmp
     got = Counter((b["incident"]["id"], b["event"], b["incident"].get("step")) for b in received)
     assert got == Counter({(r["id"], ev, step): 1 for r in rows
                            for ev, step in (("opened", None), ("escalated", 10), ("escalated", 100))})
+
+
+# -- a damaged stored incident -----------------------------------------------------------------------------
+@pytest.mark.parametrize("sql", ["UPDATE incidents SET count = 0 WHERE id = 1",  # was a division by zero
+                                 "UPDATE incidents SET centroid = '[0.5]' WHERE id = 1",
+                                 "DELETE FROM members WHERE incident_id = 1",
+                                 "UPDATE members SET vector = '{\"x\": 1e999}' WHERE incident_id = 1"],
+                         ids=["count-0", "centroid-a-list", "no-members", "vector-term-and-value"])
+def test_a_damaged_incident_is_left_out_of_grouping_and_logged_once(store, caplog, sql):
+    iid = tracker(store).add(toy_alert("1", "A"))
+    store.db.execute(sql)
+    tr = tracker(store)  # a new process: nothing cached
+    second = tr.add(toy_alert("2", "A"))  # would have joined incident 1
+    assert second != iid and tr.add(toy_alert("3", "A")) == second
+    damaged = [r for r in caplog.records if "is damaged" in r.getMessage()]
+    assert len(damaged) == 1 and f"incident {iid}" in damaged[0].getMessage()
+    assert store.incident(second)["count"] == 2

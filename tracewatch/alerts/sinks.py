@@ -24,6 +24,7 @@ from __future__ import annotations
 
 import ipaddress
 import logging
+import sqlite3
 import threading
 import time
 import urllib.error
@@ -36,6 +37,7 @@ import orjson
 
 from .. import __version__
 from ..config import Config, NotifyConfig
+from ..errors import TracewatchError
 from .store import FIRING, IncidentStore
 from .summary import notice
 
@@ -274,10 +276,16 @@ class Notifier:
             self._thread.start()
 
     def _run(self) -> None:
+        failing = ""
         while not self._stop.is_set():
             try:
                 self.run_once()
-            except Exception:  # a bug must not stop notifications for good; it is logged
+                failing = ""
+            except (TracewatchError, sqlite3.Error) as exc:  # the store: one line, again only when it changes
+                if str(exc) != failing:
+                    failing = str(exc)
+                    log.error("notifier: %s; notifications wait in the outbox", exc)
+            except Exception:  # a bug must not stop notifications for good; it is logged with its cause
                 log.exception("notifier round failed")
             due = min([*self._next_try.values(), *self._next_resend.values()], default=0.0) - self.clock()
             self._wake.wait(max(0.01, min(MAX_WAIT_S, due)))
