@@ -254,14 +254,20 @@ class InProcess:
         """Move the fake wall clock on ``step`` seconds at a time, each move once the daemon has
         acted on the last one, until ``pred()`` holds (the live clock counts quiet time only
         from the moment it has seen the newest record)."""
-        acted = [lambda: True]
+        turn = {"acted": lambda: True, "looked": True}  # the daemon acted on the last move; pred() seen since
 
         def move() -> None:
-            if acted[0]():
+            if turn["looked"] and turn["acted"]():
                 self.wall.t += step
-                acted[0] = self.ticked()
+                turn.update(acted=self.ticked(), looked=False)
 
-        self.until(lambda: acted[0]() and pred(), what, between=move)
+        def holds() -> bool:
+            if not turn["acted"]():
+                return False
+            turn["looked"] = True
+            return pred()
+
+        self.until(holds, what, between=move)
 
     def metric(self, name: str, labels: dict | None = None) -> float | None:
         return self.registry.get_sample_value(name, labels or {})

@@ -199,17 +199,14 @@ def label_row(row: dict) -> dict:
 class Group(NamedTuple):
     """One incident as grouping needs it (see :meth:`IncidentStore.group`)."""
 
-    row: dict  # the listed row (status, first_seen, last_seen, escalated, stats, ...)
+    row: dict  # the listed row (status, count, first_seen, last_seen, escalated, stats, ...)
     total: Vector  # the sum of its alerts' vectors (trimmed)
     members: list[tuple[str, Vector]]  # candidate representatives
-    representative_id: str | None
 
 
-def group(base: dict, stats, suggestion, label_, centroid, representative_id, members: list) -> Group:
+def group(base: dict, stats, suggestion, label_, centroid, members: list) -> Group:
     row = incident_row(base, stats, suggestion, label_)
     total = _check(_VEC, _json(centroid, "centroid"), "centroid")
-    if representative_id is not None and not isinstance(representative_id, str):
-        raise Damaged("representative: no alert id")
     if not members:
         raise Damaged("no member alerts")
     kept = []
@@ -217,5 +214,4 @@ def group(base: dict, stats, suggestion, label_, centroid, representative_id, me
         if not isinstance(aid, str):
             raise Damaged("member: no alert id")
         kept.append((aid, _check(_VEC, _json(vector, "member vector"), "member vector")))
-    return Group(row, total, kept, representative_id)
-
+    return Group(row, total, kept)

@@ -340,14 +340,13 @@ class IncidentStore:
     def group(self, incident_id: int, *, db: sqlite3.Connection) -> rows.Group:
         """What grouping needs of an incident, checked: its row, the sum of its alerts' vectors
         and its candidate representatives (at most :data:`MEMBERS_READ`, whatever the file holds)."""
-        r = db.execute(f"SELECT {_LIST_COLUMNS}, centroid, {_from_representative('$.alert_id')} "
-                       "FROM incidents WHERE id = ?", (incident_id,)).fetchone()
+        r = db.execute(f"SELECT {_LIST_COLUMNS}, centroid FROM incidents WHERE id = ?", (incident_id,)).fetchone()
         members = db.execute("SELECT alert_id, vector FROM members WHERE incident_id = ? ORDER BY alert_id LIMIT ?",
                              (incident_id, MEMBERS_READ)).fetchall()
         try:
             if r is None:
                 raise rows.Damaged("gone while being read")
-            return rows.group(dict(zip(_LIST_KEYS, r[:11])), r[11], r[12], r[13], r[14], r[15], members)
+            return rows.group(dict(zip(_LIST_KEYS, r[:11])), r[11], r[12], r[13], r[14], members)
         except rows.Damaged as exc:
             raise self._damaged(f"incident {incident_id}", exc) from exc
 
