@@ -13,7 +13,9 @@ alerts raised in between are raised again, with the same ``alert_id`` (a hash of
 source, key and first line). The journal holds exactly those after the saved length: they are
 recognised by id and not appended twice; those not raised again yet when the next checkpoint
 is written are carried in it (``pending``). A torn last line (a crash mid-write) is cut off
-first.
+first; any other damaged line (a disk fault, an edit) is skipped, counted and logged once, and
+left in the file — it is no record of its alert, so that alert is appended again if it is
+raised again. Every other line keeps its alert and its number.
 """
 
 from __future__ import annotations
@@ -231,14 +233,16 @@ class AlertJournal:
             after = self._read(start, size)
             self.count += after.count(b"\n")
             self._already = self._pending(mark)
-            self._already.update(a["alert_id"] for _, a in self._alerts(after, start) if a is not None)
+            self._already.update(a["alert_id"] for a in self._alerts(after, start))
         else:
             self.count += sum(self._read(pos, min(size, pos + (1 << 24))).count(b"\n")
                               for pos in range(start, size, 1 << 24))
         tail_start = max(0, size - TAIL_READ_BYTES)
-        lines = list(self._alerts(self._read(tail_start, size), tail_start, cut_first=tail_start > 0))[-self.keep:]
+        lines = list(_lines(self._read(tail_start, size), tail_start))[1 if tail_start else 0:]  # the first may be cut
+        lines = lines[-self.keep:]
         first = self.count - len(lines) + 1
-        for i, (_, alert) in enumerate(lines):
+        for i, (offset, line) in enumerate(lines):
+            alert = self._parse(offset, line)
             if alert is not None:
                 self.recent.append((first + i, alert))
         self.damaged = len(self._damaged_at)
@@ -246,21 +250,23 @@ class AlertJournal:
             log.error("%s: %d damaged line(s) skipped (the first at byte %d); they stay in the file, and every "
                       "other alert is kept", self.path, self.damaged, min(self._damaged_at))
 
-    def _alerts(self, block: bytes, start: int, *, cut_first: bool = False) -> Iterator[tuple[int, dict | None]]:
-        """(offset, alert) of each line of ``block`` (None for a damaged one, which is counted);
-        with ``cut_first`` the first line, which may begin before ``start``, is passed over."""
+    def _parse(self, offset: int, line: bytes) -> dict | None:
+        """The alert of one line, or None for a damaged line (counted by its offset)."""
+        try:
+            alert = orjson.loads(line)
+        except orjson.JSONDecodeError:
+            alert = None
+        if isinstance(alert, dict) and isinstance(alert.get("alert_id"), str):
+            return alert
+        self._damaged_at.add(offset)
+        return None
+
+    def _alerts(self, block: bytes, start: int) -> Iterator[dict]:
+        """The readable alerts of ``block``, which begins at a line start, file offset ``start``."""
         for offset, line in _lines(block, start):
-            if cut_first:
-                cut_first = False
-                continue
-            try:
-                alert = orjson.loads(line)
-            except orjson.JSONDecodeError:
-                alert = None
-            if not (isinstance(alert, dict) and isinstance(alert.get("alert_id"), str)):
-                self._damaged_at.add(offset)
-                alert = None
-            yield offset, alert
+            alert = self._parse(offset, line)
+            if alert is not None:
+                yield alert
 
     def _pending(self, mark: JournalMark) -> Counter[str]:
         """The mark's pending alerts whose line is there, read back from the mark (they were
@@ -277,7 +283,7 @@ class AlertJournal:
             if start > 0:  # begin at a line start: the part before the first newline is read next
                 cut = block.find(b"\n", 0, len(block) - 1) + 1
                 block, start = block[cut:], start + cut
-            found.update(a["alert_id"] for _, a in self._alerts(block, start) if a is not None and a["alert_id"] in want)
+            found.update(a["alert_id"] for a in self._alerts(block, start) if a["alert_id"] in want)
             pos = start
         missing = want - found
         if missing:
