@@ -1,5 +1,5 @@
 """Shared fixtures: configs built in tmp folders, generated scenarios, a demo baseline fitted
-once per run, the CLI as a subprocess."""
+once per run, the CLI as a subprocess, and :func:`wait_for`, the one way a test waits."""
 
 from __future__ import annotations
 
@@ -8,6 +8,8 @@ import shutil
 import subprocess
 import sys
 import threading
+import time
+from collections.abc import Callable
 from pathlib import Path
 from typing import NamedTuple
 
@@ -30,6 +32,31 @@ def run_cli(*args: str, cwd: Path | None = None, check: bool = False) -> subproc
     if check and proc.returncode != 0:
         raise AssertionError(f"tracewatch {' '.join(args)} failed ({proc.returncode}):\n{proc.stderr}")
     return proc
+
+
+def wait_for(pred: Callable[[], object], timeout: float, *, what: str = "the condition", step: float = 0.05,
+             between: Callable[[], None] = lambda: None, alive: Callable[[], None] = lambda: None,
+             tail: Callable[[], str] = lambda: "", ignore: tuple[type[BaseException], ...] = ()):
+    """Poll ``pred()`` every ``step`` s until it returns something true, and return that; give
+    up with an AssertionError after ``timeout`` s. Every test that waits for something waits
+    here, on an explicit condition (a counter reached, a file grew, a checkpoint written).
+
+    ``between()`` runs before each poll — a test on a fake clock moves the clock there;
+    ``alive()`` fails the test as soon as the program waited on has died; errors in ``ignore``
+    count as "not yet" (a server not listening yet); ``tail()`` is shown on giving up."""
+    deadline = time.monotonic() + timeout
+    while True:
+        between()
+        alive()
+        try:
+            got = pred()
+            if got:
+                return got
+        except ignore:
+            pass
+        if time.monotonic() >= deadline:
+            raise AssertionError(f"gave up after {timeout:g} s waiting for {what}\n{tail()}")
+        time.sleep(step)  # the poll interval: the one sleep every wait goes through
 
 
 @pytest.fixture(autouse=True)

@@ -35,7 +35,7 @@ from tracewatch.config import load_config
 from tracewatch.demo.scenario import generate, parcel_lockers, render_text
 from tracewatch.service.daemon import Daemon
 
-from .conftest import ROOT, run_cli
+from .conftest import ROOT, run_cli, wait_for
 
 IDLE_S = 1.5
 TIME_SCALE = 0.2  # the demo's steps are 0.02-1.5 s apart; scaled, at most 0.3 s (< IDLE_S)
@@ -77,27 +77,9 @@ def scaled_lines(n: int, per_kind: int, seed: int, span_s: float) -> list[str]:
     return render_text(sc, sessions)
 
 
-def wait_for(pred: Callable[[], object], what: str, *, timeout: float, step: float,
-             alive: Callable[[], None] = lambda: None, tail: Callable[[], str] = lambda: "",
-             ignore: tuple[type[BaseException], ...] = ()):
-    """Poll ``pred()`` every ``step`` s until it returns something true, and return that (bounded
-    by ``timeout``). ``alive()`` fails the test if the program waited on has died; errors in
-    ``ignore`` count as "not yet" (a server not listening yet); ``tail()`` is shown on giving up."""
-    deadline = time.monotonic() + timeout
-    while time.monotonic() < deadline:
-        alive()
-        try:
-            got = pred()
-            if got:
-                return got
-        except ignore:
-            pass
-        time.sleep(step)
-    raise AssertionError(f"gave up waiting for {what}:\n{tail()}")
-
-
 def running(name: str, proc: subprocess.Popen, output: Callable[[], str]) -> Callable[[], None]:
-    """An ``alive`` check for :func:`wait_for`: fails with the program's output once it exited."""
+    """An ``alive`` check for :func:`~tests.conftest.wait_for`: fails with the program's output
+    once it exited."""
     def check() -> None:
         assert proc.poll() is None, f"{name} exited ({proc.returncode}):\n{output()}"
     return check
@@ -151,7 +133,7 @@ def write_burst(path: Path, lines: list[str]) -> None:
     with open(path, "ab") as fh:
         fh.write(data[:cut])
         fh.flush()
-        time.sleep(0.005)
+        time.sleep(0.005)  # the writer's pace inside a line, so a follower may read half of it; nothing waits here
         fh.write(data[cut:])
 
 
@@ -193,7 +175,7 @@ class DaemonProcess:
 
     def until(self, pred, what: str, timeout: float = 40.0, step: float = 0.05) -> float:
         """Wait for ``pred()``; returns the perf_counter time it held (bench/daemon.py times with it)."""
-        wait_for(pred, what, timeout=timeout, step=step, alive=running("the daemon", self.proc, self.stderr),
+        wait_for(pred, timeout, what=what, step=step, alive=running("the daemon", self.proc, self.stderr),
                  tail=lambda: self.stderr()[-3000:], ignore=(OSError, http.client.HTTPException))
         return time.perf_counter()
 
@@ -248,27 +230,44 @@ class FakeWall:
 
 class InProcess:
     """The real Daemon driven from a thread, with a fresh metrics registry; ``wall`` is its wall
-    clock (a :class:`FakeWall` to move time by hand with :meth:`advance`)."""
+    clock (a :class:`FakeWall` to move time by hand with :meth:`advance`); other keywords go to
+    the Daemon (``on_state``, for example)."""
 
-    def __init__(self, cfg_path: Path, wall: Callable[[], float] = time.time) -> None:
+    def __init__(self, cfg_path: Path, wall: Callable[[], float] = time.time, **daemon_kw) -> None:
         self.registry = CollectorRegistry()
         self.wall = wall
-        self.daemon = Daemon(load_config(cfg_path), registry=self.registry, wall=wall)
+        self.daemon = Daemon(load_config(cfg_path), registry=self.registry, wall=wall, **daemon_kw)
         self.daemon.start()
         self.thread = threading.Thread(target=self.daemon.run)
         self.thread.start()
 
-    def until(self, pred, what: str, timeout: float = 30.0) -> None:
-        wait_for(pred, what, timeout=timeout, step=0.05, tail=lambda: f"status: {self.daemon.status()}")
+    def until(self, pred, what: str, timeout: float = 30.0, *, between: Callable[[], None] = lambda: None) -> None:
+        wait_for(pred, timeout, what=what, between=between, tail=lambda: f"status: {self.daemon.status()}")
+
+    def ticked(self) -> Callable[[], bool]:
+        """A condition: the daemon's loop has looked for idle sessions twice since now (so once
+        wholly after anything the test changed now, such as the fake clock)."""
+        start = self.daemon.ticks
+        return lambda: self.daemon.ticks >= start + 2
 
     def advance(self, pred, what: str, step: float = 10.0) -> None:
-        """Move the fake wall clock on ``step`` seconds at a time until ``pred()`` holds (the live
-        clock counts quiet time only from the moment it has seen the newest record)."""
-        def moved() -> bool:
-            self.wall.t += step
-            time.sleep(0.1)
+        """Move the fake wall clock on ``step`` seconds at a time, each move once the daemon has
+        acted on the last one, until ``pred()`` holds (the live clock counts quiet time only
+        from the moment it has seen the newest record)."""
+        turn = {"acted": lambda: True, "looked": True}  # the daemon acted on the last move; pred() seen since
+
+        def move() -> None:
+            if turn["looked"] and turn["acted"]():
+                self.wall.t += step
+                turn.update(acted=self.ticked(), looked=False)
+
+        def holds() -> bool:
+            if not turn["acted"]():
+                return False
+            turn["looked"] = True
             return pred()
-        self.until(moved, what)
+
+        self.until(holds, what, between=move)
 
     def metric(self, name: str, labels: dict | None = None) -> float | None:
         return self.registry.get_sample_value(name, labels or {})
@@ -325,7 +324,7 @@ class Neighbour:
 
     def until(self, pred, what: str, timeout: float = 20.0, step: float = 0.1):
         """Wait for ``pred()`` to return something true and return it (bounded)."""
-        return wait_for(pred, what, timeout=timeout, step=step, alive=running(self.proc.args[0], self.proc, self.output),
+        return wait_for(pred, timeout, what=what, step=step, alive=running(self.proc.args[0], self.proc, self.output),
                         tail=lambda: self.output()[-3000:], ignore=(OSError,))  # URLError is an OSError
 
     def ready(self, path: str) -> Neighbour:

@@ -12,7 +12,6 @@ import functools
 import http.client
 import random
 import threading
-import time
 from datetime import datetime, timezone
 from http.server import BaseHTTPRequestHandler, ThreadingHTTPServer
 from pathlib import Path
@@ -22,6 +21,8 @@ import orjson
 from tracewatch.batch import assign_sources, fit_files, score_files
 from tracewatch.config import Config, parse_config
 from tracewatch.demo.scenario import GeneratedSession, generate, parcel_lockers, render_text
+
+from .conftest import wait_for
 
 RETRY, UNSEEN, NORMAL = "retry", "unseen", "normal"
 STORM_START = datetime(2026, 11, 30, 3, 0, tzinfo=timezone.utc)
@@ -147,10 +148,8 @@ class Receiver:
             return [r["body"] for r in self.requests if r["status"] == 200]
 
     def wait_for(self, n: int, timeout: float = 10.0) -> list:
-        """Accepted bodies once there are at least ``n`` (or the timeout passed)."""
-        end = time.monotonic() + timeout
-        while len(self.bodies()) < n and time.monotonic() < end:
-            time.sleep(0.02)
+        """Accepted bodies once there are at least ``n``."""
+        wait_for(lambda: len(self.bodies()) >= n, timeout, what=f"{n} notifications", step=0.02)
         return self.bodies()
 
 

@@ -166,3 +166,29 @@ def test_journal_numbering_and_since(tmp_path):
     reopened.open(None)  # numbering survives a restart: read back from the file
     assert reopened.since(3, 1)["alerts"] == [_alert(4)]
     reopened.close()
+
+
+def test_damaged_lines_keep_their_numbers_and_their_alerts_are_appended_again(tmp_path, caplog):
+    path = tmp_path / "alerts.jsonl"
+    j = AlertJournal(path)
+    j.open(None)
+    for n in (1, 2, 3):
+        j.append(_alert(n))
+    mark = JournalMark(**j.sync())
+    j.append(_alert(4))
+    j.append(_alert(5))
+    j.close()
+    # a restart will raise 2 and 3 again (pending), 4 and 5 too (after the mark); 3 and 5 are damaged
+    mark = mark.model_copy(update={"pending": ["id2", "id3"]})
+    lines = path.read_bytes().split(b"\n")
+    lines[2] = b"\x00" * len(lines[2])  # id3: what a power loss can leave
+    lines[4] = b'["not", "an", "alert"]'  # id5
+    path.write_bytes(b"\n".join(lines))
+    j = AlertJournal(path)
+    j.open(mark)
+    assert j.damaged == 2 and [r.getMessage().count("damaged line") for r in caplog.records].count(1) == 1
+    assert [n for n, _ in j.recent] == [1, 2, 4] and j.count == 5  # numbers kept
+    assert [j.append(_alert(n)) for n in (2, 3, 4, 5)] == [False, True, False, True]
+    j.close()
+    assert [orjson.loads(x)["alert_id"] for i, x in enumerate(path.read_bytes().splitlines()) if i not in (2, 4)] == [
+        "id1", "id2", "id4", "id3", "id5"]

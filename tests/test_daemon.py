@@ -70,7 +70,7 @@ def test_live_alerts_equal_the_batch_through_rotation_copytruncate_and_restart(f
             assert all(json.loads(x)["level"] for x in daemon.stderr().splitlines())  # JSON lines
             daemon = DaemonProcess(cfg_path).ready()
         write_burst(logs / "app.log", burst)
-        time.sleep(PAUSE_S)
+        time.sleep(PAUSE_S)  # the application's pace between bursts; the test waits on nothing here
     status = daemon.caught_up(len(lines))
     _, metrics = daemon.get("/metrics")
     samples = {(s.name, tuple(sorted(s.labels.items()))): s.value
@@ -88,37 +88,57 @@ def test_live_alerts_equal_the_batch_through_rotation_copytruncate_and_restart(f
     assert status["sessions_evicted"] == 0 and status["sources"][0]["lag_bytes"] == 0
 
 
+def _kill_points(cfg_path: Path, n_lines: int) -> list:
+    """When to kill -9 each started daemon: conditions on what it did since it was ready, each
+    a different moment — alerts appended and not checkpointed yet, just after a checkpoint, in
+    the middle of the day's records (status counters, the journal's size, the checkpoint's time)."""
+    state = cfg_path.parent / "state"
+
+    def journal_lines() -> int:
+        path = state / "alerts.jsonl"
+        return path.read_bytes().count(b"\n") if path.exists() else 0
+
+    def after_new_alerts(daemon: DaemonProcess):
+        before = journal_lines()
+        return lambda: journal_lines() >= before + 2
+
+    def after_a_checkpoint(daemon: DaemonProcess):
+        before = (state / "checkpoint.json").stat().st_mtime_ns
+        return lambda: (daemon.status()["sources"][0]["records"] >= n_lines // 2
+                        and (state / "checkpoint.json").stat().st_mtime_ns > before)
+
+    def in_the_middle(daemon: DaemonProcess):
+        return lambda: daemon.status()["sources"][0]["records"] >= n_lines * 3 // 4
+
+    return [after_new_alerts, after_a_checkpoint, in_the_middle]
+
+
 def test_kill_9_while_writing_loses_nothing_and_repeats_nothing(fitted, tmp_path):
     _, _, _, lines, expected = fitted
     cfg_path = workspace(fitted, tmp_path)
     logs = tmp_path / "logs"
     bursts = [lines[i:i + 60] for i in range(0, len(lines), 60)]
-    done = threading.Event()
 
-    def writer() -> None:
+    def writer() -> None:  # an application writing its log, whatever happens to the daemon
         for i, burst in enumerate(bursts):
             if i == len(bursts) // 2:
                 _rotate(logs)
             write_burst(logs / "app.log", burst)
-            time.sleep(0.15)
-        done.set()
+            time.sleep(0.15)  # the application's pace: far below the idle timeout, as in real traffic
 
     daemon = DaemonProcess(cfg_path).ready()
     thread = threading.Thread(target=writer)
     thread.start()
-    kills = 0
     try:
-        while not done.is_set() or kills < 3:
-            time.sleep(0.8 if kills % 2 else 0.3)
+        for kill_point in _kill_points(cfg_path, len(lines)):
+            daemon.until(kill_point(daemon), f"the moment to kill ({kill_point.__name__})")
             daemon.kill()  # SIGKILL: no chance to save anything
-            kills += 1
             daemon = DaemonProcess(cfg_path).ready()
     finally:
         thread.join()
     status = daemon.caught_up(len(lines))
     assert daemon.terminate() == 0
     got = _journal(cfg_path)
-    assert kills >= 3
     assert status["sources"][0]["records"] == len(lines)
     assert len(got) == len({a["alert_id"] for a in got}), "an alert was journalled twice"
     assert _comparable(got) == _comparable(expected)
@@ -146,6 +166,41 @@ def test_start_up_errors_are_one_clear_line(fitted, tmp_path, problem, code, mes
     assert proc.returncode == code, proc.stderr
     assert message in proc.stderr and "Traceback" not in proc.stderr
     assert len([x for x in proc.stderr.splitlines() if x.startswith("tracewatch:")]) == 1
+
+
+@pytest.mark.parametrize("stop", ["kill-9", "sigterm"], ids=["after-the-checkpoint", "before-the-checkpoint"])
+def test_a_damaged_journal_line_is_counted_once_and_nothing_else_is_lost(fitted, tmp_path, stop):
+    # kill -9 with only the start's checkpoint: every alert is after the checkpoint's mark, so a
+    # restart raises them all again — the damaged one is no record and is appended again, the
+    # others are recognised. SIGTERM: every alert is before the mark and nothing is raised again.
+    _, _, _, lines, expected = fitted
+    cfg_path = workspace(fitted, tmp_path, checkpoint_s=3600)
+    journal = tmp_path / "state" / "alerts.jsonl"
+    daemon = DaemonProcess(cfg_path).ready()
+    write_burst(tmp_path / "logs" / "app.log", lines)
+    daemon.caught_up(len(lines))
+    daemon.until(lambda: journal.read_bytes().count(b"\n") == len(expected), "every alert journalled")
+    if stop == "kill-9":
+        daemon.kill()
+    else:
+        assert daemon.terminate() == 0
+    rows = journal.read_bytes().split(b"\n")
+    damaged_id = json.loads(rows[2])["alert_id"]
+    rows[2] = rows[2][:40] + b"\x00" * 16  # what a power loss can leave of a line
+    journal.write_bytes(b"\n".join(rows))
+
+    daemon = DaemonProcess(cfg_path).ready()  # before: the orjson error stopped `tracewatch run` here
+    status = daemon.caught_up(len(lines))
+    assert status["alert_lines_damaged"] == 1
+    served = json.loads(daemon.get("/api/alerts?since=0&limit=1000")[1])["alerts"]
+    assert daemon.terminate() == 0
+    log = daemon.stderr()
+    assert "Traceback" not in log and log.count("damaged line") == 1, log
+    kept = [json.loads(r) for i, r in enumerate(journal.read_bytes().split(b"\n")) if r and i != 2]
+    assert len(kept) == len({a["alert_id"] for a in kept}), "an alert was journalled twice"
+    want = {k: v for k, v in _comparable(expected).items() if stop == "kill-9" or k != damaged_id}
+    assert _comparable(kept) == want
+    assert {a["alert_id"] for a in served} == set(want)
 
 
 # -- in-process: the same Daemon object, driven from a thread --------------------------------------
@@ -176,6 +231,29 @@ def test_hot_reload_refuses_a_corrupt_baseline_and_keeps_open_sessions(fitted, t
     finally:
         live.stop()
     assert {a["baseline_version"] for a in _journal(cfg_path)} <= {"v0001", "v0003"}
+
+
+def test_a_reload_retries_a_refused_baseline_and_each_state_is_announced_once(fitted, tmp_path):
+    cfg_path = workspace(fitted, tmp_path)
+    root = baselines_dir(load_config(cfg_path).state_dir)
+    states: list[str] = []
+    live = InProcess(cfg_path, on_state=states.append)
+    try:
+        assert states == ["ready"]
+        first = live.daemon.pipe.baseline
+        shutil.copytree(root / "v0001", root / "v0002")  # a copy: its manifest still names v0001
+        model = root / "v0002" / "model.npz"
+        good = model.read_bytes()
+        model.write_bytes(good[:len(good) // 2] + bytes([good[len(good) // 2] ^ 0xFF]) + good[len(good) // 2 + 1:])
+        atomic_write(root / "CURRENT", b"v0002\n")
+        live.until(lambda: live.metric("tracewatch_baseline_reload_failures_total") == 1, "the refusal")
+        model.write_bytes(good)  # repaired in place: its manifest did not change, the watch sees nothing
+        live.daemon.request_reload()  # what SIGHUP will ask for
+        live.until(lambda: live.daemon.pipe.baseline is not first, "the switch to the repaired copy")
+        live.until(lambda: states == ["ready", "reloading", "ready"], "the reload announced")
+    finally:
+        live.stop()
+    assert states == ["ready", "reloading", "ready", "stopping"]
 
 
 def test_max_open_sessions_evicts_the_oldest_and_counts_it(fitted, tmp_path):

@@ -4,6 +4,7 @@ refused requests change nothing. The server binds loopback unless configured oth
 
 from __future__ import annotations
 
+import json
 import socket
 
 import pytest
@@ -84,6 +85,22 @@ def test_oversized_or_malformed_bodies(served):
     assert _post(served, "ack", f"Bearer {TOKEN}", b"{not json")[0] == 400
     assert request(served.port, "POST", "/api/incidents/1/delete", headers={"Authorization": f"Bearer {TOKEN}"})[0] == 404
     assert _snapshot(served)[0] == [(served.iid, "open", "")]
+
+
+@pytest.mark.parametrize("served", [{"token": TOKEN}], indirect=True, ids=["token-in-config"])
+def test_unknown_incidents_and_disallowed_changes_are_404_and_409(served, monkeypatch):
+    # the incident layer says IncidentNotFound / InvalidTransition; only the HTTP layer says 404 / 409
+    auth = {"Authorization": f"Bearer {TOKEN}"}
+    status, _, body = request(served.port, "POST", "/api/incidents/99/ack", headers=auth)
+    assert status == 404 and json.loads(body) == {"error": "no incident 99"}
+    assert _post(served, "resolve", f"Bearer {TOKEN}")[0] == 200
+    status, _, body = _post(served, "ack", f"Bearer {TOKEN}")
+    assert status == 409 and json.loads(body) == {
+        "error": f"incident {served.iid} is resolved; it cannot be marked acknowledged"}
+    monkeypatch.setenv("TRACEWATCH_INCIDENT_TOKEN", TOKEN)  # the CLI's
+    proc = run_cli("incidents", "ack", str(served.iid), "--url", f"http://127.0.0.1:{served.port}")
+    assert proc.returncode == 1 and proc.stderr.strip().endswith(
+        f"HTTP 409: incident {served.iid} is resolved; it cannot be marked acknowledged")
 
 
 def test_the_server_binds_loopback_by_default(served):

@@ -9,9 +9,11 @@ from collections import Counter
 
 import pytest
 
-from tracewatch.alerts.incidents import IncidentTracker, Incidents, alert_vector, dot, set_status
+from tracewatch.alerts.incidents import IncidentTracker, alert_vector, dot, set_status
 from tracewatch.alerts.store import IncidentStore
 from tracewatch.config import parse_config
+from tracewatch.errors import IncidentNotFound, InvalidTransition
+from tracewatch.service.incidents import Incidents
 
 from .incident_data import RETRY, UNSEEN, Receiver, config, storm, toy_alert
 
@@ -95,15 +97,19 @@ def test_statuses_and_their_notifications(store):
     iid = tr.add(toy_alert("1", "A"))
     tr.add(toy_alert("2", "A"))
     tr.add(toy_alert("3", "A"))  # count 3: escalation
-    assert set_status(store, iid, "ack", by="test")[0] == 200
+    assert set_status(store, iid, "ack", by="test")["status"] == "acknowledged"
     for n in range(4, 7):
         tr.add(toy_alert(str(n), "A"))  # count 5 while acknowledged: no escalation
-    assert set_status(store, iid, "ack", by="test")[0] == 200  # already: no change, no error
-    code, out = set_status(store, iid, "resolve", by="test")
-    assert code == 200 and out["status"] == "resolved"
-    assert set_status(store, iid, "ack", by="test")[0] == 409  # a resolved incident is not acknowledged
-    assert set_status(store, 999, "ack", by="test")[0] == 404
-    assert set_status(store, iid, "shout", by="test")[0] == 400
+    assert set_status(store, iid, "ack", by="test")["status"] == "acknowledged"  # already: no change, no error
+    assert set_status(store, iid, "resolve", by="test")["status"] == "resolved"
+    with pytest.raises(InvalidTransition, match=f"incident {iid} is resolved; it cannot be marked acknowledged"):
+        set_status(store, iid, "ack", by="test")  # a resolved incident is not acknowledged
+    with pytest.raises(IncidentNotFound, match="no incident 999"):
+        set_status(store, 999, "ack", by="test")
+    with pytest.raises(IncidentNotFound):
+        set_status(store, 1 << 70, "ack", by="test")  # more than SQLite holds: no such incident
+    with pytest.raises(ValueError, match="unknown action 'shout'"):
+        set_status(store, iid, "shout", by="test")
     new = tr.add(toy_alert("7", "A"))  # a resolved incident takes no alerts: a new one opens
     assert new != iid
     assert events(store) == [(iid, "opened"), (iid, "escalated"), (iid, "resolved"), (new, "opened")]
@@ -165,3 +171,20 @@ def test_storm_gives_two_incidents_not_hundreds_of_notifications(storm_data, tmp
     got = Counter((b["incident"]["id"], b["event"], b["incident"].get("step")) for b in received)
     assert got == Counter({(r["id"], ev, step): 1 for r in rows
                            for ev, step in (("opened", None), ("escalated", 10), ("escalated", 100))})
+
+
+# -- a damaged stored incident -----------------------------------------------------------------------------
+@pytest.mark.parametrize("sql", ["UPDATE incidents SET count = 0 WHERE id = 1",  # was a division by zero
+                                 "UPDATE incidents SET centroid = '[0.5]' WHERE id = 1",
+                                 "DELETE FROM members WHERE incident_id = 1",
+                                 "UPDATE members SET vector = '{\"x\": 1e999}' WHERE incident_id = 1"],
+                         ids=["count-0", "centroid-a-list", "no-members", "vector-term-and-value"])
+def test_a_damaged_incident_is_left_out_of_grouping_and_logged_once(store, caplog, sql):
+    iid = tracker(store).add(toy_alert("1", "A"))
+    store.db.execute(sql)
+    tr = tracker(store)  # a new process: nothing cached
+    second = tr.add(toy_alert("2", "A"))  # would have joined incident 1
+    assert second != iid and tr.add(toy_alert("3", "A")) == second
+    damaged = [r for r in caplog.records if "is damaged" in r.getMessage()]
+    assert len(damaged) == 1 and f"incident {iid}" in damaged[0].getMessage()
+    assert store.incident(second)["count"] == 2

@@ -9,7 +9,6 @@ import shutil
 import subprocess
 import tempfile
 import threading
-import time
 from datetime import datetime, timezone
 from html.parser import HTMLParser
 
@@ -20,6 +19,7 @@ from tracewatch.demo.scenario import Step, generate, parcel_lockers
 from tracewatch.service.daemon import Daemon
 from tracewatch.service.page import CAUTION
 
+from .conftest import wait_for
 from .incident_data import Served, config, live_setup, request, scaled, toy_alert
 
 SCRIPT = "<script>document.title='pwned';document.body.innerHTML+='<p id=pwned>'</script>"
@@ -119,11 +119,9 @@ def test_browser_shows_incidents_and_never_runs_log_markup(tmp_path):
     runner.start()
     try:
         (tmp_path / "logs" / "app.log").write_text("\n".join(scaled(day)) + "\n")
-        end = time.monotonic() + 30
-        while time.monotonic() < end and not daemon.incidents.store.incidents():
-            time.sleep(0.1)
+        wait_for(lambda: any("pwned" in r["title"] for r in daemon.incidents.store.incidents()), 30,
+                 what="the incident of the lines carrying markup")
         rows = daemon.incidents.store.incidents()
-        assert rows, "the daemon raised no incident"
         iid = [r["id"] for r in rows if "pwned" in r["title"]][0]
         listing = Dom(dump_dom(f"http://127.0.0.1:{port}/"))
         detail = Dom(dump_dom(f"http://127.0.0.1:{port}/incidents/{iid}"))

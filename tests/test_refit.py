@@ -384,7 +384,7 @@ def test_daemon_moves_a_corrupt_pool_aside_and_starts(fitted, tmp_path, caplog):
     try:
         assert live.daemon.ready() == (True, "")
         assert (tmp_path / "state" / (POOL_FILE + ".corrupt")).read_bytes() == b"{ not json"
-        assert live.daemon.pool is not None and live.daemon.pool.sessions() == []
+        assert live.daemon.refit.pool is not None and live.daemon.refit.pool.sessions() == []
     finally:
         live.stop()
     assert any("not a usable refit pool" in r.getMessage() and "moved to" in r.getMessage()

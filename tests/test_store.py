@@ -97,3 +97,30 @@ def test_cli_table_json_since_show_and_status(filled):
     assert proc.returncode == 2 and "give the incident ID" in proc.stderr
     proc = run_cli("incidents", "--since", "yesterday", *c)
     assert proc.returncode == 2 and "--since" in proc.stderr
+
+
+# -- what a user can give or a file can hold: one clear line, never a traceback ------------------------
+@pytest.mark.parametrize("args", [("incidents", "show"), ("incidents", "ack"), ("incidents", "resolve"),
+                                  ("label", "--known", "disk-full")], ids=["show", "ack", "resolve", "label"])
+def test_an_incident_id_sqlite_cannot_hold_is_a_bad_argument(filled, args):
+    cfg_path, _ = filled
+    proc = run_cli(*args, "99999999999999999999", "--config", str(cfg_path))  # 2^66: SQLite holds 64 bits
+    assert proc.returncode == 2 and "Traceback" not in proc.stderr, proc.stderr
+    assert proc.stderr.count("\n") == 1 and "99999999999999999999 is not an incident ID" in proc.stderr
+
+
+@pytest.mark.parametrize("command, sql", [
+    (("show", "2"), "UPDATE incidents SET representative = '[1, 2]' WHERE id = 2"),
+    (("show", "2"), "UPDATE incidents SET representative = '" + "[" * 5000 + "]" * 5000 + "' WHERE id = 2"),
+    (("show", "2"), "UPDATE incidents SET representative = 'not json' WHERE id = 2"),
+    ((), "UPDATE incidents SET stats = '{\"sources\": 5}' WHERE id = 1"),
+    ((), "UPDATE incidents SET first_seen = 1e300 WHERE id = 1"),
+    ((), "UPDATE incidents SET count = 'many' WHERE id = 1"),
+], ids=["representative-a-list", "representative-nested-deep", "representative-not-json", "stats-shape",
+        "time-past-year-9999", "count-a-string"])
+def test_a_tampered_row_is_refused_with_one_line(filled, command, sql):
+    cfg_path, store = filled
+    store.db.execute(sql)
+    proc = run_cli("incidents", *command, "--config", str(cfg_path))
+    assert proc.returncode == 1 and "Traceback" not in proc.stderr, proc.stderr
+    assert proc.stderr.count("\n") == 1 and "is damaged" in proc.stderr and "incidents.db" in proc.stderr

@@ -8,8 +8,8 @@ import itertools
 import pytest
 
 from tracewatch.alerts.alert import Redactor
-from tracewatch.alerts.incidents import Incidents
 from tracewatch.alerts.summary import MAX_SAMPLE, detail, safe, table, text, title
+from tracewatch.service.incidents import Incidents
 
 from .incident_data import config, storm, toy_alert
 

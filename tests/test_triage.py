@@ -16,13 +16,14 @@ from sklearn.exceptions import NotFittedError
 from sklearn.linear_model import Perceptron
 from sklearn.metrics.pairwise import cosine_similarity, rbf_kernel
 
-from tracewatch.alerts.incidents import Incidents, IncidentTracker, set_status
+from tracewatch.alerts.incidents import IncidentTracker, set_status
 from tracewatch.alerts.store import SCHEMA_VERSION, IncidentStore
 from tracewatch.batch import assign_sources, fit_files, score_files
 from tracewatch.cli import main
 from tracewatch.config import TriageConfig, parse_config
 from tracewatch.demo.scenario import generate, parcel_lockers, render_text
 from tracewatch.errors import ConfigError, StateError
+from tracewatch.service.incidents import Incidents
 from tracewatch.service.page import detail_page, list_page
 from tracewatch.triage import EXPECTED, KernelPerceptron, Triage, spectrum, spectrum_kernel
 

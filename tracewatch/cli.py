@@ -195,7 +195,7 @@ def cmd_run(args) -> int:
     return run_daemon(load_config(args.config), log_level=args.log_level, log_format=args.log_format)
 
 
-# -- `incidents` (tracewatch/alerts/incidents.py, tracewatch/service/incidents_api.py) ------------------
+# -- `incidents` (tracewatch/alerts/incidents.py, tracewatch/service/client.py) ------------------------
 INCIDENTS_HELP = (
     "Incidents are alerts grouped by resemblance; the daemon keeps them in <state_dir>/incidents.db. "
     "Without an action, print a compact table (most recently active first); 'show ID' prints one in "
@@ -211,7 +211,7 @@ def _since(value: str | None) -> float | None:
     import re
     import time
 
-    from .service.incidents_api import parse_since
+    from .service.client import parse_since
 
     if value is None:
         return None
@@ -224,6 +224,21 @@ def _since(value: str | None) -> float | None:
         raise ConfigError(f"--since: {exc}; or give a duration such as 30m, 2h, 1d") from exc
 
 
+MAX_INCIDENT_ID = (1 << 63) - 1  # incident ids are SQLite integers
+
+
+def incident_id(text: str) -> int:
+    """An incident ID argument: a whole number from 1 to :data:`MAX_INCIDENT_ID` (argparse
+    turns the error into one line and exit code 2)."""
+    try:
+        value = int(text)
+    except ValueError as exc:
+        raise argparse.ArgumentTypeError(f"invalid int value: {text!r}") from exc
+    if not 1 <= value <= MAX_INCIDENT_ID:
+        raise argparse.ArgumentTypeError(f"{text[:40]} is not an incident ID (they run from 1 to {MAX_INCIDENT_ID})")
+    return value
+
+
 def cmd_incidents(args) -> int:
     import getpass
 
@@ -231,7 +246,8 @@ def cmd_incidents(args) -> int:
     from .alerts.alert import Redactor
     from .alerts.incidents import set_status
     from .alerts.store import IncidentStore
-    from .service.incidents_api import api_request, incident_token
+    from .errors import IncidentNotFound
+    from .service.client import api_request, incident_token
 
     action = args.action
     if action != "list" and args.id is None:
@@ -267,14 +283,10 @@ def cmd_incidents(args) -> int:
             elif action == "show":
                 found = store.incident(args.id)
                 if found is None:
-                    print(f"tracewatch: no incident {args.id}", file=sys.stderr)
-                    return 1
+                    raise IncidentNotFound(args.id)
                 detail = summary.detail(found, max_samples=cfg.incidents.max_samples, redact=Redactor(cfg.redact))
-            else:
-                code, out = set_status(store, args.id, action, by=f"cli:{getpass.getuser()}", note=args.note or "")
-                if code != 200:
-                    print(f"tracewatch: {out['error']}", file=sys.stderr)
-                    return 1
+            else:  # IncidentNotFound, InvalidTransition: one line, exit code 1
+                out = set_status(store, args.id, action, by=f"cli:{getpass.getuser()}", note=args.note or "")
                 detail = summary.brief(out)
         finally:
             store.close()
@@ -313,6 +325,7 @@ def cmd_label(args) -> int:
     from .alerts import summary
     from .alerts.incidents import set_status
     from .alerts.store import IncidentStore
+    from .errors import IncidentNotFound
     from .triage import EXPECTED, Triage
 
     cfg = load_config(args.config)
@@ -343,13 +356,9 @@ def cmd_label(args) -> int:
     store = IncidentStore.open(cfg.state_dir, create=False)
     try:
         if args.expected:  # the store's own status change: alerts like it are absorbed silently
-            code, out = set_status(store, args.id, "expected", by=by, note=note)
-            if code != 200:
-                print(f"tracewatch: {out['error']}", file=sys.stderr)
-                return 1
+            set_status(store, args.id, "expected", by=by, note=note)
         if not store.set_label(args.id, label, by=by, note=note, now=time.time()):
-            print(f"tracewatch: no incident {args.id}", file=sys.stderr)
-            return 1
+            raise IncidentNotFound(args.id)
         triage = Triage(cfg.triage, cfg.state_dir)
         info = triage.train_from_store(store) if cfg.triage.enabled else None
         if info is not None:
@@ -510,7 +519,7 @@ def build_parser() -> argparse.ArgumentParser:
     sp = sub.add_parser("incidents", help="list, show, acknowledge or resolve incidents (grouped alerts)",
                         description=INCIDENTS_HELP)
     sp.add_argument("action", nargs="?", default="list", choices=["list", "show", "ack", "resolve", "expected"])
-    sp.add_argument("id", nargs="?", type=int, metavar="ID")
+    sp.add_argument("id", nargs="?", type=incident_id, metavar="ID")
     sp.add_argument("--config", "-c", metavar="FILE", help="TOML config file (read <state_dir>/incidents.db)")
     sp.add_argument("--url", metavar="URL", help="a running daemon's address, e.g. http://127.0.0.1:9464")
     sp.add_argument("--json", action="store_true", help="JSON (one object per incident for a list)")
@@ -523,7 +532,7 @@ def build_parser() -> argparse.ArgumentParser:
     # -- `label` --
     sp = sub.add_parser("label", help="label an incident expected or a known problem; retrain triage",
                         description=LABEL_HELP)
-    sp.add_argument("id", nargs="?", type=int, metavar="INCIDENT_ID")
+    sp.add_argument("id", nargs="?", type=incident_id, metavar="INCIDENT_ID")
     sp.add_argument("--config", "-c", metavar="FILE", required=True, help="TOML config file")
     sp.add_argument("--expected", action="store_true", help="a harmless pattern: suppress incidents like it")
     sp.add_argument("--known", metavar="NAME", help="a known problem's name, suggested for incidents like it")

@@ -9,7 +9,9 @@ alerts of the labelled incidents train a multi-class kernel perceptron
 ``[triage] min_margin`` — an incident unlike every labelled one gets no label.
 
 The model is saved as JSON (``<state_dir>/triage.json``: classes, dual coefficients and the
-support examples), checked by pydantic on load — never pickle. The daemon re-reads it when
+support examples), checked by pydantic on load — sizes, ranges and that the parts fit
+together, so a tampered file is refused with one line rather than a hang or a crash — never
+pickle. Training takes at most :data:`MAX_EXAMPLES` labelled alerts. The daemon re-reads it when
 the file changes, so a label given with the CLI takes effect without a restart.
 """
 
@@ -22,16 +24,17 @@ import time
 from collections import Counter
 from collections.abc import Mapping, Sequence
 from pathlib import Path
-from typing import Literal
+from typing import Annotated, Literal
 
 import numpy as np
 import orjson
-from pydantic import BaseModel, ConfigDict, ValidationError
+from pydantic import BaseModel, ConfigDict, Field, ValidationError, model_validator
 from sklearn.feature_extraction import DictVectorizer
 from sklearn.exceptions import NotFittedError
 
+from .alerts.vectors import TERM_PATTERN, alert_vector
 from .config import TriageConfig
-from .errors import StateError
+from .errors import StateError, first_problem
 from .fs import atomic_write
 
 log = logging.getLogger("tracewatch.triage")
@@ -207,21 +210,60 @@ def _items(X) -> list:
 
 
 # -- triage of alerts and incidents -----------------------------------------------------------------
+MAX_CLASSES = 256  # labels a model tells apart ("expected" and the known problems' names)
+MAX_EXAMPLES = 4000  # labelled alerts trained on (the kernel matrix is examples², ~128 MB of floats)
+MAX_TERMS = 100_000  # terms of one support vector (an alert's vector has a few thousand at most)
+MAX_SEQUENCE = 10_000  # template ids of one support sequence (alerts keep 500)
+MAX_TIME = 253_402_300_799.0  # 9999-12-31T23:59:59Z
+MAX_FILE_BYTES = 256 << 20  # a file larger than any model of MAX_EXAMPLES alerts is not read
+
+_Label = Annotated[str, Field(min_length=1, max_length=200)]
+_Finite = Annotated[float, Field(allow_inf_nan=False)]
+_Count = Annotated[int, Field(ge=0, lt=1 << 63)]
+
+
 class _Saved(BaseModel):
-    model_config = ConfigDict(extra="forbid")
+    """``triage.json``, checked on load: sizes, ranges, and that the parts fit together (one row
+    of coefficients per class, one column per support example of the kernel's kind)."""
+
+    model_config = ConfigDict(extra="forbid", strict=True)
 
     kind: Literal["tracewatch-triage"]
     schema_version: int
     kernel: Literal["cosine", "rbf", "spectrum"]
-    gamma: float
-    spectrum_n: int
-    classes: list[str]
-    alpha: list[list[float]]
-    support: list[dict[str, float] | list[str]]
-    trained_at: float
-    examples: int
-    incidents: dict[str, int]
-    mistakes: list[int]
+    gamma: Annotated[float, Field(gt=0, le=1000, allow_inf_nan=False)]  # as [triage] rbf_gamma
+    spectrum_n: Annotated[int, Field(ge=1, le=8)]  # as [triage] spectrum_n
+    classes: Annotated[list[_Label], Field(max_length=MAX_CLASSES)]
+    alpha: Annotated[list[Annotated[list[_Finite], Field(max_length=MAX_EXAMPLES)]], Field(max_length=MAX_CLASSES)]
+    support: Annotated[list[Annotated[dict[Annotated[str, Field(pattern=TERM_PATTERN)], _Finite],
+                                      Field(max_length=MAX_TERMS)]
+                            | Annotated[list[Annotated[str, Field(max_length=200)]], Field(max_length=MAX_SEQUENCE)]],
+                       Field(max_length=MAX_EXAMPLES)]
+    trained_at: Annotated[float, Field(ge=0, le=MAX_TIME, allow_inf_nan=False)]
+    examples: Annotated[int, Field(ge=0, le=MAX_EXAMPLES)]
+    incidents: Annotated[dict[_Label, Annotated[int, Field(ge=1, lt=1 << 63)]], Field(max_length=1 << 20)]
+    mistakes: Annotated[list[_Count], Field(max_length=1000)]  # one per epoch, as [triage] epochs
+
+    @model_validator(mode="after")
+    def _consistent(self) -> "_Saved":
+        if not self.classes:
+            if self.alpha or self.support:
+                raise ValueError("coefficients or support examples without classes")
+            return self
+        if len(self.classes) < 2 or self.classes != sorted(set(self.classes)):
+            raise ValueError("classes must be at least two different labels, sorted")
+        if set(self.classes) != set(self.incidents):
+            raise ValueError("classes and the labelled incidents disagree")
+        if len(self.alpha) != len(self.classes) or any(len(row) != len(self.support) for row in self.alpha):
+            raise ValueError(f"alpha must be {len(self.classes)} rows of {len(self.support)} coefficients "
+                             "(classes × support examples)")
+        kind = list if self.kernel == "spectrum" else dict
+        if not all(isinstance(item, kind) for item in self.support):
+            raise ValueError(f"support examples of the {self.kernel} kernel must be "
+                             f"{'sequences' if kind is list else 'vectors'}")
+        if len(self.support) > self.examples or any(n > self.examples for n in self.mistakes):
+            raise ValueError("more support examples or mistakes than training examples")
+        return self
 
 
 def alert_item(alert: dict, kernel: str):
@@ -229,9 +271,18 @@ def alert_item(alert: dict, kernel: str):
     vector — its explanation and sequence n-grams (cosine, rbf)."""
     if kernel == "spectrum":
         return [str(t) for t in alert.get("sequence") or []]
-    from .alerts.incidents import alert_vector
-
     return alert_vector(alert)
+
+
+def _bounded(examples: Sequence[tuple[dict, str, int]]) -> list[tuple[dict, str, int]]:
+    """At most :data:`MAX_EXAMPLES`, taking the same share of every labelled incident's alerts."""
+    if len(examples) <= MAX_EXAMPLES:
+        return list(examples)
+    per: dict[int, list] = {}
+    for ex in examples:
+        per.setdefault(ex[2], []).append(ex)
+    keep = max(1, MAX_EXAMPLES // len(per))
+    return [ex for group in per.values() for ex in group[:keep]][:MAX_EXAMPLES]
 
 
 class Triage:
@@ -244,12 +295,14 @@ class Triage:
         self.model: KernelPerceptron | None = None
         self.info: dict = {}
         self._sig: tuple | None = None
+        self._refused: tuple | None = None  # the signature of a file refused (logged once)
 
     # -- training --------------------------------------------------------------------------------
     def train(self, examples: Sequence[tuple[dict, str, int]]) -> dict:
         """Fit on (alert, label, incident id) triples; returns what was learned. Fewer than two
         different labels leave no model (triage abstains)."""
         c = self.cfg
+        examples = _bounded(examples)
         labels = {(iid, label) for _, label, iid in examples}
         self.info = {"kernel": c.kernel, "examples": len(examples), "trained_at": time.time(),
                      "incidents": dict(Counter(label for _, label in labels)), "mistakes": [], "support": 0}
@@ -276,51 +329,75 @@ class Triage:
     # -- loading ---------------------------------------------------------------------------------
     def load(self) -> bool:
         """Read ``triage.json`` if it changed since the last read; False when there is none.
-        A damaged file is a StateError."""
+        A damaged or tampered file is a StateError (and no model is used)."""
         try:
             st = os.stat(self.path)
         except FileNotFoundError:
             self.model, self.info, self._sig = None, {}, None
             return False
+        except OSError as exc:
+            self.model, self.info, self._sig = None, {}, None
+            raise StateError(f"{self.path}: cannot read the triage model: {exc.strerror or exc}") from exc
         sig = (st.st_ino, st.st_mtime_ns, st.st_size)
         if sig == self._sig:
             return True
+        self.model, self.info, self._sig = None, {}, None
+        advice = "; label an incident again to retrain it, or move the file away"
+        if st.st_size > MAX_FILE_BYTES:
+            raise StateError(f"{self.path}: not a usable triage model ({st.st_size} bytes, more than a model of "
+                             f"{MAX_EXAMPLES} examples takes){advice}")
         try:
             saved = _Saved.model_validate_json(self.path.read_bytes())
-        except (OSError, ValidationError) as exc:
-            raise StateError(f"{self.path}: not a usable triage model ({str(exc).splitlines()[0]}); "
-                             "label an incident again to retrain it, or move the file away") from exc
+        except OSError as exc:
+            raise StateError(f"{self.path}: cannot read the triage model: {exc.strerror or exc}") from exc
+        except ValidationError as exc:
+            raise StateError(f"{self.path}: not a usable triage model ({first_problem(exc)}){advice}") from exc
         if saved.schema_version != SCHEMA_VERSION:
             raise StateError(f"{self.path}: triage schema {saved.schema_version} is not supported "
                              f"(this tracewatch reads {SCHEMA_VERSION}); label an incident again to retrain")
-        self.info = saved.model_dump(exclude={"kind", "schema_version", "alpha", "support", "gamma", "spectrum_n"})
-        self.info["support"] = len(saved.support)
-        self.model = None
+        info = saved.model_dump(exclude={"kind", "schema_version", "alpha", "support", "gamma", "spectrum_n"})
+        info["support"] = len(saved.support)
+        model = None
         if saved.classes:
-            m = KernelPerceptron(saved.kernel, gamma=saved.gamma, spectrum_n=saved.spectrum_n)
-            m.classes_ = np.array(saved.classes)
-            m.alpha_ = np.array(saved.alpha).reshape(len(saved.classes), len(saved.support))
-            m.support_ = saved.support
-            m._prepare()
-            self.model = m
-        self._sig = sig
+            model = KernelPerceptron(saved.kernel, gamma=saved.gamma, spectrum_n=saved.spectrum_n)
+            model.classes_ = np.array(saved.classes)
+            model.alpha_ = np.array(saved.alpha, dtype=float).reshape(len(saved.classes), len(saved.support))
+            model.support_ = saved.support
+            model._prepare()
+        self.model, self.info, self._sig = model, info, sig
         return True
 
     # -- suggesting ------------------------------------------------------------------------------
     def suggest(self, alert: dict) -> dict | None:
         """For the first alert of a new incident: ``{"action": "suppress" | "suggest" | "abstain",
-        "label", "margin"}``, or None without a trained model. Never raises: triage is advice,
-        and a damaged model file must not stop incidents from being recorded."""
+        "label", "margin"}``, or None without a usable model. Never raises: triage is advice, and
+        a damaged model file must not stop incidents from being recorded. A refused file is
+        logged once (until it changes); any other failure is a fault, logged with its traceback."""
         try:
             self.load()
-            if self.model is None:
-                return None
+        except StateError as exc:
+            sig = _signature(self.path)
+            if sig != self._refused:
+                self._refused = sig
+                log.error("triage: %s; no suggestions until it is fixed", exc)
+            return None
+        if self.model is None:
+            return None
+        try:
             labels, margins = self.model.margin([alert_item(alert, self.model.kernel)])
-        except Exception as exc:  # noqa: BLE001 - logged; grouping goes on without a suggestion
-            log.error("triage: %s; no suggestion for alert %s", exc, alert.get("alert_id"))
+        except Exception:  # noqa: BLE001 - a fault: logged with its cause; grouping goes on
+            log.exception("triage failed; no suggestion for alert %s", alert.get("alert_id"))
             return None
         label, margin = str(labels[0]), float(margins[0])
         if not math.isfinite(margin) or margin < self.cfg.min_margin:
             return {"action": "abstain", "label": None, "margin": round(margin, 4)}
         action = "suppress" if label == EXPECTED and self.cfg.suppress_expected else "suggest"
         return {"action": action, "label": label, "margin": round(margin, 4)}
+
+
+def _signature(path: Path) -> tuple | None:
+    try:
+        st = os.stat(path)
+    except OSError:
+        return None
+    return st.st_ino, st.st_mtime_ns, st.st_size

@@ -1,7 +1,7 @@
 """Notification sinks: each incident's notifications (opened, escalated, resolved) leave for a
 generic JSON webhook and for a Prometheus Alertmanager, per incident — never per alert.
 
-Stage: incidents → **sinks**. The tracker queues notifications in the store's outbox in the
+Stage: incidents → **sinks** (reads the store's outbox; never imports the tracker). The tracker queues notifications in the store's outbox in the
 same transaction as the incident change, so the outbox *is* the disk spool: while a receiver
 is down, notifications wait there (across restarts) and go out in order when it is back.
 Each sink keeps its own cursor in the store, moved on only after the receiver answered 2xx.
@@ -24,6 +24,7 @@ from __future__ import annotations
 
 import ipaddress
 import logging
+import sqlite3
 import threading
 import time
 import urllib.error
@@ -36,8 +37,9 @@ import orjson
 
 from .. import __version__
 from ..config import Config, NotifyConfig
-from .incidents import notices
+from ..errors import TracewatchError
 from .store import FIRING, IncidentStore
+from .summary import notice
 
 log = logging.getLogger("tracewatch.notify")
 
@@ -184,6 +186,7 @@ class Notifier:
         self._next_try = {s.name: -float("inf") for s in sinks}  # a restart tries at once
         self._next_resend = {s.name: -float("inf") for s in sinks}
         self._next_prune = -float("inf")
+        self.rounds = 0  # delivery rounds finished since the start
         for s in sinks:
             store.cursor(s.name)  # a new sink starts after the newest notification
         self._wake = threading.Event()
@@ -215,6 +218,7 @@ class Notifier:
         if now >= self._next_prune:
             self._next_prune = now + PRUNE_EVERY_S
             self.store.prune_outbox()
+        self.rounds += 1
         return sent
 
     def _deliver(self, sink, now: float) -> int:
@@ -230,6 +234,12 @@ class Notifier:
             for row_id, event, incident in rows:
                 if self._stop.is_set():
                     return sent
+                if incident is None:  # a damaged outbox row: set aside, so the rest goes out
+                    log.error("%s: notification %d in %s is damaged; set aside, not sent", name, row_id,
+                              self.store.path)
+                    self.store.delivered(name, row_id, rejected="damaged row in the incident store")
+                    cursor = row_id
+                    continue
                 try:
                     sink.send(row_id, event, incident)
                 except DeliveryError as exc:
@@ -246,7 +256,7 @@ class Notifier:
                     sent += 1
                 cursor = row_id
         if now >= self._next_resend[name]:
-            firing = notices(self.store.db, "status IN ('open', 'acknowledged')", limit=2000)
+            firing = [notice(r) for r in self.store.notice_rows(firing=True, limit=2000)]
             try:
                 sink.refresh(firing, now)
                 self._next_resend[name] = now + self.resend_s
@@ -266,10 +276,16 @@ class Notifier:
             self._thread.start()
 
     def _run(self) -> None:
+        failing = ""
         while not self._stop.is_set():
             try:
                 self.run_once()
-            except Exception:  # a bug must not stop notifications for good; it is logged
+                failing = ""
+            except (TracewatchError, sqlite3.Error) as exc:  # the store: one line, again only when it changes
+                if str(exc) != failing:
+                    failing = str(exc)
+                    log.error("notifier: %s; notifications wait in the outbox", exc)
+            except Exception:  # a bug must not stop notifications for good; it is logged with its cause
                 log.exception("notifier round failed")
             due = min([*self._next_try.values(), *self._next_resend.values()], default=0.0) - self.clock()
             self._wake.wait(max(0.01, min(MAX_WAIT_S, due)))
@@ -284,5 +300,7 @@ class Notifier:
             self._thread = None
 
     def status(self) -> dict:
+        """Per sink: its cursor (pending, attempts, delivered, rejected, last_error) and the
+        delivery rounds finished since the start."""
         cursors = self.store.cursors()
-        return {s.name: cursors.get(s.name, {}) for s in self.sinks}
+        return {s.name: {**cursors.get(s.name, {}), "rounds": self.rounds} for s in self.sinks}

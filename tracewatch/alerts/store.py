@@ -20,6 +20,13 @@ Tables (schema version in ``meta``):
                 suggestion for a new incident (JSON, '' for none)
 
 Schema 1 (before labels) is upgraded in place when opened.
+
+Every SQL statement of tracewatch lives in this module: the tracker, the notifier, HTTP and the
+CLI call its methods (those that take ``db`` run inside the caller's :meth:`transaction`).
+What is read back is checked before anyone uses it — the columns' types and ranges, and the
+JSON columns' size and shape (pydantic, :mod:`tracewatch.alerts.rows`) — so a damaged or
+tampered file is a :class:`~tracewatch.errors.StateError` naming the incident, never a hang or a
+crash further on.
 """
 
 from __future__ import annotations
@@ -34,11 +41,13 @@ from pathlib import Path
 import orjson
 
 from ..errors import StateError
+from . import rows
 
 SCHEMA_VERSION = 2
 FILENAME = "incidents.db"
-STATUSES = ("open", "acknowledged", "resolved", "expected")
+STATUSES = rows.STATUSES  # open, acknowledged, resolved, expected
 FIRING = ("open", "acknowledged")
+MEMBERS_READ = 1000  # candidate representatives read per incident ([incidents] max_members is at most this)
 
 _SCHEMA = """
 CREATE TABLE IF NOT EXISTS meta (key TEXT PRIMARY KEY, value TEXT NOT NULL);
@@ -105,10 +114,27 @@ _MIGRATIONS = {1: ("ALTER TABLE incidents ADD COLUMN suggestion TEXT NOT NULL DE
 _LIST_COLUMNS = ("id, status, title, first_seen, last_seen, count, escalated, created, status_changed, "
                  "status_by, note, stats, suggestion, "
                  "(SELECT label FROM labels WHERE labels.incident_id = incidents.id)")
+_LIST_KEYS = ("id", "status", "title", "first_seen", "last_seen", "count", "escalated", "created",
+              "status_changed", "status_by", "note")
+# what the tracker may change on an incident row
+_UPDATABLE = frozenset({"count", "first_seen", "last_seen", "stats", "centroid", "representative", "title",
+                        "escalated"})
+_SQLITE_INT = 1 << 63  # SQLite integers are signed 64-bit: an id outside cannot exist
+
+
+def _from_representative(path: str) -> str:
+    """SQL for one field of the representative alert; a zero byte (refused when checked) where
+    the column is not JSON, where json_extract would fail the whole query."""
+    return f"CASE WHEN json_valid(representative) THEN json_extract(representative, '{path}') ELSE x'00' END"
 
 
 def dumps(obj) -> str:
     return orjson.dumps(obj, option=orjson.OPT_SERIALIZE_NUMPY).decode()
+
+
+def storable_id(incident_id: int) -> bool:
+    """Whether SQLite can hold ``incident_id`` at all (a larger one is no incident, not an error)."""
+    return -_SQLITE_INT <= incident_id < _SQLITE_INT
 
 
 class IncidentStore:
@@ -165,17 +191,33 @@ class IncidentStore:
                 if tx.execute("SELECT 1 FROM meta WHERE key = 'schema_version'").fetchone() is None:
                     tx.execute("INSERT INTO meta VALUES ('schema_version', ?)", (str(SCHEMA_VERSION),))
                     tx.execute("INSERT INTO meta VALUES ('store_id', ?)", (uuid.uuid4().hex,))
-        elif int(row[0]) > SCHEMA_VERSION:
-            raise StateError(f"{self.path} was written by a newer tracewatch (schema {row[0]}, this one "
-                             f"reads {SCHEMA_VERSION}); upgrade tracewatch or move the file away")
-        elif int(row[0]) < SCHEMA_VERSION:
-            self._migrate()
-        self.store_id = db.execute("SELECT value FROM meta WHERE key = 'store_id'").fetchone()[0]
+        else:
+            version = self._schema_version(row[0])
+            if version > SCHEMA_VERSION:
+                raise StateError(f"{self.path} was written by a newer tracewatch (schema {version}, this one "
+                                 f"reads {SCHEMA_VERSION}); upgrade tracewatch or move the file away")
+            if version < SCHEMA_VERSION:
+                self._migrate()
+        row = db.execute("SELECT value FROM meta WHERE key = 'store_id'").fetchone()
+        if row is None or not isinstance(row[0], str):
+            raise StateError(f"{self.path}: not a usable incident store (no store id); move it away to start afresh")
+        self.store_id = row[0]
+
+    def _schema_version(self, value) -> int:
+        try:
+            version = int(value)
+        except (TypeError, ValueError):
+            version = 0
+        if version < 1:
+            raise StateError(f"{self.path}: not a usable incident store (schema version {str(value)[:40]!r}); "
+                             "move it away to start afresh")
+        return version
 
     def _migrate(self) -> None:
         """Upgrade an older schema in place, one version at a time, in one transaction."""
         with self.transaction() as tx:
-            version = int(tx.execute("SELECT value FROM meta WHERE key = 'schema_version'").fetchone()[0])
+            version = self._schema_version(tx.execute("SELECT value FROM meta WHERE key = 'schema_version'"
+                                                      ).fetchone()[0])
             while version < SCHEMA_VERSION:
                 for stmt in _MIGRATIONS[version]:
                     tx.execute(stmt)
@@ -198,7 +240,8 @@ class IncidentStore:
 
     @contextmanager
     def transaction(self) -> Iterator[sqlite3.Connection]:
-        """``BEGIN IMMEDIATE`` … ``COMMIT``: writers queue; readers are never blocked (WAL)."""
+        """``BEGIN IMMEDIATE`` … ``COMMIT``: writers queue; readers are never blocked (WAL).
+        Pass the connection it yields as ``db`` to the methods that take one."""
         db = self.db
         db.execute("BEGIN IMMEDIATE")
         try:
@@ -225,6 +268,21 @@ class IncidentStore:
             conn.close()
         self._local = threading.local()
 
+    # -- checking what is read back ----------------------------------------------------------------
+    def _damaged(self, what: str, exc: rows.Damaged) -> StateError:
+        return StateError(f"{self.path}: {what} is damaged ({exc}); restore the file or move it away to start "
+                          "afresh (alerts.jsonl keeps every alert)")
+
+    def _row(self, r) -> dict:
+        """A listed row (:data:`_LIST_COLUMNS`) as a checked dict."""
+        try:
+            return rows.incident_row(dict(zip(_LIST_KEYS, r[:11])), r[11], r[12], r[13])
+        except rows.Damaged as exc:
+            raise self._damaged(f"incident {r[0]!r:.40}", exc) from exc
+
+    def _rows(self, sql: str, args: tuple) -> list[dict]:
+        return [self._row(r) for r in self.db.execute(sql, args)]
+
     # -- reading -----------------------------------------------------------------------------------
     def incidents(self, *, status: str | None = None, since: float | None = None, limit: int = 100,
                   offset: int = 0) -> list[dict]:
@@ -240,39 +298,148 @@ class IncidentStore:
         if where:
             sql += " WHERE " + " AND ".join(where)
         sql += " ORDER BY last_seen DESC, id DESC LIMIT ? OFFSET ?"
-        return [self._row(r) for r in self.db.execute(sql, (*args, limit, offset))]
+        return self._rows(sql, (*args, limit, offset))
 
     def counts(self) -> dict[str, int]:
         return dict(self.db.execute("SELECT status, COUNT(*) FROM incidents GROUP BY status").fetchall())
 
     def incident(self, incident_id: int, *, db: sqlite3.Connection | None = None) -> dict | None:
-        """One incident with its representative alert."""
+        """One incident with its representative alert (None when there is none with that id)."""
+        if not storable_id(incident_id):
+            return None
         row = (db or self.db).execute(f"SELECT {_LIST_COLUMNS}, representative FROM incidents WHERE id = ?",
                                       (incident_id,)).fetchone()
         if row is None:
             return None
         out = self._row(row[:-1])
-        out["representative"] = orjson.loads(row[-1])
+        try:
+            out["representative"] = rows.alert(row[-1])
+        except rows.Damaged as exc:
+            raise self._damaged(f"incident {incident_id}'s representative", exc) from exc
         return out
 
     def alert_ids(self, incident_id: int, limit: int = 100) -> list[str]:
-        rows = self.db.execute("SELECT alert_id FROM alerts WHERE incident_id = ? ORDER BY ts DESC LIMIT ?",
-                               (incident_id, limit))
-        return [r[0] for r in rows]
+        if not storable_id(incident_id):
+            return []
+        rows_ = self.db.execute("SELECT alert_id FROM alerts WHERE incident_id = ? ORDER BY ts DESC LIMIT ?",
+                                (incident_id, limit))
+        return [r[0] for r in rows_]
 
-    @staticmethod
-    def _row(r) -> dict:
-        keys = ("id", "status", "title", "first_seen", "last_seen", "count", "escalated", "created",
-                "status_changed", "status_by", "note")
-        out = dict(zip(keys, r[:11]))
-        out["stats"] = orjson.loads(r[11])
-        out["suggestion"] = orjson.loads(r[12]) if r[12] else None
-        out["label"] = r[13]
+    # -- what the tracker reads and writes (inside its transaction) -------------------------------------
+    def incident_of(self, alert_id: str, *, db: sqlite3.Connection) -> int | None:
+        """The incident an alert was grouped into, if it was."""
+        row = db.execute("SELECT incident_id FROM alerts WHERE alert_id = ?", (alert_id,)).fetchone()
+        return None if row is None else row[0]
+
+    def candidates(self, active_since: float, *, db: sqlite3.Connection) -> list[tuple[int, object]]:
+        """(id, count) of the incidents an alert may join: open or acknowledged with an alert
+        since ``active_since``, or expected. The counts are as stored (checked by :meth:`group`)."""
+        return db.execute("SELECT id, count FROM incidents WHERE (status IN ('open', 'acknowledged') "
+                          "AND last_seen >= ?) OR status = 'expected'", (active_since,)).fetchall()
+
+    def group(self, incident_id: int, *, db: sqlite3.Connection) -> rows.Group:
+        """What grouping needs of an incident, checked: its row, the sum of its alerts' vectors
+        and its candidate representatives (at most :data:`MEMBERS_READ`, whatever the file holds)."""
+        r = db.execute(f"SELECT {_LIST_COLUMNS}, centroid FROM incidents WHERE id = ?", (incident_id,)).fetchone()
+        members = db.execute("SELECT alert_id, vector FROM members WHERE incident_id = ? ORDER BY alert_id LIMIT ?",
+                             (incident_id, MEMBERS_READ)).fetchall()
+        try:
+            if r is None:
+                raise rows.Damaged("gone while being read")
+            return rows.group(dict(zip(_LIST_KEYS, r[:11])), r[11], r[12], r[13], r[14], members)
+        except rows.Damaged as exc:
+            raise self._damaged(f"incident {incident_id}", exc) from exc
+
+    def state(self, incident_id: int, *, db: sqlite3.Connection) -> tuple[dict, str | None]:
+        """An incident's listed row and its representative's alert id, checked."""
+        r = db.execute(f"SELECT {_LIST_COLUMNS}, {_from_representative('$.alert_id')} FROM incidents WHERE id = ?",
+                       (incident_id,)).fetchone()
+        row = self._row(r[:-1])
+        if r[-1] is not None and not isinstance(r[-1], str):
+            raise self._damaged(f"incident {incident_id}'s representative", rows.Damaged("no alert id"))
+        return row, r[-1]
+
+    def member_alert(self, incident_id: int, alert_id: str, *, db: sqlite3.Connection) -> dict:
+        row = db.execute("SELECT alert FROM members WHERE incident_id = ? AND alert_id = ?",
+                         (incident_id, alert_id)).fetchone()
+        try:
+            return rows.alert(row[0] if row is not None else None)
+        except rows.Damaged as exc:
+            raise self._damaged(f"incident {incident_id}'s member alert {alert_id}", exc) from exc
+
+    def new_incident(self, *, status: str, title: str, t: float, now: float, stats: dict, centroid: dict,
+                     representative: dict, status_by: str, suggestion: dict | None, db: sqlite3.Connection) -> int:
+        cur = db.execute(
+            "INSERT INTO incidents (status, title, first_seen, last_seen, count, created, status_changed, stats, "
+            "centroid, representative, status_by, suggestion) VALUES (?, ?, ?, ?, 1, ?, ?, ?, ?, ?, ?, ?)",
+            (status, title, t, t, now, now, dumps(stats), dumps(centroid), dumps(representative), status_by,
+             dumps(suggestion) if suggestion is not None else ""))
+        return cur.lastrowid
+
+    def update_incident(self, incident_id: int, *, db: sqlite3.Connection, **values) -> None:
+        """Set some of :data:`_UPDATABLE` (dicts are stored as JSON)."""
+        unknown = set(values) - _UPDATABLE
+        if unknown:
+            raise ValueError(f"not an updatable incident column: {', '.join(sorted(unknown))}")
+        cols = list(values)
+        args = [dumps(v) if isinstance(v, dict) else v for v in values.values()]
+        db.execute(f"UPDATE incidents SET {', '.join(f'{c} = ?' for c in cols)} WHERE id = ?", (*args, incident_id))
+
+    def add_member(self, incident_id: int, alert_id: str, vector: dict, alert: dict, *,
+                   db: sqlite3.Connection) -> None:
+        db.execute("INSERT INTO members VALUES (?, ?, ?, ?)", (incident_id, alert_id, dumps(vector), dumps(alert)))
+
+    def drop_member(self, incident_id: int, alert_id: str, *, db: sqlite3.Connection) -> None:
+        db.execute("DELETE FROM members WHERE incident_id = ? AND alert_id = ?", (incident_id, alert_id))
+
+    def record_alert(self, alert_id: str, incident_id: int, t: float, *, db: sqlite3.Connection) -> None:
+        db.execute("INSERT INTO alerts (alert_id, incident_id, ts) VALUES (?, ?, ?)", (alert_id, incident_id, t))
+
+    def quiet_incidents(self, before: float) -> list[int]:
+        """Open or acknowledged incidents whose last alert is older than ``before``."""
+        return [r[0] for r in self.db.execute(
+            "SELECT id FROM incidents WHERE status IN ('open', 'acknowledged') AND last_seen < ?", (before,))]
+
+    def status_of(self, incident_id: int, *, db: sqlite3.Connection) -> tuple[str, float] | None:
+        """(status, last_seen) of an incident, None when there is none with that id."""
+        if not storable_id(incident_id):
+            return None
+        return db.execute("SELECT status, last_seen FROM incidents WHERE id = ?", (incident_id,)).fetchone()
+
+    def set_status(self, incident_id: int, status: str, *, by: str, note: str, now: float,
+                   db: sqlite3.Connection) -> None:
+        db.execute("UPDATE incidents SET status = ?, status_changed = ?, status_by = ?, note = ? WHERE id = ?",
+                   (status, now, by[:200], note[:1000], incident_id))
+
+    # -- notifications ---------------------------------------------------------------------------------
+    def notice_rows(self, *, incident_id: int | None = None, firing: bool = False, limit: int = -1,
+                    db: sqlite3.Connection | None = None) -> list[dict]:
+        """Incidents as notifications carry them, most recently active first: the listed row and
+        the representative's step difference (``diff``). One incident, or the firing ones."""
+        where, args = ("id = ?", (incident_id,)) if incident_id is not None else (
+            "status IN ('open', 'acknowledged')" if firing else "1", ())
+        out = []
+        for r in (db or self.db).execute(f"SELECT {_LIST_COLUMNS}, {_from_representative('$.diff')} "
+                                         f"FROM incidents WHERE {where} ORDER BY last_seen DESC, id DESC LIMIT ?",
+                                         (*args, limit)):
+            row = self._row(r[:-1])
+            try:
+                row["diff"] = rows.diff(r[-1])
+            except rows.Damaged as exc:
+                raise self._damaged(f"incident {row['id']}'s representative", exc) from exc
+            out.append(row)
         return out
+
+    def queue(self, incident_id: int, event: str, payload: dict, *, now: float, db: sqlite3.Connection) -> None:
+        """Queue a notification (inside the transaction of the change that caused it)."""
+        db.execute("INSERT INTO outbox (incident_id, event, created, payload) VALUES (?, ?, ?, ?)",
+                   (incident_id, event, now, dumps(payload)))
 
     # -- triage labels (tracewatch/triage.py) ------------------------------------------------------
     def set_label(self, incident_id: int, label: str, *, by: str, note: str = "", now: float) -> bool:
         """Record (or replace) an incident's label; False when there is no such incident."""
+        if not storable_id(incident_id):
+            return False
         with self.transaction() as tx:
             if tx.execute("SELECT 1 FROM incidents WHERE id = ?", (incident_id,)).fetchone() is None:
                 return False
@@ -282,22 +449,41 @@ class IncidentStore:
 
     def labels(self) -> list[dict]:
         """Every label with its incident's title and status, newest first."""
-        rows = self.db.execute("SELECT l.incident_id, l.label, l.by, l.note, l.ts, i.title, i.status, i.count "
-                               "FROM labels l JOIN incidents i ON i.id = l.incident_id ORDER BY l.ts DESC")
+        rows_ = self.db.execute("SELECT l.incident_id, l.label, l.by, l.note, l.ts, i.title, i.status, i.count "
+                                "FROM labels l JOIN incidents i ON i.id = l.incident_id ORDER BY l.ts DESC")
         keys = ("incident_id", "label", "by", "note", "labelled_at", "title", "status", "count")
-        return [dict(zip(keys, r)) for r in rows]
+        out = [dict(zip(keys, r)) for r in rows_]
+        for row in out:
+            try:
+                rows.label_row(row)
+            except rows.Damaged as exc:
+                raise self._damaged(f"the label of incident {row['incident_id']!r:.40}", exc) from exc
+        return out
 
     def labelled_alerts(self) -> list[tuple[dict, str, int]]:
         """(alert, label, incident id) for the kept member alerts of every labelled incident."""
-        rows = self.db.execute("SELECT m.alert, l.label, l.incident_id FROM labels l JOIN members m "
-                               "ON m.incident_id = l.incident_id ORDER BY l.incident_id, m.alert_id")
-        return [(orjson.loads(a), label, iid) for a, label, iid in rows]
+        rows_ = self.db.execute("SELECT m.alert, l.label, l.incident_id FROM labels l JOIN members m "
+                                "ON m.incident_id = l.incident_id ORDER BY l.incident_id, m.alert_id")
+        out = []
+        for a, label, iid in rows_:
+            try:
+                out.append((rows.alert(a), rows.label(label), iid))
+            except rows.Damaged as exc:
+                raise self._damaged(f"a labelled alert of incident {iid!r:.40}", exc) from exc
+        return out
 
     # -- outbox and delivery cursors -----------------------------------------------------------------
-    def outbox_after(self, last_id: int, limit: int = 100) -> list[tuple[int, str, dict]]:
-        rows = self.db.execute("SELECT id, event, payload FROM outbox WHERE id > ? ORDER BY id LIMIT ?",
-                               (last_id, limit))
-        return [(i, ev, orjson.loads(p)) for i, ev, p in rows]
+    def outbox_after(self, last_id: int, limit: int = 100) -> list[tuple[int, str, dict | None]]:
+        """Notifications after ``last_id``, in order: (row id, event, the incident as it was).
+        A damaged row comes with None instead of the incident (the notifier sets it aside)."""
+        out = []
+        for i, ev, p in self.db.execute("SELECT id, event, payload FROM outbox WHERE id > ? ORDER BY id LIMIT ?",
+                                        (last_id, limit)):
+            try:
+                out.append((i, rows.event(ev), rows.notice(p)))
+            except rows.Damaged:
+                out.append((i, str(ev)[:40], None))
+        return out
 
     def outbox_max(self) -> int:
         return self.db.execute("SELECT COALESCE(MAX(id), 0) FROM outbox").fetchone()[0]
@@ -315,10 +501,10 @@ class IncidentStore:
         return dict(zip(("last_id", "attempts", "delivered", "rejected", "last_error"), row))
 
     def cursors(self) -> dict[str, dict]:
-        rows = self.db.execute("SELECT sink, last_id, attempts, delivered, rejected, last_error FROM cursors")
+        rows_ = self.db.execute("SELECT sink, last_id, attempts, delivered, rejected, last_error FROM cursors")
         newest = self.outbox_max()
         return {r[0]: {"pending": newest - r[1], "attempts": r[2], "delivered": r[3], "rejected": r[4],
-                       "last_error": r[5]} for r in rows}
+                       "last_error": r[5]} for r in rows_}
 
     def delivered(self, sink: str, row_id: int, *, rejected: str | None = None) -> None:
         """Row ``row_id`` is done for ``sink`` (sent, or refused for good by the receiver)."""

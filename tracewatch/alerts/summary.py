@@ -17,6 +17,7 @@ from collections.abc import Callable
 MAX_TEMPLATE = 100  # characters of a template quoted in a title
 MAX_SAMPLE = 500  # characters of one sample line
 MAX_DIFF = 20
+DIFF_IN_NOTES = 5  # steps of the difference a notification carries
 SHARED = 0.5  # a reason / n-gram / event is "shared" when at least half the alerts have it
 ARROW = " → "
 
@@ -102,6 +103,12 @@ def brief(incident: dict) -> dict:
     out["sources"] = sorted(stats.get("sources", {}))
     out["reasons"] = sorted(stats.get("reasons", {}))
     return out
+
+
+def notice(row: dict) -> dict:
+    """The form notifications carry: the list form and the first steps of the representative's
+    difference (``row["diff"]``, as :meth:`IncidentStore.notice_rows` reads it)."""
+    return {**brief({k: v for k, v in row.items() if k != "diff"}), "diff": list(row.get("diff") or [])[:DIFF_IN_NOTES]}
 
 
 # -- plain text (the CLI) ----------------------------------------------------------------------------

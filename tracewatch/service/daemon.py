@@ -4,13 +4,17 @@ Stage: wraps the whole pipeline (sources → formats → … → alerts) with fi
 clock, checkpoints and HTTP; it adds no stage of its own. Alerts are appended to
 ``<state_dir>/alerts.jsonl`` (the objects ``tracewatch score`` prints), exactly once.
 
-One thread runs the loop: wait for a filesystem notification or the tick → read new lines
-(:class:`~tracewatch.sources.follow.Follower`) → close idle sessions
-(``pipeline.tick`` with :class:`~tracewatch.sessions.LiveTime`) → switch to a new current
-baseline if there is one → checkpoint when due. HTTP answers from its own threads under the
-same lock. With ``[refit] enabled``, quiet sessions feed a pool and a candidate baseline is
-fitted now and then on a thread of its own (:mod:`tracewatch.refit`); one that passes the gates
-is made current, and the hot reload switches to it.
+This module is the main loop and the wiring. One thread runs the loop: wait for a filesystem
+notification or the tick → read new lines (:class:`~tracewatch.sources.follow.Follower`) →
+close idle sessions (``pipeline.tick`` with :class:`~tracewatch.sessions.LiveTime`) → switch
+to a new current baseline if there is one (:mod:`.baseline_watch`) → start a refit when one is
+due (:mod:`.refit_job`) → checkpoint when due. HTTP answers from its own threads under the
+same lock, from :mod:`.status`; incidents are :mod:`.incidents`; the log is :mod:`.logs`.
+
+Its life, in one place each: :meth:`Daemon.start` ends in "ready"; :meth:`Daemon.request_reload`
+(safe from a signal handler) makes the loop re-read what can change without a restart
+("reloading", then "ready" again); :meth:`Daemon.stop` makes the loop finish ("stopping").
+Each is announced through ``on_state`` (a service manager's notification goes there).
 
 Shutdown (SIGTERM / SIGINT): stop reading, score the sessions already closed, fsync the
 journal, write the checkpoint — open sessions included, so they go on after a restart — and
@@ -24,52 +28,54 @@ import fcntl
 import logging
 import os
 import signal
-import sqlite3
-import sys
 import threading
 import time
-from collections import Counter
 from collections.abc import Callable
-from datetime import datetime, timezone
 from pathlib import Path
 
-import orjson
 from prometheus_client import CollectorRegistry
 
 from .. import __version__
-from ..alerts.incidents import Incidents
-from ..baselines import Baseline, baselines_dir, current_version, load_baseline, load_baseline_dir
+from ..baselines import baselines_dir, load_baseline, load_baseline_dir
 from ..config import Config
-from ..errors import BaselineError, InputError, StateError, TracewatchError
+from ..errors import BaselineError, InputError, StateError
 from ..pipeline import Pipeline
-from ..refit import (OUTCOMES, POOL_FILE, QuietPool, RefitData, add_incidents, expected_incidents, refit,
-                     refit_data, summary_line)
 from ..sessions import LiveTime
 from ..sources.checkpoint import AlertJournal, capture_chunks, load_checkpoint, restore, save_checkpoint
 from ..sources.follow import Follower, Watcher, watch_dirs
+from .baseline_watch import BaselineWatch
 from .http import serve
+from .incidents import Incidents
+from .logs import setup_logging
 from .metrics import DaemonMetrics
+from .refit_job import RefitJob
+from .status import DaemonStatus, iso
 
 log = logging.getLogger("tracewatch.daemon")
 
 TICK_S = 0.2  # how often idle sessions are looked for
 RELOAD_CHECK_S = 1.0  # how often the current baseline and the watched folders are re-checked
 READ_CHUNK = 256 << 10  # bytes per file per loop turn: keeps HTTP answers prompt
+STATES = ("ready", "reloading", "stopping")  # what on_state is told
 
 
 class Daemon:
     """``start()`` (may raise a TracewatchError with a clear message), then ``run()`` until
-    ``stop()``; ``wall`` and ``monotonic`` are the replaceable clocks."""
+    ``stop()``; ``wall`` and ``monotonic`` are the replaceable clocks; ``on_state`` is told each
+    of :data:`STATES` as it happens."""
 
     def __init__(self, cfg: Config, *, registry: CollectorRegistry | None = None,
-                 wall: Callable[[], float] = time.time, monotonic: Callable[[], float] = time.monotonic) -> None:
+                 wall: Callable[[], float] = time.time, monotonic: Callable[[], float] = time.monotonic,
+                 on_state: Callable[[str], None] | None = None) -> None:
         self.cfg = cfg
         self.registry = registry if registry is not None else CollectorRegistry()
         self.monotonic = monotonic
         self.wall = wall
+        self.on_state = on_state or (lambda state: None)
         self.lock = threading.Lock()
         self.wake = threading.Event()
         self.stopping = threading.Event()
+        self._reload = threading.Event()
         self.state_dir = Path(cfg.state_dir)
         self.checkpoint_path = self.state_dir / "checkpoint.json"
         self.journal = AlertJournal(self.state_dir / "alerts.jsonl", cfg.daemon.alerts_kept)
@@ -78,22 +84,18 @@ class Daemon:
         self.follower = Follower(cfg.sources, _Unready(), rotation_grace_s=cfg.daemon.rotation_grace_s,
                                  rescan_interval_s=cfg.daemon.poll_interval_s, clock=monotonic,
                                  chunk_bytes=READ_CHUNK)
-        self.metrics = DaemonMetrics(self.registry, self.snapshot)
-        self.incidents = Incidents(cfg)  # grouping, page, notifications (tracewatch/alerts/incidents.py)
+        self.incidents = Incidents(cfg)  # grouping, page, notifications (tracewatch/service/incidents.py)
+        self.watch = BaselineWatch(self.state_dir)
+        self.refit = RefitJob(cfg, self.state_dir, lock=self.lock, store=lambda: self.incidents.store, wall=wall)
+        self.report = DaemonStatus(self)
+        self.metrics = DaemonMetrics(self.registry, self.report.snapshot)
         self.watcher: Watcher | None = None
         self.server = self.http_thread = None
         self.started = False
-        self.reload_failures = 0
         self.checkpoint_time = 0.0
         self.checkpoint_seconds = 0.0
-        self._baseline_sig: tuple | None = None
+        self.ticks = 0  # idle-session checks done (tests wait on it, not on the clock)
         self._lock_fd = -1
-        # -- refit (tracewatch/refit.py) --
-        self.pool: QuietPool | None = None  # quiet sessions for the next refit ([refit] enabled)
-        self.pool_path = self.state_dir / POOL_FILE
-        self.refits: Counter = Counter()  # outcome -> refits
-        self.refit_thread: threading.Thread | None = None
-        self._expected: set[int] = set()  # incidents labelled expected: their sessions are pooled
 
     # -- start -----------------------------------------------------------------------------
     def start(self) -> None:
@@ -102,6 +104,7 @@ class Daemon:
         except BaseException:
             self.close(checkpoint=False)
             raise
+        self._announce("ready")
 
     def _start(self) -> None:
         cfg = self.cfg
@@ -111,7 +114,7 @@ class Daemon:
         self.incidents.start()  # incidents: opens <state_dir>/incidents.db, starts the notifier
         self.server, self.http_thread = serve(cfg.server.listen, self, self.registry)
         current = load_baseline(self.state_dir)
-        self._baseline_sig = self._signature(current.version)
+        self.watch.loaded(current.version)
         self.follower.check_paths()
         ckpt = load_checkpoint(self.checkpoint_path)
         base = current
@@ -126,13 +129,13 @@ class Daemon:
         if ckpt is not None:
             restore(self.pipe, ckpt)
             log.info("resumed from the checkpoint of %s: %d open sessions, %d files",
-                     _iso(ckpt.written), len(ckpt.pipeline.sessions.open), len(ckpt.files))
+                     iso(ckpt.written), len(ckpt.pipeline.sessions.open), len(ckpt.files))
         if base is not current:
             self.pipe.use_baseline(current)
             log.info("switched from baseline %s (of the checkpoint) to the current %s",
                      base.version, current.version)
         if cfg.refit.enabled:
-            self._open_pool()
+            self.refit.attach(self.pipe)
         self.journal.open(ckpt.alerts if ckpt is not None else None)
         self.follower.sink = self.pipe
         self.follower.attach([f.model_dump() for f in ckpt.files] if ckpt is not None else None)
@@ -168,15 +171,35 @@ class Daemon:
         os.write(fd, f"{os.getpid()}\n".encode())
         self._lock_fd = fd
 
-    # -- the loop ----------------------------------------------------------------------------
-    def _hint(self, rescan: bool) -> None:
-        if rescan:
-            self.follower.rescan_wanted = True
-        self.wake.set()
+    # -- life: the one place each state is announced ------------------------------------------
+    def _announce(self, state: str) -> None:
+        log.debug("daemon %s", state)
+        try:
+            self.on_state(state)
+        except Exception:  # a notification that fails must not stop the daemon
+            log.exception("telling the daemon's state (%s) failed", state)
 
     def stop(self) -> None:
         """Ask the loop to finish (safe from signal handlers and other threads)."""
         self.stopping.set()
+        self.wake.set()
+
+    def request_reload(self) -> None:
+        """Ask the loop to re-read what can change without a restart (safe from signal handlers
+        and other threads); the loop does it between two turns, in :meth:`_reload_now`."""
+        self._reload.set()
+        self.wake.set()
+
+    def _reload_now(self) -> None:
+        """Re-read now: the current baseline (even when its files look unchanged) and the
+        watched folders. Everything a reload re-reads belongs here."""
+        self._check_baseline(force=True)
+        self.watcher.refresh()
+
+    # -- the loop ----------------------------------------------------------------------------
+    def _hint(self, rescan: bool) -> None:
+        if rescan:
+            self.follower.rescan_wanted = True
         self.wake.set()
 
     def run(self) -> int:
@@ -195,14 +218,20 @@ class Daemon:
                     if now >= next_tick:
                         self.pipe.tick(self.live())
                         self.incidents.tick(self.live())  # incidents: resolve quiet ones
+                        self.ticks += 1
                         next_tick = now + TICK_S
                     if now >= next_checkpoint:
                         self._checkpoint()
                         next_checkpoint = now + interval
+                if self._reload.is_set():
+                    self._reload.clear()
+                    self._announce("reloading")
+                    self._reload_now()
+                    self._announce("ready")
                 if now >= next_check:
                     self.watcher.refresh()
                     self._check_baseline()
-                    self._maybe_refit()
+                    self.refit.maybe_start()
                     next_check = now + RELOAD_CHECK_S
                 if behind:
                     time.sleep(0.0005)  # let HTTP threads in between chunks
@@ -212,8 +241,10 @@ class Daemon:
         except Exception:
             log.exception("internal error; stopping without a checkpoint (the next start resumes "
                           "from the previous one)")
+            self._announce("stopping")
             self.close(checkpoint=False)
             return 1
+        self._announce("stopping")
         log.info("stopping: scoring closed sessions and writing the checkpoint")
         self.close(checkpoint=True)
         log.info("stopped")
@@ -224,8 +255,7 @@ class Daemon:
         if verdict["alert"]:
             self.journal.append(verdict)
             iid = self.incidents.add(verdict)  # recognises an alert raised again after a restart
-            if self.pool is not None and iid in self._expected:
-                self.pool.offer_alert(verdict)  # refit: on-call said this pattern is normal
+            self.refit.offer_alert(verdict, iid)  # refit: on-call may have said this pattern is normal
 
     def _checkpoint(self) -> None:
         """Score what is closed, make the journal durable, then save everything (lock held)."""
@@ -234,186 +264,31 @@ class Daemon:
         mark = self.journal.sync()
         save_checkpoint(self.checkpoint_path,
                         capture_chunks(self.pipe, self.follower.positions(self.pipe.held_from), mark))
-        self._save_pool()
+        self.refit.save()
         self.checkpoint_time = self.wall()
         self.checkpoint_seconds = time.perf_counter() - t0
 
-    # -- baseline hot reload -----------------------------------------------------------------
-    def _signature(self, version: str | None) -> tuple | None:
-        if version is None:
-            return None
-        try:
-            st = os.stat(baselines_dir(self.state_dir) / version / "manifest.json")
-        except OSError:
-            return (version,)
-        return version, st.st_ino, st.st_mtime_ns, st.st_size
-
-    def _check_baseline(self) -> None:
-        try:
-            version = current_version(self.state_dir)
-        except BaselineError as exc:
-            log.error("%s; still using baseline %s", exc, self.pipe.baseline.version)
-            return
-        sig = self._signature(version)
-        if version is None or sig == self._baseline_sig:
-            return
-        self._baseline_sig = sig
-        try:
-            baseline: Baseline = load_baseline_dir(baselines_dir(self.state_dir) / version)
-        except BaselineError as exc:
-            self.reload_failures += 1
-            log.error("new baseline refused: %s; still using %s", exc, self.pipe.baseline.version)
+    def _check_baseline(self, *, force: bool = False) -> None:
+        """Switch to a new current baseline (hot reload), keeping the open sessions."""
+        baseline = self.watch.check(self.pipe.baseline.version, force=force)
+        if baseline is None:
             return
         with self.lock:
             old = self.pipe.baseline.version
             self.pipe.use_baseline(baseline)
-            if self.pool is not None:
-                self.pool.clear(version)  # what the old baseline called quiet says nothing now
-        log.info("switched baseline %s → %s; %d open sessions carried over", old, version,
+            self.refit.baseline_changed(baseline.version)
+        log.info("switched baseline %s → %s; %d open sessions carried over", old, baseline.version,
                  len(self.pipe.sessionizer.open))
 
-    # -- refit (tracewatch/refit.py) ------------------------------------------------------------
-    def _open_pool(self) -> None:
-        """Load the pool (a corrupt file is moved aside: the pool is a sample, starting afresh
-        loses no alert); start afresh when it belongs to another baseline."""
-        rcfg = self.cfg.refit
-        try:
-            self.pool = QuietPool.load(self.pool_path, rcfg.pool_size, rcfg.seed)
-        except StateError as exc:
-            aside = self.pool_path.with_name(self.pool_path.name + ".corrupt")
-            try:
-                os.replace(self.pool_path, aside)
-                log.error("%s; moved to %s, starting an empty pool", exc, aside)
-            except OSError as err:
-                log.error("%s; cannot move it aside (%s), starting an empty pool", exc, err.strerror or err)
-            self.pool = QuietPool(rcfg.pool_size, rcfg.seed)
-        version = self.pipe.baseline.version
-        if self.pool.baseline_version != version:
-            self.pool.clear(version)
-        if self.pool.last_refit is None:
-            self.pool.last_refit = self.wall()  # the first refit comes one interval after the first start
-        self.pipe.on_quiet = self._on_quiet
-        self.refits.update(dict.fromkeys(OUTCOMES, 0))  # every outcome's series exists from the start
-        self._refresh_expected()
-
-    def _on_quiet(self, source: str, seq: tuple[int, ...]) -> None:
-        self.pool.offer(source, seq, self.pipe.miner.templates)
-
-    def _save_pool(self) -> None:
-        if self.pool is not None and self.pool.dirty:
-            try:
-                self.pool.save(self.pool_path)
-            except OSError as exc:
-                log.error("%s: cannot save the refit pool: %s", self.pool_path, exc.strerror or exc)
-
-    def _refresh_expected(self) -> None:
-        if not self.cfg.refit.learn_expected:
-            return
-        try:
-            ids = expected_incidents(self.incidents.store)
-        except (sqlite3.Error, StateError, OSError) as exc:
-            log.error("incident store: %s; the labels of expected incidents were not re-read", exc)
-            return
-        with self.lock:
-            self._expected = ids
-
-    def _maybe_refit(self) -> None:
-        """Start a refit on its own thread when one is due and none is running."""
-        if self.pool is None:
-            return
-        self._refresh_expected()
-        if self.refit_thread is not None and self.refit_thread.is_alive():
-            return
-        if self.wall() < self.pool.last_refit + self.cfg.refit.interval_s:
-            return
-        with self.lock:
-            data = refit_data(self.pool, self.pipe.miner, self.pipe.baseline.version)
-            self.pool.last_refit = self.wall()
-            self.pool.dirty = True
-        self.refit_thread = threading.Thread(target=self._refit, args=(data,), name="tracewatch-refit")
-        self.refit_thread.start()
-
-    def _refit(self, data: RefitData) -> None:
-        """Fit, gate, save (and promote): the whole refit, off the ingest thread."""
-        outcome = "error"
-        try:
-            store = self.incidents.store
-            try:
-                add_incidents(data, store)
-            finally:
-                store.release()
-            report, _ = refit(data, self.cfg, self.state_dir, promote=self.cfg.refit.promote)
-            outcome = report["outcome"]
-            log.log(logging.WARNING if outcome == "refused" else logging.INFO, "%s", summary_line(report))
-        except (TracewatchError, sqlite3.Error, OSError) as exc:
-            log.error("refit failed: %s; the baseline in use is kept", exc)
-        except Exception:
-            log.exception("refit failed; the baseline in use is kept")
-        with self.lock:
-            self.refits[outcome] += 1
-
-    # -- what HTTP and metrics read ------------------------------------------------------------
+    # -- what HTTP and metrics read (tracewatch/service/status.py) ---------------------------------
     def ready(self) -> tuple[bool, str]:
-        if self.stopping.is_set():
-            return False, "shutting down"
-        if not self.started or self.pipe is None:
-            return False, "starting: loading the baseline and attaching the sources"
-        with self.lock:
-            detached = dict(self.follower.detached)
-        if detached:
-            name, why = sorted(detached.items())[0]
-            return False, f"source {name} is not attached: {why}"
-        return True, ""
+        return self.report.ready()
 
     def snapshot(self) -> dict:
-        with self.lock:
-            p = self.pipe
-            if p is None:
-                return {}
-            return {
-                "records": dict(p.records), "lines": dict(p.lines), "sessions_scored": dict(p.sessions_scored),
-                "rejected": dict(p.rejected), "repaired": dict(p.repaired), "alerts": dict(p.alerts),
-                "sessions_open": len(p.sessionizer.open), "sessions_evicted": p.sessionizer.evicted,
-                "baseline_reload_failures": self.reload_failures, "alerts_replayed": self.journal.replayed,
-                "baseline_version": p.baseline.version, "files": self.follower.status(),
-                "sources": [s.name for s in self.cfg.sources], "checkpoint_time": self.checkpoint_time,
-                "checkpoint_seconds": self.checkpoint_seconds,
-                "refits": dict(self.refits), "refit_pool": self.pool.sizes() if self.pool is not None else {},
-            }
+        return self.report.snapshot()
 
     def status(self) -> dict:
-        ok, why = self.ready()
-        snap = self.snapshot()
-        files = snap.get("files", [])
-        sources = []
-        for src in self.cfg.sources:
-            mine = [f for f in files if f["source"] == src.name]
-            sources.append({
-                "name": src.name, "format": src.format, "paths": src.paths,
-                "attached": self.started and src.name not in self.follower.detached,
-                "lines": snap.get("lines", {}).get(src.name, 0),
-                "records": snap.get("records", {}).get(src.name, 0),
-                "rejected": {r: n for (s, r), n in snap.get("rejected", {}).items() if s == src.name},
-                "sessions_scored": snap.get("sessions_scored", {}).get(src.name, 0),
-                "lag_bytes": sum(f["lag_bytes"] for f in mine),
-                "lag_seconds": max((f["lag_seconds"] for f in mine), default=0.0),
-                "files": mine,
-            })
-        return {
-            "tracewatch": __version__, "ready": ok, "reason": why,
-            "baseline_version": snap.get("baseline_version"),
-            "baseline_reload_failures": self.reload_failures,
-            "sessions_open": snap.get("sessions_open", 0), "sessions_evicted": snap.get("sessions_evicted", 0),
-            "alerts": self.journal.count, "alerts_replayed": self.journal.replayed,
-            "event_time": self.pipe.watermark if self.pipe is not None else None,
-            "checkpoint": {"path": str(self.checkpoint_path),
-                           "written": _iso(self.checkpoint_time) if self.checkpoint_time else None,
-                           "seconds": round(self.checkpoint_seconds, 4)},
-            "sources": sources,
-            "refit": None if self.pool is None else {  # tracewatch/refit.py
-                "pool": snap.get("refit_pool", {}), "outcomes": snap.get("refits", {}),
-                "last": _iso(self.pool.last_refit) if self.pool.last_refit else None},
-        }
+        return self.report.status()
 
     def alerts_since(self, since: int, limit: int) -> dict:
         with self.lock:
@@ -421,8 +296,7 @@ class Daemon:
 
     # -- the end -------------------------------------------------------------------------------
     def close(self, *, checkpoint: bool) -> None:
-        if self.refit_thread is not None:
-            self.refit_thread.join()  # a fit in progress finishes (and saves its candidate)
+        self.refit.join()  # a fit in progress finishes (and saves its candidate)
         if checkpoint and self.started:
             with self.lock:
                 self._checkpoint()
@@ -448,31 +322,6 @@ class _Unready:
         raise RuntimeError("the follower read before the pipeline was ready")
 
     end_stream = feed_block
-
-
-def _iso(ts: float) -> str:
-    return datetime.fromtimestamp(ts, tz=timezone.utc).isoformat(timespec="seconds")
-
-
-# -- logging and the command -------------------------------------------------------------------
-class _JsonLines(logging.Formatter):
-    def format(self, record: logging.LogRecord) -> str:
-        obj = {"time": datetime.fromtimestamp(record.created, tz=timezone.utc).isoformat(timespec="milliseconds"),
-               "level": record.levelname.lower(), "logger": record.name, "message": record.getMessage()}
-        if record.exc_info:
-            obj["error"] = self.formatException(record.exc_info)
-        return orjson.dumps(obj).decode()
-
-
-def setup_logging(level: str = "info", fmt: str = "plain") -> None:
-    """tracewatch's own log: stderr, plain lines or JSON lines."""
-    handler = logging.StreamHandler(sys.stderr)
-    handler.setFormatter(_JsonLines() if fmt == "json" else
-                         logging.Formatter("%(asctime)s %(levelname)s %(name)s: %(message)s"))
-    root = logging.getLogger("tracewatch")
-    root.handlers[:] = [handler]
-    root.setLevel(level.upper())
-    root.propagate = False
 
 
 def run_daemon(cfg: Config, *, log_level: str = "info", log_format: str = "plain") -> int:

@@ -2,7 +2,10 @@
 
 Stage: serves the incidents (:mod:`tracewatch.alerts.incidents`); called by
 :mod:`tracewatch.service.http` through :func:`route`, with the daemon's
-:class:`~tracewatch.alerts.incidents.Incidents` as ``provider.incidents``.
+:class:`~tracewatch.service.incidents.Incidents` as ``provider.incidents``. This is the one
+place where the incident layer's outcomes become HTTP status codes: IncidentNotFound → 404,
+InvalidTransition → 409, any other TracewatchError (a store that cannot be opened or read) → 503.
+The CLI's client for these routes is :mod:`tracewatch.service.client`.
 
     GET  /                              the incident list (HTML)
     GET  /incidents/{id}                one incident (HTML)
@@ -22,22 +25,20 @@ from __future__ import annotations
 
 import hmac
 import logging
-import os
 import re
-from collections.abc import Mapping
-from datetime import datetime, timezone
 from http.server import BaseHTTPRequestHandler
 from urllib.parse import parse_qs, urlsplit
 
 import orjson
 
-from ..alerts.incidents import ACTIONS, Incidents
 from ..alerts.alert import Redactor
-from ..alerts.summary import brief, detail
+from ..alerts.incidents import ACTIONS
 from ..alerts.store import STATUSES
-from ..config import IncidentsConfig
-from ..errors import TracewatchError
+from ..alerts.summary import brief, detail
+from ..errors import IncidentNotFound, InvalidTransition, TracewatchError
 from . import page
+from .client import incident_token, parse_since
+from .incidents import Incidents
 
 log = logging.getLogger("tracewatch.http")
 
@@ -45,29 +46,6 @@ MAX_BODY = 4096
 MAX_LIST = 1000
 _DETAIL = re.compile(r"^/(?:api/)?incidents/(\d{1,12})$")
 _ACTION = re.compile(r"^/api/incidents/(\d{1,12})/([a-z]+)$")
-
-
-def incident_token(cfg: IncidentsConfig, env: Mapping[str, str] = os.environ) -> str | None:
-    """The bearer token for state changes: the config's, else the named environment variable's."""
-    if cfg.token:
-        return cfg.token
-    value = env.get(cfg.token_env, "").strip()
-    return value or None
-
-
-def parse_since(value: str) -> float:
-    """Seconds since the epoch, or an ISO 8601 time (UTC when no zone is given)."""
-    try:
-        return float(value)
-    except ValueError:
-        pass
-    try:
-        t = datetime.fromisoformat(value.replace("Z", "+00:00"))
-    except ValueError as exc:
-        raise ValueError(f"since: {value!r} is neither seconds since the epoch nor an ISO 8601 time") from exc
-    if t.tzinfo is None:
-        t = t.replace(tzinfo=timezone.utc)
-    return t.timestamp()
 
 
 def send(h: BaseHTTPRequestHandler, code: int, body: bytes, content_type: str, headers: dict | None = None) -> None:
@@ -107,11 +85,10 @@ def route(h: BaseHTTPRequestHandler, incidents: Incidents | None) -> bool:
             _post(h, incidents, path)
         else:
             _get(h, incidents, path, parse_qs(url.query))
-    except TracewatchError as exc:  # the store cannot be opened, for example
+    except TracewatchError as exc:  # the store cannot be opened or read, for example
         send_json(h, 503, {"error": str(exc)})
     finally:
-        if incidents._store is not None:
-            incidents._store.release()  # each request runs in a thread of its own
+        incidents.release()  # each request runs in a thread of its own
     return True
 
 
@@ -193,35 +170,11 @@ def _post(h: BaseHTTPRequestHandler, inc: Incidents, path: str) -> None:
         except orjson.JSONDecodeError:
             send_json(h, 400, {"error": 'the body must be JSON, e.g. {"note": "known deploy"}'})
             return
-    code, out = inc.set_status(int(m.group(1)), m.group(2), by="api", note=note)
-    send_json(h, code, {"incident": brief(out)} if code == 200 else out)
-
-
-# -- a client for the CLI's --url ---------------------------------------------------------------------
-def api_request(base_url: str, path: str, *, method: str = "GET", token: str | None = None,
-                body: dict | None = None, timeout: float = 10.0) -> tuple[int, dict]:
-    """Call a running daemon's incident API; returns (HTTP status, JSON answer)."""
-    import urllib.error
-    import urllib.request
-
-    from ..errors import InputError
-
-    data = orjson.dumps(body) if body is not None else (b"" if method == "POST" else None)
-    headers = {"Content-Type": "application/json"} if data is not None else {}
-    if token:
-        headers["Authorization"] = f"Bearer {token}"
-    req = urllib.request.Request(base_url.rstrip("/") + path, data=data, method=method, headers=headers)
     try:
-        with urllib.request.urlopen(req, timeout=timeout) as resp:
-            return resp.status, orjson.loads(resp.read())
-    except urllib.error.HTTPError as exc:
-        raw = exc.read()
-        exc.close()
-        try:
-            return exc.code, orjson.loads(raw)
-        except orjson.JSONDecodeError:
-            return exc.code, {"error": raw[:200].decode("utf-8", "replace")}
-    except (urllib.error.URLError, OSError, ValueError) as exc:
-        raise InputError(f"{base_url}: cannot reach the daemon: {getattr(exc, 'reason', exc)}") from exc
-    except orjson.JSONDecodeError as exc:
-        raise InputError(f"{base_url}{path}: the answer is not JSON; is this a tracewatch daemon?") from exc
+        out = inc.set_status(int(m.group(1)), m.group(2), by="api", note=note)
+    except IncidentNotFound as exc:
+        send_json(h, 404, {"error": str(exc)})
+    except InvalidTransition as exc:
+        send_json(h, 409, {"error": str(exc)})
+    else:
+        send_json(h, 200, {"incident": brief(out)})

@@ -13,7 +13,8 @@ The snapshot is a dict with these keys (all optional):
 
     records, lines, sessions_scored          {source: n}
     rejected, repaired, alerts               {(source, reason): n}
-    sessions_open, sessions_evicted, baseline_reload_failures, alerts_replayed   int
+    sessions_open, sessions_evicted, baseline_reload_failures, alerts_replayed,
+    alert_lines_damaged                      int
     baseline_version                         str
     sources                                  [source name, ...] (every configured one)
     files                                    [{"source", "lag_bytes", "lag_seconds"}, ...]
@@ -53,6 +54,8 @@ _PLAIN_COUNTERS = (
      "New baselines refused (unreadable or corrupt); the old one was kept."),
     ("alerts_replayed", "tracewatch_alerts_replayed_total",
      "Alerts raised again after a restart and recognised as already in the journal."),
+    ("alert_lines_damaged", "tracewatch_alert_journal_damaged_lines_total",
+     "Lines of alerts.jsonl found damaged when the daemon opened it (skipped, left in the file)."),
 )
 
 

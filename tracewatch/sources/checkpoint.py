@@ -13,7 +13,9 @@ alerts raised in between are raised again, with the same ``alert_id`` (a hash of
 source, key and first line). The journal holds exactly those after the saved length: they are
 recognised by id and not appended twice; those not raised again yet when the next checkpoint
 is written are carried in it (``pending``). A torn last line (a crash mid-write) is cut off
-first.
+first; any other damaged line (a disk fault, an edit) is skipped, counted and logged once, and
+left in the file — it is no record of its alert, so that alert is appended again if it is
+raised again. Every other line keeps its alert and its number.
 """
 
 from __future__ import annotations
@@ -37,6 +39,7 @@ log = logging.getLogger("tracewatch.checkpoint")
 SCHEMA_VERSION = 1
 COUNTERS = ("records", "rejected", "repaired", "lines", "sessions_scored", "alerts")
 TAIL_READ_BYTES = 8 << 20  # the recent alerts /api/alerts serves are read back from this much
+PENDING_READ_BYTES = 1 << 20  # read back from a checkpoint's mark at a time, for its pending alerts
 
 
 class _Strict(BaseModel):
@@ -174,11 +177,25 @@ def restore(pipeline, ckpt: Checkpoint) -> None:
 
 
 # -- the alert journal -----------------------------------------------------------------------------
+def _lines(block: bytes, start: int) -> Iterator[tuple[int, bytes]]:
+    """(offset, line) of every complete line of ``block``, which begins at file offset ``start``."""
+    pos = 0
+    while True:
+        end = block.find(b"\n", pos)
+        if end < 0:
+            return
+        yield start + pos, block[pos:end]
+        pos = end + 1
+
+
 class AlertJournal:
     """``alerts.jsonl``: every alert appended once, across restarts (see the module docstring).
 
     Alerts are numbered from 1 in journal order; :meth:`since` serves the most recent
-    ``keep`` of them to ``/api/alerts``."""
+    ``keep`` of them to ``/api/alerts``. A damaged line (not a JSON object with an
+    ``alert_id``: a disk fault, an edit) keeps its number, is left in the file as it is, counted
+    in ``damaged`` and logged once; it is no record of its alert, so an alert it held that is
+    raised again after a restart is appended again. Nothing else is lost."""
 
     def __init__(self, path: Path, keep: int = 1000) -> None:
         self.path = path
@@ -187,8 +204,10 @@ class AlertJournal:
         self.size = 0
         self.count = 0
         self.replayed = 0  # alerts raised again after a restart and recognised
+        self.damaged = 0  # lines found damaged when the journal was opened
         self.recent: deque[tuple[int, dict]] = deque(maxlen=keep)
         self._already: Counter[str] = Counter()
+        self._damaged_at: set[int] = set()  # their offsets (a line is read by more than one pass)
 
     def open(self, mark: JournalMark | None) -> None:
         self.path.parent.mkdir(parents=True, exist_ok=True)
@@ -210,21 +229,67 @@ class AlertJournal:
         elif mark is not None:
             log.warning("%s is shorter than when the checkpoint was written; numbering its alerts afresh",
                         self.path)
-        if mark is not None:
-            self._already = Counter(mark.pending)
         if mark is not None and mark.offset <= size:  # written since the checkpoint: a few seconds' worth
             after = self._read(start, size)
             self.count += after.count(b"\n")
-            self._already.update(orjson.loads(line)["alert_id"] for line in after.splitlines() if line)
+            self._already = self._pending(mark)
+            self._already.update(a["alert_id"] for a in self._alerts(after, start))
         else:
             self.count += sum(self._read(pos, min(size, pos + (1 << 24))).count(b"\n")
                               for pos in range(start, size, 1 << 24))
-        lines = self._read(max(0, size - TAIL_READ_BYTES), size).splitlines()[-self.keep:]
-        if size > TAIL_READ_BYTES and lines:
-            lines = lines[1:]  # the first may be cut
+        tail_start = max(0, size - TAIL_READ_BYTES)
+        lines = list(_lines(self._read(tail_start, size), tail_start))[1 if tail_start else 0:]  # the first may be cut
+        lines = lines[-self.keep:]
         first = self.count - len(lines) + 1
-        for i, line in enumerate(lines):
-            self.recent.append((first + i, orjson.loads(line)))
+        for i, (offset, line) in enumerate(lines):
+            alert = self._parse(offset, line)
+            if alert is not None:
+                self.recent.append((first + i, alert))
+        self.damaged = len(self._damaged_at)
+        if self.damaged:
+            log.error("%s: %d damaged line(s) skipped (the first at byte %d); they stay in the file, and every "
+                      "other alert is kept", self.path, self.damaged, min(self._damaged_at))
+
+    def _parse(self, offset: int, line: bytes) -> dict | None:
+        """The alert of one line, or None for a damaged line (counted by its offset)."""
+        try:
+            alert = orjson.loads(line)
+        except orjson.JSONDecodeError:
+            alert = None
+        if isinstance(alert, dict) and isinstance(alert.get("alert_id"), str):
+            return alert
+        self._damaged_at.add(offset)
+        return None
+
+    def _alerts(self, block: bytes, start: int) -> Iterator[dict]:
+        """The readable alerts of ``block``, which begins at a line start, file offset ``start``."""
+        for offset, line in _lines(block, start):
+            alert = self._parse(offset, line)
+            if alert is not None:
+                yield alert
+
+    def _pending(self, mark: JournalMark) -> Counter[str]:
+        """The mark's pending alerts whose line is there, read back from the mark (they were
+        written shortly before it); one whose line is damaged will be appended again."""
+        want = Counter(mark.pending)
+        found: Counter[str] = Counter()
+        pos = mark.offset
+        while pos > 0 and +(want - found):
+            start = max(0, pos - PENDING_READ_BYTES)
+            block = self._read(start, pos)
+            while start > 0 and block.find(b"\n", 0, len(block) - 1) < 0:  # a line longer than one read
+                lower = max(0, start - PENDING_READ_BYTES)
+                block, start = self._read(lower, start) + block, lower
+            if start > 0:  # begin at a line start: the part before the first newline is read next
+                cut = block.find(b"\n", 0, len(block) - 1) + 1
+                block, start = block[cut:], start + cut
+            found.update(a["alert_id"] for a in self._alerts(block, start) if a["alert_id"] in want)
+            pos = start
+        missing = want - found
+        if missing:
+            log.warning("%s: %d alert(s) of the checkpoint are not readable there; they are appended again "
+                        "when raised", self.path, sum(missing.values()))
+        return want - missing
 
     def _read(self, start: int, end: int) -> bytes:
         chunks, pos = [], start
