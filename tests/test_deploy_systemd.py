@@ -32,10 +32,9 @@ from pathlib import Path
 import pytest
 
 from tracewatch.config import load_config
-from tracewatch.demo.scenario import parcel_lockers
 
 from .conftest import ROOT, run_cli
-from .daemon_helpers import die_with_parent, free_port, http_json, need_program, wait_for
+from .daemon_helpers import die_with_parent, free_port, http_json, need_program, wait_for, write_config
 
 UNIT = ROOT / "deploy" / "systemd" / "tracewatch.service"
 SYSUSERS = ROOT / "deploy" / "systemd" / "tracewatch.sysusers"
@@ -181,25 +180,6 @@ print("mdwe " + ("on" if mdwe else "unsupported"), file=sys.stderr, flush=True)
 os.execv(sys.executable, [sys.executable, "-m", "tracewatch", *sys.argv[1:]])
 """
 
-SANDBOX_CONFIG = """\
-state_dir = "{state}"
-
-[[sources]]
-name = "api"
-paths = ["{logs}/*.log"]
-line_pattern = '{pattern}'
-start_at = "beginning"
-
-[sessions]
-idle_timeout_s = 1.0
-
-[server]
-listen = "127.0.0.1:{port}"
-
-[daemon]
-checkpoint_interval_s = 0.5
-"""
-
 WRITE_FLAGS = re.compile(r"O_WRONLY|O_RDWR|O_CREAT|O_TRUNC|O_APPEND")
 PATH_CALLS = {"mkdir", "mkdirat", "rename", "renameat", "renameat2", "unlink", "unlinkat", "rmdir", "link",
               "linkat", "symlink", "symlinkat", "truncate", "chmod", "fchmodat", "mknod", "mknodat"}
@@ -235,11 +215,9 @@ def test_the_daemon_works_inside_the_units_sandbox(tmp_path, demo_fit, demo_stat
     allowed = allowed_syscalls(unit["SystemCallFilter"], syscall_groups(analyze))
     assert unit["SystemCallErrorNumber"] == ["EPERM"]  # what the injection below stands for
     families = set(unit["RestrictAddressFamilies"][0].split())
-    logs = tmp_path / "logs"
-    logs.mkdir()
     port = free_port()
-    cfg = tmp_path / "tracewatch.toml"
-    cfg.write_text(SANDBOX_CONFIG.format(state=demo_state, logs=logs, pattern=parcel_lockers().line_pattern, port=port))
+    cfg = write_config(tmp_path, port, idle=1.0)  # its state_dir is demo_state, a copy of the demo baseline's
+    logs = tmp_path / "logs"
     manager_name = f"tracewatch-test-{uuid.uuid4().hex}"
     manager = socket.socket(socket.AF_UNIX, socket.SOCK_DGRAM)
     manager.bind(b"\0" + manager_name.encode())

@@ -24,31 +24,9 @@ from pathlib import Path
 
 import pytest
 
-from tracewatch.demo.scenario import parcel_lockers
 from tracewatch.service.systemd import Notifier
 
-from .daemon_helpers import DaemonProcess, free_port, no_daemon_left  # noqa: F401 (autouse)
-
-CONFIG = """\
-state_dir = "{state}"
-
-[[sources]]
-name = "api"
-paths = {paths}
-line_pattern = '{pattern}'
-start_at = "beginning"
-
-[sessions]
-idle_timeout_s = 1.0
-
-[server]
-listen = "127.0.0.1:{port}"
-
-[daemon]
-poll_interval_s = 0.2
-checkpoint_interval_s = 0.5
-"""
-
+from .daemon_helpers import DaemonProcess, free_port, no_daemon_left, write_config  # noqa: F401 (autouse)
 
 # -- the service manager's end of the socket -------------------------------------------------------
 class ManagerSocket:
@@ -217,24 +195,19 @@ def test_a_newline_cannot_start_another_assignment():
 # -- the real daemon under a pretend service manager ----------------------------------------------
 @pytest.fixture
 def managed(tmp_path, demo_state, monkeypatch):
-    """``start(paths, notify_socket, watchdog_usec)`` → (the daemon as a subprocess on a copy of the
-    demo baseline, following ``paths``, its config path), with $NOTIFY_SOCKET and $WATCHDOG_USEC
+    """``start(notify_socket, watchdog_usec)`` → (the daemon as a subprocess on a copy of the demo
+    baseline, following <tmp>/logs/*.log, its config path), with $NOTIFY_SOCKET and $WATCHDOG_USEC
     set as systemd sets them."""
     for name in ("NOTIFY_SOCKET", "WATCHDOG_USEC", "WATCHDOG_PID"):
         monkeypatch.delenv(name, raising=False)
 
-    def start(paths: list[str], notify_socket: str, watchdog_usec: int) -> tuple[DaemonProcess, Path]:
-        cfg_path = tmp_path / "tracewatch.toml"
-        cfg_path.write_text(config_text(demo_state, paths, free_port()))
+    def start(notify_socket: str, watchdog_usec: int) -> tuple[DaemonProcess, Path]:
+        cfg_path = write_config(tmp_path, free_port(), idle=1.0)  # state_dir: demo_state; logs/*.log
         monkeypatch.setenv("NOTIFY_SOCKET", notify_socket)
         monkeypatch.setenv("WATCHDOG_USEC", str(watchdog_usec))
         return DaemonProcess(cfg_path), cfg_path
 
     return start
-
-
-def config_text(state: Path, paths: list[str], port: int) -> str:
-    return CONFIG.format(state=state, paths=json.dumps(paths), pattern=parcel_lockers().line_pattern, port=port)
 
 
 def day_lines(demo_fit) -> list[str]:
@@ -247,14 +220,13 @@ def append(path: Path, lines: list[str]) -> None:
 
 
 def test_ready_after_the_baseline_and_sources_then_watchdog_then_stopping(managed, tmp_path, demo_fit):
-    logs = tmp_path / "logs"
-    logs.mkdir()
     lines = day_lines(demo_fit)
-    append(logs / "api.log", lines)
     name = f"tracewatch-test-{uuid.uuid4().hex}"
     manager = ManagerSocket(b"\0" + name.encode())
     try:
-        daemon, _ = managed([f"{logs}/*.log"], "@" + name, watchdog_usec=1_000_000)
+        (tmp_path / "logs").mkdir()
+        append(tmp_path / "logs" / "api.log", lines)  # there before the start: READY must see it attached
+        daemon, _ = managed("@" + name, watchdog_usec=1_000_000)
         ready = manager.until("READY", proc=daemon.proc)
         # READY comes only once the daemon can answer for itself: baseline loaded, source attached
         assert daemon.get("/readyz")[0] == 200
@@ -278,18 +250,17 @@ def test_ready_after_the_baseline_and_sources_then_watchdog_then_stopping(manage
 
 def test_sighup_reloads_a_good_config_and_refuses_a_bad_one(managed, tmp_path, demo_fit):
     logs, logs2 = tmp_path / "logs", tmp_path / "logs2"
-    logs.mkdir()
     logs2.mkdir()
     lines = day_lines(demo_fit)
     third = len(lines) // 3
-    append(logs / "api.log", lines[:third])
     folder = tempfile.mkdtemp(prefix="tw-", dir="/tmp")  # a socket file this time (short path)
     manager = ManagerSocket(f"{folder}/notify")
     blocker = socket.socket()  # holds a port so that one new config cannot start
     try:
-        daemon, cfg_path = managed([f"{logs}/*.log"], f"{folder}/notify", watchdog_usec=1_000_000)
+        daemon, cfg_path = managed(f"{folder}/notify", watchdog_usec=1_000_000)
         at = manager.until("READY", proc=daemon.proc)
         pid = daemon.proc.pid
+        append(logs / "api.log", lines[:third])
         daemon.until(lambda: daemon.status()["sources"][0]["records"] == third, "the first lines")
         good = cfg_path.read_text()
 
