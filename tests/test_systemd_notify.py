@@ -18,13 +18,16 @@ import signal
 import socket
 import subprocess
 import tempfile
+import threading
 import time
 import uuid
 from pathlib import Path
 
 import pytest
 
-from tracewatch.service.systemd import Notifier
+from tracewatch.config import load_config
+from tracewatch.service.daemon import Daemon
+from tracewatch.service.systemd import Notifier, Service
 
 from .daemon_helpers import DaemonProcess, free_port, no_daemon_left, write_config  # noqa: F401 (autouse)
 
@@ -314,3 +317,34 @@ def test_sighup_reloads_a_good_config_and_refuses_a_bad_one(managed, tmp_path, d
         blocker.close()
         manager.close()
         shutil.rmtree(folder)
+
+
+def test_a_reload_during_a_refit_waits_for_it(tmp_path, demo_state):
+    """The reload is taken up at once (RELOADING=1) but the daemon stops only once the refit in
+    progress has ended: closing would wait for the refit, and the watchdog with it. The refit is
+    stood for by a thread that runs until the test lets it end; the Service and Daemon are real."""
+    cfg_path = write_config(tmp_path, free_port())
+    name = f"tracewatch-test-{uuid.uuid4().hex}"
+    manager = ManagerSocket(b"\0" + name.encode())
+    service = Service(load_config(cfg_path), Daemon, config_path=cfg_path, notifier=Notifier({"NOTIFY_SOCKET": "@" + name}))
+    service.daemon = daemon = service._start(service.cfg)
+    release = threading.Event()
+    daemon.refit_thread = threading.Thread(target=release.wait, name="stands-for-a-refit")
+    daemon.refit_thread.start()
+    try:
+        service._on_hup(signal.SIGHUP, None)
+        service._on_turn()
+        service._on_turn()
+        assert not daemon.stopping.is_set()
+        manager.drain()
+        assert [list(m) for m in manager.messages] == [["RELOADING", "MONOTONIC_USEC", "STATUS"], ["STATUS"]]
+        assert manager.messages[1]["STATUS"] == "reload waiting for the baseline refit in progress"
+        release.set()
+        daemon.refit_thread.join()
+        service._on_turn()
+        assert daemon.stopping.is_set() and service._next_cfg is not None
+    finally:
+        release.set()
+        daemon.close(checkpoint=True)
+        service.notifier.close()
+        manager.close()
