@@ -85,6 +85,8 @@ def test_unit_passes_systemd_analyze_verify(tmp_path):
     program = Path(sys.executable).parent / "tracewatch"
     if not program.exists():
         pytest.skip(f"{program} is missing (make .venv/.installed-test installs the package with its command)")
+    if not Path("/bin/kill").exists():  # ExecReload's program: verify insists it exists too
+        pytest.skip("/bin/kill is not installed (Debian package procps)")
     text = UNIT.read_text()
     (exec_start,) = unit_settings(UNIT)["ExecStart"]
     assert exec_start.startswith("/opt/tracewatch/bin/tracewatch run --config ")
@@ -211,6 +213,8 @@ def written_paths(trace: str) -> set[str]:
 def test_the_daemon_works_inside_the_units_sandbox(tmp_path, demo_fit, demo_state):
     strace = need_program("strace", "strace")
     analyze = need_program("systemd-analyze", "systemd")
+    if subprocess.run([strace, "-o", os.devnull, "true"], capture_output=True, timeout=60).returncode != 0:
+        pytest.skip("strace cannot trace here (ptrace is not permitted in this sandbox)")
     unit = unit_settings(UNIT)
     allowed = allowed_syscalls(unit["SystemCallFilter"], syscall_groups(analyze))
     assert unit["SystemCallErrorNumber"] == ["EPERM"]  # what the injection below stands for

@@ -5,6 +5,7 @@
     metrics.py   every Prometheus metric, on a registry passed in (never imports http.py)
     incidents_api.py  the incident page and API routes, and the CLI's client for them
     page.py      the incident page's HTML (log text escaped)
+    systemd.py   life under a service manager: sd_notify, SIGTERM stop, SIGHUP reload
 """
 
 from __future__ import annotations
