@@ -37,6 +37,15 @@ test: $(VENV)/.installed-test
 	@{ command -v prometheus && command -v prometheus-alertmanager; } >/dev/null 2>&1 || { export DEBIAN_FRONTEND=noninteractive; \
 	  { apt-get update -qq && apt-get install -y -qq --no-install-recommends prometheus prometheus-alertmanager; } >/dev/null 2>&1 \
 	  || echo "make: prometheus/prometheus-alertmanager could not be installed (needs root and apt-get); their tests will be skipped"; }
+	@# Debian's systemd (systemd-analyze, systemd-sysusers, systemd-notify), for the unit file's
+	@# checks (tests/test_deploy_systemd.py, tests/test_systemd_notify.py), and rsync, for shipping
+	@# baselines as README says (tests/test_deploy_fleet.py): the same rule
+	@{ command -v systemd-analyze && command -v systemd-sysusers && command -v systemd-notify; } >/dev/null 2>&1 || { export DEBIAN_FRONTEND=noninteractive; \
+	  { apt-get update -qq && apt-get install -y -qq --no-install-recommends systemd; } >/dev/null 2>&1 \
+	  || echo "make: systemd could not be installed (needs root and apt-get); the unit file's tests will be skipped"; }
+	@command -v rsync >/dev/null 2>&1 || { export DEBIAN_FRONTEND=noninteractive; \
+	  { apt-get update -qq && apt-get install -y -qq --no-install-recommends rsync; } >/dev/null 2>&1 \
+	  || echo "make: rsync could not be installed (needs root and apt-get); the baseline-shipping test will be skipped"; }
 	$(PY) -m pytest -q
 
 bench: $(VENV)/.installed-test

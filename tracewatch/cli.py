@@ -184,6 +184,9 @@ RUN_HELP = (
     "/metrics, /healthz, /readyz, /api/status and /api/alerts on [server] listen "
     "(default 127.0.0.1:9464). Stop it with SIGTERM or Ctrl-C: it saves its state and exits 0; "
     "after a crash it resumes from its last checkpoint without losing or repeating anything. "
+    "SIGHUP re-reads the config and the baseline (a config that fails validation is refused with "
+    "one log line and the running one kept). Under systemd (Type=notify) it reports ready, "
+    "reloading, stopping and watchdog pings over $NOTIFY_SOCKET. "
     "HTTP exposure: it binds loopback by default; the metrics and the API expose log-derived data "
     "(session keys, template text, sample lines after redaction) without authentication, so follow "
     "your own security rules before binding it to any other address.")
@@ -192,7 +195,8 @@ RUN_HELP = (
 def cmd_run(args) -> int:
     from .service.daemon import run_daemon
 
-    return run_daemon(load_config(args.config), log_level=args.log_level, log_format=args.log_format)
+    return run_daemon(load_config(args.config), config_path=args.config, log_level=args.log_level,
+                      log_format=args.log_format)
 
 
 # -- `incidents` (tracewatch/alerts/incidents.py, tracewatch/service/client.py) ------------------------

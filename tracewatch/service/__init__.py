@@ -11,6 +11,7 @@
     client.py          the CLI's client for those routes (--url)
     metrics.py         every Prometheus metric, on a registry passed in (never imports http.py)
     page.py            the incident page's HTML (log text escaped)
+    systemd.py         life under a service manager: sd_notify, SIGTERM stop, SIGHUP reload
 """
 
 from __future__ import annotations

@@ -19,7 +19,8 @@ Each is announced through ``on_state`` (a service manager's notification goes th
 Shutdown (SIGTERM / SIGINT): stop reading, score the sessions already closed, fsync the
 journal, write the checkpoint — open sessions included, so they go on after a restart — and
 exit 0. After ``kill -9`` the next start resumes from the last checkpoint (see
-:mod:`tracewatch.sources.checkpoint`).
+:mod:`tracewatch.sources.checkpoint`). Signals, SIGHUP reloads and systemd's notifications are
+:mod:`tracewatch.service.systemd`'s; the loop calls its ``on_turn`` hook once per turn.
 """
 
 from __future__ import annotations
@@ -27,7 +28,6 @@ from __future__ import annotations
 import fcntl
 import logging
 import os
-import signal
 import threading
 import time
 from collections.abc import Callable
@@ -50,6 +50,7 @@ from .logs import setup_logging
 from .metrics import DaemonMetrics
 from .refit_job import RefitJob
 from .status import DaemonStatus, iso
+from .systemd import Service
 
 log = logging.getLogger("tracewatch.daemon")
 
@@ -96,6 +97,9 @@ class Daemon:
         self.checkpoint_seconds = 0.0
         self.ticks = 0  # idle-session checks done (tests wait on it, not on the clock)
         self._lock_fd = -1
+        # called once per loop turn, outside the lock: the service manager's watchdog and reload
+        # requests (tracewatch/service/systemd.py)
+        self.on_turn: Callable[[], None] = lambda: None
 
     # -- start -----------------------------------------------------------------------------
     def start(self) -> None:
@@ -210,6 +214,7 @@ class Daemon:
         next_checkpoint = mono() + interval
         try:
             while not self.stopping.is_set():
+                self.on_turn()
                 with self.lock:
                     behind = self.follower.poll()
                     if behind:
@@ -324,20 +329,9 @@ class _Unready:
     end_stream = feed_block
 
 
-def run_daemon(cfg: Config, *, log_level: str = "info", log_format: str = "plain") -> int:
-    """``tracewatch run``: start (clear errors on failure), follow until a signal, exit 0."""
+def run_daemon(cfg: Config, *, config_path: str | Path | None = None, log_level: str = "info",
+               log_format: str = "plain") -> int:
+    """``tracewatch run``: start (clear errors on failure), follow until SIGTERM, reload on SIGHUP
+    (re-reading ``config_path``), tell systemd each step (:mod:`tracewatch.service.systemd`)."""
     setup_logging(log_level, log_format)
-    daemon = Daemon(cfg)
-
-    def on_signal(signum: int, _frame) -> None:
-        log.info("received %s", signal.Signals(signum).name)
-        daemon.stop()
-
-    signal.signal(signal.SIGTERM, on_signal)
-    signal.signal(signal.SIGINT, on_signal)
-    try:
-        daemon.start()
-    except OSError as exc:  # a state_dir that cannot be written, for example
-        raise StateError(f"cannot start: {exc.strerror or exc}"
-                         + (f" ({exc.filename})" if exc.filename else "")) from exc
-    return daemon.run()
+    return Service(cfg, Daemon, config_path=config_path).run()
