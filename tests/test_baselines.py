@@ -7,9 +7,11 @@ import json
 
 import numpy as np
 import pytest
+from hypothesis import HealthCheck, given, settings
+from hypothesis import strategies as st
 
 from tracewatch.baselines import (current_version, list_versions, load_baseline, load_baseline_dir,
-                                  set_current)
+                                  save_baseline, set_current)
 from tracewatch.errors import BaselineError, NoBaselineError
 
 from .conftest import run_cli
@@ -89,3 +91,71 @@ def test_score_command_with_corrupt_baseline_is_one_line(demo_fit, demo_state, t
     assert proc.returncode == 1
     assert "templates.json does not match its checksum" in proc.stderr
     assert len(proc.stderr.strip().splitlines()) == 1 and "Traceback" not in proc.stderr
+
+
+# -- save and load agree, whatever the sources ---------------------------------------------------
+FLOWS = [(0, 1, 2, 3), (4, 5, 6), (0, 7, 7, 3), (8, 9), (1, 2, 10, 11, 3)]
+
+
+def _multi_source_baseline(parts: list[tuple[str, int, int]], seed: int):
+    """A baseline fitted on ``(source, flow, sessions)`` parts: each session is the flow with, at
+    random, one of three optional steps inserted, so clusters have some spread."""
+    from tracewatch.baselines import fit_baseline
+    from tracewatch.config import parse_config
+    from tracewatch.templates import TemplateTree
+
+    rng = np.random.default_rng(seed)
+    miner = TemplateTree()
+    for e in range(15):
+        miner.add_event(f"step-{e}")
+    sessions = []
+    for source, flow, n in parts:
+        for _ in range(n):
+            seq = list(FLOWS[flow])
+            if rng.random() < 0.3:
+                seq.insert(int(rng.integers(1, len(seq))), int(rng.integers(12, 15)))
+            sessions.append((source, tuple(seq)))
+    names = sorted({s for s, _, _ in parts})
+    cfg = parse_config({"sources": [{"name": n} for n in names],
+                        "model": {"k_max": 5, "restarts": 1, "seed": seed, "false_alarm_rate": 0.05}})
+    return fit_baseline(sessions, miner, cfg), sessions
+
+
+def _verdicts(baseline, sessions):
+    scorer = baseline.make_scorer()
+    results, p, far, unseen = baseline.judge(scorer, [s for s, _ in sessions], [q for _, q in sessions])
+    return [r[0] for r in results], [r[1] for r in results], p, far | unseen
+
+
+def _assert_same_verdicts(fitted, loaded, sessions):
+    a, b = _verdicts(fitted, sessions), _verdicts(loaded, sessions)
+    assert np.allclose(a[0], b[0], rtol=1e-9, atol=1e-12)  # scores
+    assert a[1] == b[1]  # nearest clusters
+    assert np.array_equal(a[2], b[2]) and np.array_equal(a[3], b[3])  # p-values, flags
+
+
+def test_a_source_without_a_cluster_scores_alike_fitted_and_loaded(tmp_path):
+    # "a" runs only b's flow, a few times: it owns no cluster; the clusters belong to b and c
+    fitted, sessions = _multi_source_baseline([("a", 0, 4), ("b", 0, 60), ("c", 1, 60)], seed=1)
+    assert sorted(set(fitted.cluster_sources)) == ["b", "c"]
+    save_baseline(fitted, tmp_path)
+    loaded = load_baseline(tmp_path)
+    assert loaded.cluster_sources == fitted.cluster_sources
+    normal_b = [("b", FLOWS[0])]  # b's own flow: no alarm, fitted or loaded
+    assert not _verdicts(fitted, normal_b)[3][0] and not _verdicts(loaded, normal_b)[3][0]
+    _assert_same_verdicts(fitted, loaded, sessions + [(s, FLOWS[4]) for s in "abcz"])
+
+
+@settings(max_examples=12, deadline=None, suppress_health_check=[HealthCheck.too_slow])
+@given(st.lists(st.tuples(st.sampled_from("abcd"), st.integers(0, len(FLOWS) - 1), st.integers(1, 40)),
+                min_size=2, max_size=6).filter(lambda parts: sum(n for _, _, n in parts) >= 30),
+       st.integers(0, 2**16))
+def test_fitted_and_loaded_baselines_give_identical_verdicts(tmp_path_factory, parts, seed):
+    """Property: for any mix of sources and flows, every session (of the fit, of another flow, of
+    a source the baseline never saw) gets the same verdict from the fitted and the loaded baseline."""
+    fitted, sessions = _multi_source_baseline(parts, seed)
+    state = tmp_path_factory.mktemp("multi")
+    save_baseline(fitted, state)
+    loaded = load_baseline(state)
+    probes = [(s, flow) for s in "abcdz" for flow in FLOWS]
+    _assert_same_verdicts(fitted, loaded, sessions + probes)

@@ -294,9 +294,10 @@ def _rows(arrays: dict, n_cols: int) -> tuple:
     return data, indices, indptr, shape
 
 
-def _source_index(names: list[str]) -> np.ndarray:
-    order = sorted(set(names))
-    return np.array([order.index(n) for n in names], dtype=np.int64)
+def _source_index(names: list[str], sources: list[str]) -> np.ndarray:
+    """``names`` as indices into ``sources``: the list the manifest keeps and loading maps back."""
+    index = {name: i for i, name in enumerate(sources)}
+    return np.array([index[n] for n in names], dtype=np.int64)
 
 
 def _flat(seqs: list[tuple[int, ...]]) -> tuple[np.ndarray, np.ndarray]:
@@ -348,13 +349,15 @@ def save_baseline(b: Baseline, state_dir: Path, *, make_current: bool = True) ->
         medoid_flat, medoid_offsets = _flat(b.medoids)
         normal_flat, normal_offsets = _flat(b.normal_seqs)
         data, indices, indptr, shape = b.knn_parts
+        sources = sorted(set(b.cluster_sources) | set(b.normal_sources))
         arrays = {
             **b.vectorizer.to_arrays(),
             "centers": b.centers, "spreads": b.spreads, "cluster_weights": b.cluster_weights,
             "cluster_df": b.cluster_df, "medoid_flat": medoid_flat, "medoid_offsets": medoid_offsets,
             "normal_flat": normal_flat, "normal_offsets": normal_offsets,
             "normal_labels": np.asarray(b.normal_labels, dtype=np.int64),
-            "cluster_sources": _source_index(b.cluster_sources), "normal_sources": _source_index(b.normal_sources),
+            "cluster_sources": _source_index(b.cluster_sources, sources),
+            "normal_sources": _source_index(b.normal_sources, sources),
             "calibration_scores": np.concatenate([c.calibration_scores_ for c in b.calibration.values()]),
             "calibration_offsets": np.cumsum([0] + [len(c.calibration_scores_) for c in b.calibration.values()]),
             "knn_data": data, "knn_indices": indices.astype(np.int64),
@@ -371,7 +374,7 @@ def save_baseline(b: Baseline, state_dir: Path, *, make_current: bool = True) ->
             "ngram_max": b.vectorizer.ngram_max, "scorer": b.scorer_kind, "knn_k": b.knn_k,
             "unseen_weight": b.unseen_weight, "false_alarm_rate": b.false_alarm_rate,
             "calibration_sources": list(b.calibration),
-            "sources": sorted(set(b.cluster_sources) | set(b.normal_sources)),
+            "sources": sources,
             "report": b.report,
         }
         (tmp / "manifest.json").write_bytes(orjson.dumps(manifest, option=orjson.OPT_INDENT_2
