@@ -159,3 +159,23 @@ def test_fitted_and_loaded_baselines_give_identical_verdicts(tmp_path_factory, p
     loaded = load_baseline(state)
     probes = [(s, flow) for s in "abcdz" for flow in FLOWS]
     _assert_same_verdicts(fitted, loaded, sessions + probes)
+
+
+# -- a state_dir that cannot be written ------------------------------------------------------------
+@pytest.mark.parametrize("where", ["under-a-file", "is-a-file"])
+def test_fit_into_an_unwritable_state_dir_is_one_line_before_any_work(demo_fit, tmp_path, where):
+    # root ignores file modes, so the state_dir is made unusable by a plain file in its way
+    (tmp_path / "blocker").write_text("a file, not a folder\n")
+    state = tmp_path / "blocker" / "state" if where == "under-a-file" else tmp_path / "blocker"
+    conf = tmp_path / "tw.toml"
+    conf.write_text(f'state_dir = "{state}"\n[[sources]]\nname = "api"\n'
+                    f"line_pattern = '''{demo_fit.cfg.sources[0].line_pattern}'''\n")
+    proc = run_cli("fit", "--config", str(conf), str(demo_fit.day))
+    assert proc.returncode == 1
+    assert proc.stderr.startswith("tracewatch: ") and "cannot write baselines" in proc.stderr
+    assert len(proc.stderr.strip().splitlines()) == 1 and "Traceback" not in proc.stderr
+    # checked before reading and fitting: a one-session input would otherwise be refused by the fit
+    one = tmp_path / "one.log"
+    one.write_text(demo_fit.day.read_text().splitlines()[0] + "\n")
+    proc = run_cli("fit", "--config", str(conf), str(one))
+    assert proc.returncode == 1 and "cannot write baselines" in proc.stderr and "sessions found" not in proc.stderr

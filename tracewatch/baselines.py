@@ -27,7 +27,7 @@ from pydantic import BaseModel, ConfigDict, ValidationError
 
 from . import __version__
 from .config import Config
-from .errors import BaselineError, NoBaselineError
+from .errors import BaselineError, NoBaselineError, StateError
 from .fs import atomic_write
 from .features import NgramVectorizer
 from .model.calibrate import ConformalThreshold
@@ -336,10 +336,24 @@ def set_current(state_dir: Path, version: str) -> None:
     atomic_write(baselines_dir(state_dir) / "CURRENT", (version + "\n").encode())
 
 
+def check_writable(state_dir: Path) -> Path:
+    """The baselines folder of ``state_dir``, created if need be, after proving a file can be
+    written there: call it before reading and fitting, so a bad state_dir costs no work."""
+    root = baselines_dir(state_dir)
+    try:
+        root.mkdir(parents=True, exist_ok=True)
+        fd, probe = tempfile.mkstemp(dir=root, prefix=".write-check.")
+        os.close(fd)
+        os.unlink(probe)
+    except OSError as exc:
+        raise StateError(f"{root}: cannot write baselines there ({exc.strerror or exc}); "
+                         "check state_dir in the config") from exc
+    return root
+
+
 def save_baseline(b: Baseline, state_dir: Path, *, make_current: bool = True) -> Path:
     """Write the baseline as the next version; returns its directory."""
-    root = baselines_dir(state_dir)
-    root.mkdir(parents=True, exist_ok=True)
+    root = check_writable(state_dir)
     existing = list_versions(state_dir)
     number = int(existing[-1][1:]) + 1 if existing else 1
     version = f"v{number:04d}"

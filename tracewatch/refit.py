@@ -37,7 +37,7 @@ import numpy as np
 import orjson
 from pydantic import BaseModel, ConfigDict, ValidationError
 
-from .baselines import POOLED, Baseline, current_version, fit_baseline, load_baseline, save_baseline
+from .baselines import POOLED, Baseline, check_writable, current_version, fit_baseline, load_baseline, save_baseline
 from .config import Config
 from .errors import StateError
 from .fs import atomic_write
@@ -398,6 +398,8 @@ def refit_files(cfg: Config, pairs: list[tuple[str, Path]], *, dry_run: bool = F
     from .batch import run_files
     from .pipeline import Pipeline
 
+    if not dry_run:
+        check_writable(cfg.state_dir)
     baseline = load_baseline(cfg.state_dir)
     pool = QuietPool(cfg.refit.pool_size, cfg.refit.seed)
     store = IncidentStore.open(cfg.state_dir, create=False) if (cfg.state_dir / FILENAME).exists() else None
