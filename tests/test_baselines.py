@@ -6,6 +6,7 @@ import hashlib
 import json
 
 import numpy as np
+import orjson
 import pytest
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
@@ -56,18 +57,50 @@ def test_foreign_and_newer_manifests_are_refused(demo_state, tmp_path):
         load_baseline_dir(tmp_path)
 
 
+def _reseal(dst, manifest: dict | None = None) -> None:
+    """Make a version's manifest match its files again (their sha256 and the manifest's own
+    checksum: sha256 of the manifest without it, keys sorted, compact JSON), as a determined
+    editor would: only the content checks can then refuse it."""
+    manifest = manifest if manifest is not None else orjson.loads((dst / "manifest.json").read_bytes())
+    manifest.pop("checksum", None)
+    manifest["files"] = {name: hashlib.sha256((dst / name).read_bytes()).hexdigest()
+                         for name in ("templates.json", "model.npz")}
+    manifest["checksum"] = hashlib.sha256(orjson.dumps(manifest, option=orjson.OPT_SORT_KEYS)).hexdigest()
+    (dst / "manifest.json").write_bytes(orjson.dumps(manifest))
+
+
 def test_npz_with_pickled_object_is_not_loaded(demo_state):
-    # A model.npz carrying a pickled object array must never be unpickled (numpy allow_pickle=False).
+    # A model.npz carrying a pickled object array must never be unpickled: its header says
+    # dtype object, and nothing is read past a header that does not fit the storage table.
     dst = demo_state / "baselines" / "v0001"
     with np.load(dst / "model.npz", allow_pickle=False) as z:
         arrays = {k: z[k] for k in z.files}
     arrays["centers"] = np.array([object()], dtype=object)
     with open(dst / "model.npz", "wb") as fh:
         np.savez(fh, **arrays)
-    manifest = json.loads((dst / "manifest.json").read_text())
-    manifest["files"]["model.npz"] = hashlib.sha256((dst / "model.npz").read_bytes()).hexdigest()
-    (dst / "manifest.json").write_text(json.dumps(manifest))
+    _reseal(dst)
     with pytest.raises(BaselineError, match="unreadable"):
+        load_baseline_dir(dst)
+
+
+def test_a_hand_edited_manifest_is_refused(demo_state):
+    # the manifest is inside its own checksum: ngram_max = 10^9 once made `score` run for minutes
+    dst = demo_state / "baselines" / "v0001"
+    text = (dst / "manifest.json").read_text()
+    (dst / "manifest.json").write_text(text.replace('"ngram_max": 3', '"ngram_max": 1000000000'))
+    with pytest.raises(BaselineError, match="manifest.json does not match its checksum"):
+        load_baseline_dir(dst)
+    _reseal(dst)  # sealed again: the bound refuses it
+    with pytest.raises(BaselineError, match="out of bounds .*ngram_max"):
+        load_baseline_dir(dst)
+
+
+def test_an_older_schema_says_to_fit_again(demo_state):
+    dst = demo_state / "baselines" / "v0001"
+    manifest = orjson.loads((dst / "manifest.json").read_bytes())
+    manifest["schema_version"] = 3
+    (dst / "manifest.json").write_bytes(orjson.dumps(manifest))
+    with pytest.raises(BaselineError, match="schema 3 is not supported .* older tracewatch: fit a new baseline"):
         load_baseline_dir(dst)
 
 
@@ -100,7 +133,7 @@ FLOWS = [(0, 1, 2, 3), (4, 5, 6), (0, 7, 7, 3), (8, 9), (1, 2, 10, 11, 3)]
 def _multi_source_baseline(parts: list[tuple[str, int, int]], seed: int):
     """A baseline fitted on ``(source, flow, sessions)`` parts: each session is the flow with, at
     random, one of three optional steps inserted, so clusters have some spread."""
-    from tracewatch.baselines import fit_baseline
+    from tracewatch.model.baseline import fit_baseline
     from tracewatch.config import parse_config
     from tracewatch.templates import TemplateTree
 

@@ -33,7 +33,7 @@ def test_tfidf_matches_sklearn_tfidftransformer():
 def test_weights_equal_repeated_rows():
     seqs = [(1, 2, 3), (1, 3), (2, 2, 2, 4)]
     w = [3, 1, 2]
-    a = NgramVectorizer(2).fit(seqs, w)
+    a = NgramVectorizer(2).fit(seqs, sample_weight=w)
     b = NgramVectorizer(2).fit([s for s, k in zip(seqs, w) for _ in range(k)])
     assert a.vocabulary_ == b.vocabulary_ and np.allclose(a.idf_, b.idf_)
 

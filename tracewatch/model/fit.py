@@ -24,9 +24,12 @@ import warnings
 
 import numpy as np
 import scipy.sparse as sp
+from sklearn.base import BaseEstimator, ClusterMixin
 from sklearn.cluster import KMeans, MiniBatchKMeans, kmeans_plusplus
 from sklearn.exceptions import ConvergenceWarning
 from sklearn.metrics import pairwise_distances
+
+from .score import SPREAD_FLOOR
 
 SILHOUETTE_SAMPLE = 3000  # sessions drawn for the silhouette: a 3000 × 3000 distance matrix, 72 MB
 STREAMING_ROWS = 50_000  # with streaming="auto", more distinct rows than this fit by mini-batches
@@ -153,10 +156,10 @@ def _minibatch(X, w: np.ndarray, k: int, restarts: int, seed: int, init: np.ndar
     return _Fit(km.cluster_centers_, labels, inertia)
 
 
-class ClusterModel:
-    """k-means baseline in the scikit-learn estimator shape.
+class ClusterModel(ClusterMixin, BaseEstimator):
+    """k-means baseline, a scikit-learn clusterer.
 
-    After ``fit(X, sample_weight)``: ``cluster_centers_`` (dense, contamination removed),
+    After ``fit(X, sample_weight=...)`` (``X``: session vectors, one row per distinct session): ``cluster_centers_`` (dense, contamination removed),
     ``spreads_`` (weighted mean member distance, floored), ``cluster_weights_``,
     ``medoids_`` (row index of each cluster's representative), ``labels_`` (per row, -1 for
     contamination), ``curve_`` (k, inertia, silhouette), ``k_``, ``contamination_``,
@@ -184,11 +187,13 @@ class ClusterModel:
             return _minibatch(X, w, k, self.restarts, self.seed)
         return _kmeans(X, w, k, self.restarts, self.seed)
 
-    def fit(self, X: sp.csr_matrix, sample_weight: np.ndarray | None = None) -> "ClusterModel":
+    def fit(self, X: sp.csr_matrix, y=None, sample_weight: np.ndarray | None = None) -> "ClusterModel":
         n = X.shape[0]
         if n == 0:
             raise ValueError("no sessions to fit")
         w = np.ones(n) if sample_weight is None else np.asarray(sample_weight, dtype=float)
+        if w.shape != (n,):
+            raise ValueError(f"sample_weight has shape {w.shape}, expected ({n},)")
         self.notes_: list[str] = []
         self.streaming_ = bool(self.streaming is True or (self.streaming == "auto" and n > self.streaming_rows))
         self.silhouette_rows_ = 0
@@ -277,7 +282,7 @@ class ClusterModel:
             spreads.append(float(np.sum(dc * w[rows]) / np.sum(w[rows])))
             medoids.append(int(rows[np.argmin(dc)]))
         spreads = np.array(spreads)
-        floor = max(1e-2, 0.25 * float(np.median(spreads)))
+        floor = max(SPREAD_FLOOR, 0.25 * float(np.median(spreads)))
         self.spreads_ = np.maximum(spreads, floor)
         self.medoids_ = np.array(medoids, dtype=np.int64)
 

@@ -38,9 +38,10 @@ from prometheus_client import CollectorRegistry
 
 from .. import __version__
 from ..alerts.incidents import Incidents
-from ..baselines import Baseline, baselines_dir, current_version, load_baseline, load_baseline_dir
+from ..baselines import baselines_dir, current_version, load_baseline, load_baseline_dir
 from ..config import Config
 from ..errors import BaselineError, InputError, StateError, TracewatchError
+from ..model.baseline import Baseline
 from ..pipeline import Pipeline
 from ..refit import (OUTCOMES, POOL_FILE, QuietPool, RefitData, add_incidents, expected_incidents, refit,
                      refit_data, summary_line)
