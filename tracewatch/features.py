@@ -18,7 +18,7 @@ from collections.abc import Mapping, Sequence
 from typing import TYPE_CHECKING
 
 import numpy as np
-from sklearn.base import BaseEstimator
+from sklearn.base import BaseEstimator, TransformerMixin
 from sklearn.utils.validation import check_is_fitted
 
 if TYPE_CHECKING:
@@ -52,7 +52,7 @@ class SessionVector:
         self.unseen_mass = unseen_mass  # squared norm of that part (≤ 1)
 
 
-class NgramVectorizer(BaseEstimator):
+class NgramVectorizer(TransformerMixin, BaseEstimator):
     """Event n-gram tf-idf vectoriser, a scikit-learn estimator.
 
     ``fit(X, sample_weight=...)`` on event sequences (``X``: sequences of template indices)
@@ -68,6 +68,7 @@ class NgramVectorizer(BaseEstimator):
             ) -> "NgramVectorizer":
         if not isinstance(self.ngram_max, numbers.Integral) or self.ngram_max < 1:
             raise ValueError(f"ngram_max must be a whole number of at least 1, not {self.ngram_max!r}")
+        _check_sequences(X)
         weights = np.ones(len(X)) if sample_weight is None else np.asarray(sample_weight, float)
         if weights.shape != (len(X),):
             raise ValueError(f"sample_weight has shape {weights.shape}, expected ({len(X)},)")
@@ -157,6 +158,20 @@ class NgramVectorizer(BaseEstimator):
         vec.idf_ = np.asarray(arrays["idf"], dtype=float)
         vec.unseen_idf_, vec.n_sessions_ = (float(x) for x in arrays["idf_meta"])
         return vec
+
+
+def _check_sequences(X) -> None:
+    """``X`` must be event sequences: sequences of whole numbers (template indices)."""
+    what = "X must be event sequences (sequences of template indices)"
+    if isinstance(X, np.ndarray) and X.dtype.kind not in "iuO":
+        raise ValueError(f"{what}, not an array of {X.dtype}")
+    if hasattr(X, "tocsr") or isinstance(X, (str, bytes, Mapping)) or not hasattr(X, "__len__"):
+        raise ValueError(f"{what}, not a {type(X).__name__}")
+    if len(X) == 0:
+        raise ValueError("no event sequences to fit")
+    for seq in X:
+        if isinstance(seq, (str, bytes, Mapping)) or not all(isinstance(e, (int, np.integer)) for e in seq):
+            raise ValueError(f"{what}; found {type(seq).__name__} {str(seq)[:40]}")
 
 
 def stack(vecs: Sequence[SessionVector], n_cols: int) -> sp.csr_matrix:

@@ -13,7 +13,7 @@ import math
 
 import numpy as np
 from sklearn.base import BaseEstimator
-from sklearn.utils.validation import check_is_fitted
+from sklearn.utils.validation import check_array, check_is_fitted
 
 
 class ConformalThreshold(BaseEstimator):
@@ -33,7 +33,12 @@ class ConformalThreshold(BaseEstimator):
             raise ValueError("ConformalThreshold takes no sample weights: give every calibration score")
         if not 0 < self.false_alarm_rate < 1:
             raise ValueError(f"false_alarm_rate must be between 0 and 1, not {self.false_alarm_rate!r}")
-        cal = np.sort(np.asarray(X, dtype=float).ravel())
+        cal = check_array(X, ensure_2d=False, dtype=np.float64)
+        if cal.ndim == 2 and cal.shape[1] == 1:
+            cal = cal[:, 0]
+        if cal.ndim != 1:
+            raise ValueError(f"X must be scores, one per calibration session (1-D), not shape {cal.shape}")
+        cal = np.sort(cal)
         n = len(cal)
         self.calibration_scores_ = cal
         # alarm iff 1 + #{cal ≥ s} ≤ rate·(n+1)  ⟺  #{cal ≥ s} ≤ m
