@@ -23,7 +23,9 @@ from __future__ import annotations
 
 import hashlib
 import os
+import re
 import shutil
+import stat
 import struct
 import tempfile
 import time
@@ -49,6 +51,7 @@ SCHEMA_VERSION = 4  # 2: templates masked to <var>; 3: the template tree's setti
 # 4: the manifest inside its checksum, the arrays of one storage table, each scorer's own arrays
 KIND = "tracewatch-baseline"
 FILES = ("templates.json", "model.npz")
+VERSION_NAME = re.compile(r"^v\d{4,9}$")
 MAX_MANIFEST_BYTES = 16 << 20
 MAX_TEMPLATES_BYTES = 256 << 20
 MAX_MODEL_BYTES = 2 << 30  # model.npz, compressed and (the sum of its arrays) uncompressed
@@ -68,8 +71,8 @@ _Steps = Annotated[list[_Text], Field(max_length=MAX_ITEMS)]
 
 
 # -- what a manifest may hold ------------------------------------------------------------------------
-class _Strict(BaseModel):
-    model_config = ConfigDict(extra="forbid")
+class _Strict(BaseModel):  # strict: a number written as a string, or a float where a count goes, is refused
+    model_config = ConfigDict(extra="forbid", strict=True)
 
 
 class _CurvePoint(_Strict):
@@ -97,14 +100,14 @@ class _Threshold(_Strict):
 
 
 class _Gate(BaseModel):  # a refit gate: the fields `baselines show` prints are checked
-    model_config = ConfigDict(extra="allow")
+    model_config = ConfigDict(extra="allow", strict=True)
     gate: _Text
     passed: bool
     detail: _Text
 
 
 class _Refit(BaseModel):
-    model_config = ConfigDict(extra="allow")
+    model_config = ConfigDict(extra="allow", strict=True)
     outcome: _Text
     based_on: _Text
     gates: list[_Gate] = Field(max_length=1000)
@@ -137,7 +140,7 @@ class FitReport(_Strict):
 class Manifest(_Strict):
     schema_version: Literal[4]
     kind: Literal["tracewatch-baseline"]
-    version: str = Field(pattern=r"^v\d{4,9}$")
+    version: str = Field(pattern=VERSION_NAME.pattern)
     created: str = Field(max_length=64)
     tracewatch: str = Field(max_length=64)
     files: dict[Literal["templates.json", "model.npz"], _HEX64]
@@ -188,7 +191,7 @@ def _why(exc: Exception) -> str:
     if isinstance(exc, ValidationError):
         err = exc.errors()[0]
         where = ".".join(map(str, err["loc"]))
-        return f"{where + ': ' if where else ''}{err['msg']}"
+        return f"{where + ': ' if where else ''}{err['msg'].removeprefix('Value error, ')}"
     return str(exc).splitlines()[0] if str(exc) else type(exc).__name__
 
 
@@ -207,11 +210,14 @@ def list_versions(state_dir: Path) -> list[str]:
 def current_version(state_dir: Path) -> str | None:
     pointer = baselines_dir(state_dir) / "CURRENT"
     try:
-        name = pointer.read_text().strip()
+        name = _read(pointer, 64).decode("ascii", "replace").strip()
     except FileNotFoundError:
         return None
-    except OSError as exc:
-        raise BaselineError(f"{pointer}: cannot read: {exc.strerror or exc}") from exc
+    except (OSError, ValueError) as exc:
+        raise BaselineError(f"{pointer}: cannot read: {getattr(exc, 'strerror', None) or exc}") from exc
+    if name and not VERSION_NAME.fullmatch(name):
+        raise BaselineError(f"{pointer} names no baseline version ({name[:20]!r}); make one current with "
+                            "'tracewatch baselines use VERSION'")
     return name or None
 
 
@@ -305,22 +311,41 @@ def load_baseline(state_dir: Path, version: str | None = None) -> Baseline:
     if version is None:
         raise NoBaselineError(f"no baseline in {baselines_dir(state_dir)} yet; fit one first with "
                               "'tracewatch fit --config FILE INPUT...'")
+    if not VERSION_NAME.fullmatch(version):
+        raise BaselineError(f"no baseline version {version[:20]!r}: versions are named v0001, v0002, ...")
     return load_baseline_dir(baselines_dir(state_dir) / version)
 
 
 def _open(path: Path, limit: int):
-    """A file open for reading, refused beyond ``limit`` bytes before any is read."""
-    fh = open(path, "rb")
-    size = os.fstat(fh.fileno()).st_size
-    if size > limit:
-        fh.close()
-        raise ValueError(f"{size} bytes, more than the {limit} a baseline file may have")
-    return fh
+    """A regular file open for reading, refused beyond ``limit`` bytes before any is read. Opened
+    without blocking, so a FIFO or a device in its place is refused instead of waited on."""
+    fd = os.open(path, os.O_RDONLY | os.O_NONBLOCK)
+    st = os.fstat(fd)
+    if not stat.S_ISREG(st.st_mode) or st.st_size > limit:
+        os.close(fd)
+        raise ValueError("not a regular file" if not stat.S_ISREG(st.st_mode) else
+                         f"{st.st_size} bytes, more than the {limit} a baseline file may have")
+    return os.fdopen(fd, "rb")
 
 
 def _read(path: Path, limit: int) -> bytes:
     with _open(path, limit) as fh:
-        return fh.read(limit + 1)
+        data = fh.read(limit + 1)
+    if len(data) > limit:  # a file that grew, or one whose size says less than it holds
+        raise ValueError(f"more than the {limit} bytes a baseline file may have")
+    return data
+
+
+def _sha256(path: Path, limit: int) -> str:
+    digest = hashlib.sha256()
+    with _open(path, limit) as fh:
+        read = 0
+        while chunk := fh.read(1 << 20):
+            read += len(chunk)
+            if read > limit:
+                raise ValueError(f"more than the {limit} bytes a baseline file may have")
+            digest.update(chunk)
+    return digest.hexdigest()
 
 
 def _manifest(path: Path) -> Manifest:
@@ -338,7 +363,7 @@ def _manifest(path: Path) -> Manifest:
     schema = doc.get("schema_version")
     if schema != SCHEMA_VERSION:
         older = isinstance(schema, int) and schema < SCHEMA_VERSION
-        raise BaselineError(f"{path}: baseline schema {schema} is not supported by this tracewatch (it reads "
+        raise BaselineError(f"{path}: baseline schema {schema!r} is not supported by this tracewatch (it reads "
                             f"schema {SCHEMA_VERSION}); " + ("it was written by an older tracewatch: fit a new "
                                                              "baseline with 'tracewatch fit'" if older else
                                                              "upgrade tracewatch or fit a new baseline"))
@@ -423,8 +448,7 @@ def load_baseline_dir(path: Path) -> Baseline:
     manifest = _manifest(path)
     for name in FILES:
         try:
-            with _open(path / name, LIMITS[name]) as fh:
-                digest = hashlib.file_digest(fh, "sha256").hexdigest()
+            digest = _sha256(path / name, LIMITS[name])
         except (OSError, ValueError) as exc:
             raise BaselineError(f"{path}: cannot read {name}: {getattr(exc, 'strerror', None) or exc}") from exc
         if manifest.files[name] != digest:

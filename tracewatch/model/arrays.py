@@ -92,7 +92,7 @@ def check_values(arrays: Mapping[str, np.ndarray], table: tuple[Array, ...], dim
             high = a.names if a.names is not None else a.high
             hi = None if high is None else (dims[high] - 1 if isinstance(high, str) else high)
         if lo is not None and x.min() < lo:
-            raise ArrayError(f"{a.name}: a value below {a.low}")
+            raise ArrayError(f"{a.name}: a value below its range (at least {a.low if a.names is None else 0})")
         if hi is not None and x.max() > hi:
             raise ArrayError(f"{a.name}: a value above its range (at most {hi})")
         if a.offsets_of is not None:

@@ -19,14 +19,18 @@ from typing import TYPE_CHECKING, NamedTuple
 import numpy as np
 
 from ..errors import BaselineError
-from ..features import PAD, NgramVectorizer, SessionVector
 from .arrays import Array
-from .calibrate import ConformalThreshold
 from .score import Result, Scorer, SessionScorer, make_scorer
 
 if TYPE_CHECKING:
     from ..config import Config
+    from ..features import NgramVectorizer, SessionVector
     from ..templates import TemplateTree
+    from .calibrate import ConformalThreshold
+
+# The estimators (and scikit-learn with them) are imported where a baseline is built, fitted or
+# loaded, not with this module: the storage checks a baseline against ARRAYS before paying for
+# them, so a damaged one is refused at once.
 
 MIN_SESSIONS = 10
 FIT_BLOCK = 50_000  # distinct rows vectorised (and counted per cluster) at a time
@@ -37,7 +41,7 @@ Seq = tuple[int, ...]
 # vocabulary, G = ngram_max, K clusters, N distinct baseline sessions, T templates, S calibrated
 # sources; the others are lengths of flat arrays.
 ARRAYS: tuple[Array, ...] = (
-    Array("vocab_ngrams", "<i8", ("V", "G"), low=PAD, high="T"),  # template ids, START/END markers, PAD
+    Array("vocab_ngrams", "<i8", ("V", "G"), low=-3, high="T"),  # template ids; START, END, PAD: -1, -2, -3
     Array("idf", "<f8", ("V",), low=1.0, high=1e6),  # smooth idf ≥ 1
     Array("idf_meta", "<f8", ("2",), low=1.0, high=1e15),  # the unseen idf, the sessions fitted
     Array("centers", "<f8", ("K", "V"), low=0.0, high=1.0),  # means of non-negative unit vectors
@@ -184,6 +188,11 @@ class Baseline:
                     false_alarm_rate: float, report: dict, version: str) -> "Baseline":
         """The baseline :meth:`to_arrays` describes, from arrays already checked against the
         table (shapes, ranges, offsets); ValueError for what the table cannot say."""
+        from ..features import NgramVectorizer
+        from .calibrate import ConformalThreshold
+
+        if not len(arrays["centers"]) or not len(arrays["normal_labels"]):
+            raise ValueError("a baseline needs a cluster and a baseline session")
         cal_sources, scores = arrays["calibration_sources"], arrays["calibration_scores"]
         offsets = arrays["calibration_offsets"].tolist()
         if len(set(cal_sources)) != len(cal_sources) or POOLED not in cal_sources:
@@ -218,6 +227,7 @@ def fit_baseline(sessions: list[tuple[str, Seq]], miner: TemplateTree, cfg: Conf
     sessions. Freezes ``miner``: templates made after this are unseen."""
     import scipy.sparse as sp
 
+    from ..features import NgramVectorizer
     from .fit import ClusterModel  # scikit-learn's clustering loads only when fitting
 
     n = len(sessions)
@@ -283,6 +293,8 @@ def _owners(labels: np.ndarray, weights: np.ndarray, row_sources: list[str], mod
 
 def _calibrate(baseline: Baseline, held_out: list[tuple[str, Seq]], rate: float) -> None:
     """One threshold per source from its own held-out sessions, and the pooled one."""
+    from .calibrate import ConformalThreshold
+
     scorer = baseline.make_scorer()
     by_source: dict[str, list[Seq]] = {}
     for source, seq in held_out:

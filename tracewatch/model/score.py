@@ -72,7 +72,7 @@ class Scorer:
     arrays: ClassVar[tuple[Array, ...]] = ()
 
     class Params(BaseModel):
-        model_config = ConfigDict(extra="forbid")
+        model_config = ConfigDict(extra="forbid", strict=True)
 
     def get_params(self, deep: bool = True) -> dict:
         """Its parameters (scikit-learn's ``clone`` works with this)."""
@@ -103,7 +103,7 @@ class CentroidScorer(Scorer):
     arrays = (Array("spreads", "<f8", ("K",), low=SPREAD_FLOOR, high=2.0),)  # unit vectors: ≤ √2 apart
 
     class Params(BaseModel):
-        model_config = ConfigDict(extra="forbid")
+        model_config = ConfigDict(extra="forbid", strict=True)
         unseen_weight: float = Field(ge=0, le=1e6, allow_inf_nan=False)
 
     def __init__(self, unseen_weight: float = 5.0) -> None:
@@ -136,7 +136,7 @@ class KnnScorer(Scorer):
     )
 
     class Params(BaseModel):
-        model_config = ConfigDict(extra="forbid")
+        model_config = ConfigDict(extra="forbid", strict=True)
         knn_k: int = Field(ge=1, le=1_000_000)
 
     def __init__(self, knn_k: int = 1) -> None:
