@@ -487,7 +487,7 @@ def test_score_refuses_a_tampered_baseline_in_one_line_without_hanging(pristine,
     log.write_text("one line\n")
     env = dict(os.environ, PYTHONPATH=str(ROOT))
     proc = subprocess.run([sys.executable, "-m", "tracewatch", "score", "--config", str(conf), str(log)],
-                          env=env, capture_output=True, text=True, timeout=20)
+                          env=env, cwd=tmp, capture_output=True, text=True, timeout=20)
     assert proc.returncode == 1, (what, proc.stderr)
     lines = proc.stderr.strip().splitlines()
     assert len(lines) == 1 and lines[0].startswith("tracewatch: ") and "Traceback" not in proc.stderr, (what, proc.stderr)
