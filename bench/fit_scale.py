@@ -2,7 +2,7 @@
 
     .venv/bin/python bench/fit_scale.py [--sessions N ...] [--corpus realistic varied] [--streaming auto true false]
 
-Each case runs ``tracewatch.baselines.fit_baseline`` (the fit behind ``tracewatch fit``: dedup
+Each case runs ``tracewatch.model.baseline.fit_baseline`` (the fit behind ``tracewatch fit``: dedup
 into distinct (source, sequence) rows, vectorise, k search, calibration) in a child process of
 its own, so its peak RSS is its own. Reading and mining the log lines is *not* in it (that is
 the per-line path, timed by the ``score`` benchmark); the child builds the sessions directly:
@@ -93,7 +93,7 @@ def _rss_mb(field: str) -> float:
 
 def child(n: int, corpus: str, streaming: str) -> dict:
     """Build the corpus, fit once; what happened, as a dict (printed as JSON)."""
-    from tracewatch.baselines import fit_baseline
+    from tracewatch.model.baseline import fit_baseline
     from tracewatch.config import Config
 
     t0 = time.perf_counter()

@@ -28,7 +28,7 @@ from pathlib import Path
 HERE = Path(__file__).resolve().parent
 sys.path.insert(0, str(HERE.parent))
 
-from tracewatch.baselines import fit_baseline  # noqa: E402
+from tracewatch.model.baseline import fit_baseline  # noqa: E402
 from tracewatch.config import Config  # noqa: E402
 from tracewatch.demo.scenario import generate, parcel_lockers  # noqa: E402
 from tracewatch.pipeline import SCORE_BATCH  # noqa: E402

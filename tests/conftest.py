@@ -15,7 +15,7 @@ from typing import NamedTuple
 
 import pytest
 
-from tracewatch.baselines import Baseline
+from tracewatch.model.baseline import Baseline
 from tracewatch.batch import assign_sources, fit_files
 from tracewatch.config import Config, parse_config
 from tracewatch.demo.run import write_scenario

@@ -3,10 +3,12 @@
 from __future__ import annotations
 
 import numpy as np
+import pytest
 import scipy.sparse as sp
 from sklearn.feature_extraction.text import TfidfTransformer
 
-from tracewatch.features import END, START, NgramVectorizer, ngrams
+from tracewatch.features import END, PAD, START, NgramVectorizer, ngrams
+from tracewatch.model.baseline import ARRAYS
 
 
 def test_ngrams_by_hand():
@@ -33,7 +35,7 @@ def test_tfidf_matches_sklearn_tfidftransformer():
 def test_weights_equal_repeated_rows():
     seqs = [(1, 2, 3), (1, 3), (2, 2, 2, 4)]
     w = [3, 1, 2]
-    a = NgramVectorizer(2).fit(seqs, w)
+    a = NgramVectorizer(2).fit(seqs, sample_weight=w)
     b = NgramVectorizer(2).fit([s for s, k in zip(seqs, w) for _ in range(k)])
     assert a.vocabulary_ == b.vocabulary_ and np.allclose(a.idf_, b.idf_)
 
@@ -52,3 +54,16 @@ def test_persistence_round_trip():
     vec = NgramVectorizer(3).fit([(1, 2, 3), (3, 2, 1, 1)])
     back = NgramVectorizer.from_arrays(3, vec.to_arrays())
     assert back.vocabulary_ == vec.vocabulary_ and np.array_equal(back.idf_, vec.idf_)
+    bad = vec.to_arrays()
+    bad["vocab_ngrams"][1] = bad["vocab_ngrams"][0]  # a repeated n-gram
+    with pytest.raises(ValueError, match="repeats"):
+        NgramVectorizer.from_arrays(3, bad)
+    bad["vocab_ngrams"][1] = [1, PAD, 2]  # padding inside an n-gram
+    with pytest.raises(ValueError, match="not an n-gram"):
+        NgramVectorizer.from_arrays(3, bad)
+
+
+def test_the_storage_table_bounds_the_markers():
+    # the stored vocabulary holds template ids ≥ 0 and the three markers, the least of them its bound
+    row = next(a for a in ARRAYS if a.name == "vocab_ngrams")
+    assert row.low == min(START, END, PAD) and row.high == "T"

@@ -95,7 +95,7 @@ def test_tiny_cluster_is_reported_as_contamination_not_learned():
     base = np.array([[1.0, 0.0, 0.0], [0.0, 1.0, 0.0], [0.0, 0.0, 1.0]])
     X = sp.csr_matrix(np.vstack([base[0]] * 1 + [base[1]] * 1 + [base[2]]))
     w = np.array([500.0, 499.0, 1.0])  # the third pattern is 0.1% of the sessions
-    model = ClusterModel(k=3, min_cluster_share=0.005, seed=0).fit(X, w)
+    model = ClusterModel(k=3, min_cluster_share=0.005, seed=0).fit(X, sample_weight=w)
     assert len(model.cluster_centers_) == 2
     assert len(model.contamination_) == 1 and model.contamination_[0]["sessions"] == 1
     assert model.labels_[2] == -1
@@ -117,13 +117,13 @@ def _flows_and_matrix(n=600, seed=4):
         flow_of[tuple(seq)] = f
     distinct = list(counts)
     w = np.array([counts[s] for s in distinct], dtype=float)
-    X = NgramVectorizer(3).fit(distinct, w).transform(distinct)[0]
+    X = NgramVectorizer(3).fit(distinct, sample_weight=w).transform(distinct)[0]
     return np.array([flow_of[s] for s in distinct]), X, w
 
 
 def test_forced_streaming_finds_the_three_flows():
     flows, X, w = _flows_and_matrix()
-    model = ClusterModel(k="auto", k_max=8, restarts=3, seed=0, streaming=True).fit(X, w)
+    model = ClusterModel(k="auto", k_max=8, restarts=3, seed=0, streaming=True).fit(X, sample_weight=w)
     assert model.streaming_ and model.k_ == 3
     # every flow is one cluster: the adjusted Rand index (sklearn.metrics.adjusted_rand_score,
     # Hubert & Arabie 1985) is 1 exactly when the two partitions agree up to renaming
@@ -136,7 +136,7 @@ def test_forced_streaming_finds_the_three_flows():
                          ids=["off", "auto-above", "auto-below", "forced"])
 def test_streaming_switch(streaming, rows, expected):
     _, X, w = _flows_and_matrix(200)
-    model = ClusterModel(k=3, seed=0, streaming=streaming, streaming_rows=rows).fit(X, w)
+    model = ClusterModel(k=3, seed=0, streaming=streaming, streaming_rows=rows).fit(X, sample_weight=w)
     assert model.streaming_ is expected
 
 
@@ -144,7 +144,7 @@ def test_streaming_spreads_and_medoids_match_the_definition():
     # spreads_ are the weighted mean distance of members to their centre (before the floor);
     # checked against a direct dense computation
     _, X, w = _flows_and_matrix()
-    model = ClusterModel(k=3, seed=0, streaming=True).fit(X, w)
+    model = ClusterModel(k=3, seed=0, streaming=True).fit(X, sample_weight=w)
     dense = X.toarray()
     for c, center in enumerate(model.cluster_centers_):
         rows = np.flatnonzero(model.labels_ == c)
@@ -157,9 +157,9 @@ def test_silhouette_sample_is_bounded_and_close_to_the_full_value():
     _, X, _ = _flows_and_matrix(3000, seed=7)
     w = np.random.default_rng(8).pareto(1.5, size=X.shape[0]) + 1  # heavy-tailed repeat counts
     full = ClusterModel(k="auto", k_max=4, restarts=2, seed=0, silhouette_sample=10**6,
-                        streaming=True).fit(X, w)
+                        streaming=True).fit(X, sample_weight=w)
     sampled = ClusterModel(k="auto", k_max=4, restarts=2, seed=0, silhouette_sample=400,
-                           streaming=True).fit(X, w)
+                           streaming=True).fit(X, sample_weight=w)
     assert full.silhouette_rows_ == X.shape[0] > 400
     assert 0 < sampled.silhouette_rows_ <= 400
     # the same fits (same seed), only the silhouette differs: the sample stands for sessions

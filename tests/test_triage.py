@@ -39,9 +39,10 @@ def test_two_point_toy_worked_on_paper():
     m = KernelPerceptron("cosine", average=False, shuffle=False).fit(np.eye(2), ["a", "b"])
     assert m.mistakes_ == [2, 0]
     assert m.alpha_.tolist() == [[1.0, -1.0], [-1.0, 1.0]]
-    # (2, 1) normalised is (2, 1)/√5: f_a = 2/√5 − 1/√5 = 1/√5, f_b = −1/√5 (scores sum to 0)
-    scores = m.decision_function(np.array([[2.0, 1.0]]))
-    assert scores[0] == pytest.approx([1 / math.sqrt(5), -1 / math.sqrt(5)])
+    # (2, 1) normalised is (2, 1)/√5: f_a = 2/√5 − 1/√5 = 1/√5, f_b = −1/√5 (scores sum to 0);
+    # with two classes decision_function is f_b alone, as scikit-learn's binary classifiers give it
+    assert m._scores([{"0": 2.0, "1": 1.0}])[0] == pytest.approx([1 / math.sqrt(5), -1 / math.sqrt(5)])
+    assert m.decision_function(np.array([[2.0, 1.0]])) == pytest.approx([-1 / math.sqrt(5)])
     assert m.predict(np.array([[2.0, 1.0], [1.0, 3.0]])).tolist() == ["a", "b"]
     # geometric margin: the distance from (2, 1)/√5 to the diagonal, (2 − 1)/√5/√2 = 1/√10;
     # a point on the diagonal has margin 0
@@ -102,7 +103,7 @@ def test_binary_sign_matches_sklearn_decision_function():
     unit = Xt / np.linalg.norm(Xt, axis=1, keepdims=True)
     ref = Perceptron(random_state=0).fit(X / np.linalg.norm(X, axis=1, keepdims=True), y)
     ours = KernelPerceptron("cosine").fit(X, y)
-    assert (np.sign(ours.decision_function(Xt)[:, 1]) == np.sign(ref.decision_function(unit))).all()
+    assert (np.sign(ours.decision_function(Xt)) == np.sign(ref.decision_function(unit))).all()
 
 
 @pytest.mark.parametrize("kernel, reference", [
@@ -131,7 +132,7 @@ def test_spectrum_kernel_by_hand():
     # a then b (as in the toy above), α = [[1, −1], [−1, 1]]: f_a(a) = 1 − 4/√18.
     m = KernelPerceptron("spectrum", spectrum_n=2, average=False, shuffle=False).fit([a, b], ["p", "q"])
     assert m.alpha_.tolist() == [[1.0, -1.0], [-1.0, 1.0]]
-    assert m.decision_function([a])[0] == pytest.approx([1 - 4 / math.sqrt(18), 4 / math.sqrt(18) - 1])
+    assert m.decision_function([a]) == pytest.approx([4 / math.sqrt(18) - 1])  # f_q = −f_p
 
 
 # -- a labelled-incident scenario (parcel lockers) ------------------------------------------------------

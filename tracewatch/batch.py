@@ -58,8 +58,10 @@ def run_files(pipeline: Pipeline, pairs: list[tuple[str, Path]]) -> None:
 
 def fit_files(cfg: Config, pairs: list[tuple[str, Path]]):
     """Read normal sessions from files, fit a baseline, save it as the current version."""
-    from .baselines import fit_baseline, save_baseline
+    from .baselines import check_writable, save_baseline
+    from .model.baseline import fit_baseline
 
+    check_writable(cfg.state_dir)
     pipeline = Pipeline(cfg)
     run_files(pipeline, pairs)
     baseline = fit_baseline(pipeline.fit_sessions(), pipeline.miner, cfg)

@@ -14,6 +14,7 @@ from typing import Literal
 from pydantic import BaseModel, ConfigDict, Field, ValidationError, field_validator, model_validator
 
 from .errors import ConfigError
+from .model.score import ScorerName
 
 FORMATS = ("text", "jsonl", "syslog", "otlp-json", "strace")
 
@@ -140,7 +141,7 @@ class ModelConfig(_Section):
     k: int | Literal["auto"] = "auto"
     k_max: int = Field(default=16, ge=2)
     false_alarm_rate: float = Field(default=0.005, gt=0, lt=0.5)
-    scorer: Literal["centroid", "knn"] = "centroid"
+    scorer: ScorerName = "centroid"  # a plug-in of tracewatch/model/score.py
     knn_k: int = Field(default=1, ge=1)
     # centroid scorer: how many cluster spreads a session made entirely of n-grams never seen
     # at fit counts for (new transitions between known steps are the commonest anomaly)

@@ -11,17 +11,21 @@ keep their weight (with the idf of a never-seen term) in the norm and in a separ
 from __future__ import annotations
 
 import math
+import numbers
 from collections import Counter
-from collections.abc import Sequence
+from collections.abc import Mapping, Sequence
 
 from typing import TYPE_CHECKING
 
 import numpy as np
+from sklearn.base import BaseEstimator, TransformerMixin
+from sklearn.utils.validation import check_is_fitted
 
 if TYPE_CHECKING:
     import scipy.sparse as sp
 
 START, END = -1, -2
+PAD = -3  # fills an n-gram's row of the stored vocabulary beyond its length
 NGram = tuple[int, ...]
 
 
@@ -48,22 +52,28 @@ class SessionVector:
         self.unseen_mass = unseen_mass  # squared norm of that part (≤ 1)
 
 
-class NgramVectorizer:
-    """Event n-gram tf-idf vectoriser in the scikit-learn estimator shape.
+class NgramVectorizer(TransformerMixin, BaseEstimator):
+    """Event n-gram tf-idf vectoriser, a scikit-learn estimator.
 
-    ``fit(sequences, sample_weight)`` learns ``vocabulary_`` (n-gram → column) and ``idf_``;
-    a weight counts a sequence that many times, so distinct sequences can stand for many
-    identical sessions.
+    ``fit(X, sample_weight=...)`` on event sequences (``X``: sequences of template indices)
+    learns ``vocabulary_`` (n-gram → column), ``idf_``, ``unseen_idf_`` (the idf of an n-gram
+    never seen) and ``n_sessions_``; a weight counts a sequence that many times, so distinct
+    sequences can stand for many identical sessions.
     """
 
     def __init__(self, ngram_max: int = 3) -> None:
         self.ngram_max = ngram_max
 
-    def fit(self, sequences: Sequence[Sequence[int]], sample_weight: Sequence[float] | None = None
+    def fit(self, X: Sequence[Sequence[int]], y=None, sample_weight: Sequence[float] | None = None
             ) -> "NgramVectorizer":
-        weights = np.ones(len(sequences)) if sample_weight is None else np.asarray(sample_weight, float)
+        if not isinstance(self.ngram_max, numbers.Integral) or self.ngram_max < 1:
+            raise ValueError(f"ngram_max must be a whole number of at least 1, not {self.ngram_max!r}")
+        _check_sequences(X)
+        weights = np.ones(len(X)) if sample_weight is None else np.asarray(sample_weight, float)
+        if weights.shape != (len(X),):
+            raise ValueError(f"sample_weight has shape {weights.shape}, expected ({len(X)},)")
         df: Counter = Counter()
-        for seq, w in zip(sequences, weights):
+        for seq, w in zip(X, weights):
             for gram in ngrams(seq, self.ngram_max):
                 df[gram] += w
         grams = sorted(df, key=lambda g: (len(g), g))
@@ -75,12 +85,8 @@ class NgramVectorizer:
         self.n_sessions_ = n
         return self
 
-    def _check(self) -> None:
-        if not hasattr(self, "vocabulary_"):
-            raise RuntimeError("NgramVectorizer is not fitted yet; call fit first")
-
     def vector(self, seq: Sequence[int]) -> SessionVector:
-        self._check()
+        check_is_fitted(self)
         return self._vector(seq)
 
     def _vector(self, seq: Sequence[int]) -> SessionVector:
@@ -104,16 +110,16 @@ class NgramVectorizer:
             unseen[gram] /= norm
         return SessionVector(indices, values, unseen, unseen_sq / (norm * norm))
 
-    def transform(self, sequences: Sequence[Sequence[int]]) -> tuple[sp.csr_matrix, np.ndarray]:
+    def transform(self, X: Sequence[Sequence[int]]) -> tuple[sp.csr_matrix, np.ndarray]:
         """CSR matrix of in-vocabulary weights and the unseen mass of each row."""
-        self._check()
-        vecs = [self._vector(s) for s in sequences]
+        check_is_fitted(self)
+        vecs = [self._vector(s) for s in X]
         return stack(vecs, len(self.vocabulary_)), np.array([v.unseen_mass for v in vecs])
 
     @property
     def grams_(self) -> list[NGram]:
         """The vocabulary's n-grams in column order."""
-        self._check()
+        check_is_fitted(self)
         cached = self.__dict__.get("_grams")
         if cached is None or len(cached) != len(self.vocabulary_):
             cached = self.__dict__["_grams"] = sorted(self.vocabulary_, key=self.vocabulary_.__getitem__)
@@ -123,24 +129,49 @@ class NgramVectorizer:
         parts = ["(start)" if t == START else "(end)" if t == END else text_of(t) for t in gram]
         return " → ".join(parts)
 
-    # persistence: n-grams as a padded int matrix
+    # persistence: the n-grams as rows of an int matrix padded with PAD (tracewatch/model/baseline.py
+    # lists these arrays in the storage table)
     def to_arrays(self) -> dict[str, np.ndarray]:
-        self._check()
+        check_is_fitted(self)
         grams = self.grams_
-        mat = np.full((len(grams), self.ngram_max), -3, dtype=np.int64)
+        mat = np.full((len(grams), self.ngram_max), PAD, dtype=np.int64)
         for i, g in enumerate(grams):
             mat[i, : len(g)] = g
-        return {"vocab_ngrams": mat, "idf": self.idf_,
-                "idf_meta": np.array([self.unseen_idf_, self.n_sessions_])}
+        return {"vocab_ngrams": mat, "idf": self.idf_, "idf_meta": np.array([self.unseen_idf_, self.n_sessions_])}
 
     @classmethod
-    def from_arrays(cls, ngram_max: int, arrays) -> "NgramVectorizer":
+    def from_arrays(cls, ngram_max: int, arrays: Mapping[str, np.ndarray]) -> "NgramVectorizer":
+        """The fitted vectoriser :meth:`to_arrays` describes; ValueError when the n-gram rows are
+        not n-grams (padding inside, markers in the middle) or repeat one another."""
         vec = cls(ngram_max)
-        mat = arrays["vocab_ngrams"]
-        vec.vocabulary_ = {tuple(int(t) for t in row if t != -3): i for i, row in enumerate(mat.tolist())}
+        rows = arrays["vocab_ngrams"].tolist()
+        vocab: dict[NGram, int] = {}
+        for i, row in enumerate(rows):
+            gram = tuple(t for t in row if t != PAD)
+            if (not gram or PAD in row[: len(gram)] or START in gram[1:] or END in gram[:-1]
+                    or (len(gram) == 1 and gram[0] < 0)):
+                raise ValueError(f"vocabulary row {i} is not an n-gram")
+            vocab[gram] = i
+        if len(vocab) != len(rows):
+            raise ValueError("the vocabulary repeats an n-gram")
+        vec.vocabulary_ = vocab
         vec.idf_ = np.asarray(arrays["idf"], dtype=float)
         vec.unseen_idf_, vec.n_sessions_ = (float(x) for x in arrays["idf_meta"])
         return vec
+
+
+def _check_sequences(X) -> None:
+    """``X`` must be event sequences: sequences of whole numbers (template indices)."""
+    what = "X must be event sequences (sequences of template indices)"
+    if isinstance(X, np.ndarray) and X.dtype.kind not in "iuO":
+        raise ValueError(f"{what}, not an array of {X.dtype}")
+    if hasattr(X, "tocsr") or isinstance(X, (str, bytes, Mapping)) or not hasattr(X, "__len__"):
+        raise ValueError(f"{what}, not a {type(X).__name__}")
+    if len(X) == 0:
+        raise ValueError("no event sequences to fit")
+    for seq in X:
+        if isinstance(seq, (str, bytes, Mapping)) or not all(isinstance(e, (int, np.integer)) for e in seq):
+            raise ValueError(f"{what}; found {type(seq).__name__} {str(seq)[:40]}")
 
 
 def stack(vecs: Sequence[SessionVector], n_cols: int) -> sp.csr_matrix:

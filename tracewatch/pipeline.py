@@ -13,15 +13,18 @@ from __future__ import annotations
 from collections import Counter
 from collections.abc import Callable
 from itertools import repeat
+from typing import TYPE_CHECKING
 
 from .alerts.alert import Redactor, build_verdict
-from .baselines import Baseline
 from .config import Config
 from .formats import Format, make_format
 from .records import Record
 from .rejects import reject_log
 from .sessions import Session, Sessionizer
 from .templates import TemplateTree
+
+if TYPE_CHECKING:
+    from .model.baseline import Baseline
 
 SCORE_BATCH = 256
 TICK_EVERY = 1024
@@ -203,7 +206,7 @@ class Pipeline:
         b = self.baseline
         seqs = [tuple(s.events) for s in sessions]
         sources = [s.source for s in sessions]
-        results, p_values, fars, unseens = b.judge(self.scorer, sources, seqs)
+        results, p_values, fars, unseens = b.judge(self.scorer, sources, seqs)  # the one rule
         self.sessions_scored.update(sources)
         on_quiet = self.on_quiet
         for sess, seq, (score, cluster, dist, unseen_share), p, far, unseen in zip(

@@ -37,10 +37,11 @@ import numpy as np
 import orjson
 from pydantic import BaseModel, ConfigDict, ValidationError
 
-from .baselines import POOLED, Baseline, current_version, fit_baseline, load_baseline, save_baseline
+from .baselines import check_writable, current_version, load_baseline, save_baseline
 from .config import Config
 from .errors import StateError
 from .fs import atomic_write
+from .model.baseline import POOLED, Baseline, fit_baseline
 from .templates import Template, TemplateTree
 
 POOL_FILE = "refit-pool.json"
@@ -257,7 +258,7 @@ def binomial_tail(k: int, n: int, p: float) -> float:
 
 class _Judge:
     """Which sessions (template-id sequences) a baseline flags, by the pipeline's own rule
-    (:meth:`tracewatch.baselines.Baseline.judge`)."""
+    (:meth:`tracewatch.model.baseline.Baseline.judge`)."""
 
     def __init__(self, baseline: Baseline) -> None:
         self.baseline = baseline
@@ -276,9 +277,8 @@ class _Judge:
         return tuple(out)
 
     def flagged(self, sessions: list[tuple[str, IdSeq]]) -> np.ndarray:
-        _, _, far, unseen = self.baseline.judge(self.scorer, [src for src, _ in sessions],
-                                                [self.indices(ids) for _, ids in sessions])
-        return far | unseen
+        return self.baseline.judge(self.scorer, [src for src, _ in sessions],
+                                   [self.indices(ids) for _, ids in sessions]).flagged
 
 
 # -- the refit ---------------------------------------------------------------------------------------
@@ -398,6 +398,8 @@ def refit_files(cfg: Config, pairs: list[tuple[str, Path]], *, dry_run: bool = F
     from .batch import run_files
     from .pipeline import Pipeline
 
+    if not dry_run:
+        check_writable(cfg.state_dir)
     baseline = load_baseline(cfg.state_dir)
     pool = QuietPool(cfg.refit.pool_size, cfg.refit.seed)
     store = IncidentStore.open(cfg.state_dir, create=False) if (cfg.state_dir / FILENAME).exists() else None

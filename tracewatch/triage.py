@@ -29,8 +29,10 @@ from typing import Annotated, Literal
 import numpy as np
 import orjson
 from pydantic import BaseModel, ConfigDict, Field, ValidationError, model_validator
+from sklearn.base import BaseEstimator, ClassifierMixin
 from sklearn.feature_extraction import DictVectorizer
-from sklearn.exceptions import NotFittedError
+from sklearn.utils.multiclass import check_classification_targets
+from sklearn.utils.validation import check_array, check_is_fitted, column_or_1d
 
 from .alerts.vectors import TERM_PATTERN, alert_vector
 from .config import TriageConfig
@@ -57,27 +59,30 @@ def spectrum_kernel(a: Sequence[str], b: Sequence[str], n: int) -> int:
     return sum(c * fb[s] for s, c in fa.items())
 
 
-class KernelPerceptron:
-    """Multi-class kernel perceptron in dual form.
+class KernelPerceptron(ClassifierMixin, BaseEstimator):
+    """Multi-class kernel perceptron in dual form, a scikit-learn classifier.
 
     The kernel perceptron (Aizerman, Braverman & Rozonoer, 1964) keeps, per class c, a weight
     vector w_c = Σ_j α_cj φ(x_j) over training examples, so only kernel values K(x_i, x_j) are
     needed. The multi-class update: when the true class t of x_i does not score strictly above
-    every rival, α_ti += 1 and α_ri −= 1 for the best rival r. With ``average`` the dual
+    every rival, α_ti += w_i and α_ri −= w_i for the best rival r (w_i: the example's
+    ``sample_weight``, 1 by default, as a weighted perceptron scales its step). With ``average`` the dual
     coefficients are averaged over all steps of all epochs — the averaged perceptron of Freund &
     Schapire, "Large margin classification using the perceptron algorithm" (1999), whose mistake
     bound holds for any kernel.
 
     Kernels (all normalised so that K(x, x) = 1):
-      - ``cosine``: items are sparse vectors (mappings term → weight) or rows of a 2-D array;
+      - ``cosine``: items are sparse vectors (mappings term → weight) or rows of a 2-D numeric
+        array (checked as scikit-learn checks its input: finite, 2-D, dense);
       - ``rbf``: exp(−gamma ‖x − y‖²) on the same items;
       - ``spectrum``: items are sequences of template ids; the n-spectrum kernel of Leslie, Eskin
         & Noble (PSB 2002), divided by √(K(x,x) K(y,y)) (common practice, so long sessions do
         not dominate).
 
-    Sign convention: ``decision_function`` gives one score per class, higher = more like that
-    class; the scores of a sample sum to 0 (every update adds +1 and −1), so with two classes
-    column 1 is positive exactly when ``classes_[1]`` is predicted.
+    Sign convention: the per-class scores f_c, higher = more like that class, sum to 0 for a
+    sample (every update adds +w and −w). ``decision_function`` gives them all, shape
+    (n_samples, n_classes); with two classes, as scikit-learn's classifiers do, only
+    f_{classes_[1]}, shape (n_samples,): positive exactly when ``classes_[1]`` is predicted.
     """
 
     def __init__(self, kernel: Literal["cosine", "rbf", "spectrum"] = "cosine", *, gamma: float = 1.0,
@@ -92,17 +97,24 @@ class KernelPerceptron:
         self.seed = seed
 
     # -- public --------------------------------------------------------------------------------
-    def fit(self, X, y) -> "KernelPerceptron":
+    def fit(self, X, y, sample_weight=None) -> "KernelPerceptron":
         """Learn ``classes_``, ``alpha_`` (classes × support) and ``support_`` (the examples with a
         non-zero coefficient); ``mistakes_`` counts the updates of each epoch."""
         if self.kernel not in KERNELS:
             raise ValueError(f"kernel must be one of {', '.join(KERNELS)}, not {self.kernel!r}")
-        items, y = _items(X), [str(v) for v in y]
+        items = self._items(X, fitting=True)
+        y = column_or_1d(y, warn=True)
+        check_classification_targets(y)
         if len(items) != len(y) or not items:
             raise ValueError("X and y must be non-empty and of the same length")
-        classes = np.array(sorted(set(y)))
+        w = np.ones(len(items)) if sample_weight is None else np.asarray(sample_weight, dtype=float)
+        if w.shape != (len(items),) or not np.isfinite(w).all() or (w < 0).any():
+            raise ValueError("sample_weight must hold one finite, non-negative weight per example")
+        if not w.any():
+            raise ValueError("sample_weight: every weight is zero, nothing to learn from")
+        classes = np.unique(y)
         if len(classes) < 2:
-            raise ValueError("at least two classes are needed to learn anything")
+            raise ValueError("y holds one class only: at least two classes are needed to learn anything")
         feats = [self._features(it) for it in items]
         sq = np.array([_sq(f) for f in feats])
         vec = DictVectorizer().fit(feats)
@@ -124,9 +136,9 @@ class KernelPerceptron:
                 score = f[t]
                 f[t] = -np.inf
                 rival = int(np.argmax(f))
-                if score <= f[rival]:  # a tie is a mistake: the true class must win outright
-                    alpha[t, i] += 1.0
-                    alpha[rival, i] -= 1.0
+                if score <= f[rival] and w[i] > 0:  # a tie is a mistake: the true class must win outright
+                    alpha[t, i] += w[i]
+                    alpha[rival, i] -= w[i]
                     wrong += 1
                 if self.average:
                     total += alpha
@@ -143,13 +155,14 @@ class KernelPerceptron:
         return self
 
     def decision_function(self, X) -> np.ndarray:
-        """Scores, shape (n_samples, n_classes): f_c(x) = Σ_j α_cj K(s_j, x)."""
-        if not hasattr(self, "alpha_"):
-            raise NotFittedError("this KernelPerceptron is not fitted yet: call fit(X, y) first")
-        return self._scores(_items(X))
+        """Scores f_c(x) = Σ_j α_cj K(s_j, x): (n_samples, n_classes), or (n_samples,) for two classes."""
+        check_is_fitted(self)
+        scores = self._scores(self._items(X))
+        return scores[:, 1] if len(self.classes_) == 2 else scores
 
     def predict(self, X) -> np.ndarray:
-        scores = self.decision_function(X)
+        check_is_fitted(self)
+        scores = self._scores(self._items(X))
         return self.classes_[np.argmax(scores, axis=1)]
 
     def margin(self, X) -> tuple[np.ndarray, np.ndarray]:
@@ -157,7 +170,8 @@ class KernelPerceptron:
         boundary between the predicted class and the runner-up, (f_top − f_second) / ‖w_top −
         w_second‖. With ‖φ(x)‖ = 1 it lies in [0, 1]: near 0 for an item unlike every
         labelled one, or between two classes."""
-        scores = self.decision_function(X)
+        check_is_fitted(self)
+        scores = self._scores(self._items(X))
         order = np.argsort(-scores, axis=1)
         top, second = order[:, 0], order[:, 1]
         rows = np.arange(len(scores))
@@ -168,6 +182,23 @@ class KernelPerceptron:
         return self.classes_[top], margins
 
     # -- workers -------------------------------------------------------------------------------
+    def _items(self, X, *, fitting: bool = False) -> list:
+        """One item per sample: a list of mappings (cosine, rbf) or of sequences (spectrum) as
+        given; anything else is numeric and checked as scikit-learn checks it (2-D, finite, not
+        sparse), each row a mapping column → value (its values as the sequence, for spectrum)."""
+        if isinstance(X, (list, tuple)) and all(
+                isinstance(x, Mapping) if self.kernel != "spectrum" else isinstance(x, (list, tuple)) for x in X):
+            return list(X)
+        A = check_array(X)
+        if fitting:
+            self.n_features_in_ = A.shape[1]
+        elif A.shape[1] != getattr(self, "n_features_in_", A.shape[1]):
+            raise ValueError(f"X has {A.shape[1]} features, but KernelPerceptron is expecting "
+                             f"{self.n_features_in_} features as input")  # scikit-learn's own wording
+        if self.kernel == "spectrum":
+            return [[str(v) for v in row] for row in A.tolist()]
+        return [{str(j): float(v) for j, v in enumerate(row) if v} for row in A.tolist()]
+
     def _features(self, item) -> dict:
         if self.kernel == "spectrum":
             return dict(spectrum([str(t) for t in item], self.spectrum_n))
@@ -198,15 +229,6 @@ class KernelPerceptron:
 
 def _sq(features: Mapping[str, float]) -> float:
     return float(sum(v * v for v in features.values()))
-
-
-def _items(X) -> list:
-    """Rows of a 2-D array become sparse mappings; anything else is taken as a list of items."""
-    if isinstance(X, np.ndarray):
-        if X.ndim != 2:
-            raise ValueError("a numeric X must be 2-D (samples × features)")
-        return [{str(j): float(v) for j, v in enumerate(row) if v} for row in X]
-    return list(X)
 
 
 # -- triage of alerts and incidents -----------------------------------------------------------------

@@ -1,1 +1,9 @@
-"""Scoring stage: the baseline model (fit), its calibration, scoring and explanations."""
+"""Model stage: the baseline model and what it is made of.
+
+    baseline.py   fit_baseline, the fitted Baseline, its judge, the storage table ARRAYS
+    fit.py        ClusterModel (k-means, the knee, the silhouette, contamination)
+    calibrate.py  ConformalThreshold (split-conformal p-values)
+    score.py      the scorer plug-ins (SCORERS) and the cached SessionScorer
+    explain.py    why a session was flagged
+    arrays.py     the storage table's row type and the checks save and load share
+"""

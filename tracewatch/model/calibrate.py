@@ -12,18 +12,33 @@ from __future__ import annotations
 import math
 
 import numpy as np
+from sklearn.base import BaseEstimator
+from sklearn.utils.validation import check_array, check_is_fitted
 
 
-class ConformalThreshold:
-    """``fit(calibration_scores)`` stores them sorted and derives ``threshold_``: an alarm is
-    raised exactly when a score is above it. ``threshold_`` is +inf when the calibration set
-    is too small for the rate (fewer than 1/rate − 1 sessions); ``usable_`` then is False."""
+class ConformalThreshold(BaseEstimator):
+    """A scikit-learn estimator over scores (one nonconformity score per session, higher = more
+    anomalous): ``fit(calibration_scores)`` stores them sorted as ``calibration_scores_`` and
+    derives ``threshold_``: an alarm is raised exactly when a score is above it. ``threshold_``
+    is +inf when the calibration set is too small for the rate (fewer than 1/rate − 1 sessions);
+    ``usable_`` then is False."""
 
     def __init__(self, false_alarm_rate: float = 0.005) -> None:
         self.false_alarm_rate = false_alarm_rate
 
-    def fit(self, scores) -> "ConformalThreshold":
-        cal = np.sort(np.asarray(scores, dtype=float))
+    def fit(self, X, y=None, sample_weight=None) -> "ConformalThreshold":
+        """``X``: the calibration sessions' scores (1-D). Each session counts once: the p-value's
+        guarantee is about exchangeable sessions, so there are no sample weights."""
+        if sample_weight is not None:
+            raise ValueError("ConformalThreshold takes no sample weights: give every calibration score")
+        if not 0 < self.false_alarm_rate < 1:
+            raise ValueError(f"false_alarm_rate must be between 0 and 1, not {self.false_alarm_rate!r}")
+        cal = check_array(X, ensure_2d=False, dtype=np.float64)
+        if cal.ndim == 2 and cal.shape[1] == 1:
+            cal = cal[:, 0]
+        if cal.ndim != 1:
+            raise ValueError(f"X must be scores, one per calibration session (1-D), not shape {cal.shape}")
+        cal = np.sort(cal)
         n = len(cal)
         self.calibration_scores_ = cal
         # alarm iff 1 + #{cal ≥ s} ≤ rate·(n+1)  ⟺  #{cal ≥ s} ≤ m
@@ -33,11 +48,13 @@ class ConformalThreshold:
             -math.inf if self.usable_ else math.inf)
         return self
 
-    def p_values(self, scores) -> np.ndarray:
+    def p_values(self, X) -> np.ndarray:
+        check_is_fitted(self)
         cal = self.calibration_scores_
-        s = np.asarray(scores, dtype=float)
+        s = np.asarray(X, dtype=float)
         at_least = len(cal) - np.searchsorted(cal, s, side="left")
         return (1.0 + at_least) / (len(cal) + 1.0)
 
-    def alarms(self, scores) -> np.ndarray:
-        return np.asarray(scores, dtype=float) > self.threshold_
+    def alarms(self, X) -> np.ndarray:
+        check_is_fitted(self)
+        return np.asarray(X, dtype=float) > self.threshold_

@@ -10,10 +10,12 @@ from __future__ import annotations
 
 import difflib
 from collections.abc import Callable, Sequence
+from typing import TYPE_CHECKING
 
 import numpy as np
 
-from ..features import END, START, NgramVectorizer, SessionVector
+if TYPE_CHECKING:
+    from ..features import NgramVectorizer, SessionVector
 
 MAX_ITEMS = 5
 MAX_DIFF = 20
@@ -106,4 +108,4 @@ def explain(seq: Sequence[int], vec: SessionVector, cluster: int, center: np.nda
     }
 
 
-__all__ = ["END", "START", "explain", "runs", "step_diff"]
+__all__ = ["explain", "runs", "step_diff"]

@@ -24,9 +24,13 @@ import warnings
 
 import numpy as np
 import scipy.sparse as sp
+from sklearn.base import BaseEstimator, ClusterMixin
 from sklearn.cluster import KMeans, MiniBatchKMeans, kmeans_plusplus
 from sklearn.exceptions import ConvergenceWarning
 from sklearn.metrics import pairwise_distances
+from sklearn.utils.validation import _check_sample_weight, validate_data
+
+from .score import SPREAD_FLOOR
 
 SILHOUETTE_SAMPLE = 3000  # sessions drawn for the silhouette: a 3000 × 3000 distance matrix, 72 MB
 STREAMING_ROWS = 50_000  # with streaming="auto", more distinct rows than this fit by mini-batches
@@ -101,6 +105,13 @@ def _blocks(n: int, size: int):
         yield lo, min(n, lo + size)
 
 
+def _row_sq(block) -> np.ndarray:
+    """Squared norm of every row of a sparse or dense block."""
+    if sp.issparse(block):
+        return np.asarray(block.multiply(block).sum(axis=1)).ravel()
+    return np.einsum("ij,ij->i", block, block)
+
+
 def _assign(X, w: np.ndarray, centers: np.ndarray) -> tuple[np.ndarray, np.ndarray, float]:
     """Nearest centre of every row, the squared distance to it and the weighted inertia, in
     blocks of ``CHUNK_ROWS`` rows (never an n × k matrix)."""
@@ -109,7 +120,7 @@ def _assign(X, w: np.ndarray, centers: np.ndarray) -> tuple[np.ndarray, np.ndarr
     c_sq = np.sum(centers * centers, axis=1)
     for lo, hi in _blocks(X.shape[0], CHUNK_ROWS):
         block = X[lo:hi]
-        row_sq = np.asarray(block.multiply(block).sum(axis=1)).ravel()
+        row_sq = _row_sq(block)
         d2 = row_sq[:, None] - 2.0 * np.asarray(block @ centers.T) + c_sq[None, :]
         labels[lo:hi] = np.argmin(d2, axis=1)
         d2min[lo:hi] = np.maximum(d2[np.arange(hi - lo), labels[lo:hi]], 0.0)
@@ -153,10 +164,10 @@ def _minibatch(X, w: np.ndarray, k: int, restarts: int, seed: int, init: np.ndar
     return _Fit(km.cluster_centers_, labels, inertia)
 
 
-class ClusterModel:
-    """k-means baseline in the scikit-learn estimator shape.
+class ClusterModel(ClusterMixin, BaseEstimator):
+    """k-means baseline, a scikit-learn clusterer.
 
-    After ``fit(X, sample_weight)``: ``cluster_centers_`` (dense, contamination removed),
+    After ``fit(X, sample_weight=...)`` (``X``: session vectors, one row per distinct session): ``cluster_centers_`` (dense, contamination removed),
     ``spreads_`` (weighted mean member distance, floored), ``cluster_weights_``,
     ``medoids_`` (row index of each cluster's representative), ``labels_`` (per row, -1 for
     contamination), ``curve_`` (k, inertia, silhouette), ``k_``, ``contamination_``,
@@ -179,16 +190,22 @@ class ClusterModel:
         self.streaming_rows = streaming_rows
         self.silhouette_sample = silhouette_sample
 
+    def __sklearn_tags__(self):
+        tags = super().__sklearn_tags__()
+        tags.input_tags.sparse = True  # CSR session vectors are the usual input
+        return tags
+
     def _kmeans(self, X, w: np.ndarray, k: int):
         if self.streaming_:
             return _minibatch(X, w, k, self.restarts, self.seed)
         return _kmeans(X, w, k, self.restarts, self.seed)
 
-    def fit(self, X: sp.csr_matrix, sample_weight: np.ndarray | None = None) -> "ClusterModel":
+    def fit(self, X, y=None, sample_weight: np.ndarray | None = None) -> "ClusterModel":
+        """``X``: session vectors (sparse CSR or dense), ``sample_weight``: how many sessions each
+        row stands for."""
+        X = validate_data(self, X, accept_sparse="csr", dtype=[np.float64, np.float32])
         n = X.shape[0]
-        if n == 0:
-            raise ValueError("no sessions to fit")
-        w = np.ones(n) if sample_weight is None else np.asarray(sample_weight, dtype=float)
+        w = _check_sample_weight(sample_weight, X, dtype=np.float64)
         self.notes_: list[str] = []
         self.streaming_ = bool(self.streaming is True or (self.streaming == "auto" and n > self.streaming_rows))
         self.silhouette_rows_ = 0
@@ -267,7 +284,7 @@ class ClusterModel:
         for lo, hi in _blocks(X.shape[0], CHUNK_ROWS):
             block, lab = X[lo:hi], self.labels_[lo:hi]
             member = np.flatnonzero(lab >= 0)
-            row_sq = np.asarray(block.multiply(block).sum(axis=1)).ravel()
+            row_sq = _row_sq(block)
             dots = np.asarray(block @ self.cluster_centers_.T)[member, lab[member]]
             own[lo + member] = np.sqrt(np.maximum(row_sq[member] - 2.0 * dots + c_sq[lab[member]], 0.0))
         spreads, medoids = [], []
@@ -277,7 +294,7 @@ class ClusterModel:
             spreads.append(float(np.sum(dc * w[rows]) / np.sum(w[rows])))
             medoids.append(int(rows[np.argmin(dc)]))
         spreads = np.array(spreads)
-        floor = max(1e-2, 0.25 * float(np.median(spreads)))
+        floor = max(SPREAD_FLOOR, 0.25 * float(np.median(spreads)))
         self.spreads_ = np.maximum(spreads, floor)
         self.medoids_ = np.array(medoids, dtype=np.int64)
 

@@ -12,7 +12,8 @@ import logging
 import os
 from pathlib import Path
 
-from ..baselines import Baseline, baselines_dir, current_version, load_baseline_dir
+from ..baselines import baselines_dir, current_version, load_baseline_dir
+from ..model.baseline import Baseline
 from ..errors import BaselineError
 
 log = logging.getLogger("tracewatch.daemon")

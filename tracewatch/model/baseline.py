@@ -1,0 +1,359 @@
+"""The baseline model: what normal sessions look like, and the one rule that judges a session.
+
+Stage: features → **model** → alerts. :func:`fit_baseline` splits normal sessions into a fit
+part and a held-out calibration part, vectorises the fit part (:class:`NgramVectorizer`),
+clusters it (:class:`~tracewatch.model.fit.ClusterModel`), fits the configured scorer plug-in
+(tracewatch/model/score.py) and calibrates every source on its own held-out sessions
+(:class:`~tracewatch.model.calibrate.ConformalThreshold`). The fitted :class:`Baseline` holds
+those parts; :meth:`Baseline.judge` is the one rule that flags a session, used by ``score``,
+the daemon and the refit gates alike. It hands on verdicts to tracewatch/alerts/alert.py and
+its arrays, through :data:`ARRAYS`, to the storage in tracewatch/baselines.py.
+"""
+
+from __future__ import annotations
+
+from collections import Counter
+from collections.abc import Mapping, Sequence
+from typing import TYPE_CHECKING, NamedTuple
+
+import numpy as np
+
+from ..errors import BaselineError
+from .arrays import Array
+from .score import Result, Scorer, SessionScorer, make_scorer
+
+if TYPE_CHECKING:
+    from ..config import Config
+    from ..features import NgramVectorizer, SessionVector
+    from ..templates import TemplateTree
+    from .calibrate import ConformalThreshold
+
+# The estimators (and scikit-learn with them) are imported where a baseline is built, fitted or
+# loaded, not with this module: the storage checks a baseline against ARRAYS before paying for
+# them, so a damaged one is refused at once.
+
+MIN_SESSIONS = 10
+FIT_BLOCK = 50_000  # distinct rows vectorised (and counted per cluster) at a time
+POOLED = "*"  # the calibration of all sources pooled, for sources with too few sessions of their own
+Seq = tuple[int, ...]
+
+# The arrays every baseline keeps (the scorer adds its own: Scorer.arrays). Dimensions: V the
+# vocabulary, G = ngram_max, K clusters, N distinct baseline sessions, T templates, S calibrated
+# sources; the others are lengths of flat arrays.
+ARRAYS: tuple[Array, ...] = (
+    Array("vocab_ngrams", "<i8", ("V", "G"), low=-3, high="T"),  # template ids; START, END, PAD: -1, -2, -3
+    Array("idf", "<f8", ("V",), low=1.0, high=1e6),  # smooth idf ≥ 1
+    Array("idf_meta", "<f8", ("2",), low=1.0, high=1e15),  # the unseen idf, the sessions fitted
+    Array("centers", "<f8", ("K", "V"), low=0.0, high=1.0),  # means of non-negative unit vectors
+    Array("cluster_weights", "<f8", ("K",), low=1e-12, high=1e15),
+    Array("cluster_df", "<f4", ("K", "V"), low=0.0, high=1.0),
+    Array("cluster_sources", "<i8", ("K",), names="sources"),
+    Array("medoid_events", "<i8", ("Em",), low=0, high="T"),
+    Array("medoid_offsets", "<i8", ("K+1",), offsets_of="medoid_events"),
+    Array("normal_events", "<i8", ("En",), low=0, high="T"),
+    Array("normal_offsets", "<i8", ("N+1",), offsets_of="normal_events"),
+    Array("normal_labels", "<i8", ("N",), low=0, high="K"),
+    Array("normal_sources", "<i8", ("N",), names="sources"),
+    Array("calibration_sources", "<i8", ("S",), names="sources"),
+    Array("calibration_scores", "<f8", ("C",), low=0.0, high=1e12),
+    Array("calibration_offsets", "<i8", ("S+1",), offsets_of="calibration_scores"),
+)
+
+
+def storage_table(scorer: Scorer) -> tuple[Array, ...]:
+    """The storage table of a baseline with this scorer: :data:`ARRAYS`, then the scorer's own."""
+    return ARRAYS + scorer.arrays
+
+
+class Judgement(NamedTuple):
+    """What :meth:`Baseline.judge` says of each session."""
+
+    results: list[Result]  # (score, cluster, distance to its centre, unseen share)
+    p_values: np.ndarray  # conformal p-values against the session's source
+    far: np.ndarray  # p ≤ false_alarm_rate
+    unseen: np.ndarray  # holds an event the baseline never saw
+
+    @property
+    def flagged(self) -> np.ndarray:
+        return self.far | self.unseen
+
+
+class Baseline:
+    """A fitted baseline: the template miner, the vectoriser, the clusters (centres, weights,
+    each n-gram's share of a cluster's sessions, the source each belongs to, representative
+    sessions), the distinct baseline sessions (their cluster and source), the scorer plug-in and
+    one conformal threshold per source. Made by :func:`fit_baseline` or by loading
+    (tracewatch/baselines.py); ``version`` is set when it is saved or loaded."""
+
+    def __init__(self, *, miner: TemplateTree, vectorizer: NgramVectorizer, centers: np.ndarray,
+                 cluster_weights: np.ndarray, cluster_df: np.ndarray, cluster_sources: list[str],
+                 medoids: list[Seq], normal_seqs: list[Seq], normal_labels: np.ndarray,
+                 normal_sources: list[str], scorer: Scorer, calibration: dict[str, ConformalThreshold],
+                 report: dict, version: str = "unsaved") -> None:
+        self.miner = miner
+        self.vectorizer = vectorizer
+        self.centers = centers
+        self.cluster_weights = cluster_weights
+        self.cluster_df = cluster_df
+        self.cluster_sources = cluster_sources  # the source each cluster belongs to
+        self.medoids = medoids
+        self.normal_seqs = normal_seqs  # distinct fit sequences
+        self.normal_labels = normal_labels  # their cluster
+        self.normal_sources = normal_sources  # their source
+        self.scorer = scorer
+        # one split-conformal threshold per source (POOLED: all sources, for sources that had too
+        # few calibration sessions): each source keeps its own false-alarm rate
+        self.calibration = calibration
+        self.report = report
+        self.version = version
+        self._by_cluster: dict[int, tuple[np.ndarray, ...]] = {}
+
+    @property
+    def false_alarm_rate(self) -> float:
+        return self.calibration[POOLED].false_alarm_rate
+
+    def conformal(self, source: str) -> ConformalThreshold:
+        """The calibration of ``source`` (or the pooled one when it had too few sessions)."""
+        own = self.calibration.get(source)
+        return own if own is not None and own.usable_ else self.calibration[POOLED]
+
+    def make_scorer(self) -> SessionScorer:
+        """A scorer with its own cache (one per pipeline)."""
+        return SessionScorer(self.vectorizer, self.centers, self.scorer, cluster_sources=self.cluster_sources,
+                             row_sources=self.normal_sources)
+
+    def judge(self, scorer: SessionScorer, sources: Sequence[str], seqs: Sequence[Seq]) -> Judgement:
+        """Score non-empty sessions, each source against its own clusters and calibration. A
+        session is flagged when it is far from the baseline (p ≤ false_alarm_rate) or holds an
+        event the baseline never saw."""
+        rows: dict[str, list[int]] = {}
+        for i, source in enumerate(sources):
+            rows.setdefault(source, []).append(i)
+        results: list = [None] * len(seqs)
+        p_values = np.empty(len(seqs))
+        for source, idx in rows.items():
+            for i, res in zip(idx, scorer.score(source, [seqs[i] for i in idx])):
+                results[i] = res
+            p_values[idx] = self.conformal(source).p_values([results[i][0] for i in idx])
+        n_seen = self.miner.n_seen
+        unseen = np.fromiter((max(s) >= n_seen for s in seqs), dtype=bool, count=len(seqs))
+        return Judgement(results, p_values, p_values <= self.false_alarm_rate, unseen)
+
+    def closest_normal(self, vec: SessionVector, cluster: int) -> Seq:
+        """The distinct baseline session of ``cluster`` closest to a session vector (the
+        cluster's sessions are vectorised on first use: only alerts ask)."""
+        cached = self._by_cluster.get(cluster)
+        if cached is None:
+            rows = np.flatnonzero(self.normal_labels == cluster)
+            vecs = [self.vectorizer._vector(self.normal_seqs[r]) for r in rows]
+            sizes = np.array([len(v.indices) for v in vecs], dtype=np.int64)
+            filled = sizes > 0
+            starts = (np.cumsum(sizes) - sizes)[filled]  # of each filled row's entries
+            data = np.concatenate([v.values for v in vecs]) if vecs else np.zeros(0)
+            indices = np.concatenate([v.indices for v in vecs]) if vecs else np.zeros(0, np.int64)
+            cached = self._by_cluster[cluster] = (rows, data, indices, filled, starts)
+        rows, data, indices, filled, starts = cached
+        if not filled.any() or len(vec.indices) == 0:
+            return self.medoids[cluster]
+        dense = np.zeros(self.centers.shape[1])
+        dense[vec.indices] = vec.values
+        dots = np.zeros(len(rows))
+        dots[filled] = np.add.reduceat(data * dense[indices], starts)  # row sums of the products
+        return self.normal_seqs[int(rows[int(np.argmax(dots))])]
+
+    # -- the arrays of storage_table(self.scorer) -------------------------------------------
+    def to_arrays(self) -> dict[str, object]:
+        """Every array of :func:`storage_table` (names columns as lists of names)."""
+        medoid_events, medoid_offsets = _flat(self.medoids)
+        normal_events, normal_offsets = _flat(self.normal_seqs)
+        cal = list(self.calibration.items())
+        return {
+            **self.vectorizer.to_arrays(),
+            "centers": np.asarray(self.centers, dtype=np.float64),
+            "cluster_weights": np.asarray(self.cluster_weights, dtype=np.float64),
+            "cluster_df": np.asarray(self.cluster_df, dtype=np.float32),
+            "cluster_sources": self.cluster_sources,
+            "medoid_events": medoid_events, "medoid_offsets": medoid_offsets,
+            "normal_events": normal_events, "normal_offsets": normal_offsets,
+            "normal_labels": np.asarray(self.normal_labels, dtype=np.int64),
+            "normal_sources": self.normal_sources,
+            "calibration_sources": [src for src, _ in cal],
+            "calibration_scores": np.concatenate([c.calibration_scores_ for _, c in cal]).astype(np.float64),
+            "calibration_offsets": np.cumsum([0] + [len(c.calibration_scores_) for _, c in cal]).astype(np.int64),
+            **self.scorer.to_arrays(),
+        }
+
+    @classmethod
+    def from_arrays(cls, arrays: Mapping[str, object], *, miner: TemplateTree, scorer: Scorer, ngram_max: int,
+                    false_alarm_rate: float, report: dict, version: str) -> "Baseline":
+        """The baseline :meth:`to_arrays` describes, from arrays already checked against the
+        table (shapes, ranges, offsets); ValueError for what the table cannot say."""
+        from ..features import NgramVectorizer
+        from .calibrate import ConformalThreshold
+
+        if not len(arrays["centers"]) or not len(arrays["normal_labels"]):
+            raise ValueError("a baseline needs a cluster and a baseline session")
+        cal_sources, scores = arrays["calibration_sources"], arrays["calibration_scores"]
+        offsets = arrays["calibration_offsets"].tolist()
+        if len(set(cal_sources)) != len(cal_sources) or POOLED not in cal_sources:
+            raise ValueError("the calibration must name each source once and the pooled one")
+        calibration = {src: ConformalThreshold(false_alarm_rate).fit(scores[a:b])
+                       for src, a, b in zip(cal_sources, offsets, offsets[1:])}
+        return cls(miner=miner, vectorizer=NgramVectorizer.from_arrays(ngram_max, arrays),
+                   centers=arrays["centers"], cluster_weights=arrays["cluster_weights"],
+                   cluster_df=arrays["cluster_df"], cluster_sources=arrays["cluster_sources"],
+                   medoids=_unflat(arrays["medoid_events"], arrays["medoid_offsets"]),
+                   normal_seqs=_unflat(arrays["normal_events"], arrays["normal_offsets"]),
+                   normal_labels=arrays["normal_labels"], normal_sources=arrays["normal_sources"],
+                   scorer=scorer.from_arrays(arrays), calibration=calibration, report=report, version=version)
+
+
+def _flat(seqs: list[Seq]) -> tuple[np.ndarray, np.ndarray]:
+    offsets = np.zeros(len(seqs) + 1, dtype=np.int64)
+    np.cumsum([len(s) for s in seqs], out=offsets[1:])
+    flat = np.array([e for s in seqs for e in s], dtype=np.int64)
+    return flat, offsets
+
+
+def _unflat(flat: np.ndarray, offsets: np.ndarray) -> list[Seq]:
+    items = flat.tolist()
+    return [tuple(items[a:b]) for a, b in zip(offsets[:-1].tolist(), offsets[1:].tolist())]
+
+
+# -- fitting -------------------------------------------------------------------------------
+def fit_baseline(sessions: list[tuple[str, Seq]], miner: TemplateTree, cfg: Config) -> Baseline:
+    """Fit on normal ``(source, event sequence)`` sessions: split train / calibration,
+    vectorise, cluster, fit the scorer, then calibrate each source on its own held-out
+    sessions. Freezes ``miner``: templates made after this are unseen."""
+    import scipy.sparse as sp
+
+    from ..features import NgramVectorizer
+    from .fit import ClusterModel  # scikit-learn's clustering loads only when fitting
+
+    n = len(sessions)
+    if n < MIN_SESSIONS:
+        raise BaselineError(f"only {n} sessions found in the input; a baseline needs at least "
+                            f"{MIN_SESSIONS} (check session_key and the input files)")
+    mcfg = cfg.model
+    rng = np.random.default_rng(mcfg.seed)
+    n_cal = max(1, int(round(n * mcfg.calibration_fraction)))
+    order = rng.permutation(n)
+    cal_idx, train_idx = np.sort(order[:n_cal]), np.sort(order[n_cal:])
+    counts = Counter(sessions[i] for i in train_idx)  # distinct (source, sequence) with counts
+    row_sources = [src for src, _ in counts]
+    distinct = [seq for _, seq in counts]
+    weights = np.array(list(counts.values()), dtype=float)
+
+    vectorizer = NgramVectorizer(cfg.features.ngram_max).fit(distinct, sample_weight=weights)
+    # in blocks: a block's per-row vectors are garbage before the next is made
+    X = sp.vstack([vectorizer.transform(distinct[lo:lo + FIT_BLOCK])[0]
+                   for lo in range(0, len(distinct), FIT_BLOCK)], format="csr")
+    model = ClusterModel(mcfg.k, mcfg.k_max, mcfg.restarts, mcfg.min_cluster_share, mcfg.seed,
+                         streaming=mcfg.streaming, streaming_rows=mcfg.streaming_rows).fit(X, sample_weight=weights)
+    labels = model.labels_
+    keep = np.flatnonzero(labels >= 0)
+    X_kept = X if len(keep) == X.shape[0] else X[keep]
+    scorer = make_scorer(mcfg.scorer, mcfg).fit(X_kept, labels[keep], weights[keep], clusters=model)
+    baseline = Baseline(
+        miner=miner, vectorizer=vectorizer, centers=model.cluster_centers_, cluster_weights=model.cluster_weights_,
+        cluster_df=_cluster_df(X, labels, weights, model), cluster_sources=_owners(labels, weights, row_sources, model),
+        medoids=[distinct[r] for r in model.medoids_], normal_seqs=[distinct[r] for r in keep],
+        normal_labels=labels[keep], normal_sources=[row_sources[r] for r in keep], scorer=scorer,
+        calibration={}, report={})
+    _calibrate(baseline, [sessions[i] for i in cal_idx], mcfg.false_alarm_rate)
+    baseline.report = _report(baseline, model, cfg, n=n, n_train=len(train_idx), n_cal=n_cal,
+                              distinct=distinct, weights=weights)
+    miner.freeze()
+    return baseline
+
+
+def _cluster_df(X, labels: np.ndarray, weights: np.ndarray, model) -> np.ndarray:
+    """The weighted share of each cluster's sessions holding each n-gram (float32, K × V)."""
+    import scipy.sparse as sp
+
+    keep = np.flatnonzero(labels >= 0)
+    k = len(model.cluster_centers_)
+    onehot = sp.csr_matrix((weights[keep], (keep, labels[keep])), shape=(X.shape[0], k))
+    df = np.zeros((k, X.shape[1]))
+    for lo in range(0, X.shape[0], FIT_BLOCK):
+        block = X[lo:lo + FIT_BLOCK]
+        present = sp.csr_matrix((np.ones_like(block.data), block.indices, block.indptr), shape=block.shape)
+        df += (onehot[lo:lo + FIT_BLOCK].T @ present).toarray()
+    return (df / model.cluster_weights_[:, None]).astype(np.float32)
+
+
+def _owners(labels: np.ndarray, weights: np.ndarray, row_sources: list[str], model) -> list[str]:
+    """The source each cluster belongs to: the one most of its sessions come from."""
+    by_source: Counter = Counter()
+    for r in np.flatnonzero(labels >= 0):
+        by_source[(int(labels[r]), row_sources[r])] += weights[r]
+    return [max((w, src) for (c, src), w in by_source.items() if c == cl)[1]
+            for cl in range(len(model.cluster_centers_))]
+
+
+def _calibrate(baseline: Baseline, held_out: list[tuple[str, Seq]], rate: float) -> None:
+    """One threshold per source from its own held-out sessions, and the pooled one."""
+    from .calibrate import ConformalThreshold
+
+    scorer = baseline.make_scorer()
+    by_source: dict[str, list[Seq]] = {}
+    for source, seq in held_out:
+        by_source.setdefault(source, []).append(seq)
+    calibration = baseline.calibration
+    for source in sorted(by_source):
+        scores = [r[0] for r in scorer.score(source, by_source[source])]
+        calibration[source] = ConformalThreshold(rate).fit(scores)
+    calibration[POOLED] = ConformalThreshold(rate).fit(
+        np.concatenate([c.calibration_scores_ for c in calibration.values()]))
+
+
+def _report(b: Baseline, model, cfg: Config, *, n: int, n_train: int, n_cal: int, distinct: list[Seq],
+            weights: np.ndarray) -> dict:
+    """The fit report (kept in the manifest; `tracewatch fit` and `baselines show` print it)."""
+    mcfg, text = cfg.model, b.miner.text
+    k = len(model.cluster_centers_)
+    report = {
+        "sessions": n,
+        "train_sessions": int(n_train),
+        "calibration_sessions": int(n_cal),
+        "distinct_sequences": len(distinct),
+        "templates": len(b.miner.templates),
+        "ngrams": len(b.vectorizer.vocabulary_),
+        "k": int(model.k_),
+        "k_auto": mcfg.k == "auto",
+        "streaming": model.streaming_,
+        "knee": int(model.knee_),
+        "curve": model.curve_,
+        "notes": list(model.notes_),
+        "clusters": [
+            {"cluster": c, "sessions": int(model.cluster_weights_[c]),
+             "spread": round(float(model.spreads_[c]), 4),
+             "representative": [text(e) for e in b.medoids[c]]}
+            for c in range(k)
+        ],
+        "contamination": [
+            {"sessions": item["sessions"], "share": round(item["share"], 5),
+             "representative": [text(e) for e in distinct[max(item["rows"], key=lambda r: weights[r])]]}
+            for item in model.contamination_
+        ],
+        "thresholds": {src: {"threshold": c.threshold_ if c.usable_ else None,
+                             "calibration_sessions": len(c.calibration_scores_)}
+                       for src, c in b.calibration.items()},
+        "false_alarm_rate": mcfg.false_alarm_rate,
+        "scorer": mcfg.scorer,
+        "unseen_weight": mcfg.unseen_weight,
+    }
+    need = int(np.ceil(1 / mcfg.false_alarm_rate)) - 1
+    for src, c in b.calibration.items():
+        if c.usable_:
+            continue
+        if src == POOLED:
+            report["notes"].append(
+                f"the calibration set ({n_cal} sessions) is too small for false_alarm_rate="
+                f"{mcfg.false_alarm_rate}: at least {need} are needed, so only never-seen events can "
+                "raise alerts; fit on more sessions")
+        else:
+            report["notes"].append(
+                f"source {src!r} has {len(c.calibration_scores_)} calibration sessions, fewer than the "
+                f"{need} its own threshold needs; it uses the threshold of all sources pooled")
+    return report
