@@ -32,7 +32,7 @@ import orjson
 
 from ..config import SourceConfig
 from ..records import Record, Rejection
-from . import Output
+from . import Format, Output
 
 # opentelemetry-proto, trace/v1/trace.proto: Span.SpanKind and Status.StatusCode
 SPAN_KINDS = ("UNSPECIFIED", "INTERNAL", "SERVER", "CLIENT", "PRODUCER", "CONSUMER")
@@ -101,9 +101,23 @@ def _depth_change(line: str) -> int:
     return bare.count("{") + bare.count("[") - bare.count("}") - bare.count("]")
 
 
-class OtlpJsonFormat:
+class OtlpJsonFormat(Format):
+    name = "otlp-json"
+    samples = [
+        ({}, ['{"resourceSpans": [{"resource": {"attributes": [{"key": "service.name", "value": {"stringValue": "api"}}]},'
+              ' "scopeSpans": [{"spans": [{"traceId": "5b8efff798038103d269b633813fc60c", "spanId": "eee19b7ec3c1b174",'
+              ' "name": "POST /pickups", "kind": 2, "startTimeUnixNano": "1764496800000000000",'
+              ' "status": {"code": 2}}, {"traceId": "5B8EFFF798038103D269B633813FC60C", "name": "check code",'
+              ' "kind": "SPAN_KIND_INTERNAL", "startTimeUnixNano": 1764496799000000000}, {"name": "no trace"}]}]}]}',
+              "{", '  "resourceSpans": [', '    {"scopeSpans": [{"spans": [{"traceId": "W47/95gDgQPSabYzgT/GDA==",',
+              '      "name": "GET /health"}]}]}', "  ]", "}", '{"resourceSpans": 3}', "[1]", "{cut"]),
+        ({"span_event": ["name"], "max_document_bytes": 1024},
+         ["{", '  "resourceSpans": [', '    {"scopeSpans": [{"spans": [{"traceId": "0af7651916cd43dd8448eb211c80319c",',
+          '      "name": "POST /deposits"}]}]}', "  ]", "}", "{", '  "pad": "' + "p" * 1100 + '",', "}"]),
+    ]
+
     def __init__(self, src: SourceConfig) -> None:
-        self.source = src.name
+        super().__init__(src)
         self.parts = tuple(src.span_event)
         self.max_bytes = src.max_document_bytes
         self.lines_in_documents = 0  # lines that were part of a document that parsed

@@ -28,7 +28,7 @@ from functools import lru_cache
 
 from ..config import SourceConfig
 from ..records import Record, Rejection
-from . import Output
+from . import Format, Output
 
 # RFC 5424 section 6.2.1, table 2 (the same names as RFC 3164 section 4.1.1)
 SEVERITIES = ("emerg", "alert", "crit", "err", "warning", "notice", "info", "debug")
@@ -190,9 +190,22 @@ def _checked(msg: SyslogMessage) -> SyslogMessage:
     return msg
 
 
-class SyslogFormat:
+class SyslogFormat(Format):
+    name = "syslog"
+    samples = [
+        ({"session_field": "[req@32473 id]"},
+         ['<134>1 2026-11-30T10:00:00.250Z locker-gw-3 locker-api 812 - [req@32473 id="a1"] door 5 opened',
+          '<134>1 2026-11-30T10:00:00.250+01:00 locker-gw-3 locker-api 812 ID7 [req@32473 id="a\\"b"][x@1 k="v"] \ufeffok',
+          "<11>1 - - - - - - ", '<134>1 2026-11-30T10:00:00Z h a p m [bad sd', "<999>1 - h a p m - pri too high"]),
+        ({"session_key": r"req=(?P<key>\S+)"},
+         ["<134>Nov 30 10:00:00 locker-gw-3 locker-api[812]: req=a1 door 5 opened",
+          "Nov  3 09:05:01 gw cron: job started", "2026-11-30T10:00:00.5Z gw app: req=b2 rfc3339 file",
+          "Feb 30 10:00:00 gw app: no such day", "plain text, not syslog"]),
+        ({"session_field": "procid"}, ["<13>1 2026-11-30T10:00:00Z gw app 4711 - - started"]),
+    ]
+
     def __init__(self, src: SourceConfig, *, clock: Callable[[], float] = time.time) -> None:
-        self.source = src.name
+        super().__init__(src)
         self.clock = clock
         field = src.session_field
         self._header = field if field in HEADER_FIELDS else None
@@ -217,7 +230,7 @@ class SyslogFormat:
             key = m.group("key") if m else None
         return key
 
-    def feed(self, line: str, offset: int) -> Output | Record:
+    def feed(self, line: str, offset: int) -> Output:
         if not line.strip():
             return [Rejection("empty", line)]
         msg = parse(line, self.clock())
@@ -225,7 +238,4 @@ class SyslogFormat:
             rec = Record(self.source, self._key(None, line), None, None, line, line, offset)
             return [Rejection("not_syslog", line, rec)]
         rec = Record(self.source, self._key(msg, msg.message), msg.ts, msg.severity, msg.message, line, offset)
-        return rec if msg.problem is None else [Rejection(msg.problem, line, rec)]
-
-    def flush(self) -> Output:
-        return []
+        return [rec] if msg.problem is None else [Rejection(msg.problem, line, rec)]
