@@ -26,8 +26,14 @@ from dataclasses import dataclass
 from datetime import datetime, timezone
 from functools import lru_cache
 
+from collections.abc import Sequence
+from itertools import repeat
+from operator import and_
+from functools import partial
+
 from ..config import SourceConfig
-from ..records import Record, Rejection
+from ..records import Columns, Record, Rejection
+from ..timestamps import iso8601_numpy
 from . import Format, Output
 
 # RFC 5424 section 6.2.1, table 2 (the same names as RFC 3164 section 4.1.1)
@@ -57,6 +63,8 @@ _FILE3339 = re.compile(r"(?:<(\d{1,3})>)?(\d{4}-\d\d-\d\dT\d\d:\d\d:\d\d(?:\.\d+
 # a BSD TAG is only taken as such when "[pid]" or ":" ends it (RFC 3164 section 5.4, example 2)
 _TAG = re.compile(r"([^\s\[\]:]{1,48})(?:\[([^\]\s]*)\]:?|:) ?(.*)\Z", re.S)
 _SD_FIELD = re.compile(r"\[(\S+) (\S+)\]")
+_group = re.Match.group
+_AND7 = partial(and_, 7)  # PRI & 7: the severity
 
 
 def unescape_sd(value: str) -> str:
@@ -216,19 +224,55 @@ class SyslogFormat(Format):
         self._sd_param = re.compile(rf' {re.escape(sd.group(2))}="((?:[^"\\]|\\.)*)"', re.S) if sd else None
         self._key_re = re.compile(src.session_key) if src.session_key else None
 
+    def _sd_key(self, sd_text: str) -> str | None:
+        """The structured-data parameter ``session_field`` names, escapes resolved."""
+        element = self._sd_element.search(sd_text)
+        param = self._sd_param.search(element.group(1)) if element else None
+        return unescape_sd(param.group(1)) if param else None
+
     def _key(self, msg: SyslogMessage | None, message: str) -> str | None:
         key = None
         if msg is not None:
             if self._header is not None:
                 key = getattr(msg, self._header)
             elif self._sd_element is not None and msg.sd_text:
-                element = self._sd_element.search(msg.sd_text)
-                param = self._sd_param.search(element.group(1)) if element else None
-                key = unescape_sd(param.group(1)) if param else None
+                key = self._sd_key(msg.sd_text)
         if key is None and self._key_re is not None:
             m = self._key_re.search(message)
             key = m.group("key") if m else None
         return key
+
+    def read_block(self, lines: Sequence[str], offsets: Sequence[int]) -> Columns:
+        """A block of clean RFC 5424 lines (the usual case for files a syslog daemon writes in
+        that form) read column by column in C-level ``map``s; any other block line by line."""
+        found = list(map(_RFC5424.match, lines))
+        if None in found or not found:
+            return super().read_block(lines, offsets)
+        pri, stamp, host, app, procid, msgid, sd_text, message = (list(map(_group, found, repeat(g))) for g in range(1, 9))
+        pris = list(map(int, pri))
+        if max(pris) > 191 or NIL in stamp or None in map(_RFC3339.match, stamp):
+            return super().read_block(lines, offsets)
+        stamps = iso8601_numpy(stamp)
+        if stamps is None:
+            return super().read_block(lines, offsets)
+        if None in message:
+            message = [m or "" for m in message]
+        if BOM in "".join(message):
+            return super().read_block(lines, offsets)
+        n = len(found)
+        if self._header is not None:
+            keys = {"hostname": host, "app_name": app, "procid": procid, "msgid": msgid}[self._header]
+            if NIL in keys:
+                keys = [None if k == NIL else k for k in keys]
+        elif self._sd_element is not None:
+            keys = [self._sd_key(sd) if sd != NIL else None for sd in sd_text]
+        else:
+            keys = [None] * n
+        if self._key_re is not None and None in keys:
+            keys = [k if k is not None else self._key(None, m) for k, m in zip(keys, message)]
+        lines = list(lines)
+        return Columns(keys, stamps, list(map(SEVERITIES.__getitem__, map(_AND7, pris))), message, [None] * n,
+                       lines, list(offsets))
 
     def feed(self, line: str, offset: int) -> Output:
         if not line.strip():
