@@ -256,10 +256,7 @@ class TemplateTree:
         for i, idx in zip(miss, found):
             idxs[i] = idx
         if cache.emptied == emptied:
-            # a shape with an id-like run (a UUID, a hex id) seldom comes again: only the
-            # others are worth remembering by their shape
-            plain = [j for j, (shape, key) in enumerate(zip(missed, keys)) if shape == key]
-            cache.remember(cache.shapes, [missed[j] for j in plain], [found[j] for j in plain])
+            cache.remember(cache.shapes, missed, found)
 
     def add_event(self, event: str) -> int:
         """Template index for a structured event type (no masking, no merging)."""

@@ -93,6 +93,12 @@ def collect(outputs) -> Columns:
     return Columns.of(records, rejected)
 
 
+def _list(seq: Sequence) -> list:
+    """A block's lines or offsets as a column: the list itself when it is one (the pipeline
+    hands each block a list of its own), else a copy."""
+    return seq if type(seq) is list else list(seq)
+
+
 def feed_lines(fmt: Format, lines) -> Output:
     """Everything a format gives for ``lines`` (offsets 0, 1, ...), then what it held back: a
     whole input read at once, for tools and tests."""

@@ -18,7 +18,7 @@ import orjson
 
 from ..config import SourceConfig
 from ..records import Columns, Record, Rejection
-from . import Format, Output, parse_timestamp, timestamps
+from . import Format, Output, _list, parse_timestamp, timestamps
 
 
 def _getter(path: str | None):
@@ -112,9 +112,8 @@ class JsonlFormat(Format):
             stamps = timestamps(stamps)
         elif kinds != {type(None)}:
             stamps = list(map(self._time, stamps))
-        lines = list(lines)
         return Columns(self._texts(self._key, objs), stamps, self._texts(self._level, objs), messages,
-                       self._texts(self._event, objs), lines, list(offsets))
+                       self._texts(self._event, objs), _list(lines), _list(offsets))
 
     def _texts(self, getter, objs: list[dict]) -> list[str | None]:
         """``_text`` of one field of every object (None for all without the getter)."""

@@ -34,7 +34,7 @@ from functools import partial
 from ..config import SourceConfig
 from ..records import Columns, Record, Rejection
 from ..timestamps import iso8601_numpy
-from . import Format, Output
+from . import Format, Output, _list
 
 # RFC 5424 section 6.2.1, table 2 (the same names as RFC 3164 section 4.1.1)
 SEVERITIES = ("emerg", "alert", "crit", "err", "warning", "notice", "info", "debug")
@@ -270,9 +270,8 @@ class SyslogFormat(Format):
             keys = [None] * n
         if self._key_re is not None and None in keys:
             keys = [k if k is not None else self._key(None, m) for k, m in zip(keys, message)]
-        lines = list(lines)
         return Columns(keys, stamps, list(map(SEVERITIES.__getitem__, map(_AND7, pris))), message, [None] * n,
-                       lines, list(offsets))
+                       _list(lines), _list(offsets))
 
     def feed(self, line: str, offset: int) -> Output:
         if not line.strip():

@@ -21,7 +21,7 @@ from itertools import repeat
 
 from ..config import SourceConfig
 from ..records import Columns, Record, Rejection
-from . import Format, Output, parse_timestamp, timestamps
+from . import Format, Output, _list, parse_timestamp, timestamps
 
 _group = re.Match.group
 
@@ -154,8 +154,8 @@ class TextFormat(Format):
     def _whole_lines(self, lines: Sequence[str], offsets: Sequence[int]) -> Columns:
         """Lines that are whole messages (no pattern), none of them blank."""
         n = len(lines)
-        lines = list(lines)
-        return Columns(self._keys(lines, None), [None] * n, [None] * n, lines, [None] * n, lines, list(offsets))
+        lines = _list(lines)
+        return Columns(self._keys(lines, None), [None] * n, [None] * n, lines, [None] * n, lines, _list(offsets))
 
     def _matched(self, lines: Sequence[str], offsets: Sequence[int], matches: list) -> Columns:
         """Lines that all match the pattern, one group at a time over the block (far quicker
@@ -168,5 +168,4 @@ class TextFormat(Format):
         keys = self._keys(lines, list(map(_group, matches, repeat(gkey))) if gkey else None)
         stamps = timestamps(list(map(_group, matches, repeat(gts)))) if gts else [None] * n
         levels = list(map(_group, matches, repeat(glevel))) if glevel else [None] * n
-        lines = list(lines)
-        return Columns(keys, stamps, levels, messages, [None] * n, lines, list(offsets))
+        return Columns(keys, stamps, levels, messages, [None] * n, _list(lines), _list(offsets))
