@@ -101,6 +101,7 @@ class ShapeRow:
     rate: float  # records/s, fastest run
     vs_script: float
     vs_script_spread: str  # the ratio round by round
+    vs_script_cpu: float  # the same ratio in CPU time, which other load disturbs far less
     vs_bare: float
     vs_bare_spread: str
     target_script: float
@@ -126,11 +127,12 @@ class Context:
     only_shapes: list[str] | None = None
     profiling: bool = False  # --profile: what limits each config shape comes from py-spy
 
-    def shape(self, name: str, rate: float, vs_script: float, vs_script_spread: str, vs_bare: float,
-              vs_bare_spread: str, target_script: float, target_bare: float, limits: str, argv: list[str]) -> None:
+    def shape(self, name: str, rate: float, vs_script: float, vs_script_spread: str, vs_script_cpu: float,
+              vs_bare: float, vs_bare_spread: str, target_script: float, target_bare: float, limits: str,
+              argv: list[str]) -> None:
         if self.profiling:
             limits = "; ".join(f"{share:.0f}% {func}" for share, func in top_functions(argv, self.out, 3))
-        self.shapes.append(ShapeRow(name, rate, vs_script, vs_script_spread, vs_bare, vs_bare_spread,
+        self.shapes.append(ShapeRow(name, rate, vs_script, vs_script_spread, vs_script_cpu, vs_bare, vs_bare_spread,
                                     target_script, target_bare, limits))
 
     def process(self, argv: list[str], *, stdout: Path) -> Proc:
@@ -176,11 +178,12 @@ def table(ctx: Context) -> str:
         rss = f"{r.rss_mb:.0f} MB" if r.rss_mb is not None else "-"
         out.append(f"{r.bench:<24} {r.subject:<24} {r.lines:>9} {r.seconds:>8.2f} {r.rate:>9.0f} {rss:>9}  {r.note}")
     if ctx.shapes:
-        out += ["", f"{'config shape':<26} {'records/s':>9} {'× script':>9} {'(rounds)':>11} {'× bare':>7} "
-                f"{'(rounds)':>11}  {'met':<4} what limits it"]
+        out += ["", f"{'config shape':<26} {'records/s':>9} {'× script':>9} {'(rounds)':>11} {'(CPU)':>6} "
+                f"{'× bare':>7} {'(rounds)':>11}  {'met':<4} what limits it"]
         for r in ctx.shapes:
-            out.append(f"{r.shape:<26} {r.rate:>9.0f} {r.vs_script:>8.2f}× {r.vs_script_spread:>11} {r.vs_bare:>6.2f}× "
-                       f"{r.vs_bare_spread:>11}  {'yes' if r.met else 'NO':<4} {r.limits}")
+            out.append(f"{r.shape:<26} {r.rate:>9.0f} {r.vs_script:>8.2f}× {r.vs_script_spread:>11} "
+                       f"{r.vs_script_cpu:>5.2f}× {r.vs_bare:>6.2f}× {r.vs_bare_spread:>11}  {'yes' if r.met else 'NO':<4} "
+                       f"{r.limits}")
         out.append(f"(targets: ≥ {ctx.shapes[0].target_script:g}× the script, ≥ {ctx.shapes[0].target_bare:g}× "
                    "the bare loop)")
     if ctx.checks:

@@ -204,8 +204,10 @@ def run(ctx) -> None:
                 note)
         vs_script = [shape.records / s / rate for s, rate in zip(seconds, round_rates)]
         vs_bare = [b / s for s, b in zip(seconds, shape.bare)]
+        cpu = min(r.cpu_seconds for r in shape.runs)
+        script_cpu = min(r["score_cpu_s"] / r["lines"] for r in reports)  # CPU seconds per record
         ctx.shape(shape.name, shape.records / min(seconds), shape.records / min(seconds) / script_rate,
-                  _spread(vs_script), min(shape.bare) / min(seconds), _spread(vs_bare),
+                  _spread(vs_script), script_cpu * shape.records / cpu, min(shape.bare) / min(seconds), _spread(vs_bare),
                   TARGET_VS_SCRIPT, TARGET_VS_BARE, LIMITS[shape.name], cmds[shape.name])
     ctx.row("score", "bare read+split loop (text)", n_bare, bare_s, None, "in the runner's process")
     ctx.profile_target = cmds[KEY_IN_PATTERN]

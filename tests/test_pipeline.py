@@ -87,3 +87,18 @@ def test_every_format_output_reaches_the_sessions_as_one_value(tmp_path):
         assert pipe.rejected == one.rejected == {("api", "empty"): 1, ("api", "no_match"): 1}
         assert [t.id for t in pipe.miner.templates] == [t.id for t in one.miner.templates]
     assert make_format(cfg.sources[0]).feed(lines[1], 0)[0].message == ""
+
+
+def test_templates_runs_through_the_pipeline_and_leaves_no_state(tmp_path):
+    """`tracewatch templates` reads by the pipeline's one path (multi-line records included:
+    the line a record starts on), and as a listing tool writes nothing where it runs."""
+    cfg = tmp_path / "tracewatch.toml"
+    cfg.write_text("state_dir = \"state\"\n[[sources]]\nname = \"api\"\n"
+                   "line_pattern = '^(?P<level>[A-Z]+) (?P<message>.*)$'\ncontinuation_pattern = '^\\s'\n")
+    log = tmp_path / "x.log"
+    log.write_text("ERROR payment 12 failed\n  at gateway.charge\n  at api.fee\nnot a record\n\nINFO payment 13 failed\n")
+    rows = [json.loads(x) for x in run_cli("templates", "--config", str(cfg), str(log), cwd=tmp_path,
+                                           check=True).stdout.splitlines()]
+    assert [(r["line"], r["template"]) for r in rows] == [(1, "payment <var> failed"), (4, "not a record"),
+                                                          (6, "payment <var> failed")]
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["tracewatch.toml", "x.log"]
