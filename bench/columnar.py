@@ -60,8 +60,8 @@ def pyarrow_text(pattern: str):
 
     def read(lines: list[str]) -> tuple:
         groups = pc.extract_regex(pa.array(lines), pattern)
-        ts = pc.strptime(groups.field("ts"), "%Y-%m-%dT%H:%M:%S", "us", error_is_null=True)  # no fraction format
-        return (pc.divide(pc.cast(ts, pa.int64()), 1e6).to_pylist(), groups.field("level").to_pylist(),
+        ts = pc.cast(pc.cast(groups.field("ts"), pa.timestamp("us", tz="UTC")), pa.int64())  # ISO 8601 text
+        return (pc.divide(ts, 1e6).to_pylist(), groups.field("level").to_pylist(),
                 groups.field("key").to_pylist(), groups.field("message").to_pylist())
     return read
 
@@ -79,13 +79,14 @@ def polars_jsonl():
 def pyarrow_jsonl():
     import io
 
+    import pyarrow as pa
     import pyarrow.compute as pc
     import pyarrow.json as pj
 
     def read(lines: list[str]) -> tuple:
         table = pj.read_json(io.BytesIO("\n".join(lines).encode()))
-        ts = table["time"]  # read as a timestamp by pyarrow's own inference
-        return (pc.divide(pc.cast(ts, "int64"), 1e6).to_pylist(), table["level"].to_pylist(), table["req"].to_pylist(),
+        ts = pc.cast(pc.cast(table["time"], pa.timestamp("us", tz="UTC")), pa.int64())
+        return (pc.divide(ts, 1e6).to_pylist(), table["level"].to_pylist(), table["req"].to_pylist(),
                 table["message"].to_pylist())
     return read
 

@@ -54,25 +54,25 @@ def _shapes(messages: list[str]) -> list[bytes]:
 _ID_RUN = re.compile(rb"(?<![0-9a-fA-F-])[a-fA-F-]*+[0-9][0-9a-fA-F-]*+")
 
 
-_ID_CHARS = np.zeros(256, dtype=bool)
-_ID_CHARS[list(b"0123456789abcdefABCDEF-")] = True
+# byte classes for _collapse_id_runs: 2 a digit, 1 a hex letter or a dash, 0 anything else
+_ID_CLASS = bytes(2 if chr(c) in "0123456789" else 1 if chr(c) in "abcdefABCDEF-" else 0 for c in range(256))
 
 
 def _collapse_id_runs(data: bytes) -> bytes:
     """``_ID_RUN.sub(b"0", data)``, computed with numpy: every maximal run of hex digits and
-    dashes that holds a digit becomes one 0 (about ten times quicker than the regex, whose
+    dashes that holds a digit becomes one 0 (several times quicker than the regex, whose
     engine visits every byte in Python's own loop)."""
-    a = np.frombuffer(data, dtype=np.uint8)
-    if not a.size:
+    cls = np.frombuffer(data.translate(_ID_CLASS), dtype=np.uint8)
+    if not cls.size:
         return data
-    in_run = _ID_CHARS[a]
+    in_run = cls != 0
     starts = in_run.copy()
     starts[1:] &= ~in_run[:-1]
-    run = np.cumsum(starts)  # the number of the run each byte is in (where in_run)
+    run = starts.cumsum(dtype=np.int32)  # the number of the run each byte is in (where in_run)
     has_digit = np.zeros(int(run[-1]) + 1, dtype=bool)
-    has_digit[run[(a >= 48) & (a <= 57)]] = True
+    has_digit[run[cls == 2]] = True
     id_run = in_run & has_digit[run]
-    out = a.copy()
+    out = np.frombuffer(data, dtype=np.uint8).copy()
     out[id_run & starts] = 48
     return out[~id_run | starts].tobytes()
 
