@@ -255,7 +255,10 @@ class TemplateTree:
                 cache.remember(cache.coarse, list(new), list(new.values()))
         for i, idx in zip(miss, found):
             idxs[i] = idx
-        if cache.emptied == emptied:
+        # a block whose shapes met no hit at all, while the shapes level already holds a block's
+        # worth, is not remembered by shape: every message in it is one of a kind (an id or a
+        # session key in each), and would only push out entries that are hit
+        if cache.emptied == emptied and (len(miss) < len(idxs) or len(cache.shapes) < len(miss)):
             cache.remember(cache.shapes, missed, found)
 
     def add_event(self, event: str) -> int:
