@@ -208,6 +208,7 @@ class SyslogFormat(Format):
         ({"session_field": "[req@32473 id]"},
          ['<134>1 2026-11-30T10:00:00.250Z locker-gw-3 locker-api 812 - [req@32473 id="a1"] door 5 opened',
           '<134>1 2026-11-30T10:00:00.250+01:00 locker-gw-3 locker-api 812 ID7 [req@32473 id="a\\"b"][x@1 k="v"] \ufeffok',
+          '<134>1 2026-11-30T10:00:01.5Z gw api 812 - [req@32473 x="1"][req@32473 id="z9"] the SD-ID twice',
           "<11>1 - - - - - - ", '<134>1 2026-11-30T10:00:00Z h a p m [bad sd', "<999>1 - h a p m - pri too high"]),
         ({"session_key": r"req=(?P<key>\S+)"},
          ["<134>Nov 30 10:00:00 locker-gw-3 locker-api[812]: req=a1 door 5 opened",
@@ -226,6 +227,12 @@ class SyslogFormat(Format):
         self._sd_element = re.compile(rf'\[{re.escape(sd.group(1))}((?: {_SD_NAME}="{_SD_VALUE}")*)\]',
                                       re.S) if sd else None
         self._sd_param = re.compile(rf' {re.escape(sd.group(2))}="({_SD_VALUE})"', re.S) if sd else None
+        # both in one search, for blocks: the first such element that holds the parameter (the
+        # same one while the SD-ID occurs once, as RFC 5424 section 6.3.2 requires)
+        self._sd_id = f"[{sd.group(1)}" if sd else ""
+        self._sd_both = re.compile(rf'\[{re.escape(sd.group(1))}(?: {_SD_NAME}="{_SD_VALUE}")*? '
+                                   rf'{re.escape(sd.group(2))}="({_SD_VALUE})"(?: {_SD_NAME}="{_SD_VALUE}")*\]',
+                                   re.S) if sd else None
         self._key_re = re.compile(src.session_key) if src.session_key else None
 
     def _sd_key(self, sd_text: str) -> str | None:
@@ -237,11 +244,10 @@ class SyslogFormat(Format):
     def _sd_keys(self, sd_texts: list[str]) -> list[str | None]:
         """:meth:`_sd_key` of many STRUCTURED-DATA texts (NILVALUE: None), in C-level ``map``s
         while every text has the parameter and no escape."""
-        elements = list(map(self._sd_element.search, sd_texts))
-        if None not in elements:
-            params = list(map(self._sd_param.search, map(_group, elements, repeat(1))))
-            if None not in params:
-                values = list(map(_group, params, repeat(1)))
+        if max(map(str.count, sd_texts, repeat(self._sd_id))) == 1:
+            found = list(map(self._sd_both.search, sd_texts))
+            if None not in found:
+                values = list(map(_group, found, repeat(1)))
                 if "\\" not in "".join(values):
                     return values
         return [self._sd_key(sd) if sd != NIL else None for sd in sd_texts]
@@ -264,24 +270,24 @@ class SyslogFormat(Format):
         found = list(map(_RFC5424.match, lines))
         if None in found or not found:
             return super().read_block(lines, offsets)
-        pri, stamp, host, app, procid, msgid, sd_text, message = (list(map(_group, found, repeat(g))) for g in range(1, 9))
-        pris = list(map(int, pri))
-        if max(pris) > 191 or NIL in stamp or None in map(_RFC3339.match, stamp):
-            return super().read_block(lines, offsets)
-        stamps = iso8601_numpy(stamp)
+        pris = list(map(int, map(_group, found, repeat(1))))
+        stamp = list(map(_group, found, repeat(2)))
+        # every text in the layout of the first (iso8601_numpy checks it), which is RFC 3339's
+        stamps = iso8601_numpy(stamp) if max(pris) <= 191 and _RFC3339.match(stamp[0]) else None
         if stamps is None:
             return super().read_block(lines, offsets)
+        message = list(map(_group, found, repeat(8)))
         if None in message:
             message = [m or "" for m in message]
         if BOM in "".join(message):
             return super().read_block(lines, offsets)
         n = len(found)
         if self._header is not None:
-            keys = {"hostname": host, "app_name": app, "procid": procid, "msgid": msgid}[self._header]
+            keys = list(map(_group, found, repeat(3 + HEADER_FIELDS.index(self._header))))
             if NIL in keys:
                 keys = [None if k == NIL else k for k in keys]
         elif self._sd_element is not None:
-            keys = self._sd_keys(sd_text)
+            keys = self._sd_keys(list(map(_group, found, repeat(7))))
         else:
             keys = [None] * n
         if self._key_re is not None and None in keys:
