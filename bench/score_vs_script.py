@@ -65,11 +65,12 @@ SOURCES = {
 # what limits each shape: py-spy's top own-time entries on the 1M-line day (bench/run.py
 # --profile fills this column afresh); see bench/README.md
 LIMITS = {
-    KEY_IN_PATTERN: "line regex + groups, template caches, sessions (see README)",
-    "text, session_key regex": "key regex search per line; coarse template keys (every message holds an id)",
-    "jsonl": "orjson.loads (a dict and five strings per line)",
-    "syslog": "the RFC 5424 regex per line (per-record parser)",
-    "otlp-json": "per-span Python: raw text (orjson.dumps), ids, kinds",
+    KEY_IN_PATTERN: "the line regex and its group columns; template cache lookups; the sessionizer loop",
+    "text, session_key regex": "as above, plus the session_key search in every line and coarse template keys "
+                               "for every message (each holds its request id)",
+    "jsonl": "orjson.loads: a dict and five strings per line",
+    "syslog": "the RFC 5424 regex per line (structured data checked), the structured-data key search",
+    "otlp-json": "decoding each export and re-encoding each span as its raw text (orjson); per-span Python",
 }
 
 
