@@ -51,13 +51,16 @@ def _text(value) -> str | None:
 class JsonlFormat(Format):
     name = "jsonl"
     samples = [
-        ({"session_key": "req"},
-         ['{"time": "2026-11-30T10:00:00.250Z", "level": "INFO", "req": "a1", "message": "door 5 opened"}',
-          '{"time": 1764496800, "level": "WARN", "req": 7, "message": "door 5 slow"}',
-          '{"time": 1764496800123, "req": null, "message": "courier CR1 signed off"}']),
-        ({"session_key": "ctx.req", "message_field": "msg", "event_field": "kind"},
-         ['{"kind": "door.open", "ctx": {"req": "a"}}', '{"msg": "fee 2.50 due", "ctx": {"req": "b"}, "kind": ""}',
-          '{"msg": "x", "ctx": [1]}', '[1, 2]', '{"other": true}']),
+        ({"session_key": "req"}, """\
+{"time": "2026-11-30T10:00:00.250Z", "level": "INFO", "req": "a1", "message": "door 5 opened"}
+{"time": 1764496800, "level": "WARN", "req": 7, "message": "door 5 slow"}
+{"time": 1764496800123, "req": null, "message": "courier CR1 signed off"}""".splitlines()),
+        ({"session_key": "ctx.req", "message_field": "msg", "event_field": "kind"}, """\
+{"kind": "door.open", "ctx": {"req": "a"}}
+{"msg": "fee 2.50 due", "ctx": {"req": "b"}, "kind": ""}
+{"msg": "x", "ctx": [1]}
+[1, 2]
+{"other": true}""".splitlines()),
     ]
 
     def __init__(self, src: SourceConfig) -> None:
