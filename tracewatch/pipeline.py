@@ -119,12 +119,11 @@ class Pipeline:
         idxs = self.miner.add_many(cols.messages, cols.events)
         if self.on_records is not None:
             self.on_records(source, stream, cols, idxs)
+        columns = (cols.keys, cols.times, idxs, cols.raws, cols.offsets, cols.messages)
         for lo in range(0, len(idxs), TICK_EVERY):
-            hi = lo + TICK_EVERY
+            part = columns if len(idxs) <= TICK_EVERY else [c[lo:lo + TICK_EVERY] for c in columns]
             now = self.clock() if self.clock is not None else self._file_watermark
-            newest = self.sessionizer.add_many(source, cols.keys[lo:hi], cols.times[lo:hi], idxs[lo:hi],
-                                               cols.raws[lo:hi], cols.offsets[lo:hi], cols.messages[lo:hi],
-                                               now, self._closed)
+            newest = self.sessionizer.add_many(source, *part, now, self._closed)
             if newest is not None:
                 self._watermark = max(self._watermark, newest)
                 self._file_watermark = max(self._file_watermark, newest)
