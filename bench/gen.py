@@ -12,6 +12,7 @@ from __future__ import annotations
 import hashlib
 import json
 import math
+import re
 from dataclasses import dataclass
 from datetime import datetime, timezone
 from pathlib import Path
@@ -19,6 +20,9 @@ from pathlib import Path
 from tracewatch.demo import scenario as scenario_module
 from tracewatch.demo.run import CONFIG
 from tracewatch.demo.scenario import Scenario, generate, labels, parcel_lockers, render_text
+from tracewatch.demo.traces import render_otlp
+
+import orjson
 
 OUT = Path(__file__).resolve().parent / "out"
 PILOT_SESSIONS = 2000
@@ -45,15 +49,17 @@ def _mean_session_length(scenario: Scenario, seed: int) -> float:
     return sum(len(s.steps) for s in pilot) / len(pilot)
 
 
-def _write(path: Path, scenario: Scenario, n_lines: int, *, seed: int, day: int, anomalies: bool) -> LogFile:
-    """Generate about ``n_lines`` (never fewer) lines of one day and write them to ``path``."""
+def _sessions(scenario: Scenario, n_lines: int, *, seed: int, day: int, anomalies: bool) -> list:
+    """The generated sessions of one day of about ``n_lines`` (never fewer) lines."""
     per_session = _mean_session_length(scenario, seed)
     n_sessions = math.ceil(n_lines * 1.02 / per_session)  # a small margin so the file is never short
     per_kind = max(1, round(n_sessions * ANOMALY_SHARE)) if anomalies else 0
     n_normal = n_sessions - 6 * per_kind if anomalies else n_sessions
-    sessions = generate(scenario, n_normal, per_kind, seed=seed, span_s=SPAN_S,
-                        start=datetime(2026, 11, day, tzinfo=timezone.utc))
-    lines = render_text(scenario, sessions)
+    return generate(scenario, n_normal, per_kind, seed=seed, span_s=SPAN_S,
+                    start=datetime(2026, 11, day, tzinfo=timezone.utc))
+
+
+def _write_lines(path: Path, lines) -> None:
     path.parent.mkdir(parents=True, exist_ok=True)
     tmp = path.with_suffix(".tmp")
     with open(tmp, "w", encoding="utf-8") as fh:
@@ -61,6 +67,13 @@ def _write(path: Path, scenario: Scenario, n_lines: int, *, seed: int, day: int,
             fh.write(line)
             fh.write("\n")
     tmp.replace(path)
+
+
+def _write(path: Path, scenario: Scenario, n_lines: int, *, seed: int, day: int, anomalies: bool) -> LogFile:
+    """Generate about ``n_lines`` (never fewer) lines of one day and write them to ``path``."""
+    sessions = _sessions(scenario, n_lines, seed=seed, day=day, anomalies=anomalies)
+    lines = render_text(scenario, sessions)
+    _write_lines(path, lines)
     label_path = None
     if anomalies:
         label_path = path.with_suffix(".labels.jsonl")
@@ -82,9 +95,61 @@ def log_file(kind: str, n_lines: int, *, seed: int = DEFAULT_SEED, regen: bool =
     if path.exists() and meta.get("scenario") == scenario_version() and not regen:
         return LogFile(path, meta["lines"], meta["sessions"],
                        path.with_suffix(".labels.jsonl") if anomalies else None)
+    return _write(path, parcel_lockers(), n_lines, **_day(kind, seed))
+
+
+def _day(kind: str, seed: int) -> dict:
     # the baseline day and the scored day differ in seed and date, like two real days
-    return _write(path, parcel_lockers(), n_lines, seed=seed + (1 if anomalies else 0),
-                  day=30 if anomalies else 29, anomalies=anomalies)
+    anomalies = kind == "scored"
+    return {"seed": seed + (1 if anomalies else 0), "day": 30 if anomalies else 29, "anomalies": anomalies}
+
+
+# -- the same records in the other input formats ------------------------------------------------
+_SEVERITY = {"INFO": 6, "WARN": 4, "ERROR": 3}  # RFC 5424 section 6.2.1, table 2
+SYSLOG_FACILITY = 16  # local0
+
+
+def _fresh(out: Path, source: Path) -> bool:
+    return out.exists() and out.stat().st_mtime >= source.stat().st_mtime
+
+
+def _records(text: LogFile):
+    """``(ts, level, service, key, message)`` of every line of a generated text log."""
+    pattern = re.compile(parcel_lockers().line_pattern)
+    with open(text.path, encoding="utf-8") as fh:
+        for line in fh:
+            m = pattern.match(line.rstrip("\n"))
+            yield m["ts"], m["level"], m["svc"], m["key"], m["message"]
+
+
+def as_jsonl(text: LogFile) -> Path:
+    """The text log's records as JSON lines ``{"time", "level", "service", "req", "message"}``."""
+    out = text.path.with_suffix(".jsonl")
+    if not _fresh(out, text.path):
+        _write_lines(out, (orjson.dumps({"time": ts, "level": lv, "service": svc, "req": key, "message": msg}).decode()
+                           for ts, lv, svc, key, msg in _records(text)))
+    return out
+
+
+def as_syslog(text: LogFile) -> Path:
+    """The text log's records as RFC 5424 lines, the request id as a structured-data parameter."""
+    out = text.path.with_suffix(".syslog")
+    if not _fresh(out, text.path):
+        _write_lines(out, (f'<{SYSLOG_FACILITY * 8 + _SEVERITY[lv]}>1 {ts} locker-gw-3 {svc} 812 - '
+                           f'[req@32473 id="{key}"] {msg}' for ts, lv, svc, key, msg in _records(text)))
+    return out
+
+
+def as_otlp(kind: str, n_lines: int, text: LogFile, seed: int = DEFAULT_SEED) -> tuple[Path, int]:
+    """The same day's sessions as OTLP/JSON trace exports (``tracewatch.demo.traces``: one trace a
+    session, a span a step plus the request's own), and the number of spans."""
+    out = text.path.with_suffix(".otlp.jsonl")
+    meta = out.with_suffix(".meta.json")
+    if not (_fresh(out, text.path) and meta.exists()):
+        sessions = _sessions(parcel_lockers(), n_lines, **_day(kind, seed))
+        _write_lines(out, render_otlp(sessions, seed=seed))
+        meta.write_text(json.dumps({"spans": sum(len(s.steps) + 1 for s in sessions)}))
+    return out, json.loads(meta.read_text())["spans"]
 
 
 def write_config(folder: Path) -> Path:

@@ -29,7 +29,7 @@ from pathlib import Path
 HERE = Path(__file__).resolve().parent
 OUT = HERE / "out"
 BENCHMARKS = {"score": "score_vs_script", "formats": "formats", "daemon": "daemon",
-              "jsonl": "jsonl", "scoring": "scoring", "fit_scale": "fit_scale"}  # name -> module with run(ctx)
+              "scoring": "scoring", "fit_scale": "fit_scale"}  # name -> module with run(ctx)
 DEFAULT_LINES = 1_000_000
 QUICK_LINES = 100_000
 BASELINE_SHARE = 0.2  # the baseline file is this share of the scored one (at least 50k lines)
@@ -94,6 +94,26 @@ class Check:
 
 
 @dataclass
+class ShapeRow:
+    """One config shape of the score benchmark against its two targets."""
+
+    shape: str
+    rate: float  # records/s, fastest run
+    vs_script: float
+    vs_script_spread: str  # the ratio round by round
+    vs_script_cpu: float  # the same ratio in CPU time, which other load disturbs far less
+    vs_bare: float
+    vs_bare_spread: str
+    target_script: float
+    target_bare: float
+    limits: str
+
+    @property
+    def met(self) -> bool:
+        return self.vs_script >= self.target_script and self.vs_bare >= self.target_bare
+
+
+@dataclass
 class Context:
     lines: int
     baseline_lines: int
@@ -103,6 +123,17 @@ class Context:
     rows: list[Row] = field(default_factory=list)
     checks: list[Check] = field(default_factory=list)
     profile_target: list[str] | None = None
+    shapes: list[ShapeRow] = field(default_factory=list)
+    only_shapes: list[str] | None = None
+    profiling: bool = False  # --profile: what limits each config shape comes from py-spy
+
+    def shape(self, name: str, rate: float, vs_script: float, vs_script_spread: str, vs_script_cpu: float,
+              vs_bare: float, vs_bare_spread: str, target_script: float, target_bare: float, limits: str,
+              argv: list[str]) -> None:
+        if self.profiling:
+            limits = "; ".join(f"{share:.0f}% {func}" for share, func in top_functions(argv, self.out, 3))
+        self.shapes.append(ShapeRow(name, rate, vs_script, vs_script_spread, vs_script_cpu, vs_bare, vs_bare_spread,
+                                    target_script, target_bare, limits))
 
     def process(self, argv: list[str], *, stdout: Path) -> Proc:
         """Run a command to the end through ``LAUNCHER``; its wall time and its own peak RSS."""
@@ -146,6 +177,15 @@ def table(ctx: Context) -> str:
     for r in ctx.rows:
         rss = f"{r.rss_mb:.0f} MB" if r.rss_mb is not None else "-"
         out.append(f"{r.bench:<24} {r.subject:<24} {r.lines:>9} {r.seconds:>8.2f} {r.rate:>9.0f} {rss:>9}  {r.note}")
+    if ctx.shapes:
+        out += ["", f"{'config shape':<26} {'records/s':>9} {'× script':>9} {'(rounds)':>11} {'(CPU)':>6} "
+                f"{'× bare':>7} {'(rounds)':>11}  {'met':<4} what limits it"]
+        for r in ctx.shapes:
+            out.append(f"{r.shape:<26} {r.rate:>9.0f} {r.vs_script:>8.2f}× {r.vs_script_spread:>11} "
+                       f"{r.vs_script_cpu:>5.2f}× {r.vs_bare:>6.2f}× {r.vs_bare_spread:>11}  {'yes' if r.met else 'NO':<4} "
+                       f"{r.limits}")
+        out.append(f"(targets: ≥ {ctx.shapes[0].target_script:g}× the script, ≥ {ctx.shapes[0].target_bare:g}× "
+                   "the bare loop)")
     if ctx.checks:
         out += ["", f"{'ratio':<40} {'measured':>9} {'target':>8}  met"]
         for c in ctx.checks:
@@ -160,14 +200,16 @@ def _shares(own: Counter, incl: Counter, total: float, top: int) -> list[str]:
     return lines
 
 
-def profile(argv: list[str], out: Path, top: int = 20) -> str:
+def profile_shares(argv: list[str], out: Path) -> tuple[str, Counter, Counter, float]:
     """Profile ``python -m MODULE ...``: with py-spy (sampling, so shares are not skewed by
     per-call overhead) when it is installed next to this Python, else with cProfile. Start-up
-    imports are lumped into one line."""
+    imports are lumped into one line. Gives a heading, own and inclusive time per function
+    and the total."""
     shown = " ".join(Path(a).name if "/" in a else a for a in argv)
     own: Counter = Counter()
     incl: Counter = Counter()
     spy = Path(sys.executable).with_name("py-spy")
+    out.mkdir(parents=True, exist_ok=True)
     if spy.exists():
         raw = out / "profile.pyspy.txt"
         with open(out / "profile.stdout", "wb") as fh:
@@ -186,18 +228,27 @@ def profile(argv: list[str], out: Path, top: int = 20) -> str:
             own[frames[-1]] += int(n)
             for f in set(frames):
                 incl[f] += int(n)
-        head = f"py-spy, {total} samples at 200 Hz of: {shown}"
-    else:
-        prof = out / "profile.pstats"
-        with open(out / "profile.stdout", "wb") as fh:
-            subprocess.run([sys.executable, "-m", "cProfile", "-o", str(prof), *argv[1:]], stdout=fh, check=True)
-        stats = pstats.Stats(str(prof))
-        total = stats.total_tt  # type: ignore[attr-defined]
-        for (file, line, name), (_, _, tt, ct, _) in stats.stats.items():  # type: ignore[attr-defined]
-            key = f"{name} ({Path(file).name})" if line else name
-            own[key] += tt
-            incl[key] += ct
-        head = f"cProfile (per-call overhead inflates small functions) of: {shown}"
+        return f"py-spy, {total} samples at 200 Hz of: {shown}", own, incl, total
+    prof = out / "profile.pstats"
+    with open(out / "profile.stdout", "wb") as fh:
+        subprocess.run([sys.executable, "-m", "cProfile", "-o", str(prof), *argv[1:]], stdout=fh, check=True)
+    stats = pstats.Stats(str(prof))
+    for (file, line, name), (_, _, tt, ct, _) in stats.stats.items():  # type: ignore[attr-defined]
+        key = f"{name} ({Path(file).name})" if line else name
+        own[key] += tt
+        incl[key] += ct
+    return (f"cProfile (per-call overhead inflates small functions) of: {shown}", own, incl,
+            stats.total_tt)  # type: ignore[attr-defined]
+
+
+def top_functions(argv: list[str], out: Path, top: int) -> list[tuple[float, str]]:
+    """The ``top`` functions by own time, as (percent, name)."""
+    _, own, _, total = profile_shares(argv, out)
+    return [(100 * t / total, name) for name, t in own.most_common(top)]
+
+
+def profile(argv: list[str], out: Path, top: int = 20) -> str:
+    head, own, incl, total = profile_shares(argv, out)
     return "\n".join([head, *_shares(own, incl, total, top)])
 
 
@@ -209,10 +260,13 @@ def main(argv: list[str] | None = None) -> int:
     ap.add_argument("--only", nargs="+", choices=sorted(BENCHMARKS), help="run only these benchmarks")
     ap.add_argument("--regen", action="store_true", help="rewrite the generated input files")
     ap.add_argument("--repeat", type=int, default=3, help="runs per timed subject, the fastest counts (default 3)")
-    ap.add_argument("--profile", action="store_true", help="also profile tracewatch on the same input")
+    ap.add_argument("--profile", action="store_true",
+                    help="also profile tracewatch on the same input (and each config shape of `score`)")
+    ap.add_argument("--shape", nargs="+", metavar="SHAPE", help="score: only these config shapes (and the key-in-pattern one)")
     a = ap.parse_args(argv)
     lines = QUICK_LINES if a.quick else a.lines or int(os.environ.get("TRACEWATCH_BENCH_LINES", DEFAULT_LINES))
-    ctx = Context(lines, max(50_000, int(lines * BASELINE_SHARE)), a.regen, max(1, a.repeat))
+    ctx = Context(lines, max(50_000, int(lines * BASELINE_SHARE)), a.regen, max(1, a.repeat),
+                  only_shapes=a.shape, profiling=a.profile)
     started = datetime.now(timezone.utc)
     print(f"tracewatch benchmarks, {started:%Y-%m-%d %H:%M} UTC, {machine()}", file=sys.stderr)
     for name in a.only or BENCHMARKS:
@@ -223,6 +277,7 @@ def main(argv: list[str] | None = None) -> int:
     print(table(ctx))
     results = {"date": started.isoformat(), "machine": machine(), "lines": lines, "repeat": ctx.repeat,
                "rows": [{**asdict(r), "lines_per_s": r.rate} for r in ctx.rows],
+               "shapes": [{**asdict(r), "met": r.met} for r in ctx.shapes],
                "checks": [{**asdict(c), "met": c.met} for c in ctx.checks]}
     if a.profile and ctx.profile_target:
         text = profile(ctx.profile_target, ctx.out)

@@ -19,7 +19,7 @@ def fitted(demo_fit):
 
 
 def _feed(pipe: Pipeline, lines: list[str], start: int) -> None:
-    pipe.feed_lines("api", "day", [(line, i, None) for i, line in enumerate(lines, start)])
+    pipe.feed_block("api", "day", list(lines), list(range(start, start + len(lines))))
 
 
 def test_restored_pipeline_gives_the_verdicts_of_an_uninterrupted_run(fitted, tmp_path):

@@ -60,23 +60,19 @@ def test_recall_and_false_alarm_rate(tmp_path, scenario, scorer, seed):
     assert t["normal"]["share"] <= 2 * RATE
 
 
-def test_block_path_and_line_path_give_the_same_verdicts(tmp_path, monkeypatch):
-    """Batch reading hands whole blocks to the format (match_block) when every line matches;
-    the result must be what feeding the same lines one by one gives."""
+def test_block_reader_and_per_record_parser_give_the_same_verdicts(tmp_path, monkeypatch):
+    """Batch reading hands blocks to the format's block reader (text: one regex column at a time);
+    the verdicts must be what its per-record parser gives for the same lines, one after another
+    (``Format.read_block``, the loop every format starts from)."""
+    from tracewatch.formats import Format
     from tracewatch.formats.text import TextFormat
-    from tracewatch.pipeline import Pipeline
     from tracewatch.sources import files
-    from tracewatch.sources.files import read_lines
 
     monkeypatch.setattr(files, "CHUNK", 1 << 16)  # many blocks; only the last one has bad lines
-    used = []
-    original = TextFormat.match_block
-    monkeypatch.setattr(TextFormat, "match_block", lambda self, lines: used.append(original(self, lines)) or used[-1])
-
     scenario = parcel_lockers()
     base, day, _ = write_scenario(tmp_path, scenario, seed=31, n_baseline=1500, n_normal=600, per_kind=5)
-    with open(day, "ab") as fh:  # non-ASCII text (the block's own decoding path), then lines that
-        # force the per-line path for their part: invalid UTF-8, no match, blank
+    with open(day, "ab") as fh:  # non-ASCII text (the block's own decoding path), then invalid
+        # UTF-8, a line the pattern does not match and a blank one
         fh.write("2026-11-30T23:59:59.000Z INFO [locker-api] req=zz01 courier Zoë authenticated\n".encode())
         fh.write(b"2026-11-30T23:59:59.500Z INFO [locker-api] req=zz02 bad \xff byte\n")
         fh.write(b"not a log line at all\n\n")
@@ -86,15 +82,13 @@ def test_block_path_and_line_path_give_the_same_verdicts(tmp_path, monkeypatch):
     baseline, _, _ = fit_files(cfg, assign_sources(cfg, [str(base)]))
     by_block: list[dict] = []
     blocked = score_files(cfg, assign_sources(cfg, [str(day)]), baseline, by_block.append, score_all=True)
-    by_line: list[dict] = []
+    monkeypatch.setattr(TextFormat, "read_block", Format.read_block)
     fresh = fit_files(cfg, assign_sources(cfg, [str(base)]))[0]
-    pipe = Pipeline(cfg, fresh, on_verdict=by_line.append, score_all=True)
-    pipe.feed_lines("app", str(day), read_lines(day, 65536))
-    pipe.flush()
+    by_line: list[dict] = []
+    pipe = score_files(cfg, assign_sources(cfg, [str(day)]), fresh, by_line.append, score_all=True)
     strip = lambda vs: sorted((v["alert_id"], v["alert"], v["score"], tuple(v["reasons"])) for v in vs)  # noqa: E731
     assert strip(by_block) == strip(by_line) and len(by_block) > 600
-    # both paths were taken: blocks read in bulk, and the part with unreadable lines line by line
-    # (only the per-line path rejects lines)
-    assert sum(u is not None for u in used) >= 5 and sum(blocked.rejected.values()) == 2
-    assert blocked.records == pipe.records and blocked.lines == pipe.lines and blocked.rejected == pipe.rejected
+    assert [t.id for t in fresh.miner.templates] == [t.id for t in baseline.miner.templates]
+    assert blocked.records == pipe.records and blocked.lines == pipe.lines
+    assert blocked.rejected == pipe.rejected == {("app", "no_match"): 1, ("app", "empty"): 1}
     assert blocked.repaired == pipe.repaired == {("app", "invalid_utf8"): 1}

@@ -15,7 +15,7 @@ import pytest
 
 from tracewatch.batch import fit_files, score_files
 from tracewatch.config import SourceConfig, parse_config
-from tracewatch.formats import feed_lines, items
+from tracewatch.formats import feed_lines
 from tracewatch.formats.strace import StraceFormat
 from tracewatch.records import Record, Rejection
 
@@ -97,15 +97,15 @@ def test_process_tree_sessions_follow_forks():
     ("[pid  4703] getpid() = 4703 <0.000010>", None),  # -T only
 ], ids=["ttt", "tt", "t-no-pid", "T"])
 def test_time_prefixes(line, ts):
-    [rec] = items(fmt().feed(line, 0))
+    [rec] = fmt().feed(line, 0)
     assert rec.event == "getpid" and rec.ts == (pytest.approx(ts) if ts else None)
     assert rec.key == ("main" if line.startswith("15:") else "4703")
 
 
 def test_time_of_day_rolls_over_midnight():
     f = fmt()
-    a = f.feed("1  23:59:59.900000 getpid() = 1", 0)
-    b = f.feed("1  00:00:00.100000 getpid() = 1", 1)
+    [a] = f.feed("1  23:59:59.900000 getpid() = 1", 0)
+    [b] = f.feed("1  00:00:00.100000 getpid() = 1", 1)
     assert b.ts - a.ts == pytest.approx(0.2)
 
 

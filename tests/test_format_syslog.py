@@ -8,7 +8,6 @@ import pytest
 
 from tracewatch.config import SourceConfig, parse_config
 from tracewatch.errors import ConfigError
-from tracewatch.formats import items
 from tracewatch.formats.syslog import SyslogFormat, parse, parse_structured_data
 from tracewatch.records import Record, Rejection
 
@@ -154,21 +153,21 @@ def test_file_forms_without_pri():
 def test_session_key_from_header_sd_or_regex():
     line = ('<165>1 2003-10-11T22:14:15.003Z mymachine.example.com evntslog 77 ID47 [exampleSDID@32473 '
             'iut="3" eventID="1011"] order=ab12 reserved')
-    keys = {f: fmt(session_field=f).feed(line, 0).key
+    keys = {f: fmt(session_field=f).feed(line, 0)[0].key
             for f in ("hostname", "app_name", "procid", "msgid", "[exampleSDID@32473 eventID]")}
     assert keys == {"hostname": "mymachine.example.com", "app_name": "evntslog", "procid": "77",
                     "msgid": "ID47", "[exampleSDID@32473 eventID]": "1011"}
-    [rec] = items(fmt(session_key=r"order=(?P<key>\w+)").feed(line, 0))
+    [rec] = fmt(session_key=r"order=(?P<key>\w+)").feed(line, 0)
     assert rec.key == "ab12"
     # the field is missing (NILVALUE procid): the regex is the fallback
-    [rec] = items(fmt(session_field="procid", session_key=r"order=(?P<key>\w+)").feed(
-        "<13>1 - h app - - - order=zz9 done", 0))
+    [rec] = fmt(session_field="procid", session_key=r"order=(?P<key>\w+)").feed(
+        "<13>1 - h app - - - order=zz9 done", 0)
     assert rec.key == "zz9"
 
 
 def test_record_fields_and_message_is_mined():
-    rec = fmt().feed("<11>1 2026-11-30T10:00:00Z h app 1 - - door 4 jammed", 12)
-    assert isinstance(rec, Record)  # a clean line: the record handed on bare
+    [rec] = fmt().feed("<11>1 2026-11-30T10:00:00Z h app 1 - - door 4 jammed", 12)
+    assert isinstance(rec, Record)  # a clean line: one record, no rejection
     assert (rec.level, rec.message, rec.event, rec.offset, rec.ts) == ("err", "door 4 jammed", None, 12,
                                                                       utc(2026, 11, 30, 10))
 

@@ -4,13 +4,15 @@ from __future__ import annotations
 
 import random
 from collections import defaultdict
+from pathlib import Path
 
+import orjson
 import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
 from tracewatch.demo.scenario import deposit, health, pickup, returns
-from tracewatch.templates import TemplateTree, _coarse, _shapes, mask
+from tracewatch.templates import _ID_RUN, TemplateCache, TemplateTree, _coarse, _shapes, _zero, mask
 
 
 @pytest.mark.parametrize(
@@ -128,3 +130,56 @@ def test_ids_share_one_coarse_key():
     assert shapes[0] != shapes[1] and len(set(_coarse(shapes))) == 1
     # a long run of hex letters with no digit is scanned once, not once per position
     assert _coarse([b"a" * 100_000]) == [b"a" * 100_000]
+
+
+@settings(max_examples=500, deadline=None)
+@given(st.lists(st.binary(max_size=40).map(_zero), max_size=20))
+def test_id_runs_collapse_as_the_regex_says(shapes):
+    """The numpy coarse key equals the regex it stands for (``_ID_RUN``, the reference), on
+    shapes of any bytes, NUL separators and non-ASCII included."""
+    assert _coarse(shapes) == [_ID_RUN.sub(b"0", s) for s in shapes]
+
+
+FIXTURE = Path(__file__).parent / "data" / "template_ids.json"
+
+
+@pytest.mark.parametrize("bound", [100_000, 40], ids=["default-bound", "tiny-bound"])
+def test_saved_template_ids_stay(bound):
+    """``tests/data/template_ids.json`` was written by tracewatch before its template caches
+    became one class: 3,117 messages (the parcel-locker demo's and wordy ones that make
+    templates merge), the miner saved after mining them, and the template id every message got,
+    while mining and after the saved miner was loaded (2,888 messages of another day, anomalies
+    among them). The same messages still get the same ids, whatever the cache bound."""
+    data = orjson.loads(FIXTURE.read_bytes())
+
+    def ids(miner: TemplateTree, messages: list[str]) -> list[str]:
+        idxs = [i for lo in range(0, len(messages), 1024) for i in miner.add_many(messages[lo:lo + 1024])]
+        return [miner.templates[i].id for i in idxs]
+
+    fitting = TemplateTree(cache_size=bound)
+    assert ids(fitting, data["fit_messages"]) == data["fit_ids"]
+    assert fitting.to_dict() == data["miner"]
+    loaded = TemplateTree.from_dict(data["miner"])
+    loaded.cache.bound = bound
+    loaded.freeze()
+    assert ids(loaded, data["score_messages"]) == data["score_ids"]
+    assert {t.id: t.text for t in loaded.templates} == data["score_templates"]
+
+
+def test_cache_bound_and_policy():
+    """One bound for every level; a full derived level is emptied alone (no result changes), a
+    full masked level empties all three."""
+    cache = TemplateCache(bound=3)
+    cache.remember(cache.shapes, [b"a", b"b"], [0, 1])
+    cache.remember(cache.coarse, [b"c"], [0])
+    cache.remember(cache.shapes, [b"d", b"e"], [2, 2])  # would pass 3: emptied first
+    assert cache.shapes == {b"d": 2, b"e": 2} and cache.coarse == {b"c": 0}
+    for i, masked in enumerate(["x", "y", "z"]):
+        cache.remember_masked(masked, i)
+    assert len(cache.masked) == 3 and cache.emptied == 0
+    cache.remember_masked("w", 3)
+    assert cache.masked == {"w": 3} and not cache.shapes and not cache.coarse and cache.emptied == 1
+    miner = TemplateTree(cache_size=5)
+    messages = [f"door {i} opened by courier {c}" for i in range(40) for c in ("alice", "bob", f"x{i}y")]
+    assert miner.add_many(messages) == TemplateTree().add_many(messages)
+    assert len(miner.cache.masked) <= 5 and len(miner.cache.shapes) <= 5 and len(miner.cache.coarse) <= 5

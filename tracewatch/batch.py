@@ -7,6 +7,8 @@ from the config's ``paths`` globs, or — with a single source — is that sourc
 from __future__ import annotations
 
 import fnmatch
+from collections.abc import Callable
+from itertools import repeat
 from pathlib import Path
 
 from .config import Config
@@ -46,14 +48,36 @@ def assign_sources(cfg: Config, inputs: list[str], source: str | None = None) ->
     return pairs
 
 
-def run_files(pipeline: Pipeline, pairs: list[tuple[str, Path]]) -> None:
-    """Feed every file to the pipeline, in order, then flush it."""
+def run_files(pipeline: Pipeline, pairs: list[tuple[str, Path]], *,
+              on_block: Callable[[str, list[int]], None] | None = None) -> None:
+    """Feed every file to the pipeline, in order, then flush it; ``on_block`` sees the stream
+    and the line offsets of every block read, before the pipeline does."""
     for source, path in pairs:
         stream = str(path)
         for lines, offsets, repairs in read_blocks(path, pipeline.cfg.source(source).max_line_bytes):
+            if on_block is not None:
+                on_block(stream, offsets)
             pipeline.feed_block(source, stream, lines, offsets, repairs)
         pipeline.end_stream(source, stream)
     pipeline.flush()
+
+
+def template_rows(cfg: Config, pairs: list[tuple[str, Path]]) -> tuple[list[tuple[int, int]], Pipeline]:
+    """``(line number, template index)`` of every record of the files, in input order (the
+    line a record starts on; 0 where it has none), and the pipeline that mined them."""
+    numbers: dict[str, dict[int, int]] = {}
+    rows: list[tuple[int, int]] = []
+
+    def number(stream: str, offsets: list[int]) -> None:
+        of = numbers.setdefault(stream, {})
+        of.update(zip(offsets, range(len(of) + 1, len(of) + 1 + len(offsets))))
+
+    def take(source: str, stream: str, cols, idxs: list[int]) -> None:
+        rows.extend(zip(map(numbers[stream].get, cols.offsets, repeat(0)), idxs))
+
+    pipeline = Pipeline(cfg, on_records=take, sample_rejects=False)
+    run_files(pipeline, pairs, on_block=number)
+    return rows, pipeline
 
 
 def fit_files(cfg: Config, pairs: list[tuple[str, Path]]):

@@ -17,7 +17,7 @@ from . import __version__
 from .alerts.store import STATUSES
 from .baselines import (baselines_dir, current_version, list_versions, load_baseline, load_baseline_dir,
                         set_current)
-from .batch import assign_sources, fit_files, score_files
+from .batch import assign_sources, fit_files, score_files, template_rows
 from .config import Config, IncidentsConfig, adhoc_config, load_config
 from .errors import ConfigError, TracewatchError
 from .pipeline import Pipeline
@@ -91,32 +91,8 @@ def cmd_score(args) -> int:
 
 def cmd_templates(args) -> int:
     cfg = _config(args)
-    pairs = assign_sources(cfg, args.inputs, args.source)
-    from .formats import items, make_format
-    from .records import Record
-    from .sources.files import read_lines
-    from .templates import TemplateTree
-
-    t = cfg.templates
-    miner = TemplateTree(t.routing_tokens, t.join_share, t.max_branches)
-    rows: list[tuple[int, int]] = []
-    for source, path in pairs:
-        fmt = make_format(cfg.source(source))
-        line_of: dict[int, int] = {}
-
-        def take(items):
-            for item in items:
-                rec = item if type(item) is Record else item.record
-                if rec is None:
-                    continue
-                idx = miner.add_event(rec.event) if rec.event is not None else miner.add(rec.message)
-                rows.append((line_of.get(rec.offset, 0), idx))
-
-        for n, (line, offset, _) in enumerate(read_lines(path, cfg.source(source).max_line_bytes), 1):
-            line_of[offset] = n
-            take(items(fmt.feed(line, offset)))
-        take(fmt.flush())
-    tpls = miner.templates
+    rows, pipeline = template_rows(cfg, assign_sources(cfg, args.inputs, args.source))
+    tpls = pipeline.miner.templates
     for line, idx in rows:
         _out({"line": line, "template_id": tpls[idx].id, "template": tpls[idx].text})
     return 0

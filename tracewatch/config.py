@@ -14,9 +14,8 @@ from typing import Literal
 from pydantic import BaseModel, ConfigDict, Field, ValidationError, field_validator, model_validator
 
 from .errors import ConfigError
+from .formats import FORMATS
 from .model.score import ScorerName
-
-FORMATS = ("text", "jsonl", "syslog", "otlp-json", "strace")
 
 
 class _Section(BaseModel):
@@ -46,7 +45,7 @@ class SourceConfig(_Section):
 
     name: str = Field(min_length=1, pattern=r"^[A-Za-z0-9_.-]+$")
     paths: list[str] = Field(default_factory=list)
-    format: Literal["text", "jsonl", "syslog", "otlp-json", "strace"] = "text"
+    format: Literal[tuple(FORMATS)] = "text"  # type: ignore[valid-type]
     # text: named groups; `message` required, `ts`, `level` and `key` optional.
     line_pattern: str | None = None
     # text/syslog: a regex with group `key`, searched in the line; jsonl: a dotted field path.

@@ -1,24 +1,24 @@
 """The pipeline: wires every stage; the batch commands and the daemon drive the same object.
 
-    line ──format──► Record ──miner──► template index ──sessionizer──► closed Session
-         ──vectoriser + scorer──► verdict ──► on_verdict(dict)
+    lines ──format──► Columns (records, rejections) ──miner──► template indices
+          ──sessionizer──► closed Session ──vectoriser + scorer──► verdict ──► on_verdict(dict)
 
-Without a baseline the pipeline collects closed sessions for fitting; with one it scores
-them. Batch callers feed lines and call :meth:`flush`; the daemon feeds lines and calls
-:meth:`tick` with its clock so idle sessions close.
+Lines come in blocks (``feed_block``, from the batch reader and the daemon's followers) and go
+through the stages as columns, by one path. Without a baseline the pipeline collects closed
+sessions for fitting; with one it scores them. Batch callers feed lines and call :meth:`flush`;
+the daemon feeds lines and calls :meth:`tick` with its clock so idle sessions close.
 """
 
 from __future__ import annotations
 
 from collections import Counter
 from collections.abc import Callable
-from itertools import repeat
 from typing import TYPE_CHECKING
 
 from .alerts.alert import Redactor, build_verdict
 from .config import Config
 from .formats import Format, make_format
-from .records import Record
+from .records import Columns
 from .rejects import reject_log
 from .sessions import Session, Sessionizer
 from .templates import TemplateTree
@@ -34,8 +34,14 @@ class Pipeline:
     def __init__(self, cfg: Config, baseline: Baseline | None = None, *,
                  on_verdict: Callable[[dict], None] | None = None, score_all: bool = False,
                  clock: Callable[[], float] | None = None,
-                 on_quiet: Callable[[str, tuple[int, ...]], None] | None = None) -> None:
+                 on_quiet: Callable[[str, tuple[int, ...]], None] | None = None,
+                 on_records: Callable[[str, str, Columns, list[int]], None] | None = None,
+                 sample_rejects: bool = True) -> None:
         self.cfg = cfg
+        # `tracewatch templates`: called with (source, stream, records, template indices) of
+        # every block of records, in input order
+        self.on_records = on_records
+        self.sample_rejects = sample_rejects  # rejected lines sampled to <state_dir>/rejects.jsonl
         # refit (tracewatch/refit.py): called with (source, event sequence) of every scored
         # session that raised nothing
         self.on_quiet = on_quiet
@@ -72,103 +78,24 @@ class Pipeline:
 
     def feed_line(self, source: str, stream: str, line: str, offset: int = -1,
                   repair: str | None = None) -> None:
-        self.feed_lines(source, stream, ((line, offset, repair),))
-
-    def feed_lines(self, source: str, stream: str, lines) -> None:
-        """Feed ``(line, offset, repair)`` triples of one stream, line by line through the
-        format; its records go on through the stages ``TICK_EVERY`` at a time."""
-        feed, repaired = self._format(source, stream).feed, self.repaired
-        records: list[Record] = []
-        n = 0
-        for line, offset, repair in lines:
-            n += 1
-            if repair is not None:
-                repaired[(source, repair)] += 1
-            out = feed(line, offset)
-            if type(out) is Record:  # the common case: one line, one record
-                records.append(out)
-            else:
-                records += self._accept(source, out)
-            if len(records) >= TICK_EVERY:
-                self._add_records(source, records)
-                records = []
-        self.lines[source] += n
-        self._add_records(source, records)
+        """One line (tools and tests): :meth:`feed_block` of a block of one."""
+        self.feed_block(source, stream, [line], [offset], [repair])
 
     def feed_block(self, source: str, stream: str, lines: list[str], offsets: list[int],
                    repairs: list[str | None] | None = None) -> None:
-        """Feed a block of lines of one stream (``repairs`` None: all decoded cleanly) — what
-        the batch reader and the daemon's followers hand on. The same as :meth:`feed_lines`;
-        when the format can read the whole block at once (``match_block``), it does."""
-        match_block = getattr(self._format(source, stream), "match_block", None)
-        if match_block is None:
-            self.feed_lines(source, stream, zip(lines, offsets, repairs or repeat(None)))
-            return
-        # TICK_EVERY lines at a time: a line the format cannot read in bulk (no match, bad JSON,
-        # repaired bytes) sends only its part down the per-line path, and what a part allocates
-        # (a JSON object per line) is freed before the next one
+        """Feed a block of lines of one stream (``repairs``: how each line was mended when it was
+        decoded, None for all clean) — what the batch reader and the daemon's followers hand
+        on. The format reads them ``TICK_EVERY`` lines at a time, so what a part allocates (a
+        JSON object per line) is freed before the next one."""
+        fmt = self._format(source, stream)
+        if repairs is not None:
+            self.repaired.update((source, r) for r in repairs if r is not None)
+        self.lines[source] += len(lines)
         for lo in range(0, len(lines), TICK_EVERY):
-            part, part_offsets = lines[lo:lo + TICK_EVERY], offsets[lo:lo + TICK_EVERY]
-            part_repairs = repairs[lo:lo + TICK_EVERY] if repairs is not None else None
-            columns = None if part_repairs is not None and any(part_repairs) else match_block(part)
-            if columns is None:  # a line the per-line path must see: this part goes that way
-                self.feed_lines(source, stream, zip(part, part_offsets, part_repairs or repeat(None)))
-                continue
-            self.lines[source] += len(part)
-            self.records[source] += len(part)
-            keys, stamps, messages = columns
-            self._add_columns(source, keys, stamps, self.miner.add_many(messages), part, part_offsets, messages)
-
-    def _accept(self, source: str, out) -> list[Record]:
-        """The records among a format's output; rejections are counted and sampled, and the
-        whole-line record a rejection may carry is kept."""
-        records = []
-        for item in out:
-            if type(item) is not Record:
-                self.rejected[(source, item.reason)] += 1
-                # bounded, redacted sample on disk: <state_dir>/rejects.jsonl
-                reject_log(self.cfg.state_dir).add(source, item.reason, item.raw, self.redact)
-                item = item.record
-            if item is not None:
-                records.append(item)
-        return records
-
-    def _add_records(self, source: str, records: list[Record]) -> None:
-        """Records of one source as columns: messages become templates in one go (structured
-        events one by one), then :meth:`_add_columns`."""
-        if not records:
-            return
-        self.records[source] += len(records)
-        messages = [r.message for r in records]
-        events = [r.event for r in records]
-        if events.count(None) == len(events):
-            idxs = self.miner.add_many(messages)
-        else:
-            miner = self.miner
-            idxs = [miner.add(m) if e is None else miner.add_event(e) for m, e in zip(messages, events)]
-        self._add_columns(source, [r.key for r in records], [r.ts for r in records], idxs,
-                          [r.raw for r in records], [r.offset for r in records], messages)
-
-    def _add_columns(self, source: str, keys: list, stamps: list, idxs: list[int], raws: list[str],
-                     offsets: list[int], messages: list[str]) -> None:
-        """Records whose template indices are known, as columns: the sessionizer takes them
-        ``TICK_EVERY`` at a time, then (batch) idle sessions are closed, and closed sessions
-        are scored ``SCORE_BATCH`` at a time."""
-        for lo in range(0, len(keys), TICK_EVERY):
-            hi = lo + TICK_EVERY
-            now = self.clock() if self.clock is not None else self._file_watermark
-            newest = self.sessionizer.add_many(source, keys[lo:hi], stamps[lo:hi], idxs[lo:hi], raws[lo:hi],
-                                               offsets[lo:hi], messages[lo:hi], now, self._closed)
-            if newest is not None:
-                self._watermark = max(self._watermark, newest)
-                self._file_watermark = max(self._file_watermark, newest)
-            if self.clock is None:
-                self.sessionizer.tick(self._file_watermark, self._closed)
-            if len(self._closed) >= SCORE_BATCH:
-                self._drain()
+            self._take(source, stream, fmt.read_block(lines[lo:lo + TICK_EVERY], offsets[lo:lo + TICK_EVERY]))
 
     def end_stream(self, source: str, stream: str) -> None:
-        """A file ended (batch) or was rotated away: flush what its format holds.
+        """A file ended (batch) or was rotated away: take what its format still holds.
 
         In batch runs (no clock) the event-time clock that closes idle sessions follows one
         file at a time: files are read one after another, and the next one may start earlier
@@ -176,9 +103,37 @@ class Pipeline:
         time of the file before."""
         fmt = self._formats.pop((source, stream), None)
         if fmt is not None:
-            self._add_records(source, self._accept(source, fmt.flush()))
+            self._take(source, stream, fmt.finish())
         if self.clock is None:
             self._file_watermark = 0.0
+
+    def _take(self, source: str, stream: str, cols: Columns) -> None:
+        """A format's records and rejections: rejections are counted and sampled; the records'
+        messages become templates, the sessionizer takes them ``TICK_EVERY`` at a time, then
+        (batch) idle sessions are closed, and closed sessions are scored ``SCORE_BATCH`` at a
+        time."""
+        for item in cols.rejected:
+            self.rejected[(source, item.reason)] += 1
+            if self.sample_rejects:  # bounded, redacted sample on disk: <state_dir>/rejects.jsonl
+                reject_log(self.cfg.state_dir).add(source, item.reason, item.raw, self.redact)
+        if not len(cols):
+            return
+        self.records[source] += len(cols)
+        idxs = self.miner.add_many(cols.messages, cols.events)
+        if self.on_records is not None:
+            self.on_records(source, stream, cols, idxs)
+        columns = (cols.keys, cols.times, idxs, cols.raws, cols.offsets, cols.messages)
+        for lo in range(0, len(idxs), TICK_EVERY):
+            part = columns if len(idxs) <= TICK_EVERY else [c[lo:lo + TICK_EVERY] for c in columns]
+            now = self.clock() if self.clock is not None else self._file_watermark
+            newest = self.sessionizer.add_many(source, *part, now, self._closed)
+            if newest is not None:
+                self._watermark = max(self._watermark, newest)
+                self._file_watermark = max(self._file_watermark, newest)
+            if self.clock is None:
+                self.sessionizer.tick(self._file_watermark, self._closed)
+            if len(self._closed) >= SCORE_BATCH:
+                self._drain()
 
     # -- time and the end ------------------------------------------------------------------
     def tick(self, now: float) -> None:
@@ -241,10 +196,11 @@ class Pipeline:
 
     def held_from(self, source: str, stream: str) -> int | None:
         """Offset of the first line a format still holds for a stream (a multi-line record not
-        yet complete), for formats that say so with a ``held_from`` attribute; a checkpoint
-        resumes the stream there. Right for formats whose held lines give no record until the
-        held one is complete (continuation lines, a multi-line JSON document)."""
-        return getattr(self._formats.get((source, stream)), "held_from", None)
+        yet complete, ``Format.held_from``); a checkpoint resumes the stream there. Right for
+        formats whose held lines give no record until the held one is complete (continuation
+        lines, a multi-line JSON document)."""
+        fmt = self._formats.get((source, stream))
+        return fmt.held_from if fmt is not None else None
 
     def use_baseline(self, baseline: Baseline) -> None:
         """Switch baselines between sessions: sessions already closed are scored with the old

@@ -1,12 +1,14 @@
 """The unit that formats hand on to the rest of the pipeline: one parsed record.
 
 Stage: formats → **records** → templates. A record is a line (or a JSON document, a span,
-a syscall) reduced to what the later stages need.
+a syscall) reduced to what the later stages need; formats hand records on as :class:`Columns`.
 """
 
 from __future__ import annotations
 
-from dataclasses import dataclass
+from dataclasses import dataclass, field
+from itertools import repeat
+from operator import attrgetter
 
 
 @dataclass(slots=True)
@@ -38,3 +40,41 @@ class Rejection:
     reason: str
     raw: str
     record: Record | None = None
+
+
+_FIELDS = ("key", "ts", "level", "message", "event", "raw", "offset")
+
+
+@dataclass(slots=True)
+class Columns:
+    """Many records as columns, in input order, with the rejections met on the way beside them:
+    what a format hands on for a block of lines (``Format.read_block``). Row ``i`` of the
+    columns is one record; a rejection that kept its line as a record has that record among
+    the rows too."""
+
+    keys: list[str | None]
+    times: list[float | None]
+    levels: list[str | None]
+    messages: list[str]
+    events: list[str | None]  # an event type given by the record (no template mining), or None
+    raws: list[str]
+    offsets: list[int]
+    rejected: list[Rejection] = field(default_factory=list)
+
+    def __len__(self) -> int:
+        return len(self.offsets)
+
+    @classmethod
+    def of(cls, records: list[Record], rejected: list[Rejection] | None = None) -> "Columns":
+        """Records as columns."""
+        return cls(*(list(map(attrgetter(name), records)) for name in _FIELDS), rejected or [])
+
+    def records(self, source: str) -> list[Record]:
+        """The rows as records again (tools and tests)."""
+        return list(map(Record, repeat(source), self.keys, self.times, self.levels, self.messages, self.raws,
+                        self.offsets, self.events))
+
+    def extend(self, other: "Columns") -> None:
+        """Append another block's rows and rejections."""
+        for name in self.__slots__:
+            getattr(self, name).extend(getattr(other, name))

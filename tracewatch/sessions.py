@@ -32,6 +32,7 @@ import re
 import time
 from collections import OrderedDict
 from collections.abc import Callable, Sequence
+from itertools import repeat
 
 from .config import SessionsConfig
 
@@ -88,25 +89,30 @@ class Sessionizer:
     def add_many(self, source: str, keys, stamps, events, raws, offsets, messages, now: float,
                  closed: list[Session]) -> float | None:
         """Append events of one source in order (the loop of :meth:`add`, with its lookups done
-        once). A record without a time takes ``now``, moved on by the times of the records
-        before it; returns the newest record time, or None when no record had one."""
-        newest = None
+        once and what does not depend on the open sessions computed for the whole batch first).
+        A record without a time takes ``now``, moved on by the times of the records before it;
+        returns the newest record time, or None when no record had one."""
+        if None in stamps:
+            times, newest = [], None
+            for ts in stamps:
+                if ts is None:
+                    times.append(now)
+                else:
+                    times.append(ts)
+                    if ts > now:
+                        now = ts
+                    if newest is None or ts > newest:
+                        newest = ts
+        else:
+            times, newest = stamps, max(stamps, default=None)
+        if None in keys:
+            keys = [key if key is not None else self._window_key(source, ts) for key, ts in zip(keys, stamps)]
         open_, get, move_to_end = self.open, self.open.get, self.open.move_to_end
         deadlines = self._deadlines if self.max_duration < float("inf") else None
         evicted_keys = self._evicted_keys
         idle, max_duration, max_events, end = self.idle, self.max_duration, self.max_events, self._end
-        for key, ts, event, raw, offset, message in zip(keys, stamps, events, raws, offsets, messages):
-            if ts is None:
-                t = now
-            else:
-                t = ts
-                if ts > now:
-                    now = ts
-                if newest is None or ts > newest:
-                    newest = ts
-            if key is None:
-                key = self._window_key(source, ts)
-            skey = (source, key)
+        for skey, t, event, raw, offset, message in zip(zip(repeat(source), keys), times, events, raws, offsets,
+                                                         messages):
             sess = get(skey)
             if sess is not None and (t - sess.last_seen > idle or t - sess.first_ts > max_duration):
                 self._close(skey, "idle" if t - sess.last_seen > idle else "max_duration", closed)
@@ -114,7 +120,7 @@ class Sessionizer:
             if sess is None:
                 if len(open_) >= self.max_open:
                     self._evict(closed)
-                sess = open_[skey] = Session(source, key, t, raw, offset)
+                sess = open_[skey] = Session(source, skey[1], t, raw, offset)
                 if evicted_keys and skey in evicted_keys and t - evicted_keys.pop(skey) <= idle:
                     sess.partial = True
                 if deadlines is not None:

@@ -19,8 +19,11 @@ from __future__ import annotations
 import hashlib
 import re
 from collections import Counter
-from operator import methodcaller
+from collections.abc import Sequence
 from dataclasses import dataclass
+from operator import methodcaller
+
+import numpy as np
 
 WILDCARD = "<var>"
 
@@ -51,6 +54,29 @@ def _shapes(messages: list[str]) -> list[bytes]:
 _ID_RUN = re.compile(rb"(?<![0-9a-fA-F-])[a-fA-F-]*+[0-9][0-9a-fA-F-]*+")
 
 
+# byte classes for _collapse_id_runs: 2 a digit, 1 a hex letter or a dash, 0 anything else
+_ID_CLASS = bytes(2 if chr(c) in "0123456789" else 1 if chr(c) in "abcdefABCDEF-" else 0 for c in range(256))
+
+
+def _collapse_id_runs(data: bytes) -> bytes:
+    """``_ID_RUN.sub(b"0", data)``, computed with numpy: every maximal run of hex digits and
+    dashes that holds a digit becomes one 0 (several times quicker than the regex, whose
+    engine visits every byte in Python's own loop)."""
+    cls = np.frombuffer(data.translate(_ID_CLASS), dtype=np.uint8)
+    if not cls.size:
+        return data
+    in_run = cls != 0
+    starts = in_run.copy()
+    starts[1:] &= ~in_run[:-1]
+    run = starts.cumsum(dtype=np.int32)  # the number of the run each byte is in (where in_run)
+    has_digit = np.zeros(int(run[-1]) + 1, dtype=bool)
+    has_digit[run[cls == 2]] = True
+    id_run = in_run & has_digit[run]
+    out = np.frombuffer(data, dtype=np.uint8).copy()
+    out[id_run & starts] = 48
+    return out[~id_run | starts].tobytes()
+
+
 def _coarse(shapes: list[bytes]) -> list[bytes]:
     """Coarse cache keys: every id-like run (``_ID_RUN``) of a shape turned into one 0.
     Messages with equal coarse keys mask alike: such a run lies inside one token, keeps a digit,
@@ -59,7 +85,7 @@ def _coarse(shapes: list[bytes]) -> list[bytes]:
     joined = b"\0".join(shapes)
     if joined.count(b"\0") != len(shapes) - 1:
         return [_ID_RUN.sub(b"0", s) for s in shapes]
-    return _ID_RUN.sub(b"0", joined).split(b"\0")
+    return _collapse_id_runs(joined).split(b"\0")
 
 
 def _mask_token(tok: str) -> str:
@@ -108,6 +134,54 @@ class Template:
         return " ".join(self.tokens)
 
 
+class TemplateCache:
+    """Which template a message maps to, remembered at three levels so that most messages skip
+    the masking and the tree:
+
+    - ``masked``: a masked message → the template the miner chose for it. This is the miner's
+      memory (a daemon's checkpoint saves it), so a message maps where its like went before,
+      even after that template was generalised;
+    - ``shapes``: the message with every digit as 0 → template (messages that differ only in
+      their digits mask alike);
+    - ``coarse``: the shape with every id-like run as one 0 → template (stays small however
+      many distinct ids a log carries).
+
+    ``shapes`` and ``coarse`` only ever repeat what ``masked`` says. One bound and one policy:
+    a level that would pass ``bound`` entries is emptied, and emptying ``masked`` empties the
+    two levels derived from it; so memory stays bounded, emptying a derived level never changes
+    a result, and when ``masked`` is emptied depends only on what it held (restored from a
+    checkpoint, a restart empties it at the same message as a run without the restart would).
+    """
+
+    def __init__(self, bound: int = 100_000) -> None:
+        self.bound = bound
+        self.masked: dict[str, int] = {}
+        self.shapes: dict[bytes, int] = {}
+        self.coarse: dict[bytes, int] = {}
+        self.emptied = 0  # times ``masked`` was emptied: what was decided before may not be remembered after
+
+    def clear(self) -> None:
+        self.emptied += 1
+        self.masked.clear()
+        self.shapes.clear()
+        self.coarse.clear()
+
+    def remember_masked(self, masked: str, idx: int) -> None:
+        if len(self.masked) >= self.bound:
+            self.clear()
+        self.masked[masked] = idx
+
+    def remember(self, level: dict, keys: Sequence, idxs: Sequence[int]) -> None:
+        """Put ``keys`` → ``idxs`` in ``shapes`` or ``coarse``."""
+        if len(level) + len(keys) > self.bound:
+            level.clear()
+            keys, idxs = keys[:self.bound], idxs[:self.bound]
+        level.update(zip(keys, idxs))
+
+    def __len__(self) -> int:
+        return len(self.masked) + len(self.shapes) + len(self.coarse)
+
+
 class TemplateTree:
     """Online template learning with the fixed-depth prefix-tree method (He et al., ICWS 2017).
 
@@ -126,32 +200,26 @@ class TemplateTree:
         self._ids: dict[str, int] = {}
         self._tree: dict = {}
         self._events: dict[str, int] = {}
-        self._masked: dict[str, int] = {}  # masked message -> template index
-        self._by_shape: dict[bytes, int] = {}  # message shape (digits as 0) -> template index (bounded)
-        self._by_coarse: dict[bytes, int] = {}  # coarse shape (ids as 0) -> template index (bounded)
+        self.cache = TemplateCache(cache_size)
         self.frozen = False
         self.n_seen = 0  # templates with index < n_seen belong to the baseline
 
     # -- public -----------------------------------------------------------------
     def add(self, message: str) -> int:
-        """Template index for a message (creating or generalising a template as needed); the
-        one-message form of :meth:`add_many`, without its per-block lists."""
-        shape = _shape_of(message)
-        idx = self._by_shape.get(shape)
-        if idx is None:
-            found: list[int | None] = [None]
-            self._add_missed([message], [shape], found)
-            idx = found[0]
-        self.templates[idx].count += 1
-        return idx
+        """Template index for a message (creating or generalising a template as needed)."""
+        return self.add_many([message])[0]
 
-    def add_many(self, messages: list[str]) -> list[int]:
-        """Template indices of many messages, in order. Messages that differ only in their
-        digits mask alike (a token with a digit becomes one wildcard), so the message with every
-        digit turned into 0 keys a cache that skips the masking for most lines seen before;
-        the lookups run in C (``map``) and only the misses are handled one by one."""
+    def add_many(self, messages: Sequence[str], events: Sequence[str | None] | None = None) -> list[int]:
+        """Template indices of many messages, in order; where ``events`` gives an event type, it
+        is the template (:meth:`add_event`) and the message is not mined. Messages that differ
+        only in their digits mask alike (a token with a digit becomes one wildcard), so the
+        message with every digit turned into 0 keys a cache that skips the masking for most
+        lines seen before; the lookups run in C (``map``) and only the misses are handled one
+        by one."""
+        if events is not None and events.count(None) != len(events):
+            return self._add_mixed(messages, events)
         shapes = _shapes(messages)
-        idxs = list(map(self._by_shape.get, shapes))
+        idxs = list(map(self.cache.shapes.get, shapes))
         if None in idxs:
             self._add_missed(messages, shapes, idxs)
         templates = self.templates
@@ -159,21 +227,39 @@ class TemplateTree:
             templates[idx].count += n
         return idxs
 
-    def _add_missed(self, messages: list[str], shapes: list[bytes], idxs: list[int | None]) -> None:
+    def _add_mixed(self, messages: Sequence[str], events: Sequence[str | None]) -> list[int]:
+        mined = [m for m, e in zip(messages, events) if e is None]
+        it = iter(self.add_many(mined) if mined else ())
+        return [next(it) if e is None else self.add_event(e) for e in events]
+
+    def _add_missed(self, messages: Sequence[str], shapes: list[bytes], idxs: list[int | None]) -> None:
         """Fill in the indices of messages whose shape missed the cache. Their coarse shapes
         (``_coarse``: ids and UUIDs as one 0) key a second cache that stays small however many
         distinct ids a log carries; only messages whose coarse shape is new too are masked."""
+        cache = self.cache
+        emptied = cache.emptied
         miss = [i for i, idx in enumerate(idxs) if idx is None]
-        by_shape, by_coarse, room = self._by_shape, self._by_coarse, self.cache_size
-        for i, key in zip(miss, _coarse([shapes[i] for i in miss])):
-            idx = by_coarse.get(key)
-            if idx is None:
-                idx = self._add_masked(mask(messages[i]))
-                if len(by_coarse) < room:
-                    by_coarse[key] = idx
+        missed = [shapes[i] for i in miss]
+        keys = _coarse(missed)
+        found = list(map(cache.coarse.get, keys))
+        if None in found:
+            new: dict[bytes, int] = {}
+            for j, idx in enumerate(found):
+                if idx is None:
+                    key = keys[j]
+                    idx = new.get(key)
+                    if idx is None:
+                        idx = new[key] = self._add_masked(mask(messages[miss[j]]))
+                    found[j] = idx
+            if cache.emptied == emptied:
+                cache.remember(cache.coarse, list(new), list(new.values()))
+        for i, idx in zip(miss, found):
             idxs[i] = idx
-            if len(by_shape) < room:
-                by_shape[shapes[i]] = idx
+        # a block whose shapes met no hit at all, while the shapes level already holds a block's
+        # worth, is not remembered by shape: every message in it is one of a kind (an id or a
+        # session key in each), and would only push out entries that are hit
+        if cache.emptied == emptied and (len(miss) < len(idxs) or len(cache.shapes) < len(miss)):
+            cache.remember(cache.shapes, missed, found)
 
     def add_event(self, event: str) -> int:
         """Template index for a structured event type (no masking, no merging)."""
@@ -188,8 +274,7 @@ class TemplateTree:
         """From now on baseline templates never change; new ones are marked unseen."""
         self.frozen = True
         self.n_seen = len(self.templates)
-        self._by_shape.clear()
-        self._by_coarse.clear()
+        self.cache.clear()  # as a baseline loaded from disk starts: no memory of the fit
 
     def text(self, idx: int) -> str:
         return self.templates[idx].text
@@ -223,7 +308,7 @@ class TemplateTree:
         return leaf, tuple(path)
 
     def _add_masked(self, masked: str) -> int:
-        idx = self._masked.get(masked)
+        idx = self.cache.masked.get(masked)
         if idx is not None:
             return idx
         tokens = masked.split(" ") if masked else [""]
@@ -248,7 +333,7 @@ class TemplateTree:
         else:
             idx = self._new(masked, tokens, path)
             leaf.append(idx)
-        self._masked[masked] = idx
+        self.cache.remember_masked(masked, idx)
         return idx
 
     def _new(self, seed: str, tokens: list[str], path: tuple[str, ...], structured: bool = False) -> int:
@@ -304,7 +389,7 @@ class TemplateTree:
         daemon maps every later message exactly as it would have without the restart."""
         return {"n_seen": self.n_seen,
                 "templates": [self._entry(t) for t in self.templates[self.n_seen:]],
-                "masked": list(self._masked.items())}
+                "masked": list(self.cache.masked.items())}
 
     def restore_learned(self, state: dict) -> None:
         """Put back :meth:`learned_state` on a freshly loaded copy of the same baseline."""
@@ -316,7 +401,7 @@ class TemplateTree:
         for masked, idx in state["masked"]:
             if not 0 <= idx < n:
                 raise ValueError(f"template index {idx} out of range")
-            self._masked[masked] = idx
+            self.cache.remember_masked(masked, idx)
 
     def adopt(self, other: "TemplateTree") -> list[int]:
         """This miner's index for every template of ``other``: the template with the same id,

@@ -1,188 +1,102 @@
-"""Formats: turn one decoded line into records.
+"""Formats: turn decoded lines into records.
 
-Stage: sources → **formats** → templates. One module per input format; each exposes a
-class with ``feed(line, offset)`` and ``flush()``, both returning a list of
-:class:`~tracewatch.records.Record` and :class:`~tracewatch.records.Rejection` (``feed`` may
-return one bare Record instead: the common one-line-one-record case, which saves a list per
-line on the hot path; :func:`items` turns either into a sequence). A format never
-raises for bad data: it rejects the line with a reason, keeping it as a whole-line record
-when that still makes sense.
+Stage: sources → **formats** → templates. One module per input format, each a subclass of
+:class:`Format` registered in :data:`FORMATS`. A format writes one thing, its per-record parser
+``feed(line, offset)`` (and ``flush()`` for what it holds back at the end of a stream); both
+give a list of :class:`~tracewatch.records.Record` and :class:`~tracewatch.records.Rejection`.
+The pipeline reads a block of lines at a time through :meth:`Format.read_block`, which hands on
+one :class:`~tracewatch.records.Columns` value (the records as columns, the rejections beside
+them); its default loops over ``feed``, and a format may override it for speed as long as it
+gives exactly what the loop gives (``tests/test_formats.py`` checks that for every format in
+the table). A format never raises for bad data: it rejects the line with a reason, keeping it
+as a whole-line record when that still makes sense.
+
+Adding a format: a module here with a :class:`Format` subclass (its ``name``, ``feed``, and
+``samples``: a few source options and lines it reads, which the shared tests use), one line in
+:data:`FORMATS`, and a test module of its own.
 """
 
 from __future__ import annotations
 
-import functools
-import re
-from operator import attrgetter, methodcaller
-from datetime import datetime, timezone
-from typing import Protocol
+import importlib
+from collections.abc import Sequence
+from typing import TYPE_CHECKING, ClassVar
 
-import numpy as np
+from ..records import Columns, Record, Rejection
+from ..timestamps import parse_timestamp, timestamps
 
-from ..config import SourceConfig
-from ..records import Record, Rejection
+if TYPE_CHECKING:  # the config imports this table; the formats import the config only when used
+    from ..config import SourceConfig
 
-Output = list  # list[Record | Rejection]; ``feed`` may also return one bare Record
+Output = list  # list[Record | Rejection]: what feed and flush give
 
-
-def items(out: Record | Output) -> Output | tuple[Record]:
-    """What ``feed`` returned, as a sequence: a bare Record (the one-line-one-record fast
-    path) or a list of records and rejections."""
-    return (out,) if type(out) is Record else out
-
-
-class Format(Protocol):
-    def feed(self, line: str, offset: int) -> Output | Record: ...
-
-    def flush(self) -> Output: ...
+# format name (as in the config) -> "module:class" in this package
+FORMATS: dict[str, str] = {
+    "text": "text:TextFormat",
+    "jsonl": "jsonl:JsonlFormat",
+    "syslog": "syslog:SyslogFormat",
+    "otlp-json": "otlp:OtlpJsonFormat",
+    "strace": "strace:StraceFormat",
+}
 
 
-_EPOCH = re.compile(r"^\d{9,10}(\.\d+)?$")
-_EPOCH_MS = re.compile(r"^\d{12,13}$")
+class Format:
+    """One source's reader of one stream (a fresh object per file being read)."""
 
+    name: ClassVar[str]
+    # (source options, lines): what the format reads, for its docs and the shared tests
+    samples: ClassVar[list[tuple[dict, list[str]]]] = []
 
-def _iso(text: str) -> float | None:
-    try:
-        dt = datetime.fromisoformat(text)
-    except ValueError:
-        if "," not in text:
-            return None
-        try:
-            dt = datetime.fromisoformat(text.replace(",", ".", 1))
-        except ValueError:
-            return None
-    if dt.tzinfo is None:
-        dt = dt.replace(tzinfo=timezone.utc)
-    return dt.timestamp()
+    def __init__(self, src: SourceConfig) -> None:
+        self.source = src.name
 
+    def feed(self, line: str, offset: int) -> Output:
+        """The records (and rejections) of one line; a format holding lines back (a multi-line
+        record not yet complete) may give nothing now and more later."""
+        raise NotImplementedError
 
-def parse_timestamp(text: str | None) -> float | None:
-    """Seconds since the epoch from ISO 8601 / RFC 3339 (with ``,`` or ``.`` fractions, as
-    Python's logging module writes them), or from a plain epoch number; None if unreadable.
-    Times without a zone are taken as UTC."""
-    if not text:
+    def flush(self) -> Output:
+        """What the format still holds at the end of a stream."""
+        return []
+
+    @property
+    def held_from(self) -> int | None:
+        """Offset of the first line still held back (a checkpoint resumes the stream there)."""
         return None
-    if len(text) >= 10 and text[4] == "-" and text[7] == "-":  # the common case, no regex
-        return _iso(text)
-    text = text.strip()
-    if _EPOCH.match(text):
-        return float(text)
-    if _EPOCH_MS.match(text):
-        return int(text) / 1000.0
-    return _iso(text)
+
+    def read_block(self, lines: Sequence[str], offsets: Sequence[int]) -> Columns:
+        """The records of a block of lines as columns, rejections beside them: ``feed`` of every
+        line, in order. Override it for speed only with the same result."""
+        return collect(map(self.feed, lines, offsets))
+
+    def finish(self) -> Columns:
+        """:meth:`flush` as columns."""
+        return collect((self.flush(),))
 
 
-def _iso_layout(text: str) -> tuple[list[int], int, int, str] | None:
-    """Where the digits of ``YYYY-MM-DD[T ]HH:MM:SS[.f…][Z|±HH:MM]`` are in ``text``: digit
-    positions, fraction digits, zone sign (+1, -1, 0 for none or Z) and the text with every
-    digit as 0 (the layout every text of a block must share); None for any other form."""
-    n = len(text)
-    if n < 19 or not text.isascii():
-        return None
-    digits = [0, 1, 2, 3, 5, 6, 8, 9, 11, 12, 14, 15, 17, 18]
-    end = 19
-    if n > 20 and text[19] in ".,":
-        end = 20
-        while end < n and text[end].isdigit():
-            end += 1
-        digits += range(20, end)
-    frac = end - 20 if end > 19 else 0
-    zone, sign = text[end:], 0
-    if len(zone) == 6 and zone[0] in "+-" and zone[3] == ":":
-        digits += [end + 1, end + 2, end + 4, end + 5]
-        sign = 1 if zone[0] == "+" else -1
-    elif zone not in ("", "Z"):
-        return None
-    shape = text.translate(_ZEROS)
-    want = "0000-00-00" + text[10] + "00:00:00"
-    if not shape.startswith(want) or text[10] not in "T " or (end > 19 and not 0 < frac <= 6):
-        return None
-    return digits, frac, sign, shape
+def collect(outputs) -> Columns:
+    """The records of many ``feed`` outputs as one :class:`Columns`; the whole-line record a
+    rejection keeps goes into the columns too."""
+    records: list[Record] = []
+    rejected: list[Rejection] = []
+    for out in outputs:
+        if len(out) == 1 and type(out[0]) is Record:  # the common case: one line, one record
+            records.append(out[0])
+            continue
+        for item in out:
+            if type(item) is not Record:
+                rejected.append(item)
+                item = item.record
+                if item is None:
+                    continue
+            records.append(item)
+    return Columns.of(records, rejected)
 
 
-_ZEROS = str.maketrans("123456789", "000000000")
-
-
-@functools.lru_cache(maxsize=64)
-def _place_values(frac: int, sign: int) -> np.ndarray:
-    """digits × fields matrix: a layout's digits (year 4, month, day, hour, minute, second 2 each,
-    ``frac`` fraction digits, zone hours and minutes when ``sign``) times it give the fields."""
-    sizes = [4, 2, 2, 2, 2, 2, frac] + ([2, 2] if sign else [])
-    place = np.zeros((sum(sizes), len(sizes)))
-    at = 0
-    for j, size in enumerate(sizes):
-        place[at:at + size, j] = 10.0 ** np.arange(size - 1, -1, -1)
-        at += size
-    return place
-
-
-def _iso_block(texts: list) -> list[float] | None:
-    """Seconds since the epoch of many ISO 8601 texts of one layout (a log's usual case),
-    computed with numpy over the whole block: equal to ``_iso`` of each (times without a zone
-    are UTC). None when the texts differ in layout, carry more than six fraction digits or hold
-    an impossible date or time: those take the general path."""
-    if not texts or type(texts[0]) is not str:
-        return None
-    layout = _iso_layout(texts[0])
-    if layout is None:
-        return None
-    digits, frac, sign, shape = layout
-    width, n = len(shape), len(texts)
-    try:
-        joined = "".join(texts)
-    except TypeError:
-        return None
-    if len(joined) != width * n or not joined.isascii():
-        return None
-    raw = np.frombuffer(joined.encode("ascii"), dtype=np.uint8).reshape(n, width)
-    fixed = np.ones(width, dtype=bool)
-    fixed[digits] = False
-    if not (raw[:, fixed] == raw[0, fixed]).all():
-        return None
-    d = raw[:, digits] - 48  # uint8: a non-digit wraps above 9
-    if (d > 9).any():
-        return None
-    fields = (d @ _place_values(frac, sign)).astype(np.int64)  # exact: every field is below 10**6
-    year, month, day, hour, minute, second, fraction = fields.T[:7]
-    if ((month < 1) | (month > 12) | (day < 1) | (hour > 23) | (minute > 59) | (second > 59) | (year < 1)).any():
-        return None
-    months = (year - 1970) * 12 + (month - 1)
-    days = months.astype("datetime64[M]").astype("datetime64[D]") + (day - 1)
-    if (days.astype("datetime64[M]").astype(np.int64) != months).any():  # 31 February and the like
-        return None
-    seconds = days.astype(np.int64) * 86400 + hour * 3600 + minute * 60 + second
-    if sign:
-        zh, zm = fields[:, 7], fields[:, 8]
-        if ((zh > 23) | (zm > 59)).any():
-            return None
-        seconds -= sign * (zh * 3600 + zm * 60)
-    micros = seconds * 1_000_000 + fraction * 10 ** (6 - frac)
-    if np.abs(micros).max() >= 2 ** 53:  # beyond the year 2255: not exact as a double
-        return None
-    return (micros / 1e6).tolist()  # as timedelta.total_seconds(): whole microseconds / 10**6
-
-
-def timestamps(texts) -> list[float | None]:
-    """``parse_timestamp`` of many texts; when all share one ISO 8601 layout, with numpy over
-    the whole block; else, when all are ISO 8601 of one kind (all with a zone or all without),
-    in C-level ``map``s."""
-    fast = _iso_block(texts)
-    if fast is not None:
-        return fast
-    try:
-        dts = list(map(datetime.fromisoformat, texts))
-    except (ValueError, TypeError):
-        return list(map(parse_timestamp, texts))
-    zones = list(map(_tzinfo, dts))
-    if None not in zones:
-        return list(map(datetime.timestamp, dts))
-    if zones.count(None) == len(zones):
-        return list(map(datetime.timestamp, map(_as_utc, dts)))
-    return list(map(parse_timestamp, texts))
-
-
-_tzinfo = attrgetter("tzinfo")
-_as_utc = methodcaller("replace", tzinfo=timezone.utc)
+def _list(seq: Sequence) -> list:
+    """A block's lines or offsets as a column: the list itself when it is one (the pipeline
+    hands each block a list of its own), else a copy."""
+    return seq if type(seq) is list else list(seq)
 
 
 def feed_lines(fmt: Format, lines) -> Output:
@@ -190,33 +104,20 @@ def feed_lines(fmt: Format, lines) -> Output:
     whole input read at once, for tools and tests."""
     out: Output = []
     for offset, line in enumerate(lines):
-        out += items(fmt.feed(line, offset))
+        out += fmt.feed(line, offset)
     return out + fmt.flush()
+
+
+def format_class(name: str) -> type[Format]:
+    """The :class:`Format` subclass registered under ``name``."""
+    module, cls = FORMATS[name].split(":")
+    return getattr(importlib.import_module(f"{__name__}.{module}"), cls)
 
 
 def make_format(src: SourceConfig) -> Format:
     """The format object for one source (a fresh one per file being read)."""
-    if src.format == "text":
-        from .text import TextFormat
-
-        return TextFormat(src)
-    if src.format == "jsonl":
-        from .jsonl import JsonlFormat
-
-        return JsonlFormat(src)
-    if src.format == "syslog":
-        from .syslog import SyslogFormat
-
-        return SyslogFormat(src)
-    if src.format == "otlp-json":
-        from .otlp import OtlpJsonFormat
-
-        return OtlpJsonFormat(src)
-    if src.format == "strace":
-        from .strace import StraceFormat
-
-        return StraceFormat(src)
-    raise ValueError(f"unknown format {src.format!r}")  # unreachable: config validates it
+    return format_class(src.format)(src)
 
 
-__all__ = ["Format", "Output", "Record", "Rejection", "feed_lines", "items", "make_format", "parse_timestamp"]
+__all__ = ["FORMATS", "Columns", "Format", "Output", "Record", "Rejection", "collect", "feed_lines",
+           "format_class", "make_format", "parse_timestamp", "timestamps"]

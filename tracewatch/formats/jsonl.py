@@ -3,17 +3,22 @@
 Dotted field paths pick the message, session key, time, level and, optionally, an event-type
 field that is taken as the event directly (no template mining). Malformed JSON and objects
 without the message field are rejected by reason; the latter are kept as whole-line records.
+
+Stage: sources → **formats** → templates. A block of lines whose objects all carry a text
+message is decoded and picked apart column by column (:meth:`JsonlFormat.read_block`); any
+other block goes through :meth:`JsonlFormat.feed` line by line.
 """
 
 from __future__ import annotations
 
+from collections.abc import Sequence
 from operator import itemgetter, methodcaller
 
 import orjson
 
 from ..config import SourceConfig
-from ..records import Record, Rejection
-from . import Output, parse_timestamp, timestamps
+from ..records import Columns, Record, Rejection
+from . import Format, Output, _list, parse_timestamp, timestamps
 
 
 def _getter(path: str | None):
@@ -43,9 +48,23 @@ def _text(value) -> str | None:
     return orjson.dumps(value).decode()
 
 
-class JsonlFormat:
+class JsonlFormat(Format):
+    name = "jsonl"
+    samples = [
+        ({"session_key": "req"}, """\
+{"time": "2026-11-30T10:00:00.250Z", "level": "INFO", "req": "a1", "message": "door 5 opened"}
+{"time": 1764496800, "level": "WARN", "req": 7, "message": "door 5 slow"}
+{"time": 1764496800123, "req": null, "message": "courier CR1 signed off"}""".splitlines()),
+        ({"session_key": "ctx.req", "message_field": "msg", "event_field": "kind"}, """\
+{"kind": "door.open", "ctx": {"req": "a"}}
+{"msg": "fee 2.50 due", "ctx": {"req": "b"}, "kind": ""}
+{"msg": "x", "ctx": [1]}
+[1, 2]
+{"other": true}""".splitlines()),
+    ]
+
     def __init__(self, src: SourceConfig) -> None:
-        self.source = src.name
+        super().__init__(src)
         self._msg = _getter(src.message_field)
         self._key = _getter(src.session_key)
         self._ts = _getter(src.time_field)
@@ -53,10 +72,11 @@ class JsonlFormat:
         self._event = _getter(src.event_field)
         # top-level fields: the same lookup by itemgetter, for whole blocks (``_column``)
         self._items = {g: itemgetter(path) for g, path in ((self._msg, src.message_field),
-                       (self._key, src.session_key), (self._ts, src.time_field))
+                       (self._key, src.session_key), (self._ts, src.time_field),
+                       (self._level, src.level_field), (self._event, src.event_field))
                        if type(g) is methodcaller}
 
-    def feed(self, line: str, offset: int) -> Output | Record:
+    def feed(self, line: str, offset: int) -> Output:
         if not line.strip():
             return [Rejection("empty", line)]
         try:
@@ -73,34 +93,37 @@ class JsonlFormat:
         if message is None and event is None:
             rec = Record(self.source, key, ts, level, line, line, offset)
             return [Rejection("no_message_field", line, rec)]
-        return Record(self.source, key, ts, level, message or event or "", line, offset, event)
+        return [Record(self.source, key, ts, level, message or event or "", line, offset, event)]
 
-    def match_block(self, lines: list[str]) -> tuple[list, list, list] | None:
-        """``(keys, timestamps, messages)`` of a block when every line is a JSON object with a
-        text message (the common case), decoded and picked apart in C-level ``map``s; None
-        when any line needs the per-line path (bad JSON, no message, an event field)."""
-        if self._event is not None:
-            return None
+    def read_block(self, lines: Sequence[str], offsets: Sequence[int]) -> Columns:
+        """The block decoded and picked apart in C-level ``map``s when every line is a JSON
+        object with a text message (and, with an event field, a non-empty one): the common
+        case; any other block line by line."""
         try:
             objs = list(map(orjson.loads, lines))
         except orjson.JSONDecodeError:
-            return None
+            return super().read_block(lines, offsets)
         if set(map(type, objs)) != {dict}:
-            return None
+            return super().read_block(lines, offsets)
         messages = self._column(self._msg, objs)
-        if set(map(type, messages)) != {str}:
-            return None
+        if set(map(type, messages)) != {str} or (self._event is not None and "" in messages):
+            return super().read_block(lines, offsets)
         n = len(objs)
-        keys = self._column(self._key, objs) if self._key else [None] * n
-        if not set(map(type, keys)) <= {str, type(None)}:
-            keys = [_text(k) for k in keys]
         stamps = self._column(self._ts, objs) if self._ts else [None] * n
         kinds = set(map(type, stamps))
         if kinds == {str}:
             stamps = timestamps(stamps)
         elif kinds != {type(None)}:
-            stamps = [self._time(v) for v in stamps]
-        return keys, stamps, messages
+            stamps = list(map(self._time, stamps))
+        return Columns(self._texts(self._key, objs), stamps, self._texts(self._level, objs), messages,
+                       self._texts(self._event, objs), _list(lines), _list(offsets))
+
+    def _texts(self, getter, objs: list[dict]) -> list[str | None]:
+        """``_text`` of one field of every object (None for all without the getter)."""
+        if getter is None:
+            return [None] * len(objs)
+        values = self._column(getter, objs)
+        return values if set(map(type, values)) <= {str, type(None)} else list(map(_text, values))
 
     def _column(self, getter, objs: list[dict]) -> list:
         """One field of every object: a top-level field by ``itemgetter`` (the quickest C-level
@@ -118,6 +141,3 @@ class JsonlFormat:
         if isinstance(value, (int, float)) and not isinstance(value, bool):
             return float(value) / (1000.0 if value > 1e11 else 1.0)
         return parse_timestamp(value) if isinstance(value, str) else None
-
-    def flush(self) -> Output:
-        return []

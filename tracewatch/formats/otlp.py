@@ -27,12 +27,15 @@ from __future__ import annotations
 import base64
 import binascii
 import re
+from collections.abc import Sequence
+from itertools import repeat
+from operator import methodcaller, truediv
 
 import orjson
 
 from ..config import SourceConfig
-from ..records import Record, Rejection
-from . import Output
+from ..records import Columns, Rejection
+from . import Format, Output, collect
 
 # opentelemetry-proto, trace/v1/trace.proto: Span.SpanKind and Status.StatusCode
 SPAN_KINDS = ("UNSPECIFIED", "INTERNAL", "SERVER", "CLIENT", "PRODUCER", "CONSUMER")
@@ -101,9 +104,23 @@ def _depth_change(line: str) -> int:
     return bare.count("{") + bare.count("[") - bare.count("}") - bare.count("]")
 
 
-class OtlpJsonFormat:
+class OtlpJsonFormat(Format):
+    name = "otlp-json"
+    samples = [
+        ({}, ['{"resourceSpans": [{"resource": {"attributes": [{"key": "service.name", "value": {"stringValue": "api"}}]},'
+              ' "scopeSpans": [{"spans": [{"traceId": "5b8efff798038103d269b633813fc60c", "spanId": "eee19b7ec3c1b174",'
+              ' "name": "POST /pickups", "kind": 2, "startTimeUnixNano": "1764496800000000000",'
+              ' "status": {"code": 2}}, {"traceId": "5B8EFFF798038103D269B633813FC60C", "name": "check code",'
+              ' "kind": "SPAN_KIND_INTERNAL", "startTimeUnixNano": 1764496799000000000}, {"name": "no trace"}]}]}]}',
+              "{", '  "resourceSpans": [', '    {"scopeSpans": [{"spans": [{"traceId": "W47/95gDgQPSabYzgT/GDA==",',
+              '      "name": "GET /health"}]}]}', "  ]", "}", '{"resourceSpans": 3}', "[1]", "{cut"]),
+        ({"span_event": ["name"], "max_document_bytes": 1024},
+         ["{", '  "resourceSpans": [', '    {"scopeSpans": [{"spans": [{"traceId": "0af7651916cd43dd8448eb211c80319c",',
+          '      "name": "POST /deposits"}]}]}', "  ]", "}", "{", '  "pad": "' + "p" * 1100 + '",', "}"]),
+    ]
+
     def __init__(self, src: SourceConfig) -> None:
-        self.source = src.name
+        super().__init__(src)
         self.parts = tuple(src.span_event)
         self.max_bytes = src.max_document_bytes
         self.lines_in_documents = 0  # lines that were part of a document that parsed
@@ -197,14 +214,21 @@ class OtlpJsonFormat:
 
     # -- documents to records -------------------------------------------------------------------
     def _document(self, doc, lines: list[str], offset: int) -> Output:
+        cols = self._spans(doc, lines, offset)
+        return [*cols.rejected, *cols.records(self.source)]
+
+    def _spans(self, doc, lines: list[str], offset: int) -> Columns:
+        """The spans of one document as columns, sorted by start time (ties in document order),
+        each field read for all spans at once in C-level ``map``s."""
         if not isinstance(doc, dict):
-            return [Rejection("not_an_object", x) for x in lines]
+            return Columns.of([], [Rejection("not_an_object", x) for x in lines])
         resource_spans = doc.get("resourceSpans")
         if not isinstance(resource_spans, list):
-            return [Rejection("not_traces", x) for x in lines]
+            return Columns.of([], [Rejection("not_traces", x) for x in lines])
         self.lines_in_documents += len(lines)
-        spans: list[tuple[int, int, str, dict]] = []
-        bad: Output = []
+        spans: list[dict] = []
+        services: list[str] = []
+        bad: list[Rejection] = []
         for rs in resource_spans:
             if not isinstance(rs, dict):
                 continue
@@ -214,37 +238,105 @@ class OtlpJsonFormat:
                 scopes = rs.get("instrumentationLibrarySpans")  # OTLP before 0.15, still seen in old files
             for ss in scopes if isinstance(scopes, list) else ():
                 found = ss.get("spans") if isinstance(ss, dict) else None
-                for span in found if isinstance(found, list) else ():
-                    if isinstance(span, dict):
-                        start = _uint64(span.get("startTimeUnixNano")) or 0
-                        spans.append((start, len(spans), service, span))
-                    else:
-                        bad.append(Rejection(SPAN_REASON, orjson.dumps(span).decode()))
-        spans.sort(key=lambda s: (s[0], s[1]))
-        out = bad
-        for start, _, service, span in spans:
-            out.append(self._record(span, service, start, offset))
+                if not isinstance(found, list):
+                    continue
+                if set(map(type, found)) != {dict}:
+                    bad += [Rejection(SPAN_REASON, orjson.dumps(x).decode()) for x in found if not isinstance(x, dict)]
+                    found = [x for x in found if isinstance(x, dict)]
+                spans += found
+                services += [service] * len(found)
+        starts = _uint64s(list(map(_get("startTimeUnixNano"), spans)))
+        order = sorted(range(len(spans)), key=starts.__getitem__)  # stable: ties keep document order
+        if order != list(range(len(spans))):
+            spans, services, starts = ([col[i] for i in order] for col in (spans, services, starts))
+        raws = list(map(bytes.decode, map(orjson.dumps, spans)))
+        tids = _once_each(_trace_id, list(map(_get("traceId"), spans)))
+        names = list(map(_get("name"), spans))
+        if None in tids or set(map(type, names)) != {str} or "" in names:
+            keep = [i for i, (tid, name) in enumerate(zip(tids, names)) if tid is not None and isinstance(name, str)
+                    and name]
+            bad += [Rejection(SPAN_REASON, raws[i]) for i in sorted(set(range(len(spans))) - set(keep))]
+            spans, services, starts, raws, tids, names = ([col[i] for i in keep] for col in
+                                                          (spans, services, starts, raws, tids, names))
+        kinds = _enums(list(map(_get("kind"), spans)), _KIND_NAMES)
+        statuses = list(map(_get("status"), spans))
+        codes = (_enums(list(map(_get("code"), statuses)), _STATUS_NAMES) if set(map(type, statuses)) == {dict}
+                 else list(map(_status_code, statuses)))
+        errors = list(map(STATUS_ERROR.__eq__, codes))
+        events = list(map(":".join, zip(*(self._part(p, services, kinds, names, errors) for p in self.parts
+                                           if p != "status"))))
+        if "status" in self.parts and True in errors:
+            events = [self._event(p, e) for p, e in zip(events, errors)] if self.parts[-1] == "status" else \
+                [":".join(x for x in parts if x is not None) for parts in
+                 zip(*(self._part(p, services, kinds, names, errors) for p in self.parts))]
+        n = len(spans)
+        stamps = list(map(truediv, starts, repeat(1e9)))
+        if 0 in starts:
+            stamps = [t if t else None for t in stamps]
+        return Columns(tids, stamps, list(map(_LEVEL.get, errors)), names, events, raws, [offset] * n, bad)
+
+    @staticmethod
+    def _part(part: str, services: list[str], kinds: list[int], names: list[str], errors: list[bool]) -> list:
+        if part == "service":
+            return services
+        if part == "kind":
+            return [SPAN_KINDS[k] if 0 <= k < len(SPAN_KINDS) else f"KIND{k}" for k in kinds]
+        if part == "name":
+            return names
+        return list(map(_ERROR_PART.get, errors))  # status: ":ERROR" on error spans only
+
+    @staticmethod
+    def _event(event: str, error: bool) -> str:
+        return event + ":ERROR" if error else event
+
+    def read_block(self, lines: Sequence[str], offsets: Sequence[int]) -> Columns:
+        """Lines that are whole documents (what file exporters write) as columns document by
+        document; a line of a document spread over lines goes through :meth:`feed`."""
+        out = Columns.of([])
+        for line, offset in zip(lines, offsets):
+            doc = _NOT_WHOLE
+            if self._held is None and line[:1] == "{" and line[-1:] == "}":
+                try:
+                    doc = orjson.loads(line)
+                except orjson.JSONDecodeError:
+                    pass
+            out.extend(self._spans(doc, [line], offset) if doc is not _NOT_WHOLE else collect((self.feed(line, offset),)))
         return out
 
-    def _record(self, span: dict, service: str, start: int, offset: int) -> Record | Rejection:
-        raw = orjson.dumps(span).decode()
-        tid = _trace_id(span.get("traceId"))
-        name = span.get("name")
-        if tid is None or not isinstance(name, str) or not name:
-            return Rejection(SPAN_REASON, raw)
-        kind = _enum(span.get("kind"), _KIND_NAMES)
-        status = span.get("status")
-        code = _enum(status.get("code"), _STATUS_NAMES) if isinstance(status, dict) else 0
-        error = code == STATUS_ERROR
-        parts = []
-        for part in self.parts:
-            if part == "service":
-                parts.append(service)
-            elif part == "kind":
-                parts.append(SPAN_KINDS[kind] if 0 <= kind < len(SPAN_KINDS) else f"KIND{kind}")
-            elif part == "name":
-                parts.append(name)
-            elif error:
-                parts.append("ERROR")
-        ts = start / 1e9 if start else None
-        return Record(self.source, tid, ts, "ERROR" if error else None, name, raw, offset, ":".join(parts))
+
+_NOT_WHOLE = object()
+_LEVEL = {True: "ERROR", False: None}
+_ERROR_PART = {True: "ERROR", False: None}
+
+
+def _get(field: str):
+    return methodcaller("get", field)
+
+
+def _uint64s(values: list) -> list[int]:
+    """``_uint64`` of many values (0 for none): decimal strings all at once when every value is one."""
+    if values and set(map(type, values)) == {str} and "" not in values and max(map(len, values)) <= 20:
+        joined = "".join(values)
+        if joined.isascii() and joined.isdigit():
+            return list(map(int, values))
+    return [_uint64(v) or 0 for v in values]
+
+
+def _enums(values: list, names: dict[str, int]) -> list[int]:
+    """``_enum`` of many values; plain integers as they are."""
+    if set(map(type, values)) == {int}:
+        return values
+    return list(map(_enum, values, repeat(names)))
+
+
+def _once_each(func, values: list) -> list:
+    """``func`` of every value, computed once per distinct value (a trace's spans share its id)."""
+    try:
+        of = {v: func(v) for v in dict.fromkeys(values)}
+    except TypeError:  # an unhashable value (a list where an id should be)
+        return list(map(func, values))
+    return list(map(of.__getitem__, values))
+
+
+def _status_code(status) -> int:
+    return _enum(status.get("code"), _STATUS_NAMES) if isinstance(status, dict) else 0

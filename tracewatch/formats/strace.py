@@ -33,7 +33,7 @@ from datetime import datetime
 
 from ..config import SourceConfig
 from ..records import Record, Rejection
-from . import Output
+from . import Format, Output
 
 FORKS = frozenset({"clone", "clone3", "fork", "vfork"})
 MAIN = "main"  # key of lines without a pid prefix
@@ -57,9 +57,21 @@ def _errno(ret: str, rest: str) -> str | None:
     return m.group(1) if m else None
 
 
-class StraceFormat:
+class StraceFormat(Format):
+    name = "strace"
+    samples = [
+        ({}, ['openat(AT_FDCWD, "/etc/x", O_RDONLY) = -1 ENOENT (No such file or directory)',
+              "[pid  4242] 10:00:00.123456 clone(child_stack=NULL, flags=SIGCHLD) = 4243",
+              "4243  1796163445.000100 read(3,  <unfinished ...>",
+              "4242  1796163445.000200 --- SIGCHLD {si_signo=SIGCHLD, si_pid=4243} ---",
+              "4243  1796163445.000300 <... read resumed>\"ab\", 2) = 2 <0.000010>",
+              "4243  1796163445.000400 +++ exited with 1 +++", "strace: Process 4242 attached", "4244 wait4(-1,  <unfinished ...>"]),
+        ({"strace_session": "tree"},
+         ["100 clone(child_stack=NULL) = 101", "101 getpid() = 101", "101 +++ killed by SIGKILL +++"]),
+    ]
+
     def __init__(self, src: SourceConfig, *, clock: Callable[[], float] = time.time) -> None:
-        self.source = src.name
+        super().__init__(src)
         self.tree = src.strace_session == "tree"
         self.clock = clock
         self._unfinished: dict[str, tuple[str, str, float | None, int]] = {}  # pid -> name, line, ts, offset
@@ -101,7 +113,7 @@ class StraceFormat:
             self._root.setdefault(ret, self._key(pid))
 
     # -- lines --------------------------------------------------------------------------------
-    def feed(self, line: str, offset: int) -> Output | Record:
+    def feed(self, line: str, offset: int) -> Output:
         m = _PREFIX.match(line)
         pid = m.group(1) or m.group(2) or MAIN
         if m.group(3) is not None:
@@ -112,8 +124,8 @@ class StraceFormat:
         if not body.strip():
             return [Rejection("empty", line)]
         c = _CALL.match(body)
-        if c is not None:  # the common case: one line, one record, handed on bare
-            return self._record(pid, ts, self._result(pid, c), line, offset)
+        if c is not None:  # the common case: one line, one record
+            return [self._record(pid, ts, self._result(pid, c), line, offset)]
         c = _RESUMED.match(body)
         if c is not None:
             event = self._result(pid, c)

@@ -26,9 +26,15 @@ from dataclasses import dataclass
 from datetime import datetime, timezone
 from functools import lru_cache
 
+from collections.abc import Sequence
+from itertools import repeat
+from operator import and_
+from functools import partial
+
 from ..config import SourceConfig
-from ..records import Record, Rejection
-from . import Output
+from ..records import Columns, Record, Rejection
+from ..timestamps import iso8601_numpy
+from . import Format, Output, _list
 
 # RFC 5424 section 6.2.1, table 2 (the same names as RFC 3164 section 4.1.1)
 SEVERITIES = ("emerg", "alert", "crit", "err", "warning", "notice", "info", "debug")
@@ -38,15 +44,19 @@ BOM = "\ufeff"
 FUTURE_SLACK_DAYS = 1  # a BSD date up to a day ahead of the clock is this year's (zones differ)
 
 _SD_NAME = r'[^ =\]"]{1,32}'
-_SD_ELEMENT_RE = rf'\[{_SD_NAME}(?: {_SD_NAME}="(?:[^"\\]|\\.)*")*\]'
+# PARAM-VALUE: any characters but '"' and '\', or a backslash and any character, written as an
+# unrolled loop (one character class at a time: several times quicker in Python's re than the
+# alternation per character)
+_SD_VALUE = r'[^"\\]*(?:\\.[^"\\]*)*'
+_SD_ELEMENT_RE = rf'\[{_SD_NAME}(?: {_SD_NAME}="{_SD_VALUE}")*\]'
 # header, then STRUCTURED-DATA (NILVALUE or elements), then an optional MSG; a line whose
 # structured data is malformed matches only the looser second form
 _RFC5424 = re.compile(rf"<(\d{{1,3}})>[1-9]\d{{0,2}} (\S+) (\S+) (\S+) (\S+) (\S+) (-|(?:{_SD_ELEMENT_RE})+)"
                       r"(?: (.*))?\Z", re.S)
 _RFC5424_LOOSE = re.compile(r"<(\d{1,3})>[1-9]\d{0,2} (\S+) (\S+) (\S+) (\S+) (\S+)(?: (.*))?\Z", re.S)
 _RFC3339 = re.compile(r"\d{4}-\d\d-\d\dT\d\d:\d\d:\d\d(?:\.\d{1,6})?(?:Z|[+-]\d\d:\d\d)\Z")
-_SD_ELEMENT = re.compile(rf'\[({_SD_NAME})((?: {_SD_NAME}="(?:[^"\\]|\\.)*")*)\]', re.S)
-_SD_PARAM = re.compile(rf'({_SD_NAME})="((?:[^"\\]|\\.)*)"', re.S)
+_SD_ELEMENT = re.compile(rf'\[({_SD_NAME})((?: {_SD_NAME}="{_SD_VALUE}")*)\]', re.S)
+_SD_PARAM = re.compile(rf'({_SD_NAME})="({_SD_VALUE})"', re.S)
 _SD_ESCAPE = re.compile(r'\\(["\\\]])')
 _MONTHS = {m: i for i, m in enumerate(("Jan", "Feb", "Mar", "Apr", "May", "Jun", "Jul", "Aug", "Sep", "Oct",
                                        "Nov", "Dec"), start=1)}
@@ -57,6 +67,8 @@ _FILE3339 = re.compile(r"(?:<(\d{1,3})>)?(\d{4}-\d\d-\d\dT\d\d:\d\d:\d\d(?:\.\d+
 # a BSD TAG is only taken as such when "[pid]" or ":" ends it (RFC 3164 section 5.4, example 2)
 _TAG = re.compile(r"([^\s\[\]:]{1,48})(?:\[([^\]\s]*)\]:?|:) ?(.*)\Z", re.S)
 _SD_FIELD = re.compile(r"\[(\S+) (\S+)\]")
+_group = re.Match.group
+_AND7 = partial(and_, 7)  # PRI & 7: the severity
 
 
 def unescape_sd(value: str) -> str:
@@ -190,18 +202,55 @@ def _checked(msg: SyslogMessage) -> SyslogMessage:
     return msg
 
 
-class SyslogFormat:
+class SyslogFormat(Format):
+    name = "syslog"
+    samples = [
+        ({"session_field": "[req@32473 id]"},
+         ['<134>1 2026-11-30T10:00:00.250Z locker-gw-3 locker-api 812 - [req@32473 id="a1"] door 5 opened',
+          '<134>1 2026-11-30T10:00:00.250+01:00 locker-gw-3 locker-api 812 ID7 [req@32473 id="a\\"b"][x@1 k="v"] \ufeffok',
+          '<134>1 2026-11-30T10:00:01.5Z gw api 812 - [req@32473 x="1"][req@32473 id="z9"] the SD-ID twice',
+          "<11>1 - - - - - - ", '<134>1 2026-11-30T10:00:00Z h a p m [bad sd', "<999>1 - h a p m - pri too high"]),
+        ({"session_key": r"req=(?P<key>\S+)"},
+         ["<134>Nov 30 10:00:00 locker-gw-3 locker-api[812]: req=a1 door 5 opened",
+          "Nov  3 09:05:01 gw cron: job started", "2026-11-30T10:00:00.5Z gw app: req=b2 rfc3339 file",
+          "Feb 30 10:00:00 gw app: no such day", "plain text, not syslog"]),
+        ({"session_field": "procid"}, ["<13>1 2026-11-30T10:00:00Z gw app 4711 - - started"]),
+    ]
+
     def __init__(self, src: SourceConfig, *, clock: Callable[[], float] = time.time) -> None:
-        self.source = src.name
+        super().__init__(src)
         self.clock = clock
         field = src.session_field
         self._header = field if field in HEADER_FIELDS else None
         sd = _SD_FIELD.fullmatch(field) if field and self._header is None else None
         # the one SD-ELEMENT and parameter asked for, found without parsing the others
-        self._sd_element = re.compile(rf'\[{re.escape(sd.group(1))}((?: {_SD_NAME}="(?:[^"\\]|\\.)*")*)\]',
+        self._sd_element = re.compile(rf'\[{re.escape(sd.group(1))}((?: {_SD_NAME}="{_SD_VALUE}")*)\]',
                                       re.S) if sd else None
-        self._sd_param = re.compile(rf' {re.escape(sd.group(2))}="((?:[^"\\]|\\.)*)"', re.S) if sd else None
+        self._sd_param = re.compile(rf' {re.escape(sd.group(2))}="({_SD_VALUE})"', re.S) if sd else None
+        # both in one search, for blocks: the first such element that holds the parameter (the
+        # same one while the SD-ID occurs once, as RFC 5424 section 6.3.2 requires)
+        self._sd_id = f"[{sd.group(1)}" if sd else ""
+        self._sd_both = re.compile(rf'\[{re.escape(sd.group(1))}(?: {_SD_NAME}="{_SD_VALUE}")*? '
+                                   rf'{re.escape(sd.group(2))}="({_SD_VALUE})"(?: {_SD_NAME}="{_SD_VALUE}")*\]',
+                                   re.S) if sd else None
         self._key_re = re.compile(src.session_key) if src.session_key else None
+
+    def _sd_key(self, sd_text: str) -> str | None:
+        """The structured-data parameter ``session_field`` names, escapes resolved."""
+        element = self._sd_element.search(sd_text)
+        param = self._sd_param.search(element.group(1)) if element else None
+        return unescape_sd(param.group(1)) if param else None
+
+    def _sd_keys(self, sd_texts: list[str]) -> list[str | None]:
+        """:meth:`_sd_key` of many STRUCTURED-DATA texts (NILVALUE: None), in C-level ``map``s
+        while every text has the parameter and no escape."""
+        if max(map(str.count, sd_texts, repeat(self._sd_id))) == 1:
+            found = list(map(self._sd_both.search, sd_texts))
+            if None not in found:
+                values = list(map(_group, found, repeat(1)))
+                if "\\" not in "".join(values):
+                    return values
+        return [self._sd_key(sd) if sd != NIL else None for sd in sd_texts]
 
     def _key(self, msg: SyslogMessage | None, message: str) -> str | None:
         key = None
@@ -209,15 +258,44 @@ class SyslogFormat:
             if self._header is not None:
                 key = getattr(msg, self._header)
             elif self._sd_element is not None and msg.sd_text:
-                element = self._sd_element.search(msg.sd_text)
-                param = self._sd_param.search(element.group(1)) if element else None
-                key = unescape_sd(param.group(1)) if param else None
+                key = self._sd_key(msg.sd_text)
         if key is None and self._key_re is not None:
             m = self._key_re.search(message)
             key = m.group("key") if m else None
         return key
 
-    def feed(self, line: str, offset: int) -> Output | Record:
+    def read_block(self, lines: Sequence[str], offsets: Sequence[int]) -> Columns:
+        """A block of clean RFC 5424 lines (the usual case for files a syslog daemon writes in
+        that form) read column by column in C-level ``map``s; any other block line by line."""
+        found = list(map(_RFC5424.match, lines))
+        if None in found or not found:
+            return super().read_block(lines, offsets)
+        pris = list(map(int, map(_group, found, repeat(1))))
+        stamp = list(map(_group, found, repeat(2)))
+        # every text in the layout of the first (iso8601_numpy checks it), which is RFC 3339's
+        stamps = iso8601_numpy(stamp) if max(pris) <= 191 and _RFC3339.match(stamp[0]) else None
+        if stamps is None:
+            return super().read_block(lines, offsets)
+        message = list(map(_group, found, repeat(8)))
+        if None in message:
+            message = [m or "" for m in message]
+        if BOM in "".join(message):
+            return super().read_block(lines, offsets)
+        n = len(found)
+        if self._header is not None:
+            keys = list(map(_group, found, repeat(3 + HEADER_FIELDS.index(self._header))))
+            if NIL in keys:
+                keys = [None if k == NIL else k for k in keys]
+        elif self._sd_element is not None:
+            keys = self._sd_keys(list(map(_group, found, repeat(7))))
+        else:
+            keys = [None] * n
+        if self._key_re is not None and None in keys:
+            keys = [k if k is not None else self._key(None, m) for k, m in zip(keys, message)]
+        return Columns(keys, stamps, list(map(SEVERITIES.__getitem__, map(_AND7, pris))), message, [None] * n,
+                       _list(lines), _list(offsets))
+
+    def feed(self, line: str, offset: int) -> Output:
         if not line.strip():
             return [Rejection("empty", line)]
         msg = parse(line, self.clock())
@@ -225,7 +303,4 @@ class SyslogFormat:
             rec = Record(self.source, self._key(None, line), None, None, line, line, offset)
             return [Rejection("not_syslog", line, rec)]
         rec = Record(self.source, self._key(msg, msg.message), msg.ts, msg.severity, msg.message, line, offset)
-        return rec if msg.problem is None else [Rejection(msg.problem, line, rec)]
-
-    def flush(self) -> Output:
-        return []
+        return [rec] if msg.problem is None else [Rejection(msg.problem, line, rec)]

@@ -1,0 +1,93 @@
+"""Timestamps: every layout read as Python's own datetime reads it, one text or a block at once."""
+
+from __future__ import annotations
+
+from datetime import datetime, timezone
+
+import pytest
+from hypothesis import given, settings
+from hypothesis import strategies as st
+
+from tracewatch.timestamps import LAYOUTS, iso8601_numpy, parse_timestamp, timestamps
+
+
+def test_parse_timestamp_forms():
+    # RFC 3339 section 5.8 examples (from the RFC text)
+    assert parse_timestamp("1985-04-12T23:20:50.52Z") == datetime(1985, 4, 12, 23, 20, 50, 520000, tzinfo=timezone.utc).timestamp()
+    assert parse_timestamp("1996-12-19T16:39:57-08:00") == datetime(1996, 12, 20, 0, 39, 57, tzinfo=timezone.utc).timestamp()
+    assert parse_timestamp("1700000000") == 1700000000.0
+    assert parse_timestamp("1700000000123") == 1700000000.123
+    assert parse_timestamp("not a time") is None
+
+
+def test_parse_timestamp_equals_datetime():
+    # parse_timestamp must give exactly what datetime.fromisoformat().timestamp() gives
+    import random
+
+    rng = random.Random(1)
+    for _ in range(2000):
+        base = datetime(2026, 1, 1, tzinfo=timezone.utc).timestamp() + rng.randrange(0, 3 * 86400)
+        micros = rng.randrange(0, 10**6)
+        digits = rng.choice([1, 2, 3, 6])
+        frac = f"{micros:06d}"[:digits]
+        text = datetime.fromtimestamp(base, tz=timezone.utc).strftime("%Y-%m-%dT%H:%M:%S") + "." + frac
+        for zone in ("Z", "+02:00", ""):
+            expected = datetime.fromisoformat(text + zone).replace(
+                tzinfo=datetime.fromisoformat(text + zone).tzinfo or timezone.utc).timestamp()
+            assert parse_timestamp(text + zone) == expected
+        comma = text.replace(".", ",")
+        assert parse_timestamp(comma) == parse_timestamp(text)
+
+
+_LAYOUT = st.tuples(st.sampled_from("T "), st.integers(0, 6), st.sampled_from(".,"),
+                    st.sampled_from(["", "Z", "+00:00", "+05:30", "-08:00", "+14:00", "-23:59"]))
+_MOMENT = st.datetimes(min_value=datetime(1700, 1, 1), max_value=datetime(2255, 1, 1))  # exact as doubles
+
+
+@settings(max_examples=300, deadline=None)
+@given(layout=_LAYOUT, moments=st.lists(_MOMENT, min_size=1, max_size=40))
+def test_block_timestamps_equal_datetime(layout, moments):
+    """``timestamps`` of a block sharing one layout (the numpy path) equals, exactly,
+    Python's own ``datetime.fromisoformat(...).timestamp()`` of each text (the reference;
+    times without a zone taken as UTC, as parse_timestamp does)."""
+    sep, frac, dot, zone = layout
+    texts = []
+    for m in moments:
+        text = m.strftime(f"%Y-%m-%d{sep}%H:%M:%S")
+        if frac:
+            text += dot + f"{m.microsecond:06d}"[:frac]
+        texts.append(text + zone)
+    expected = []
+    for text in texts:
+        dt = datetime.fromisoformat(text.replace(",", "."))
+        expected.append(dt.replace(tzinfo=dt.tzinfo or timezone.utc).timestamp())
+    assert iso8601_numpy(texts) is not None  # this layout takes the block path
+    assert timestamps(texts) == expected
+
+
+@pytest.mark.parametrize("texts", [
+    ["2026-11-30T10:00:00Z", "2026-11-30T10:00:01+01:00"],  # layouts differ
+    ["2026-02-30T10:00:00Z"],  # no such day
+    ["2026-11-30T24:00:00Z"],  # no such hour
+    ["2026-11-30T10:00:00.1234567Z"],  # beyond microseconds
+    ["2026-11-30T10:00:00Z", "2026-11-30T10:00:0xZ"],  # not a digit
+], ids=["mixed-layouts", "february-30", "hour-24", "nanoseconds", "not-a-digit"])
+def test_block_timestamps_fall_back_to_the_general_path(texts):
+    assert iso8601_numpy(texts) is None
+    assert timestamps(texts) == [parse_timestamp(t) for t in texts]
+
+
+_ISO_TEXT = st.tuples(_LAYOUT, _MOMENT).map(
+    lambda t: t[1].strftime(f"%Y-%m-%d{t[0][0]}%H:%M:%S") + (t[0][2] + "123456"[:t[0][1]] if t[0][1] else "") + t[0][3])
+
+
+@pytest.mark.parametrize("layout", [x for x in LAYOUTS.values() if x.block is not None], ids=lambda x: x.name)
+@settings(max_examples=200, deadline=None)
+@given(texts=st.lists(st.one_of(_ISO_TEXT, _ISO_TEXT.map(lambda t: t[:-1]), st.text(max_size=30)), max_size=20))
+def test_every_block_reader_equals_its_one_text_reader(layout, texts):
+    """A layout's block reader, where it answers, gives what its one-text reader gives; and
+    ``timestamps`` of any texts is ``parse_timestamp`` of each."""
+    got = layout.block(texts)
+    if got is not None:
+        assert got == [layout.one(t) for t in texts]
+    assert timestamps([*texts, None]) == [*map(parse_timestamp, texts), None]
