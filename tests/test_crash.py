@@ -53,6 +53,7 @@ KILLS = 20  # at least this many SIGKILLs per rotation mode
 IDLE = 2.5  # idle timeout: the writer's pauses (and waits at its stops) stay far below it
 CHECKPOINT_S = 0.3
 STEP = 0.005  # how often conditions are polled
+SEED = int(os.environ.get("TRACEWATCH_CRASH_SEED", "0"))  # another value: other kill points (a longer soak)
 
 
 # -- the writer (a process of its own) --------------------------------------------------------------
@@ -151,18 +152,18 @@ def make_plan(mode: str, n_lines: int, seed: int) -> list[list]:
     while bounds[-1] < n_lines:
         bounds.append(min(n_lines, bounds[-1] + rng.randint(15, 40)))
     chunks = list(zip(bounds, bounds[1:]))
-    per = -(-len(chunks) // (KILLS + 1))
+    cuts = [len(chunks) * i // (KILLS + 1) for i in range(KILLS + 2)]  # stretch i: chunks[cuts[i]:cuts[i+1]]
     ways = {"rename": ["up", "down-1", "down-2"], "copytruncate": ["up", "mid-now", "mid-later", "down-1", "down-2"],
             "delete": ["up", "down-1"]}[mode]
     rotate = {"rename": [["rename"]], "copytruncate": [["copy"], ["truncate"]], "delete": [["delete"]]}[mode]
     plan: list[list] = []
     pending: list[str] = []
     n_rot = 0
-    for i in range(0, len(chunks), per):
-        stretch = [["lines", a, b] for a, b in chunks[i:i + per]]
+    for i in range(KILLS + 1):
+        stretch = [["lines", a, b] for a, b in chunks[cuts[i]:cuts[i + 1]]]
         if i:
-            plan.append(["need", i // per])
-        if i // per % 2 == 1 and len(chunks) - i > 2 * per:
+            plan.append(["need", i])
+        if i % 2 == 1 and i < KILLS - 1:
             if not pending:
                 pending = rng.sample(ways, len(ways))
             way, n_rot = pending.pop(), n_rot + 1
@@ -462,7 +463,7 @@ class Run:
 def test_kill_9_at_random_points_loses_and_repeats_no_line(fitted, day, zyg, tmp_path, mode):
     day_path, lines, expected = day
     cfg_path = workspace(fitted, tmp_path, idle=IDLE, checkpoint_s=CHECKPOINT_S)
-    seed = {"rename": 1, "copytruncate": 2, "delete": 3}[mode]
+    seed = {"rename": 1, "copytruncate": 2, "delete": 3}[mode] + 10 * SEED
     run = Run(zyg, cfg_path, mode, seed)
     plan = tmp_path / "plan.json"
     plan.write_text(json.dumps(make_plan(mode, len(lines), seed)))
