@@ -346,6 +346,10 @@ class Run:
         except FileNotFoundError:
             return None
 
+    def log_size(self) -> int:
+        st = self.log_stat()
+        return 0 if st is None else st.st_size
+
     def alive(self) -> None:
         assert self.down or self.daemon.proc.poll() is None, f"the daemon exited:\n{self.daemon.stderr()[-3000:]}"
         if self.writer is not None and self.writer.poll() not in (None, 0):
@@ -423,7 +427,7 @@ class Run:
     def free_kill(self) -> bool:
         """Kill at a condition drawn at random; False when the writer finished first."""
         kind = self.rng.choice(["checkpoint", "size", "size"])
-        size0 = (self.log_stat() or os.stat_result((0,) * 10)).st_size
+        size0 = self.log_size()
         grow = self.rng.randint(2_000, 20_000)
         ckpt0 = self.ckpt_id()
 
@@ -439,8 +443,8 @@ class Run:
                 return kind
             if kind == "checkpoint":
                 return kind if self.ckpt_id() != ckpt0 else None
-            st = self.log_stat()
-            return kind if st is not None and (st.st_size >= size0 + grow or st.st_size < size0) else None
+            size = self.log_size()
+            return kind if size >= size0 + grow or size < size0 else None
 
         got = self.wait(due, f"a kill point ({kind})")
         if got == "done":
@@ -449,12 +453,10 @@ class Run:
             self.at_stop(got[5:])
             return True
         self.kill(kind)
-        if self.rng.random() < 0.3 and not (self.mode == "delete"):  # down for a while: a backlog
-            st = self.log_stat()
-            size1 = st.st_size if st else 0
+        if self.rng.random() < 0.3:  # down for a while: a backlog to catch up on
+            size1 = self.log_size()
             self.wait(lambda: self.ctl.has("done") or self.ctl.stopped_at() is not None
-                      or (self.log_stat() or st or os.stat_result((0,) * 10)).st_size >= size1 + 5_000,
-                      "a backlog")
+                      or not size1 <= self.log_size() < size1 + 5_000, "a backlog")
         self.restart()
         return True
 

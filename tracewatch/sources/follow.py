@@ -17,7 +17,8 @@ inode plus a fingerprint of its head, so a reused inode is a new file.
   A file renamed to a name the globs still match is simply followed under its new name.
 - Copytruncate (the file got shorter than what was read, or its head changed): what the copy
   (a file beside it with the same head) holds beyond the read offset is read from the copy,
-  then the file is read again from 0. A copy the globs match is not read a second time.
+  then the files rotated after that copy (two rotations between two reads, found as below),
+  then the file again from 0. A copy the globs match is not read a second time.
 - After a restart, each checkpointed file is looked for as it may have become while the daemon
   was down: at its path, or renamed beside it (its device and inode, and the same head); if its
   inode was truncated since (copytruncate: the head changed, or it is shorter than the saved
