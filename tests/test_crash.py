@@ -169,7 +169,7 @@ def make_plan(mode: str, n_lines: int, seed: int) -> list[list]:
             way, n_rot = pending.pop(), n_rot + 1
             name = f"{way}-{n_rot}"
             if way == "up":
-                plan += [["stop", name], *rotate]  # the test lets it on while the daemon runs
+                plan += [["stop", name], *rotate, ["mark", name]]  # let on while the daemon runs
             elif way.startswith("mid"):
                 plan += [["copy"], ["stop", name], ["truncate"], ["mark", name]]
             else:
@@ -322,6 +322,7 @@ class Run:
         self.ctl = Control(cfg_path.parent / "ctl")
         self.kills = 0
         self.kinds: dict[str, int] = {}
+        self.history: list[str] = []  # what was done when, shown when the run fails
         self.daemon: DaemonProcess | None = None
         self.down = True  # between a kill and the next start
         self.writer: Child | None = None
@@ -379,6 +380,7 @@ class Run:
 
     # what the test does
     def start(self, *, real: bool = False) -> None:
+        self.note("start")
         before = self.ckpt_id()
         self.daemon = DaemonProcess(self.cfg_path) if real else ForkedDaemon(self.zyg, self.cfg_path)
         self.started_from = before
@@ -390,7 +392,13 @@ class Run:
     def wait_started(self) -> None:
         self.wait(self.started, "the start checkpoint")
 
+    def note(self, what: str) -> None:
+        st = self.log_stat()
+        self.history.append(f"{time.monotonic():.3f} {what} (app.log {st and st.st_ino}:{st and st.st_size}, "
+                            f"checkpoint {[(f['ino'], f['offset']) for f in self.ckpt_files()]})")
+
     def kill(self, kind: str) -> None:
+        self.note(f"kill {kind}")
         self.daemon.kill()
         self.down = True
         self.kills += 1
@@ -410,7 +418,10 @@ class Run:
         way = name.rsplit("-", 1)[0]
         if way == "up":  # rotate while the daemon runs: it must know the file to be rotated
             self.wait(lambda: self.covers_current(whole=False), "a checkpoint naming app.log")
+            self.note(f"go {name}")
             self.ctl.touch(f"go-{name}")
+            # no kill is decided on before the rotation is done (delete mode's window opens there)
+            self.wait(lambda: self.ctl.has(f"mark-{name}"), f"the writer past {name}")
             return
         if way.startswith("down") and self.mode == "delete":
             # a deleted file cannot be read after a restart: killed only once it is checkpointed whole
@@ -496,6 +507,8 @@ def test_kill_9_at_random_points_loses_and_repeats_no_line(fitted, day, zyg, tmp
                f"{int(records.get('api', 0))} counted, {src['rejected']} rejected; alerts {len(got)} live, "
                f"{len(expected)} batch")
     print(summary)
+    if records.get("api") != len(lines):
+        print("\n".join(run.history))
     assert run.kills >= KILLS, summary
     assert records.get("api") == len(lines), summary
     assert src["records"] == src["lines"] == len(lines) and not src["rejected"], summary
