@@ -25,7 +25,6 @@ from tracewatch.sources.follow import Follower
 from tracewatch.sources.checkpoint import (COUNTERS, AlertJournal, JournalMark, capture, capture_chunks,
                                           load_checkpoint, restore, save_checkpoint)
 
-from .conftest import run_cli
 from .daemon_helpers import DaemonProcess, free_port, no_daemon_left  # noqa: F401
 
 

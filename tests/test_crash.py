@@ -45,9 +45,9 @@ from pathlib import Path
 import pytest
 from prometheus_client.parser import text_string_to_metric_families
 
-from .conftest import ROOT, run_cli
+from .conftest import ROOT
 from .daemon_helpers import (DaemonProcess, die_with_parent, fitted, no_daemon_left,  # noqa: F401
-                             scaled_lines, wait_for, workspace)
+                             scaled_lines, scored_day, wait_for, workspace)
 
 KILLS = 20  # at least this many SIGKILLs per rotation mode
 IDLE = 2.5  # idle timeout: the writer's pauses (and waits at its stops) stay far below it
@@ -297,12 +297,7 @@ def day(fitted, tmp_path_factory):
     folder = tmp_path_factory.mktemp("crash-day")
     cfg_path = workspace(fitted, folder, idle=IDLE, checkpoint_s=CHECKPOINT_S)
     lines = scaled_lines(520, 5, seed=31, span_s=100)
-    path = folder / "day.txt"
-    path.write_text("\n".join(lines) + "\n")
-    batch = run_cli("score", "--config", str(cfg_path), str(path), check=True).stdout
-    expected = [json.loads(x) for x in batch.splitlines()]
-    assert len(expected) >= 20, "the day needs alerts to compare"
-    return path, lines, expected
+    return folder / "day.txt", lines, scored_day(cfg_path, folder / "day.txt", lines, 20)
 
 
 # -- the run -----------------------------------------------------------------------------------------
