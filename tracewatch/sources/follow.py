@@ -305,7 +305,9 @@ class Follower:
     def _follow_rotated(self, src: SourceConfig, folder: str, since_ns: int, now: float, why: str) -> None:
         """Read, as rotated files, oldest first, the files of ``src`` rotated in ``folder`` that
         were written after ``since_ns``: named after a file the globs match, but not matched
-        by them, not followed yet, not compressed, not a copy of a followed file."""
+        by them, not followed yet, not compressed, not a copy of a followed file. (On a
+        filesystem whose timestamps are coarse, a rotation within the same tick as the last write
+        before the checkpoint looks no newer than it, and is missed.)"""
         if not since_ns:
             return
         matched = {p for pattern in self.globs[src.name] for p in glob.glob(pattern, recursive=True)
