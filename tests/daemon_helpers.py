@@ -112,12 +112,16 @@ def fitted(tmp_path_factory):
     base.write_text("\n".join(scaled_lines(400, 0, seed=11, span_s=400)) + "\n")
     fit_files(cfg, assign_sources(cfg, [str(base)]))
     lines = scaled_lines(260, 4, seed=12, span_s=60)
-    day = root / "day.txt"
-    day.write_text("\n".join(lines) + "\n")
-    batch = run_cli("score", "--config", str(cfg_path), str(day), check=True).stdout
+    return root, cfg_path, base, lines, scored_day(cfg_path, root / "day.txt", lines, 10)
+
+
+def scored_day(cfg_path: Path, path: Path, lines: list[str], at_least: int) -> list[dict]:
+    """Write ``lines`` to ``path``; what `tracewatch score` says of them (``at_least`` alerts)."""
+    path.write_text("\n".join(lines) + "\n")
+    batch = run_cli("score", "--config", str(cfg_path), str(path), check=True).stdout
     expected = [json.loads(x) for x in batch.splitlines()]
-    assert len(expected) >= 10, "the day needs alerts to compare"
-    return root, cfg_path, base, lines, expected
+    assert len(expected) >= at_least, "the day needs alerts to compare"
+    return expected
 
 
 def workspace(fitted, tmp_path: Path, **config) -> Path:

@@ -3,14 +3,29 @@ the verdicts of one uninterrupted run; alerts are journalled once across crashes
 
 from __future__ import annotations
 
+import json
+import math
+import os
+import shutil
+import subprocess
+from pathlib import Path
+
 import orjson
 import pytest
+from hypothesis import HealthCheck, given, settings
+from hypothesis import strategies as st
+from prometheus_client import CollectorRegistry
 
 from tracewatch.baselines import load_baseline
-from tracewatch.errors import StateError
+from tracewatch.config import parse_config
+from tracewatch.errors import StateError, TracewatchError
 from tracewatch.pipeline import Pipeline
-from tracewatch.sources.checkpoint import (AlertJournal, JournalMark, capture, capture_chunks, load_checkpoint,
-                                          restore, save_checkpoint)
+from tracewatch.service.daemon import Daemon
+from tracewatch.sources.follow import Follower
+from tracewatch.sources.checkpoint import (COUNTERS, AlertJournal, JournalMark, capture, capture_chunks,
+                                          load_checkpoint, restore, save_checkpoint)
+
+from .daemon_helpers import DaemonProcess, free_port, no_daemon_left  # noqa: F401
 
 
 @pytest.fixture(scope="module")
@@ -192,3 +207,159 @@ def test_damaged_lines_keep_their_numbers_and_their_alerts_are_appended_again(tm
     j.close()
     assert [orjson.loads(x)["alert_id"] for i, x in enumerate(path.read_bytes().splitlines()) if i not in (2, 4)] == [
         "id1", "id2", "id4", "id3", "id5"]
+
+
+# -- tampered checkpoints: one clear line, never a hang, a traceback or someone else's file ----------------
+def _paths(doc, prefix=()):
+    """Every place in a JSON document: the keys and indices that lead to it."""
+    yield prefix
+    items = doc.items() if isinstance(doc, dict) else enumerate(doc) if isinstance(doc, list) else ()
+    for key, value in items:
+        if isinstance(doc, list) and key > 2:
+            break  # the first entries of a list stand for the rest
+        yield from _paths(value, prefix + (key,))
+
+
+def _tampered(doc, where: tuple, value, how: str):
+    doc = json.loads(json.dumps(doc))
+    if not where:
+        return value
+    parent = doc
+    for key in where[:-1]:
+        parent = parent[key]
+    if how == "delete" and isinstance(parent, dict):
+        del parent[where[-1]]
+    elif how == "extra" and isinstance(parent, dict):
+        parent["unexpected"] = value
+    else:
+        parent[where[-1]] = value
+    return doc
+
+
+HOSTILE = st.one_of(
+    st.sampled_from([-1, -(2**63), 2**63, 2**64 + 1, 10**30, 10**400, 0, 1, 1024, 10**9]),
+    st.sampled_from([1e308, -1e308, 1e-308, float("nan"), float("inf"), float("-inf"), 0.5]),
+    st.sampled_from(["", "x" * 200_000, "../../../../etc", "v0001/../../x", "v0001\n", "0" * 32, "/etc/passwd",
+                     "\n\nTraceback"]),
+    st.sampled_from([None, True, [], {}, [[[[]]]], [0] * 20_000, [[0, 1]] * 3, {"": None}]),
+    st.integers(), st.text(max_size=40), st.lists(st.integers(), max_size=12),
+)
+
+
+@pytest.fixture(scope="module")
+def tamper_base(demo_fit, tmp_path_factory):
+    """A state folder, a daemon config following its logs/ and a checkpoint with every part
+    filled in: a followed file, open sessions, templates learned since the fit, counters, an
+    alert pending."""
+    root = tmp_path_factory.mktemp("tamper")
+    state = Path(shutil.copytree(demo_fit.cfg.state_dir, root / "state"))
+    (root / "logs").mkdir()
+    lines = demo_fit.day.read_text().splitlines()
+    cut = len(lines) // 2
+    (root / "logs" / "app.log").write_text("\n".join(lines[:cut]) + "\n")
+    cfg = parse_config({"state_dir": str(state), "server": {"listen": f"127.0.0.1:{free_port()}"},
+                        "sources": [{"name": "api", "paths": [str(root / "logs" / "*.log")], "start_at": "beginning",
+                                     "line_pattern": demo_fit.cfg.sources[0].line_pattern}],
+                        "sessions": {"idle_timeout_s": 5}})
+    pipe = Pipeline(cfg, load_baseline(state), clock=lambda: 0.0)
+    follower = Follower(cfg.sources, pipe)
+    follower.attach(None)
+    follower.poll()
+    pipe.tick(pipe.watermark)
+    doc = orjson.loads(capture(pipe, follower.positions(), {"offset": 0, "count": 0, "pending": ["a1b2c3"]}))
+    follower.close()
+    assert doc["files"] and doc["pipeline"]["sessions"]["open"] and doc["pipeline"]["templates"]["templates"]
+    return cfg, doc
+
+
+def _start_once(cfg) -> tuple[str | None, dict]:
+    """Start the real Daemon on the state as it is and stop it: the one line the command would
+    print (None when it started), and what it started with."""
+    daemon = Daemon(cfg, registry=CollectorRegistry())
+    try:
+        daemon.start()
+    except TracewatchError as exc:
+        return f"tracewatch: {exc}", {}
+    pipe = daemon.pipe
+    state = {"followed": [(t.path, t.offset, os.fstat(t.fd).st_size) for t in daemon.follower.tails],
+             "times": [pipe.watermark] + [x for s in pipe.sessionizer.open.values()
+                                           for x in (s.first_ts, s.last_ts, s.last_seen)],
+             "counts": [pipe.sessionizer.evicted] + [n for name in COUNTERS for n in getattr(pipe, name).values()]}
+    daemon.close(checkpoint=False)
+    return None, state
+
+
+def _sane(cfg, state: dict) -> None:
+    """What a daemon may start with: real times, counts a counter can hold, files inside the
+    folder it follows and offsets within them."""
+    folder = Path(cfg.sources[0].paths[0]).parent
+    assert all(math.isfinite(t) and abs(t) < 1e11 for t in state["times"]), state["times"][:5]
+    assert all(0 <= n < 2**63 for n in state["counts"])
+    assert all(Path(p).parent == folder and 0 <= offset <= size for p, offset, size in state["followed"]), \
+        state["followed"]
+
+
+@settings(max_examples=80, deadline=None, suppress_health_check=[HealthCheck.function_scoped_fixture,
+                                                                   HealthCheck.too_slow])
+@given(data=st.data(), value=HOSTILE, how=st.sampled_from(["replace", "replace", "replace", "delete", "extra"]))
+def test_a_tampered_checkpoint_is_refused_in_one_line_or_used_safely(tamper_base, data, value, how):
+    """Any one place of the checkpoint replaced by a hostile value (out of range, of the wrong
+    type or shape, huge), deleted, or joined by an unexpected key: the real daemon refuses to
+    start with one line naming the checkpoint — never another exception — or starts sane."""
+    cfg, doc = tamper_base
+    where = data.draw(st.sampled_from(list(_paths(doc))), label="where")
+    path = Path(cfg.state_dir) / "checkpoint.json"
+    path.write_text(json.dumps(_tampered(doc, where, value, how)))  # json: NaN and Infinity as they would be
+    line, state = _start_once(cfg)
+    if line is not None:
+        assert "\n" not in line and "checkpoint" in line and len(line) < 1000, line
+    else:
+        _sane(cfg, state)
+
+
+TAMPERS = {  # place, value: each one a start must refuse
+    "offset-past-any-file": (("files", 0, "offset"), 2**64),
+    "negative-inode": (("files", 0, "ino"), -5),
+    "huge-head-length": (("files", 0, "fp_len"), 10**9),
+    "head-not-a-hash": (("files", 0, "fp"), "../../x"),
+    "path-too-long": (("files", 0, "path"), "/" + "x" * 10_000),
+    "offset-past-the-size": (("files", 0, "size"), 1),
+    "watermark-nan": (("pipeline", "watermark"), float("nan")),
+    "session-time-infinite": (("pipeline", "sessions", "open", 0, 4), float("inf")),
+    "session-event-negative": (("pipeline", "sessions", "open", 0, 2), [-1]),
+    "session-too-many-samples": (("pipeline", "sessions", "open", 0, 8), ["x"] * 50),
+    "session-wrong-shape": (("pipeline", "sessions", "open", 0), ["api", "k"]),
+    "evicted-huge": (("pipeline", "sessions", "evicted"), 10**400),
+    "template-without-tokens": (("pipeline", "templates", "templates", 0, "tokens"), []),
+    "template-path-longer-than-tokens": (("pipeline", "templates", "templates", 0, "path"), ["a"] * 40),
+    "unknown-counter": (("pipeline", "counters", "surprise"), []),
+    "counter-negative": (("pipeline", "counters", "records"), [[["api"], -3]]),
+    "baseline-outside-the-state-folder": (("baseline_version",), "../../../../etc"),
+    "pending-not-ids": (("alerts", "pending"), [["nested"]]),
+}
+
+
+@pytest.mark.parametrize("name", list(TAMPERS))
+def test_an_out_of_range_checkpoint_is_refused_in_one_line(tamper_base, name):
+    cfg, doc = tamper_base
+    where, value = TAMPERS[name]
+    (Path(cfg.state_dir) / "checkpoint.json").write_text(json.dumps(_tampered(doc, where, value, "replace")))
+    line, _ = _start_once(cfg)
+    assert line is not None and "\n" not in line and "checkpoint is damaged" in line, line
+
+
+def test_a_tampered_checkpoint_stops_the_command_with_one_line(tamper_base, tmp_path):
+    """Through the real command: exit 1, one line, no traceback."""
+    cfg, doc = tamper_base
+    state = Path(shutil.copytree(cfg.state_dir, tmp_path / "state"))
+    toml = tmp_path / "tracewatch.toml"
+    toml.write_text(f'state_dir = "state"\n[server]\nlisten = "127.0.0.1:{free_port()}"\n[[sources]]\nname = "api"\n'
+                    f'paths = ["{Path(cfg.sources[0].paths[0])}"]\nline_pattern = \'{cfg.sources[0].line_pattern}\'\n')
+    (state / "checkpoint.json").write_text(json.dumps(_tampered(doc, ("pipeline", "watermark"), float("nan"), "replace")))
+    daemon = DaemonProcess(toml)
+    try:
+        code = daemon.proc.wait(timeout=60)
+    except subprocess.TimeoutExpired:
+        raise AssertionError("the daemon started on a checkpoint whose time is not a number") from None
+    err = daemon.stderr()
+    assert code == 1 and err.count("\n") == 1 and err.startswith("tracewatch: ") and "checkpoint" in err, err

@@ -246,6 +246,144 @@ def test_restart_finds_a_file_rotated_while_stopped(tmp_path):
     g.close()
 
 
+def _lines(tag: str, n: int) -> str:
+    return "".join(f"{tag} line {i}, long enough for a head fingerprint of its own\n" for i in range(n))
+
+
+def _logrotate(logs: Path, how: str) -> None:
+    """One rotation as logrotate names them: a.log.N → a.log.N+1, then a.log → a.log.1 by
+    rename, or copied to a.log.1 and truncated in place (copytruncate)."""
+    n = 1
+    while (logs / f"a.log.{n}").exists():
+        n += 1
+    for k in range(n - 1, 0, -1):
+        os.rename(logs / f"a.log.{k}", logs / f"a.log.{k + 1}")
+    if how == "rename":
+        os.rename(logs / "a.log", logs / "a.log.1")
+    else:
+        shutil.copyfile(logs / "a.log", logs / "a.log.1")
+        if how == "copytruncate":
+            os.truncate(logs / "a.log", 0)
+
+
+def _read_all(g: Follower, clock: Clock) -> None:
+    for _ in range(4):  # read the rotated files to their end, past the grace, then the rest
+        g.poll()
+        clock.t += GRACE + 1
+
+
+@pytest.mark.parametrize("rotations", [
+    ["copytruncate"], ["copytruncate", "copytruncate"], ["rename", "rename"], ["copytruncate", "rename"],
+    ["rename", "copytruncate"],
+], ids=["copytruncate", "two-copytruncates", "two-renames", "copytruncate-then-rename", "rename-then-copytruncate"])
+def test_restart_after_rotations_while_stopped_reads_every_line_once(tmp_path, rotations):
+    """Down across one or two rotations: the rest of the checkpointed file (from the copy when
+    its inode was truncated), the files rotated in between from their start, then the file at the
+    path — every line once, in the order written."""
+    read, saved = _stopped(tmp_path, _lines("before", 5))
+    logs = tmp_path / "logs"
+    written = read + _lines("unread", 3).splitlines()
+    _append(logs / "a.log", _lines("unread", 3))
+    for i, how in enumerate(rotations):
+        _logrotate(logs, how)
+        _append(logs / "a.log", _lines(f"gen{i + 2}", 4))
+        written += _lines(f"gen{i + 2}", 4).splitlines()
+    g, sink2, clock = _restarted(tmp_path, saved)
+    _read_all(g, clock)
+    assert read + sink2.texts() == written
+    g.close()
+
+
+def test_restart_between_the_copy_and_the_truncate(tmp_path):
+    """Restarted after the copy, before the truncate: the file is resumed where it was, and the
+    truncate, when it comes, is finished from the copy."""
+    read, saved = _stopped(tmp_path, _lines("before", 5))
+    logs = tmp_path / "logs"
+    _append(logs / "a.log", _lines("unread", 3))
+    _logrotate(logs, "copy")
+    g, sink2, clock = _restarted(tmp_path, saved)
+    os.truncate(logs / "a.log", 0)
+    _append(logs / "a.log", "after\n")
+    _read_all(g, clock)
+    assert read + sink2.texts() == read + _lines("unread", 3).splitlines() + ["after"]
+    g.close()
+
+
+def test_a_copy_whose_truncate_has_not_come_yet_is_not_read_with_the_rotations(tmp_path):
+    """Down across a copytruncate and the copy of the next one: that copy is the file at the
+    path, read through it (and finished from the copy once the truncate comes)."""
+    read, saved = _stopped(tmp_path, _lines("before", 5))
+    logs = tmp_path / "logs"
+    _logrotate(logs, "copytruncate")
+    _append(logs / "a.log", _lines("gen2", 4))
+    _logrotate(logs, "copy")
+    g, sink2, clock = _restarted(tmp_path, saved)
+    _read_all(g, clock)
+    assert sink2.texts() == _lines("gen2", 4).splitlines()
+    os.truncate(logs / "a.log", 0)
+    _append(logs / "a.log", "after\n")
+    _read_all(g, clock)
+    assert sink2.texts() == _lines("gen2", 4).splitlines() + ["after"]
+    g.close()
+
+
+def test_rotated_files_read_before_the_checkpoint_are_not_read_again(tmp_path):
+    """A rotated file still open at the checkpoint, and copytruncates read since: after a
+    restart, only what came after the checkpoint is read."""
+    f, sink, clock, log = _started(tmp_path, _lines("gen1", 3))
+    logs = tmp_path / "logs"
+    _logrotate(logs, "rename")
+    _append(log, _lines("gen2", 3))
+    f.poll()  # a.log.1 is read to its end but not finished: still within the grace
+    _logrotate(logs, "copytruncate")  # a.log.1 → a.log.2; a copy of gen2 is a.log.1
+    _append(log, _lines("gen3", 3))
+    f.poll()
+    saved = f.positions()
+    assert len(saved) == 2
+    f.close()
+    _append(log, "after the checkpoint\n")
+    g, sink2, clock = _restarted(tmp_path, saved)
+    _read_all(g, clock)
+    assert sink.texts() + sink2.texts() == (_lines("gen1", 3) + _lines("gen2", 3) + _lines("gen3", 3)).splitlines() \
+        + ["after the checkpoint"]
+    g.close()
+
+
+def test_an_empty_file_copytruncated_while_stopped(tmp_path):
+    """Empty at the checkpoint (no head to know its copy by): the copy is found as a file
+    rotated after the checkpoint."""
+    f, sink, _ = _follower(tmp_path)
+    logs = tmp_path / "logs"
+    (logs / "a.log").touch()
+    f.attach(None)
+    f.poll()
+    saved = f.positions()
+    f.close()
+    assert saved[0]["fp_len"] == 0
+    _append(logs / "a.log", _lines("gen1", 3))
+    _logrotate(logs, "copytruncate")
+    _append(logs / "a.log", "after\n")
+    g, sink2, clock = _restarted(tmp_path, saved)
+    _read_all(g, clock)
+    assert sink2.texts() == _lines("gen1", 3).splitlines() + ["after"]
+    g.close()
+
+
+def test_two_copytruncates_between_two_reads(tmp_path):
+    """Running, but two copytruncates came before the follower looked again: the first copy
+    from the offset, the second from its start, then the file."""
+    f, sink, clock, log = _started(tmp_path, _lines("gen1", 3))
+    logs = tmp_path / "logs"
+    _append(log, _lines("unread", 2))
+    _logrotate(logs, "copytruncate")
+    _append(log, _lines("gen2", 3))
+    _logrotate(logs, "copytruncate")
+    _append(log, "after\n")
+    _read_all(f, clock)
+    assert sink.texts() == (_lines("gen1", 3) + _lines("unread", 2) + _lines("gen2", 3)).splitlines() + ["after"]
+    f.close()
+
+
 def test_restart_with_the_inode_reused_by_another_file(tmp_path, caplog):
     _, saved = _stopped(tmp_path, "the old file\n")
     saved[0]["fp"] = "0" * 32  # as if another file now had this inode: its head differs

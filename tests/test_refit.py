@@ -17,6 +17,8 @@ from datetime import datetime, timezone
 from pathlib import Path
 
 import pytest
+from hypothesis import given, settings
+from hypothesis import strategies as st
 
 from tracewatch.alerts.incidents import IncidentTracker
 from tracewatch.alerts.store import IncidentStore
@@ -185,6 +187,46 @@ def test_a_corrupt_pool_file_is_one_clear_message(tmp_path, damage, why):
     message = str(err.value)
     assert message.startswith(f"{path}: not a usable refit pool") and why in message
     assert "move it away" in message and "\n" not in message
+
+
+POOL_TAMPERS = {  # each one a load must refuse in one line
+    "generator-word-too-big": lambda d: {**d, "rng_state": [3, [2**70] * 625, None]},
+    "generator-position-past-the-end": lambda d: {**d, "rng_state": [3, d["rng_state"][1][:-1] + [10**6], None]},
+    "generator-gauss-infinite": lambda d: {**d, "rng_state": [3, d["rng_state"][1], 1e999]},
+    "last-refit-negative": lambda d: {**d, "last_refit": -1.0},
+    "baseline-outside-the-state-folder": lambda d: {**d, "baseline_version": "../../etc"},
+    "arrival-past-seen": lambda d: {**d, "sources": {"api": {"seen": 1, "arrivals": [10**12], "sessions": [[0]]}}},
+    "negative-index": lambda d: {**d, "sources": {"api": {"seen": 1, "arrivals": [1], "sessions": [[-1]]}}},
+}
+
+
+@pytest.mark.parametrize("name", list(POOL_TAMPERS))
+def test_an_out_of_range_pool_file_is_refused_in_one_line(tmp_path, name):
+    path = tmp_path / POOL_FILE
+    path.write_text(json.dumps(POOL_TAMPERS[name](_valid_pool_doc())))
+    with pytest.raises(StateError) as err:
+        QuietPool.load(path, 5)
+    assert "not a usable refit pool" in str(err.value) and "\n" not in str(err.value)
+
+
+@settings(max_examples=150, deadline=None)
+@given(where=st.sampled_from(["kind", "schema_version", "baseline_version", "last_refit", "rng_state", "templates",
+                              "sources"]),
+       value=st.one_of(st.none(), st.booleans(), st.integers(), st.floats(), st.text(max_size=30),
+                       st.lists(st.integers(), max_size=700), st.dictionaries(st.text(max_size=5), st.integers(),
+                                                                              max_size=3)))
+def test_a_tampered_pool_file_is_refused_in_one_line_or_loads_within_its_bounds(tmp_path_factory, where, value):
+    """One field of the refit pool replaced by anything: refused in one line, or a pool no larger
+    than its capacity whose numbers agree."""
+    path = tmp_path_factory.mktemp("pool") / POOL_FILE
+    path.write_text(json.dumps({**_valid_pool_doc(), where: value}))
+    try:
+        pool = QuietPool.load(path, 5)
+    except StateError as exc:
+        assert "\n" not in str(exc) and "move it away" in str(exc)
+        return
+    assert all(n <= 5 for n in pool.sizes().values())
+    assert all(pool.seen()[src] >= n for src, n in pool.sizes().items())
 
 
 # -- the gates -------------------------------------------------------------------------------------------

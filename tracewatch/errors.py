@@ -67,4 +67,4 @@ def first_problem(exc) -> str:
     err = errors[0]
     where = ".".join(str(p) for p in err["loc"]) or "value"
     more = f" (and {len(errors) - 1} more)" if len(errors) > 1 else ""
-    return f"{where}: {err['msg']}"[:200] + more
+    return " ".join(f"{where}: {err['msg']}".split())[:200] + more

@@ -32,14 +32,15 @@ from collections import defaultdict
 from collections.abc import Sequence
 from dataclasses import dataclass, field
 from pathlib import Path
+from typing import Annotated, Literal
 
 import numpy as np
 import orjson
-from pydantic import BaseModel, ConfigDict, ValidationError
+from pydantic import BaseModel, ConfigDict, Field, ValidationError, model_validator
 
 from .baselines import check_writable, current_version, load_baseline, save_baseline
 from .config import Config
-from .errors import StateError
+from .errors import StateError, first_problem
 from .fs import atomic_write
 from .model.baseline import POOLED, Baseline, fit_baseline
 from .templates import Template, TemplateTree
@@ -147,13 +148,16 @@ class QuietPool:
         file cannot be used. A pool larger than ``capacity`` is cut down to a random subset."""
         pool = cls(capacity, seed)
         try:
+            if Path(path).stat().st_size > MAX_POOL_BYTES:
+                raise StateError(f"{path}: not a usable refit pool (larger than {MAX_POOL_BYTES >> 20} MiB, more "
+                                 "than tracewatch ever writes); move it away to start an empty pool")
             raw = Path(path).read_bytes()
         except FileNotFoundError:
             return pool
         except OSError as exc:
             raise StateError(f"{path}: cannot read the refit pool: {exc.strerror or exc}") from exc
         try:
-            doc = _PoolFile.model_validate(orjson.loads(raw))
+            doc = _PoolFile.model_validate(orjson.loads(raw))  # orjson: no NaN, no Infinity
             if doc.kind != POOL_KIND:
                 raise ValueError("not a tracewatch refit pool")
             if doc.schema_version != POOL_SCHEMA:
@@ -163,42 +167,60 @@ class QuietPool:
             pool.rng.setstate((version, tuple(internal), gauss))
             names = doc.templates
             for src, part in doc.sources.items():
-                if len(part.arrivals) != len(part.sessions) or len(part.sessions) > part.seen:
-                    raise ValueError(f"source {src!r}: the counts do not agree")
                 if any(not 0 <= i < len(names) for s in part.sessions for i in s):
-                    raise ValueError(f"source {src!r}: a template index is out of range")
+                    raise ValueError(f"source {' '.join(src.split())[:100]!r}: a template index is out of range")
                 kept = [(n, tuple(names[i] for i in s)) for n, s in zip(part.arrivals, part.sessions)]
                 if len(kept) > capacity:
                     kept = pool.rng.sample(kept, capacity)
                 pool._seen[src], pool._kept[src] = part.seen, kept
-        except (orjson.JSONDecodeError, ValidationError, ValueError, TypeError) as exc:
-            if isinstance(exc, ValidationError):
-                err = exc.errors()[0]
-                why = f"{'.'.join(map(str, err['loc'])) or 'the file'}: {err['msg']}"
-            else:
-                why = str(exc).splitlines()[0]
+        except (orjson.JSONDecodeError, ValidationError, ValueError) as exc:
+            why = first_problem(exc) if isinstance(exc, ValidationError) else str(exc).splitlines()[0]
             raise StateError(f"{path}: not a usable refit pool ({why}); move it away to start an empty "
                              "pool") from exc
         pool.baseline_version, pool.last_refit = doc.baseline_version, doc.last_refit
         return pool
 
 
+MAX_POOL_BYTES = 1 << 30  # a refit pool file larger than this is not one tracewatch wrote
+_MAX_ITEMS = 10_000_000  # sessions, events in one, template ids
+_Count = Annotated[int, Field(ge=0, le=(1 << 63) - 1)]
+
+
 class _PoolSource(BaseModel):
     model_config = ConfigDict(extra="forbid")
-    seen: int
-    arrivals: list[int]
-    sessions: list[list[int]]
+    seen: _Count
+    arrivals: list[Annotated[int, Field(ge=1, le=(1 << 63) - 1)]] = Field(max_length=_MAX_ITEMS)
+    sessions: list[list[Annotated[int, Field(ge=0, le=_MAX_ITEMS)]]] = Field(max_length=_MAX_ITEMS)
+
+    @model_validator(mode="after")
+    def _consistent(self) -> _PoolSource:
+        if len(self.arrivals) != len(self.sessions) or len(self.sessions) > self.seen:
+            raise ValueError("the counts do not agree")
+        if any(n > self.seen for n in self.arrivals):
+            raise ValueError("an arrival number is past the sessions seen")
+        return self
 
 
 class _PoolFile(BaseModel):
-    model_config = ConfigDict(extra="allow")
-    kind: str
+    model_config = ConfigDict(extra="allow", allow_inf_nan=False)
+    kind: Annotated[str, Field(max_length=100)]
     schema_version: int
-    baseline_version: str | None
-    last_refit: float | None
-    rng_state: tuple[int, list[int], float | None]
-    templates: list[str]
-    sources: dict[str, _PoolSource]
+    baseline_version: Annotated[str, Field(pattern=r"^v[0-9]{1,9}$")] | None
+    last_refit: Annotated[float, Field(ge=0, le=1e11)] | None
+    # random.Random.getstate(): version 3, 624 32-bit words and a position in 0..624, a cached gauss
+    rng_state: tuple[Literal[3], Annotated[list[Annotated[int, Field(ge=0, lt=1 << 32)]], Field(max_length=1000)],
+                     float | None]
+    templates: list[Annotated[str, Field(max_length=64)]] = Field(max_length=_MAX_ITEMS)
+    sources: dict[Annotated[str, Field(max_length=4096)], _PoolSource] = Field(max_length=100_000)
+
+    @model_validator(mode="after")
+    def _consistent(self) -> _PoolFile:
+        words = self.rng_state[1]
+        if len(words) != 625:
+            raise ValueError(f"rng_state: the generator state is the wrong size ({len(words)} numbers, not 625)")
+        if words[-1] > 624:
+            raise ValueError("rng_state: the position is past the 624 words")
+        return self
 
 
 # -- what a refit is made of -------------------------------------------------------------------------

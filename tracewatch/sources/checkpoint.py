@@ -26,13 +26,15 @@ import time
 from collections import Counter, deque
 from collections.abc import Iterable, Iterator
 from pathlib import Path
-from typing import Literal
+from typing import Annotated, Literal
 
 import orjson
-from pydantic import BaseModel, ConfigDict, Field, ValidationError
+from pydantic import BaseModel, ConfigDict, Field, ValidationError, model_validator
 
 from ..fs import atomic_write
-from ..errors import StateError
+from ..errors import StateError, first_problem
+from ..sessions import MAX_SAMPLES
+from .follow import FINGERPRINT_BYTES
 
 log = logging.getLogger("tracewatch.checkpoint")
 
@@ -43,61 +45,98 @@ PENDING_READ_BYTES = 1 << 20  # read back from a checkpoint's mark at a time, fo
 
 
 class _Strict(BaseModel):
-    model_config = ConfigDict(extra="forbid")
+    model_config = ConfigDict(extra="forbid", allow_inf_nan=False)
+
+
+# Bounds on what a checkpoint may hold: generous for any real state, so that a damaged or
+# hand-edited file is refused with one line instead of making the daemon hang or run out of
+# memory (the file's size is bounded too, before it is parsed).
+MAX_CHECKPOINT_BYTES = 1 << 30
+MAX_ITEMS = 10_000_000  # open sessions, events in one, templates, masked messages
+MAX_TEXT = 1 << 26  # one line's text (a session key, a sample, a template)
+MAX_NAME = 4096  # a path, a source name
+MAX_OFFSET = (1 << 63) - 1  # what a file offset (off_t) can be
+MAX_TS = 1e11  # seconds from 1970, either way (about the year 5100)
+
+Count = Annotated[int, Field(ge=0, le=MAX_OFFSET)]
+Offset = Annotated[int, Field(ge=-1, le=MAX_OFFSET)]  # -1: a line fed without one
+Seconds = Annotated[float, Field(ge=-MAX_TS, le=MAX_TS)]
+Name = Annotated[str, Field(max_length=MAX_NAME)]
+Text = Annotated[str, Field(max_length=MAX_TEXT)]
+Index = Annotated[int, Field(ge=0, le=MAX_ITEMS)]
 
 
 class FilePosition(_Strict):
-    source: str
-    path: str
-    dev: int
-    ino: int
-    offset: int = Field(ge=0)
-    fp: str
-    fp_len: int = Field(ge=0)
+    """Where a followed file was left (written by :meth:`Follower.positions`)."""
+    source: Name
+    path: Annotated[str, Field(min_length=1, max_length=MAX_NAME)]
+    dev: Count
+    ino: Count
+    offset: Count
+    fp: Annotated[str, Field(pattern=r"^[0-9a-f]{32}$")]  # blake2b-128 of the head, in hex
+    fp_len: int = Field(ge=0, le=FINGERPRINT_BYTES)
+    size: Count = 0  # the file's size then, as read (0: not saved)
+    mtime_ns: Count = 0  # its mtime then (0: not saved): a file rotated after the checkpoint is newer
+
+    @model_validator(mode="after")
+    def _consistent(self) -> FilePosition:
+        if self.size and self.offset > self.size:
+            raise ValueError(f"offset {self.offset} is past the size {self.size}")
+        return self
+
+
+Open = tuple[Name, Text, Annotated[list[Index], Field(max_length=MAX_ITEMS)], Seconds, Seconds, Seconds, Text, Offset,
+             Annotated[list[Text], Field(max_length=MAX_SAMPLES)]]
 
 
 class SavedSessions(_Strict):
     # source, key, events, first_ts, last_ts, last_seen, first_raw, first_offset, samples
-    open: list[tuple[str, str, list[int], float, float, float, str, int, list[str]]]
-    run_counts: dict[str, int]
-    evicted: int = Field(ge=0)
+    open: list[Open] = Field(max_length=MAX_ITEMS)
+    run_counts: dict[Name, Count] = Field(max_length=MAX_ITEMS)
+    evicted: Count
 
 
 class SavedTemplate(_Strict):
-    id: str
-    template: str
-    tokens: list[str]
-    path: list[str]
-    count: int
+    id: Annotated[str, Field(pattern=r"^[0-9a-z:_-]{1,64}$")]
+    template: Text
+    tokens: list[Text] = Field(min_length=1, max_length=MAX_ITEMS)
+    path: list[Text] = Field(max_length=64)
+    count: Count
     structured: bool
+
+    @model_validator(mode="after")
+    def _consistent(self) -> SavedTemplate:
+        if len(self.path) > len(self.tokens):
+            raise ValueError(f"template {self.id}: a routing path longer than its tokens")
+        return self
 
 
 class SavedTemplates(_Strict):
-    n_seen: int = Field(ge=0)
-    templates: list[SavedTemplate]
-    masked: list[tuple[str, int]]
+    n_seen: Index
+    templates: list[SavedTemplate] = Field(max_length=MAX_ITEMS)
+    masked: list[tuple[Text, Index]] = Field(max_length=MAX_ITEMS)
 
 
 class SavedPipeline(_Strict):
-    watermark: float
-    counters: dict[str, list[tuple[list[str], int]]]
+    watermark: Seconds
+    counters: dict[Literal[COUNTERS], list[tuple[Annotated[list[Name], Field(min_length=1, max_length=2)], Count]]]
     sessions: SavedSessions
     templates: SavedTemplates
 
 
 class JournalMark(_Strict):
-    offset: int = Field(ge=0)
-    count: int = Field(ge=0)
+    offset: Count
+    count: Count
     # alerts in the journal before ``offset`` whose session a restart will close again
-    pending: list[str] = Field(default_factory=list)
+    pending: list[Annotated[str, Field(max_length=256)]] = Field(default_factory=list, max_length=MAX_ITEMS)
 
 
 class Checkpoint(_Strict):
     schema_version: int
     kind: Literal["tracewatch-checkpoint"]
-    written: float
-    baseline_version: str
-    files: list[FilePosition]
+    written: Seconds
+    baseline_version: Annotated[str, Field(pattern=r"^v[0-9]{1,9}$")]  # a folder under baselines/
+    files: list[FilePosition] = Field(max_length=100_000)
     pipeline: SavedPipeline
     alerts: JournalMark
 
@@ -137,18 +176,21 @@ def save_checkpoint(path: Path, data: bytes | Iterable[bytes]) -> None:
 
 def load_checkpoint(path: Path) -> Checkpoint | None:
     """The saved checkpoint, or None when there is none yet; a damaged one is a StateError."""
+    advice = ("; move it away to start afresh (files are then read as on a first start, and alerts "
+              "already in alerts.jsonl stay)")
     try:
+        if path.stat().st_size > MAX_CHECKPOINT_BYTES:
+            raise StateError(f"{path}: the checkpoint is larger than {MAX_CHECKPOINT_BYTES >> 20} MiB, more than "
+                             f"tracewatch ever writes{advice}")
         raw = path.read_bytes()
     except FileNotFoundError:
         return None
     except OSError as exc:
         raise StateError(f"{path}: cannot read the checkpoint: {exc.strerror or exc}") from exc
-    advice = ("; move it away to start afresh (files are then read as on a first start, and alerts "
-              "already in alerts.jsonl stay)")
     try:
         ckpt = Checkpoint.model_validate_json(raw)
     except ValidationError as exc:
-        raise StateError(f"{path}: the checkpoint is damaged ({str(exc).splitlines()[0]}){advice}") from exc
+        raise StateError(f"{path}: the checkpoint is damaged ({first_problem(exc)}){advice}") from exc
     if ckpt.schema_version != SCHEMA_VERSION:
         raise StateError(f"{path}: checkpoint schema {ckpt.schema_version} is not supported by this "
                          f"tracewatch (schema {SCHEMA_VERSION}){advice}")

@@ -17,7 +17,19 @@ inode plus a fingerprint of its head, so a reused inode is a new file.
   A file renamed to a name the globs still match is simply followed under its new name.
 - Copytruncate (the file got shorter than what was read, or its head changed): what the copy
   (a file beside it with the same head) holds beyond the read offset is read from the copy,
-  then the file is read again from 0. A copy the globs match is not read a second time.
+  then the files rotated after that copy (two rotations between two reads, found as below),
+  then the file again from 0. A copy the globs match is not read a second time.
+- After a restart, each checkpointed file is looked for as it may have become while the daemon
+  was down: at its path, or renamed beside it (its device and inode, and the same head); if its
+  inode was truncated since (copytruncate: the head changed, or it is shorter than the saved
+  offset), the copy beside it with the saved head, from the saved offset. The rotations made
+  while the daemon was down come next, oldest first: the files beside it named after a followed
+  file (``app.log`` → ``app.log.1``, ``app.log-20261130``; not compressed ones) that were
+  written after the checkpointed file and that the globs do not match, read from 0 — except a
+  copy of a file still followed (a copy made just before a truncate that has not happened yet).
+  Then the files at the globbed paths, the truncated inode among them, from 0.
+- Rotated files are read one after another, the one that stopped growing first first, and a
+  source's followed files wait until they are: lines go on in the order they were written.
 - A last line without its newline is held until the newline arrives; a finished file that
   ends that way hands it on as a line, as the batch reader does.
 """
@@ -43,6 +55,7 @@ FINGERPRINT_BYTES = 1024
 CHUNK_BYTES = 1 << 20  # read per file per poll: keeps ticks, checkpoints and HTTP responsive
 START_SCAN_BYTES = 1 << 16  # start_at = "end": back up to the last newline within this much
 _WILD = frozenset("*?[")
+COMPRESSED = (".gz", ".bz2", ".xz", ".zst", ".lz4", ".zip", ".Z")  # rotated and compressed: not readable as lines
 
 
 class LineSink(Protocol):
@@ -85,6 +98,7 @@ class Tail:
         self.fp, self.fp_len = _head(fd, FINGERPRINT_BYTES)
         self.former = ("", 0)  # the head before the last truncation
         self.rotated_at: float | None = None  # when no glob-matched path pointed to it any more
+        self.ended_ns = 0  # its mtime then: rotated files are read in the order they stopped growing
         self.grew_at = now
         self.behind_since: float | None = None
 
@@ -182,27 +196,57 @@ class Follower:
                     raise InputError(f"source {name!r}: folder {d} is not readable")
 
     def attach(self, saved: list[dict] | None = None) -> None:
-        """Open the files: those in ``saved`` (a checkpoint) where they were left, the others
-        by ``start_at`` on a first start (``saved is None``), else from their beginning."""
+        """Open the files: those in ``saved`` (a checkpoint) where they were left (the module
+        docstring says where they are looked for), then the rotations made while the daemon was
+        down, then the others: by ``start_at`` on a first start (``saved is None``), else from
+        their beginning."""
         self._first_start = saved is None
         now = self.clock()
+        moved: list[tuple[SourceConfig, str, int]] = []  # (source, folder, mtime of what was found)
+        saved_ns: dict[str, int] = {}  # per source: the newest mtime of the files the checkpoint names
         for pos in saved or []:
             src = self.sources.get(pos["source"])
             if src is None:
                 log.warning("checkpoint names source %r, which the config no longer has; its file "
                             "%s is not followed", pos["source"], pos["path"])
                 continue
-            found = self._locate(pos)
+            if not self._watched(src.name, pos["path"]):
+                log.warning("checkpoint names %s for source %s, outside the folders it follows; not read",
+                            pos["path"], src.name)
+                continue
+            saved_ns[src.name] = max(saved_ns.get(src.name, 0), pos.get("mtime_ns", 0))
+            identity = (pos["dev"], pos["ino"])
+            found = self._with_head(os.path.dirname(pos["path"]), (pos["fp"], pos["fp_len"]), pos["offset"],
+                                    want=identity, first=pos["path"])
             if found is None:
-                log.warning("%s (source %s) is gone since the checkpoint; lines written to it after "
-                            "byte %d were not read", pos["path"], src.name, pos["offset"])
+                log.warning("%s (source %s) is gone since the checkpoint, and no copy of it was found; lines "
+                            "written to it after byte %d were not read", pos["path"], src.name, pos["offset"])
+                moved.append((src, os.path.dirname(pos["path"]), 0))
                 continue
             path, fd, st = found
-            tail = Tail(src, path, fd, st, pos["offset"], now)
-            self.tails.append(tail)
-            if st.st_size < pos["offset"]:
-                self._truncated(tail)
+            self.tails.append(Tail(src, path, fd, st, pos["offset"], now))
+            if (st.st_dev, st.st_ino) != identity:
+                log.info("%s was truncated since the checkpoint; reading its bytes from %d on from the copy %s",
+                         pos["path"], pos["offset"], path)
+            if path != pos["path"] or (st.st_dev, st.st_ino) != identity:
+                moved.append((src, os.path.dirname(path), st.st_mtime_ns))
+            elif not pos["fp_len"]:  # empty then: no head tells whether it was copied and truncated since
+                moved.append((src, os.path.dirname(path), 0))
+        for src, folder, found_ns in moved:
+            # rotated while down = written after the checkpoint: later than any file it names was
+            # then (a rotated file read before the checkpoint stopped growing before those did)
+            self._follow_rotated(src, folder, max(found_ns, saved_ns.get(src.name, 0)), now,
+                                 "was rotated while tracewatch was down")
         self._scan(now, startup=True)
+
+    def _watched(self, name: str, path: str) -> bool:
+        """Is ``path`` in a folder that source ``name`` follows (a checkpoint may be tampered with)?"""
+        folder = os.path.dirname(os.path.abspath(path))
+        for pattern in self.globs[name]:
+            top, recursive = watch_dirs(pattern)
+            if folder == top or (recursive and folder.startswith(top.rstrip(os.sep) + os.sep)):
+                return True
+        return False
 
     def _open(self, path: str) -> tuple[int, os.stat_result] | None:
         try:
@@ -215,28 +259,86 @@ class Follower:
             return None
         return fd, st
 
-    def _locate(self, pos: dict) -> tuple[str, int, os.stat_result] | None:
-        """The checkpointed file: at its path, or renamed beside it (same inode and head)."""
-        folder = os.path.dirname(pos["path"])
+    def _siblings(self, folder: str, first: str | None = None) -> list[tuple[str, os.stat_result]]:
+        """The regular files in ``folder`` (``first`` first) with their ``stat``."""
         try:
-            names = [pos["path"]] + sorted(e.path for e in os.scandir(folder) if e.path != pos["path"])
+            names = sorted(e.path for e in os.scandir(folder) if e.path != first)
         except OSError:
-            names = [pos["path"]]
-        for path in names:
+            names = []
+        out = []
+        for path in ([first] if first else []) + names:
             try:
                 st = os.stat(path)
             except OSError:
                 continue
-            if (st.st_dev, st.st_ino) != (pos["dev"], pos["ino"]):
+            if stat.S_ISREG(st.st_mode):
+                out.append((path, st))
+        return out
+
+    def _with_head(self, folder: str, head: tuple[str, int], min_size: int, *, want: tuple[int, int] | None = None,
+                   skip: tuple[int, int] | None = None, first: str | None = None
+                   ) -> tuple[str, int, os.stat_result] | None:
+        """The file in ``folder`` that starts with ``head`` and holds at least ``min_size`` bytes:
+        the one with the identity ``want`` if it does, else the newest other one (a copy; never
+        ``skip``, and only for a head of at least one byte). Returned open."""
+        best = None
+        for path, st in self._siblings(folder, first):
+            same = (st.st_dev, st.st_ino) == want
+            if st.st_size < min_size or (st.st_dev, st.st_ino) == skip or not (same or head[1]):
+                continue
+            if not same and best is not None and st.st_mtime_ns <= best[2].st_mtime_ns:
                 continue
             opened = self._open(path)
             if opened is None:
                 continue
             fd, st = opened
-            if pos["fp_len"] == 0 or _head(fd, pos["fp_len"]) == (pos["fp"], pos["fp_len"]):
-                return path, fd, st
-            os.close(fd)
-        return None
+            if head[1] and _head(fd, head[1]) != head:
+                os.close(fd)
+                continue
+            if best is not None:
+                os.close(best[1])
+            best = (path, fd, st)
+            if same:
+                break
+        return best
+
+    def _follow_rotated(self, src: SourceConfig, folder: str, since_ns: int, now: float, why: str) -> None:
+        """Read, as rotated files, oldest first, the files of ``src`` rotated in ``folder`` that
+        were written after ``since_ns``: named after a file the globs match, but not matched
+        by them, not followed yet, not compressed, not a copy of a followed file. (On a
+        filesystem whose timestamps are coarse, a rotation within the same tick as the last write
+        before the checkpoint looks no newer than it, and is missed.)"""
+        if not since_ns:
+            return
+        matched = {p for pattern in self.globs[src.name] for p in glob.glob(pattern, recursive=True)
+                   if os.path.dirname(p) == folder}
+        stems = {os.path.basename(p) for p in matched}
+        known = {t.identity for t in self.tails}
+        heads = []  # of the matched files: a copy of one is read through it, once it is truncated
+        for path in matched:
+            opened = self._open(path)
+            if opened is not None:
+                heads.append(_head(opened[0], FINGERPRINT_BYTES))
+                os.close(opened[0])
+        found = []
+        for path, st in self._siblings(folder):
+            name = os.path.basename(path)
+            if (path in matched or (st.st_dev, st.st_ino) in known or st.st_mtime_ns <= since_ns
+                    or name.endswith(COMPRESSED) or not any(name.startswith(s) and name != s for s in stems)):
+                continue
+            opened = self._open(path)
+            if opened is None:
+                continue
+            fd, st = opened
+            if any(t.is_copy(fd) for t in self.tails) or any(n >= 64 and _head(fd, n) == (fp, n) for fp, n in heads):
+                os.close(fd)
+                continue
+            found.append((path, fd, st))
+        for path, fd, st in sorted(found, key=lambda x: x[2].st_mtime_ns):
+            log.info("%s %s; reading it from its start", path, why)
+            t = Tail(src, path, fd, st, 0, now)
+            t.rotated_at, t.ended_ns = now, st.st_mtime_ns
+            self.tails.append(t)
 
     # -- the loop body -----------------------------------------------------------------------
     def poll(self) -> bool:
@@ -249,8 +351,8 @@ class Follower:
             self._scan(now, startup=False)
         behind = False
         waiting: set[str] = set()  # sources with a rotated file not read to its end yet
-        for t in list(self.tails):
-            if t.source in waiting and t.rotated_at is None:
+        for t in sorted(self.tails, key=lambda t: (t.rotated_at is None, t.ended_ns)):
+            if t.source in waiting:
                 behind = True
                 continue
             try:
@@ -273,7 +375,8 @@ class Follower:
         if st.st_size != t.size:
             t.grew_at = now
             if st.st_size < t.pos or not t.head_matches(t.fd):
-                self._truncated(t)
+                if self._truncated(t):
+                    return True  # files rotated in between come first
                 st = os.fstat(t.fd)
             elif t.fp_len < FINGERPRINT_BYTES and st.st_size > t.fp_len:
                 t.fp, t.fp_len = _head(t.fd, FINGERPRINT_BYTES)
@@ -288,13 +391,17 @@ class Follower:
         t.behind_since = None
         return False
 
-    def _truncated(self, t: Tail) -> None:
-        """Copytruncate: finish from the copy what was not read yet, then start again at 0."""
-        copy = self._find_copy(t)
+    def _truncated(self, t: Tail) -> bool:
+        """Copytruncate: finish from the copy what was not read yet, then the files rotated after
+        the copy, if any (two rotations since the file was last read), then start again at 0.
+        True when there are such files (they are read first)."""
+        copy = None
+        if t.fp_len:
+            copy = self._with_head(os.path.dirname(t.path), (t.fp, t.fp_len), t.offset, skip=t.identity)
         if copy is not None:
-            path, fd = copy
+            path, fd, st = copy
             log.info("%s was truncated; reading its last %s bytes from the copy %s", t.path,
-                     os.fstat(fd).st_size - t.offset, path)
+                     st.st_size - t.offset, path)
             t.pos = t.offset
             t.partial.clear()
             t.partial_len = 0
@@ -306,30 +413,12 @@ class Follower:
                         t.path, t.size - t.pos)
         t.finish_partial(self.sink)
         t.reset()
-
-    def _find_copy(self, t: Tail) -> tuple[str, int] | None:
-        if t.offset == 0 or t.fp_len == 0:
-            return None
-        try:
-            entries = [e for e in os.scandir(os.path.dirname(t.path)) if e.is_file()]
-        except OSError:
-            return None
-        best = None
-        for e in entries:
-            st = e.stat()
-            if (st.st_dev, st.st_ino) == t.identity or st.st_size < t.offset:
-                continue
-            opened = self._open(e.path)
-            if opened is None:
-                continue
-            fd, _ = opened
-            if t.head_matches(fd) and (best is None or st.st_mtime_ns > best[2]):
-                if best is not None:
-                    os.close(best[1])
-                best = (e.path, fd, st.st_mtime_ns)
-            else:
-                os.close(fd)
-        return None if best is None else best[:2]
+        if copy is None:
+            return False
+        n = len(self.tails)
+        self._follow_rotated(self.sources[t.source], os.path.dirname(t.path), st.st_mtime_ns, self.clock(),
+                             f"was rotated after {path}")
+        return len(self.tails) > n
 
     def _finish(self, t: Tail) -> None:
         t.finish_partial(self.sink)
@@ -364,6 +453,7 @@ class Follower:
                 t.path, t.rotated_at = hit[1], None
             elif t.rotated_at is None:
                 t.rotated_at = now
+                t.ended_ns = os.fstat(t.fd).st_mtime_ns
                 log.info("%s (source %s) was rotated or deleted; reading it to its end", t.path, t.source)
         for identity, (name, path) in found.items():
             if identity not in known:
@@ -404,7 +494,7 @@ class Follower:
             if held is not None and 0 <= held < offset:
                 offset = held
             out.append({"source": t.source, "path": t.path, "dev": t.dev, "ino": t.ino, "offset": offset,
-                        "fp": t.fp, "fp_len": t.fp_len})
+                        "fp": t.fp, "fp_len": t.fp_len, "size": t.size, "mtime_ns": _mtime_ns(t.fd)})
         return out
 
     def status(self) -> list[dict]:
@@ -418,6 +508,13 @@ class Follower:
         for t in self.tails:
             t.close()
         self.tails.clear()
+
+
+def _mtime_ns(fd: int) -> int:
+    try:
+        return os.fstat(fd).st_mtime_ns
+    except OSError:
+        return 0
 
 
 def _points_to(path: str, identity: tuple[int, int]) -> bool:
