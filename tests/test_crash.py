@@ -267,7 +267,7 @@ class Child:
         self.send_signal(signal.SIGKILL)
 
     def wait(self, timeout: float | None = None) -> int:
-        wait_for(lambda: self.poll() is not None, f"{self.args[0]} to exit", timeout=timeout or 30, step=STEP)
+        wait_for(lambda: self.poll() is not None, timeout or 30, what=f"{self.args[0]} to exit", step=STEP)
         return self.returncode
 
 
@@ -352,7 +352,7 @@ class Run:
             raise AssertionError(f"the writer failed:\n{self.ctl.read('writer.err')[-3000:]}")
 
     def wait(self, pred, what: str, timeout: float = 60.0, ignore: tuple[type[BaseException], ...] = ()):
-        return wait_for(pred, what, timeout=timeout, step=STEP, alive=self.alive, ignore=ignore,
+        return wait_for(pred, timeout, what=what, step=STEP, alive=self.alive, ignore=ignore,
                         tail=lambda: f"mode {self.mode}, {self.kills} kills\n{self.daemon.stderr()[-2000:]}")
 
     def deleted_pending(self) -> bool:
