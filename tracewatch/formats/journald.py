@@ -18,12 +18,18 @@ the field meanings of systemd.journal-fields(7):
   the ``session_key`` regex (group ``key``) in the message, when one is given. An entry with
   neither is keyless (time windows).
 
+A record's raw text is the entry as JSON with its fields sorted: journalctl writes an entry's
+fields in an order that changes from run to run, and an alert's id (and so its being recognised
+after a restart) depends on the raw text of the session's first record.
+
 A line that is not a JSON object is rejected as ``bad_json`` / ``not_an_object``.
 """
 
 from __future__ import annotations
 
 import re
+
+import orjson
 
 
 from ..config import SourceConfig
@@ -79,6 +85,7 @@ class JournaldFormat(Format):
         entry = json_object(line)
         if type(entry) is Rejection:
             return [entry]
+        line = orjson.dumps(entry, option=orjson.OPT_SORT_KEYS).decode()  # the same text on every run
         message, mended = field_text(entry.get("MESSAGE"))
         key = self._session_key(entry, message or "")
         ts = _micros(entry.get("__REALTIME_TIMESTAMP"))
