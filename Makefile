@@ -46,6 +46,11 @@ test: $(VENV)/.installed-test
 	@command -v rsync >/dev/null 2>&1 || { export DEBIAN_FRONTEND=noninteractive; \
 	  { apt-get update -qq && apt-get install -y -qq --no-install-recommends rsync; } >/dev/null 2>&1 \
 	  || echo "make: rsync could not be installed (needs root and apt-get); the baseline-shipping test will be skipped"; }
+	@# Debian's systemd-journal-remote, which writes real journal files for the journald tests
+	@# (tests/test_journald.py; journalctl comes with systemd above): the same rule
+	@{ command -v systemd-journal-remote || test -x /lib/systemd/systemd-journal-remote; } >/dev/null 2>&1 || { export DEBIAN_FRONTEND=noninteractive; \
+	  { apt-get update -qq && apt-get install -y -qq --no-install-recommends systemd-journal-remote; } >/dev/null 2>&1 \
+	  || echo "make: systemd-journal-remote could not be installed (needs root and apt-get); the journald tests will be skipped"; }
 	$(PY) -m pytest -q
 
 bench: $(VENV)/.installed-test

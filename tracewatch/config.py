@@ -9,7 +9,7 @@ from __future__ import annotations
 import re
 import tomllib
 from pathlib import Path
-from typing import Literal
+from typing import Annotated, Literal
 
 from pydantic import BaseModel, ConfigDict, Field, ValidationError, field_validator, model_validator
 
@@ -37,7 +37,15 @@ def _check_regex(value: str | None, *, groups: tuple[str, ...] = ()) -> str | No
 
 # options that belong to one format; setting one for another format is a config error
 _FORMAT_ONLY = {"session_field": "syslog", "span_event": "otlp-json", "max_document_bytes": "otlp-json",
-                "strace_session": "strace"}
+                "strace_session": "strace", "journal_key_fields": "journald", "journalctl_args": "journald",
+                "log_key_attribute": "otlp-logs-json"}
+# formats that wrap the application's lines, read by an inner format (tracewatch/formats/container.py)
+CONTAINER_FORMATS = ("cri", "docker-json")
+_CONTAINER_ONLY = ("payload_format", "container_key_prefix")
+# journalctl options the daemon sets itself (tracewatch/sources/journal.py)
+_JOURNALCTL_OWN = ("-o", "--output", "-f", "--follow", "-n", "--lines", "--no-tail", "--after-cursor", "--cursor",
+                   "--since", "--until", "-r", "--reverse", "--show-cursor", "-S", "-U", "-c", "--cursor-file",
+                   "-e", "--pager-end", "--no-pager", "-q", "--quiet", "--output-fields", "--all", "-a")
 
 
 class SourceConfig(_Section):
@@ -74,11 +82,46 @@ class SourceConfig(_Section):
     # strace: one session per process ("pid") or per process tree ("tree": a child joins the
     # session of the process that forked it)
     strace_session: Literal["pid", "tree"] = "pid"
+    # -- container logs (tracewatch/formats/container.py): cri, docker-json ---------------------
+    # the format of the application's lines inside the container log, read with this source's
+    # options (line_pattern, message_field, session_key, ...)
+    payload_format: Literal[tuple(f for f in FORMATS if f not in CONTAINER_FORMATS)] = "text"  # type: ignore[valid-type]
+    # session keys become "<namespace>/<pod>/<container>:<key>" (from kubelet's file names), and
+    # alerts name the container
+    container_key_prefix: bool = True
+    # -- journald (tracewatch/formats/journald.py, tracewatch/sources/journal.py) ----------------
+    # journal fields whose values, joined with "/", make the session key (e.g. ["_SYSTEMD_UNIT",
+    # "_PID"]); with session_key as well, its match in MESSAGE follows after ":"
+    journal_key_fields: list[Annotated[str, Field(pattern=r"^[A-Z0-9_]{1,64}$")]] = Field(default_factory=list)
+    # the daemon follows the journal live with `journalctl --follow -o json` and these extra
+    # arguments (matches, --unit=, --file=, --directory=); unset: read `paths` (files of
+    # `journalctl -o json` output)
+    journalctl_args: list[str] | None = None
+    # -- otlp-logs-json (tracewatch/formats/otlp_logs.py) ----------------------------------------
+    # a log record without a trace id is keyed by this attribute (of the record, else its resource)
+    log_key_attribute: str | None = Field(default=None, min_length=1, max_length=256)
+
+    @property
+    def content_format(self) -> str:
+        """The format of the application's own lines: the inner one for container logs."""
+        return self.payload_format if self.format in CONTAINER_FORMATS else self.format
 
     def _check_format_options(self) -> None:
+        for key in _CONTAINER_ONLY:
+            if key in self.model_fields_set and self.format not in CONTAINER_FORMATS:
+                raise ValueError(f"{key}: only used with format = \"cri\" or \"docker-json\"")
         for key, fmt in _FORMAT_ONLY.items():
-            if key in self.model_fields_set and self.format != fmt:
+            if key in self.model_fields_set and self.content_format != fmt:
                 raise ValueError(f"{key}: only used with format = \"{fmt}\"")
+        if self.journalctl_args is not None:
+            if self.format != "journald":
+                raise ValueError('journalctl_args: only used with format = "journald"')
+            if self.paths:
+                raise ValueError("journalctl_args: a source follows either the journal or its paths, not both")
+            for arg in self.journalctl_args:
+                if arg.split("=", 1)[0] in _JOURNALCTL_OWN or (arg[:2] in ("-o", "-n") and len(arg) > 2):
+                    raise ValueError(f"journalctl_args: {arg!r} is set by tracewatch itself (output, follow, "
+                                     "position); give matches, --unit=, --file= or --directory=")
         if self.session_field is not None and not re.fullmatch(
                 r"hostname|app_name|procid|msgid|\[[^\s=\]\"]{1,32} [^\s=\]\"]{1,32}\]", self.session_field):
             raise ValueError("session_field: use hostname, app_name, procid, msgid or a structured-data "
@@ -98,13 +141,13 @@ class SourceConfig(_Section):
 
     @model_validator(mode="after")
     def _per_format(self) -> "SourceConfig":
-        if self.format in ("text", "syslog") and self.session_key is not None:
+        if self.content_format in ("text", "syslog", "journald") and self.session_key is not None:
             try:
                 _check_regex(self.session_key, groups=("key",))
             except ValueError as exc:
                 raise ValueError(f"session_key: {exc}") from exc
         self._check_format_options()
-        if self.format == "jsonl" and self.session_key is not None:
+        if self.content_format == "jsonl" and self.session_key is not None:
             if not re.fullmatch(r"[^.\s]+(\.[^.\s]+)*", self.session_key):
                 raise ValueError("session_key: for jsonl it is a dotted field path such as 'ctx.request_id'")
         return self
@@ -170,16 +213,46 @@ class ModelConfig(_Section):
         return v
 
 
+def _check_listen(v: str, example: str) -> str:
+    host, sep, port = v.rpartition(":")
+    if not sep or not host or not port.isdigit() or not 0 < int(port) < 65536:
+        raise ValueError(f"listen must look like HOST:PORT, for example {example}")
+    return v
+
+
 class ServerConfig(_Section):
     listen: str = "127.0.0.1:9464"
 
     @field_validator("listen")
     @classmethod
     def _listen(cls, v: str) -> str:
-        host, sep, port = v.rpartition(":")
-        if not sep or not host or not port.isdigit() or not 0 < int(port) < 65536:
-            raise ValueError("listen must look like HOST:PORT, for example 127.0.0.1:9464")
-        return v
+        return _check_listen(v, "127.0.0.1:9464")
+
+
+class OtlpConfig(_Section):
+    """The OTLP/HTTP receiver of ``tracewatch run`` (tracewatch/service/otlp_http.py): spans
+    POSTed to /v1/traces go to ``traces_source``, log records POSTed to /v1/logs to
+    ``logs_source``; each is spooled in ``<state_dir>/otlp/`` before it is acknowledged."""
+
+    enabled: bool = False
+    # 4318: the OTLP/HTTP default port. Loopback only by default: binding wider lets anything
+    # that reaches the port send records (and raise or hide alerts)
+    listen: str = "127.0.0.1:4318"
+    traces_source: str | None = None  # a source with format = "otlp-json" and no paths
+    logs_source: str | None = None  # a source with format = "otlp-logs-json" and no paths
+    # a request body larger than this, as sent or once decompressed, is refused (413)
+    max_request_bytes: int = Field(default=20 * 2**20, ge=1024, le=1 << 30)
+    # spooled and not read yet: past this, requests are refused with 429 and Retry-After
+    max_queue_bytes: int = Field(default=64 * 2**20, ge=1 << 16, le=1 << 36)
+    retry_after_s: int = Field(default=1, ge=1, le=3600)
+    # a spool file is closed and a new one begun past this size; read files are deleted at the
+    # next checkpoint
+    spool_file_bytes: int = Field(default=64 * 2**20, ge=1 << 16, le=1 << 34)
+
+    @field_validator("listen")
+    @classmethod
+    def _listen(cls, v: str) -> str:
+        return _check_listen(v, "127.0.0.1:4318")
 
 
 class DaemonConfig(_Section):
@@ -326,6 +399,7 @@ class Config(_Section):
     features: FeaturesConfig = FeaturesConfig()
     model: ModelConfig = ModelConfig()
     server: ServerConfig = ServerConfig()
+    otlp: OtlpConfig = OtlpConfig()  # tracewatch/service/otlp_http.py
     daemon: DaemonConfig = DaemonConfig()
     incidents: IncidentsConfig = IncidentsConfig()  # tracewatch/alerts/incidents.py
     notify: NotifyConfig = NotifyConfig()  # tracewatch/alerts/sinks.py
@@ -347,7 +421,25 @@ class Config(_Section):
         dupes = sorted({n for n in names if names.count(n) > 1})
         if dupes:
             raise ValueError(f"sources: the name {dupes[0]!r} is used twice")
+        otlp = self.otlp
+        for key, fmt in (("traces_source", "otlp-json"), ("logs_source", "otlp-logs-json")):
+            name = getattr(otlp, key)
+            if name is None:
+                continue
+            src = next((s for s in self.sources if s.name == name), None)
+            if src is None:
+                raise ValueError(f"otlp.{key}: no source named {name!r}")
+            if src.format != fmt:
+                raise ValueError(f"otlp.{key}: source {name!r} must have format = \"{fmt}\"")
+            if src.paths:
+                raise ValueError(f"otlp.{key}: source {name!r} is fed over HTTP; give it no paths")
+        if otlp.enabled and otlp.traces_source is None and otlp.logs_source is None:
+            raise ValueError("otlp: enabled, but neither traces_source nor logs_source names a source")
         return self
+
+    def receives_otlp(self, name: str) -> bool:
+        """Whether source ``name`` is fed by the OTLP/HTTP receiver rather than files."""
+        return self.otlp.enabled and name in (self.otlp.traces_source, self.otlp.logs_source)
 
     def source(self, name: str) -> SourceConfig:
         for src in self.sources:

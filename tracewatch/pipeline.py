@@ -17,7 +17,7 @@ from typing import TYPE_CHECKING
 
 from .alerts.alert import Redactor, build_verdict
 from .config import Config
-from .formats import Format, make_format
+from .formats import Format, format_class, make_format
 from .records import Columns
 from .rejects import reject_log
 from .sessions import Session, Sessionizer
@@ -55,6 +55,8 @@ class Pipeline:
         self.clock = clock
         self.redact = Redactor(cfg.redact)
         self._sources = {s.name: s for s in cfg.sources}
+        # what a source's format adds to its alerts (the container's names, for container logs)
+        self._alert_fields = {s.name: format_class(s.format).alert_fields for s in cfg.sources}
         self._formats: dict[tuple[str, str], Format] = {}
         self._closed: list[Session] = []
         self._watermark = 0.0
@@ -73,7 +75,7 @@ class Pipeline:
     def _format(self, source: str, stream: str) -> Format:
         fmt = self._formats.get((source, stream))
         if fmt is None:
-            fmt = self._formats[(source, stream)] = make_format(self._sources[source])
+            fmt = self._formats[(source, stream)] = make_format(self._sources[source], stream)
         return fmt
 
     def feed_line(self, source: str, stream: str, line: str, offset: int = -1,
@@ -173,6 +175,7 @@ class Pipeline:
             alarm = far or unseen
             verdict = build_verdict(sess, seq, score, cluster, dist, unseen_share, p, far, b,
                                     self.redact, explain_it=alarm)
+            verdict.update(self._alert_fields[sess.source](self._sources[sess.source], sess.key))
             for reason in verdict["reasons"]:
                 self.alerts[(sess.source, reason)] += 1
             self.on_verdict(verdict)

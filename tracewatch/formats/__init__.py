@@ -22,6 +22,8 @@ import importlib
 from collections.abc import Sequence
 from typing import TYPE_CHECKING, ClassVar
 
+import orjson
+
 from ..records import Columns, Record, Rejection
 from ..timestamps import parse_timestamp, timestamps
 
@@ -37,6 +39,10 @@ FORMATS: dict[str, str] = {
     "syslog": "syslog:SyslogFormat",
     "otlp-json": "otlp:OtlpJsonFormat",
     "strace": "strace:StraceFormat",
+    "cri": "container:CriFormat",
+    "docker-json": "container:DockerJsonFormat",
+    "journald": "journald:JournaldFormat",
+    "otlp-logs-json": "otlp_logs:OtlpLogsJsonFormat",
 }
 
 
@@ -49,6 +55,15 @@ class Format:
 
     def __init__(self, src: SourceConfig) -> None:
         self.source = src.name
+
+    def open_stream(self, stream: str) -> None:
+        """Told the name of the stream it reads before the first line (a file's path in batch
+        runs, ``path@dev:ino`` live); formats that take something from a file's name use it."""
+
+    @staticmethod
+    def alert_fields(src: SourceConfig, key: str | None) -> dict:
+        """Fields this format adds to an alert of a session with session key ``key``."""
+        return {}
 
     def feed(self, line: str, offset: int) -> Output:
         """The records (and rejections) of one line; a format holding lines back (a multi-line
@@ -93,6 +108,17 @@ def collect(outputs) -> Columns:
     return Columns.of(records, rejected)
 
 
+def json_object(line: str) -> dict | Rejection:
+    """A line holding one JSON object, or its rejection (``empty``, ``bad_json``, ``not_an_object``)."""
+    if not line.strip():
+        return Rejection("empty", line)
+    try:
+        obj = orjson.loads(line)
+    except orjson.JSONDecodeError:
+        return Rejection("bad_json", line)
+    return obj if isinstance(obj, dict) else Rejection("not_an_object", line)
+
+
 def _list(seq: Sequence) -> list:
     """A block's lines or offsets as a column: the list itself when it is one (the pipeline
     hands each block a list of its own), else a copy."""
@@ -114,9 +140,12 @@ def format_class(name: str) -> type[Format]:
     return getattr(importlib.import_module(f"{__name__}.{module}"), cls)
 
 
-def make_format(src: SourceConfig) -> Format:
-    """The format object for one source (a fresh one per file being read)."""
-    return format_class(src.format)(src)
+def make_format(src: SourceConfig, stream: str | None = None) -> Format:
+    """The format object for one source (a fresh one per file being read), told its stream."""
+    fmt = format_class(src.format)(src)
+    if stream is not None:
+        fmt.open_stream(stream)
+    return fmt
 
 
 __all__ = ["FORMATS", "Columns", "Format", "Output", "Record", "Rejection", "collect", "feed_lines",

@@ -43,11 +43,13 @@ from ..pipeline import Pipeline
 from ..sessions import LiveTime
 from ..sources.checkpoint import AlertJournal, capture_chunks, load_checkpoint, restore, save_checkpoint
 from ..sources.follow import Follower, Watcher, watch_dirs
+from ..sources.streams import StreamSource, is_file_source, stream_sources
 from .baseline_watch import BaselineWatch
 from .http import serve
 from .incidents import Incidents
 from .logs import setup_logging
 from .metrics import DaemonMetrics
+from .otlp_http import Receiver, serve_otlp
 from .refit_job import RefitJob
 from .status import DaemonStatus, iso
 from .systemd import Service
@@ -82,9 +84,13 @@ class Daemon:
         self.journal = AlertJournal(self.state_dir / "alerts.jsonl", cfg.daemon.alerts_kept)
         self.pipe: Pipeline | None = None
         self.live = LiveTime(lambda: self.pipe.watermark if self.pipe is not None else 0.0, wall)
-        self.follower = Follower(cfg.sources, _Unready(), rotation_grace_s=cfg.daemon.rotation_grace_s,
+        self.follower = Follower([s for s in cfg.sources if is_file_source(cfg, s.name)], _Unready(),
+                                 rotation_grace_s=cfg.daemon.rotation_grace_s,
                                  rescan_interval_s=cfg.daemon.poll_interval_s, clock=monotonic,
                                  chunk_bytes=READ_CHUNK)
+        # sources that are not file globs: the journal, the OTLP receiver's spools (sources/streams.py)
+        self.streams: list[StreamSource] = stream_sources(cfg, self.state_dir)
+        self.otlp = self.otlp_thread = None
         self.incidents = Incidents(cfg)  # grouping, page, notifications (tracewatch/service/incidents.py)
         self.watch = BaselineWatch(self.state_dir)
         self.refit = RefitJob(cfg, self.state_dir, lock=self.lock, store=lambda: self.incidents.store, wall=wall)
@@ -143,6 +149,15 @@ class Daemon:
         self.journal.open(ckpt.alerts if ckpt is not None else None)
         self.follower.sink = self.pipe
         self.follower.attach([f.model_dump() for f in ckpt.files] if ckpt is not None else None)
+        saved = {p.source: p.position for p in ckpt.streams} if ckpt is not None else {}
+        for stream in self.streams:
+            stream.attach(saved.get(stream.source), self.pipe)
+        if cfg.otlp.enabled:  # the OTLP/HTTP receiver (tracewatch/service/otlp_http.py)
+            by_name = {s.source: s for s in self.streams}
+            spools = {path: by_name[name] for path, name in (("/v1/traces", cfg.otlp.traces_source),
+                                                              ("/v1/logs", cfg.otlp.logs_source)) if name}
+            self.otlp, self.otlp_thread = serve_otlp(Receiver(
+                cfg.otlp, spools, accepting=lambda: self.started and not self.stopping.is_set(), wake=self.wake.set))
         folders: dict[str, bool] = {}
         for src in cfg.sources:
             for pattern in src.paths:
@@ -217,6 +232,8 @@ class Daemon:
                 self.on_turn()
                 with self.lock:
                     behind = self.follower.poll()
+                    for stream in self.streams:
+                        behind |= stream.poll()
                     if behind:
                         self.live.hold()
                     now = mono()
@@ -267,8 +284,11 @@ class Daemon:
         self.pipe.tick(self.live())
         t0 = time.perf_counter()
         mark = self.journal.sync()
+        streams = [{"source": s.source, "position": p} for s in self.streams if (p := s.position()) is not None]
         save_checkpoint(self.checkpoint_path,
-                        capture_chunks(self.pipe, self.follower.positions(self.pipe.held_from), mark))
+                        capture_chunks(self.pipe, self.follower.positions(self.pipe.held_from), mark, streams))
+        for stream in self.streams:
+            stream.saved()
         self.refit.save()
         self.checkpoint_time = self.wall()
         self.checkpoint_seconds = time.perf_counter() - t0
@@ -295,6 +315,14 @@ class Daemon:
     def status(self) -> dict:
         return self.report.status()
 
+    def detached(self) -> dict[str, str]:
+        """Sources not reading now, and why (files, the journal, the OTLP spools); lock held."""
+        return {**self.follower.detached, **{s.source: s.detached for s in self.streams if s.detached}}
+
+    def inputs(self) -> list[dict]:
+        """One row per followed file and per source that is not a file glob; lock held."""
+        return self.follower.status() + [s.status() for s in self.streams]
+
     def alerts_since(self, since: int, limit: int) -> dict:
         with self.lock:
             return self.journal.since(since, limit)
@@ -305,6 +333,11 @@ class Daemon:
         if checkpoint and self.started:
             with self.lock:
                 self._checkpoint()
+        if self.otlp is not None:
+            self.otlp.shutdown()
+            self.otlp.server_close()
+            self.otlp_thread.join(timeout=5)
+            self.otlp = None
         if self.watcher is not None:
             self.watcher.stop()
         if self.server is not None:
@@ -313,6 +346,8 @@ class Daemon:
             self.http_thread.join(timeout=5)
             self.server = None
         self.follower.close()
+        for stream in self.streams:
+            stream.close()
         self.journal.close()
         self.incidents.close()  # incidents: stop the notifier, close the store
         if self._lock_fd >= 0:

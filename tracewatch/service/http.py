@@ -56,25 +56,32 @@ def split_listen(listen: str) -> tuple[str, int]:
 def serve(listen: str, provider: StatusProvider, registry: CollectorRegistry
           ) -> tuple[ThreadingHTTPServer, threading.Thread]:
     """Bind ``listen`` (HOST:PORT) and serve in a thread; the caller shuts both down."""
+
+    class Handler(_Handler):
+        pass
+
+    Handler.provider, Handler.registry = provider, registry
+    return bind(listen, Handler)
+
+
+def bind(listen: str, handler: type[BaseHTTPRequestHandler], *, key: str = "server.listen",
+         name: str = "tracewatch-http") -> tuple[ThreadingHTTPServer, threading.Thread]:
+    """A threading server for ``handler`` on ``listen``, serving in a thread of its own; a port
+    that cannot be bound is a ConfigError naming ``key``."""
     host, port = split_listen(listen)
 
     class Server(ThreadingHTTPServer):
         daemon_threads = True
         address_family = socket.AF_INET6 if ":" in host else socket.AF_INET
 
-    class Handler(_Handler):
-        pass
-
-    Handler.provider, Handler.registry = provider, registry
     try:
-        server = Server((host, port), Handler)
+        server = Server((host, port), handler)
     except OSError as exc:
         if exc.errno == errno.EADDRINUSE:
-            raise ConfigError(f"server.listen: {listen} is already in use (another tracewatch, or another "
-                              "program); stop it or choose another port in [server] listen") from exc
-        raise ConfigError(f"server.listen: cannot listen on {listen}: {exc.strerror or exc}") from exc
-    thread = threading.Thread(target=server.serve_forever, kwargs={"poll_interval": 0.2},
-                              name="tracewatch-http", daemon=True)
+            raise ConfigError(f"{key}: {listen} is already in use (another tracewatch, or another "
+                              f"program); stop it or choose another port in [{key.replace('.', '] ', 1)}") from exc
+        raise ConfigError(f"{key}: cannot listen on {listen}: {exc.strerror or exc}") from exc
+    thread = threading.Thread(target=server.serve_forever, kwargs={"poll_interval": 0.2}, name=name, daemon=True)
     thread.start()
     return server, thread
 

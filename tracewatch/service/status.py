@@ -33,7 +33,7 @@ class DaemonStatus:
         if not d.started or d.pipe is None:
             return False, "starting: loading the baseline and attaching the sources"
         with d.lock:
-            detached = dict(d.follower.detached)
+            detached = d.detached()
         if detached:
             name, why = sorted(detached.items())[0]
             return False, f"source {name} is not attached: {why}"
@@ -52,7 +52,7 @@ class DaemonStatus:
                 "sessions_open": len(p.sessionizer.open), "sessions_evicted": p.sessionizer.evicted,
                 "baseline_reload_failures": d.watch.failures, "alerts_replayed": d.journal.replayed,
                 "alert_lines_damaged": d.journal.damaged,
-                "baseline_version": p.baseline.version, "files": d.follower.status(),
+                "baseline_version": p.baseline.version, "files": d.inputs(),
                 "sources": [s.name for s in d.cfg.sources], "checkpoint_time": d.checkpoint_time,
                 "checkpoint_seconds": d.checkpoint_seconds, **d.refit.snapshot(),
             }
@@ -63,12 +63,14 @@ class DaemonStatus:
         ok, why = self.ready()
         snap = self.snapshot()
         files = snap.get("files", [])
+        with d.lock:
+            detached = d.detached()
         sources = []
         for src in d.cfg.sources:
             mine = [f for f in files if f["source"] == src.name]
             sources.append({
                 "name": src.name, "format": src.format, "paths": src.paths,
-                "attached": d.started and src.name not in d.follower.detached,
+                "attached": d.started and src.name not in detached,
                 "lines": snap.get("lines", {}).get(src.name, 0),
                 "records": snap.get("records", {}).get(src.name, 0),
                 "rejected": {r: n for (s, r), n in snap.get("rejected", {}).items() if s == src.name},

@@ -131,21 +131,31 @@ class JournalMark(_Strict):
     pending: list[Annotated[str, Field(max_length=256)]] = Field(default_factory=list, max_length=MAX_ITEMS)
 
 
+class StreamPosition(_Strict):
+    """Where a source that is not a file glob was left (tracewatch/sources/streams.py): the
+    journal's cursor, the OTLP spool's file and offset — its own text."""
+    source: Name
+    position: Text
+
+
 class Checkpoint(_Strict):
     schema_version: int
     kind: Literal["tracewatch-checkpoint"]
     written: Seconds
     baseline_version: Annotated[str, Field(pattern=r"^v[0-9]{1,9}$")]  # a folder under baselines/
     files: list[FilePosition] = Field(max_length=100_000)
+    streams: list[StreamPosition] = Field(default_factory=list, max_length=100_000)
     pipeline: SavedPipeline
     alerts: JournalMark
 
 
 # -- save and load ------------------------------------------------------------------------------
-def capture_chunks(pipeline, files: list[dict], mark: dict, per_chunk: int = 5000) -> Iterator[bytes]:
-    """The checkpoint of a pipeline (whose closed sessions are already scored), file positions
-    and the journal mark, serialised as JSON in pieces: the open sessions go out a few thousand
-    at a time, so a checkpoint of 100k open sessions never sits in memory whole."""
+def capture_chunks(pipeline, files: list[dict], mark: dict, streams: list[dict] | None = None,
+                   per_chunk: int = 5000) -> Iterator[bytes]:
+    """The checkpoint of a pipeline (whose closed sessions are already scored), file positions,
+    the positions of the sources that are not files and the journal mark, serialised as JSON in
+    pieces: the open sessions go out a few thousand at a time, so a checkpoint of 100k open
+    sessions never sits in memory whole."""
     counters = {}
     for name in COUNTERS:
         counters[name] = [[list(k) if isinstance(k, tuple) else [k], n] for k, n in getattr(pipeline, name).items()]
@@ -153,7 +163,7 @@ def capture_chunks(pipeline, files: list[dict], mark: dict, per_chunk: int = 500
     dumps = orjson.dumps
     yield (b'{"schema_version":' + dumps(SCHEMA_VERSION) + b',"kind":"tracewatch-checkpoint","written":'
            + dumps(time.time()) + b',"baseline_version":' + dumps(pipeline.baseline.version)
-           + b',"files":' + dumps(files) + b',"alerts":' + dumps(mark)
+           + b',"files":' + dumps(files) + b',"streams":' + dumps(streams or []) + b',"alerts":' + dumps(mark)
            + b',"pipeline":{"watermark":' + dumps(pipeline.watermark) + b',"counters":' + dumps(counters)
            + b',"templates":' + dumps(pipeline.miner.learned_state())
            + b',"sessions":{"run_counts":' + dumps(sessions["run_counts"]) + b',"evicted":'
@@ -165,9 +175,9 @@ def capture_chunks(pipeline, files: list[dict], mark: dict, per_chunk: int = 500
     yield b"]}}}"
 
 
-def capture(pipeline, files: list[dict], mark: dict) -> bytes:
+def capture(pipeline, files: list[dict], mark: dict, streams: list[dict] | None = None) -> bytes:
     """:func:`capture_chunks` joined."""
-    return b"".join(capture_chunks(pipeline, files, mark))
+    return b"".join(capture_chunks(pipeline, files, mark, streams))
 
 
 def save_checkpoint(path: Path, data: bytes | Iterable[bytes]) -> None:
