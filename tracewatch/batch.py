@@ -50,8 +50,13 @@ def assign_sources(cfg: Config, inputs: list[str], source: str | None = None) ->
 
 def run_files(pipeline: Pipeline, pairs: list[tuple[str, Path]], *,
               on_block: Callable[[str, list[int]], None] | None = None) -> None:
-    """Feed every file to the pipeline, in order, then flush it; ``on_block`` sees the stream
-    and the line offsets of every block read, before the pipeline does."""
+    """Feed every file to the pipeline, then flush it; ``on_block`` sees the stream and the
+    line offsets of every block read, before the pipeline does. Several files are read merged
+    by record time (:class:`TimeMerge`), as the daemon sees them arrive; ``templates`` (with
+    ``on_block``) reads them one after another, in input order."""
+    if len(pairs) > 1 and on_block is None:
+        TimeMerge(pipeline, pairs).run()
+        return
     for source, path in pairs:
         stream = str(path)
         for lines, offsets, repairs in read_blocks(path, pipeline.cfg.source(source).max_line_bytes):
@@ -60,6 +65,76 @@ def run_files(pipeline: Pipeline, pairs: list[tuple[str, Path]], *,
             pipeline.feed_block(source, stream, lines, offsets, repairs)
         pipeline.end_stream(source, stream)
     pipeline.flush()
+
+
+class TimeMerge:
+    """A k-way merge of many files by record time, for batch runs: a trace whose spans sit in
+    three services' files, or a request logged by two hosts, becomes one session, and the
+    event-time clock that closes idle sessions is the merged one — what the daemon sees when
+    the files grow live.
+
+    The next block is always read from the open file that is furthest behind (the smallest
+    newest time read from it). Mined rows wait per source until every open file has been read
+    past their time (the low watermark: the smallest of the open files' newest times), then go
+    to the sessionizer in time order (input order among equal times; a record without a time
+    takes the time of the record before it in its file), and idle sessions are closed by the
+    merged clock. Memory stays about one block per file. Each file must be roughly in time order
+    on its own, as logs are; a record older than what was already released is taken late, as
+    the daemon would take it."""
+
+    def __init__(self, pipeline: Pipeline, pairs: list[tuple[str, Path]]) -> None:
+        self.pipeline = pipeline
+        self.files = [(source, str(path), read_blocks(path, pipeline.cfg.source(source).max_line_bytes))
+                      for source, path in pairs]
+        self.newest = {stream: float("-inf") for _, stream, _ in self.files}  # newest time read
+        self.waiting: dict[str, list[tuple]] = {}  # source -> (sort time, seq, row)
+        self._seq = 0
+
+    def hold(self, source: str, stream: str, rows: tuple) -> None:
+        last = self.newest[stream]
+        out = self.waiting.setdefault(source, [])
+        seq = self._seq
+        for row in zip(*rows):
+            ts = row[1]
+            if ts is not None and ts > last:
+                last = ts
+            out.append((last, seq, row))
+            seq += 1
+        self._seq = seq
+        self.newest[stream] = last
+
+    def release(self, until: float) -> None:
+        for source, rows in self.waiting.items():
+            ready = [r for r in rows if r[0] <= until]
+            if not ready:
+                continue
+            if len(ready) < len(rows):
+                rows[:] = [r for r in rows if r[0] > until]
+            else:
+                rows.clear()
+            ready.sort(key=lambda r: (r[0], r[1]))
+            self.pipeline.sessionize(source, [list(c) for c in zip(*(r[2] for r in ready))])
+
+    def run(self) -> None:
+        pipeline = self.pipeline
+        pipeline.hold = self.hold
+        try:
+            open_files = list(self.files)
+            while open_files:
+                i = min(range(len(open_files)), key=lambda j: self.newest[open_files[j][1]])
+                source, stream, blocks = open_files[i]
+                block = next(blocks, None)
+                if block is None:
+                    pipeline.end_stream(source, stream)
+                    del open_files[i]
+                else:
+                    pipeline.feed_block(source, stream, *block)
+                if open_files:
+                    self.release(min(self.newest[s] for _, s, _ in open_files))
+            self.release(float("inf"))
+        finally:
+            pipeline.hold = None
+        pipeline.flush()
 
 
 def template_rows(cfg: Config, pairs: list[tuple[str, Path]]) -> tuple[list[tuple[int, int]], Pipeline]:

@@ -61,6 +61,9 @@ class Pipeline:
         self._closed: list[Session] = []
         self._watermark = 0.0
         self._file_watermark = 0.0  # batch: newest record time of the file being read
+        # batch of several files (tracewatch/batch.py): mined rows go to this instead of the
+        # sessionizer, called with (source, stream, rows), and come back through sessionize()
+        self.hold: Callable[[str, str, tuple], None] | None = None
         # fit mode: (source, key, sequence) of every closed session
         self.collected: list[tuple[str, str, tuple[int, ...]]] = []
         # plain counters; the metrics module exports them
@@ -99,14 +102,13 @@ class Pipeline:
     def end_stream(self, source: str, stream: str) -> None:
         """A file ended (batch) or was rotated away: take what its format still holds.
 
-        In batch runs (no clock) the event-time clock that closes idle sessions follows one
-        file at a time: files are read one after another, and the next one may start earlier
-        (another host, another source), so its sessions must not look idle next to the newest
-        time of the file before."""
+        A batch run of one file (no clock) closes idle sessions by that file's own times; the
+        clock starts again for the next file of a ``templates`` run. Several files of a
+        ``fit`` or ``score`` run are merged by time first (tracewatch/batch.py)."""
         fmt = self._formats.pop((source, stream), None)
         if fmt is not None:
             self._take(source, stream, fmt.finish())
-        if self.clock is None:
+        if self.clock is None and self.hold is None:
             self._file_watermark = 0.0
 
     def _take(self, source: str, stream: str, cols: Columns) -> None:
@@ -125,8 +127,19 @@ class Pipeline:
         if self.on_records is not None:
             self.on_records(source, stream, cols, idxs)
         columns = (cols.keys, cols.times, idxs, cols.raws, cols.offsets, cols.messages)
-        for lo in range(0, len(idxs), TICK_EVERY):
-            part = columns if len(idxs) <= TICK_EVERY else [c[lo:lo + TICK_EVERY] for c in columns]
+        if self.hold is not None:  # batch of several files: the time merge decides when
+            self.hold(source, stream, columns)
+            return
+        self.sessionize(source, columns)
+
+    def sessionize(self, source: str, columns) -> None:
+        """Rows of one source (keys, times, template indices, raws, offsets, messages) to the
+        sessionizer, ``TICK_EVERY`` at a time; then (batch) idle sessions are closed by the
+        event-time clock — the newest time of the file, or of the time merge of several files
+        (tracewatch/batch.py) — and closed sessions are scored ``SCORE_BATCH`` at a time."""
+        n = len(columns[0])
+        for lo in range(0, n, TICK_EVERY):
+            part = columns if n <= TICK_EVERY else [c[lo:lo + TICK_EVERY] for c in columns]
             now = self.clock() if self.clock is not None else self._file_watermark
             newest = self.sessionizer.add_many(source, *part, now, self._closed)
             if newest is not None:
