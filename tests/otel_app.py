@@ -4,9 +4,11 @@ OTLP/JSON lines by the SDK's own file exporter (``opentelemetry-exporter-otlp-js
 
 Each service has its own tracer provider (its own ``service.name``); calls between them carry
 the W3C trace context in headers, as over HTTP, so one request is one trace across services.
-After each request every provider is flushed, so each line holds one service's spans of it.
+After each request every provider is flushed, so each line holds one service's spans of it;
+with ``--straddle N`` each service writes its own file in exports of N spans that cut requests
+anywhere, so traces straddle exports and files.
 
-    python tests/otel_app.py OUT.jsonl LABELS.jsonl --normal 150 [--faulty 5] [--seed 1]
+    python tests/otel_app.py OUT.jsonl LABELS.jsonl --normal 150 [--faulty 5] [--seed 1] [--straddle 7]
 
 Faulty flows (``--faulty`` of each kind, labelled in LABELS.jsonl with the trace id):
     reserve_error    the compartment service fails; the API retries, then answers 503
@@ -38,13 +40,18 @@ class NoCompartment(RuntimeError):
 
 
 class Backend:
-    def __init__(self, stream, seed: int) -> None:
+    def __init__(self, streams: dict, seed: int, batch: int | None = None) -> None:
         self.rng = random.Random(seed)
         self.providers = {}
         self.tracers = {}
         for name in SERVICES:
             provider = TracerProvider(resource=Resource.create({"service.name": name}))
-            provider.add_span_processor(BatchSpanProcessor(FileSpanExporter(stream=stream)))
+            # batch: exports of at most that many spans, whenever that many are queued, so
+            # a request's spans straddle exports (its children, ending first, go out first)
+            processor = (BatchSpanProcessor(FileSpanExporter(stream=streams[name])) if batch is None else
+                         BatchSpanProcessor(FileSpanExporter(stream=streams[name]), max_export_batch_size=batch,
+                                            schedule_delay_millis=60_000))
+            provider.add_span_processor(processor)
             self.providers[name] = provider
             self.tracers[name] = provider.get_tracer("parcel-lockers", "1.0")
 
@@ -167,19 +174,27 @@ def main(argv: list[str] | None = None) -> int:
     ap.add_argument("--normal", type=int, default=100)
     ap.add_argument("--faulty", type=int, default=0, help="requests of each faulty kind")
     ap.add_argument("--seed", type=int, default=1)
+    ap.add_argument("--straddle", type=int, metavar="N",
+                    help="each service writes its own file (OUT with .SERVICE before the suffix) in "
+                         "exports of N spans cut anywhere in a request, flushed only at the end")
     args = ap.parse_args(argv)
     rng = random.Random(args.seed)
     plan = [(rng.choices(["deposit", "pickup", "health"], [5, 4, 1])[0], None) for _ in range(args.normal)]
     plan += [(FLOW_OF_FAULT[f], f) for f in FAULTS for _ in range(args.faulty)]
     rng.shuffle(plan)
     labels = []
-    with open(args.out, "w", encoding="utf-8") as stream:
-        backend = Backend(stream, args.seed)
-        for flow, fault in plan:
-            trace_id = getattr(backend, flow)(fault)
+    root, dot, suffix = args.out.rpartition(".")
+    names = {name: f"{root}.{name}.{suffix}" if args.straddle else args.out for name in SERVICES}
+    streams = {path: open(path, "w", encoding="utf-8") for path in set(names.values())}
+    backend = Backend({name: streams[path] for name, path in names.items()}, args.seed, args.straddle)
+    for flow, fault in plan:
+        trace_id = getattr(backend, flow)(fault)
+        if not args.straddle:
             backend.flush()  # one export per service per request, as a busy exporter would batch
-            labels.append({"trace_id": trace_id, "flow": flow, "label": fault or "normal"})
-        backend.shutdown()
+        labels.append({"trace_id": trace_id, "flow": flow, "label": fault or "normal"})
+    backend.shutdown()
+    for stream in streams.values():
+        stream.close()
     with open(args.labels, "w", encoding="utf-8") as fh:
         fh.writelines(json.dumps(x) + "\n" for x in labels)
     return 0

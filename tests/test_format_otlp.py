@@ -166,15 +166,16 @@ def run_app(tmp_path: Path, name: str, *args: str) -> tuple[Path, list[dict]]:
     return out, [json.loads(x) for x in labels.read_text().splitlines()]
 
 
-def fit_and_score(tmp_path: Path, base: Path, day: Path, rate: float) -> dict[str, dict]:
+def fit_and_score(tmp_path: Path, base: Path, day: Path | list[Path], rate: float) -> dict[str, dict]:
     cfg = parse_config({"state_dir": str(tmp_path / "state"),
                         "sources": [{"name": "traces", "format": "otlp-json"}],
                         "model": {"false_alarm_rate": rate}})
     baseline, _, pipeline = fit_files(cfg, [("traces", base)])
     assert not pipeline.rejected  # the SDK's exports are read without a single reject
     verdicts: dict[str, dict] = {}
-    score_files(cfg, [("traces", day)], baseline, lambda v: verdicts.__setitem__(v["session_key"], v),
-                score_all=True)
+    days = day if isinstance(day, list) else [day]
+    score_files(cfg, [("traces", d) for d in days], baseline,
+                lambda v: verdicts.__setitem__(v["session_key"], v), score_all=True)
     return verdicts
 
 
@@ -194,6 +195,33 @@ def test_sdk_traces_faulty_flows_flagged_normal_ones_not(tmp_path):
     assert flagged[("normal", True)] == 0, flagged
     errors = [verdicts[x["trace_id"]] for x in day_labels if x["label"] == "reserve_error"]
     assert all("unseen_event" in v["reasons"] for v in errors)  # the ":ERROR" span types are new
+
+
+def test_sdk_traces_straddling_exports_and_files_are_assembled_whole(tmp_path):
+    """The SDK's exporters in batches of 7 spans cut anywhere in a request, one file per
+    service: a trace's children are exported before its root, and its spans sit in up to four
+    files. Each trace is still one session in start-time order, judged like the baseline's."""
+    base, _ = run_app(tmp_path, "baseline", "--normal", "160", "--seed", "1")
+    day, day_labels = run_app(tmp_path, "day", "--normal", "60", "--faulty", "4", "--seed", "2",
+                              "--straddle", "7")
+    files = sorted(tmp_path.glob("day.*.jsonl"))
+    assert len(files) == 4
+    exports: dict[str, set] = {}  # trace id -> (file, line) of the exports holding its spans
+    for path in files:
+        for n, line in enumerate(path.read_text().splitlines()):
+            for rs in json.loads(line)["resourceSpans"]:
+                for ss in rs["scopeSpans"]:
+                    for span in ss["spans"]:
+                        exports.setdefault(span["traceId"], set()).add((path.name, n))
+    in_one_file = [{n for f, n in where if f == name} for where in exports.values() for name in
+                   {f for f, _ in where}]
+    assert sum(len(lines) > 1 for lines in in_one_file) >= 20, "the exports must cut through traces"
+    verdicts = fit_and_score(tmp_path, base, files, rate=0.05)
+    assert len(verdicts) == len(day_labels) == 76  # every trace whole: one session each
+    flagged = Counter((x["label"], verdicts[x["trace_id"]]["alert"]) for x in day_labels)
+    for kind in ("reserve_error", "notify_skipped", "door_loop", "unexpected_call"):
+        assert flagged[(kind, True)] == 4, (kind, flagged)
+    assert flagged[("normal", True)] == 0, flagged  # straddling raises nothing
 
 
 # -- the demo's trace source ---------------------------------------------------------------------

@@ -49,7 +49,8 @@ class Pipeline:
         tcfg = cfg.templates
         self.miner = baseline.miner if baseline else TemplateTree(tcfg.routing_tokens, tcfg.join_share, tcfg.max_branches)
         self.scorer = baseline.make_scorer() if baseline else None
-        self.sessionizer = Sessionizer(cfg.sessions)
+        self.sessionizer = Sessionizer(cfg.sessions, frozenset(s.name for s in cfg.sources
+                                                               if format_class(s.format).by_time))
         self.on_verdict = on_verdict or (lambda v: None)
         self.score_all = score_all
         self.clock = clock

@@ -41,7 +41,7 @@ MAX_SAMPLES = 3  # raw sample lines kept per session for its alert (bounds memor
 
 class Session:
     __slots__ = ("source", "key", "events", "first_ts", "last_ts", "last_seen", "first_raw",
-                 "first_offset", "samples", "close_reason", "partial")
+                 "first_offset", "samples", "close_reason", "partial", "times")
 
     def __init__(self, source: str, key: str, now: float, first_raw: str, offset: int) -> None:
         self.source = source
@@ -55,6 +55,18 @@ class Session:
         self.samples: list[str] = []
         self.close_reason = ""
         self.partial = False  # cut short by an eviction, or the rest of one: never judged
+        # each event's time, kept only for sources whose records may arrive out of time order
+        # (spans of one trace in several exports): the events are put in time order at close
+        self.times: list[float] | None = None
+
+    def order_by_time(self) -> None:
+        """Events in time order (stable: equal times keep arrival order), when kept times say
+        they arrived otherwise."""
+        times = self.times
+        if times is not None and any(a > b for a, b in zip(times, times[1:])):
+            order = sorted(range(len(times)), key=times.__getitem__)
+            self.events = [self.events[i] for i in order]
+            self.times = [times[i] for i in order]
 
     def __repr__(self) -> str:
         return f"Session({self.source}:{self.key}, {len(self.events)} events, {self.close_reason or 'open'})"
@@ -63,8 +75,10 @@ class Session:
 class Sessionizer:
     """Open sessions keyed by (source, key), ordered by last activity."""
 
-    def __init__(self, cfg: SessionsConfig) -> None:
+    def __init__(self, cfg: SessionsConfig, by_time: frozenset[str] = frozenset()) -> None:
         self.idle = cfg.idle_timeout_s
+        # sources whose sessions are put in time order at close (formats with ``by_time``)
+        self.by_time = by_time
         self.max_duration = cfg.max_duration_s
         self.max_events = cfg.max_events
         self.window = cfg.window_s
@@ -111,6 +125,7 @@ class Sessionizer:
         deadlines = self._deadlines if self.max_duration < float("inf") else None
         evicted_keys = self._evicted_keys
         idle, max_duration, max_events, end = self.idle, self.max_duration, self.max_events, self._end
+        by_time = source in self.by_time
         for skey, t, event, raw, offset, message in zip(zip(repeat(source), keys), times, events, raws, offsets,
                                                          messages):
             sess = get(skey)
@@ -125,9 +140,13 @@ class Sessionizer:
                     sess.partial = True
                 if deadlines is not None:
                     heapq.heappush(deadlines, (t + max_duration, next(self._created), sess))
+                if by_time:
+                    sess.times = []
             else:
                 move_to_end(skey)
             sess.events.append(event)
+            if by_time and sess.times is not None:
+                sess.times.append(t)
             if t > sess.last_ts:
                 sess.last_ts = t
             sess.last_seen = t
@@ -161,6 +180,7 @@ class Sessionizer:
 
     def _close(self, skey: tuple[str, str], reason: str, closed: list[Session]) -> None:
         sess = self.open.pop(skey)
+        sess.order_by_time()
         sess.close_reason = reason
         closed.append(sess)
 

@@ -52,6 +52,9 @@ class Format:
     name: ClassVar[str]
     # (source options, lines): what the format reads, for its docs and the shared tests
     samples: ClassVar[list[tuple[dict, list[str]]]] = []
+    # records of one session may arrive out of time order (a trace's spans in several exports,
+    # from several files): the session's events are put in time order when it closes
+    by_time: ClassVar[bool] = False
 
     def __init__(self, src: SourceConfig) -> None:
         self.source = src.name

@@ -6,8 +6,8 @@ document pretty-printed over many lines; both may be mixed in one file. Each spa
 record keyed by its trace id, with its start time as the record time and an event type such
 as ``checkout-svc:SERVER:POST /reserve`` or ``...:ERROR`` (``span_event`` picks the parts), so
 spans bypass template mining. The spans of one document are emitted sorted by
-``startTimeUnixNano``; the sessionizer keeps arrival order, so a trace exported in several
-documents is ordered document by document.
+``startTimeUnixNano``, and a trace exported in several documents (or files) is put in start-time
+order when its session closes (``by_time``), an idle timeout after its last span arrived.
 
 OTLP/JSON rules followed (opentelemetry-proto, docs/specification.md, "JSON Protobuf
 Encoding"): lowerCamelCase keys; trace and span ids hex in either case; 64-bit integers as
@@ -106,6 +106,7 @@ def _depth_change(line: str) -> int:
 
 class OtlpJsonFormat(Format):
     name = "otlp-json"
+    by_time = True  # a trace's children are often exported before its root
     samples = [
         ({}, ['{"resourceSpans": [{"resource": {"attributes": [{"key": "service.name", "value": {"stringValue": "api"}}]},'
               ' "scopeSpans": [{"spans": [{"traceId": "5b8efff798038103d269b633813fc60c", "spanId": "eee19b7ec3c1b174",'
