@@ -29,7 +29,7 @@ from pathlib import Path
 HERE = Path(__file__).resolve().parent
 OUT = HERE / "out"
 BENCHMARKS = {"score": "score_vs_script", "formats": "formats", "daemon": "daemon",
-              "scoring": "scoring", "fit_scale": "fit_scale", "otlp": "otlp"}  # name -> module with run(ctx)
+              "scoring": "scoring", "fit_scale": "fit_scale", "otlp": "otlp", "templates": "templates"}  # name -> module with run(ctx)
 DEFAULT_LINES = 1_000_000
 QUICK_LINES = 100_000
 BASELINE_SHARE = 0.2  # the baseline file is this share of the scored one (at least 50k lines)

@@ -29,6 +29,9 @@ WILDCARD = "<var>"
 
 _QUOTED = re.compile(r'"[^"]*"')
 _TRAILING = ",;:.)]}>'"
+_LEADING = "([{<'/"
+# a host name with no digit: three or more lower-case DNS labels (a class name has capitals)
+_HOST = re.compile(r"[a-z][a-z-]*(?:\.[a-z][a-z-]*){2,}(?::[a-z]+)?")
 _DIGITS = frozenset("0123456789")
 _ZERO_DIGITS = bytes.maketrans(b"123456789", b"000000000")
 _encode = methodcaller("encode", "utf-8", "surrogatepass")
@@ -92,14 +95,35 @@ def _mask_token(tok: str) -> str:
     if "://" in tok or tok[0] == "/":  # URLs and absolute paths
         return WILDCARD
     if _DIGITS.isdisjoint(tok):
-        return tok
+        return WILDCARD if "." in tok and _HOST.fullmatch(tok.rstrip(_TRAILING)) else tok
     key, eq, value = tok.partition("=")
     if eq and key and _DIGITS.isdisjoint(key):  # key=value keeps its key
         return key + "=" + _mask_token(value) if value else tok
     end = len(tok)
     while end > 1 and tok[end - 1] in _TRAILING:  # keep trailing punctuation
         end -= 1
-    return WILDCARD + tok[end:]
+    start, bracket = 0, tok.find("[")
+    if 0 < bracket < end and _DIGITS.isdisjoint(tok[:bracket]):  # a program's pid: name[<var>]
+        start = bracket + 1
+    else:
+        while start < end - 1 and tok[start] in _LEADING:  # and leading brackets: [<var>]
+            start += 1
+    return tok[:start] + WILDCARD + tok[end:]
+
+
+_ID_RUN_TEXT = re.compile(_ID_RUN.pattern.decode())
+
+
+def _collapse_lists(tokens: list[str], raw: list[str]) -> list[str]:
+    """A run of bare ``<var>`` tokens of one kind (equal once their id-like runs are taken out,
+    as ``blk_1 blk_-2``) as one: a list of ids is one template whatever its length."""
+    out, last = [tokens[0]], None
+    for tok, word in zip(tokens, raw):
+        kind = _ID_RUN_TEXT.sub("", word) if tok == WILDCARD else None
+        if kind is None or kind != last:
+            out.append(tok)
+        last = kind
+    return out[1:]
 
 
 def mask(message: str) -> str:
@@ -112,7 +136,11 @@ def mask(message: str) -> str:
     """
     if '"' in message:
         message = _QUOTED.sub(WILDCARD, message)
-    return " ".join([tok if tok.isalpha() else _mask_token(tok) for tok in message.split()])
+    raw = message.split()
+    tokens = [tok if tok.isalpha() else _mask_token(tok) for tok in raw]
+    if tokens.count(WILDCARD) > 1:
+        tokens = _collapse_lists(tokens, raw)
+    return " ".join(tokens)
 
 
 def _stable_id(text: str) -> str:
@@ -200,6 +228,7 @@ class TemplateTree:
         self._ids: dict[str, int] = {}
         self._tree: dict = {}
         self._events: dict[str, int] = {}
+        self._by_length: dict[int, list[int]] = {}  # mined templates by token count, for merging
         self.cache = TemplateCache(cache_size)
         self.frozen = False
         self.n_seen = 0  # templates with index < n_seen belong to the baseline
@@ -289,7 +318,7 @@ class TemplateTree:
         for token in tokens[: self.routing_tokens]:
             if node is None:
                 return None, ()
-            key = token if _DIGITS.isdisjoint(token) else WILDCARD
+            key = token if _DIGITS.isdisjoint(token) and WILDCARD not in token else WILDCARD
             if key not in node:
                 if not create:
                     key = WILDCARD
@@ -325,6 +354,8 @@ class TemplateTree:
             sim = same / len(tokens)
             if sim > best_sim or (sim == best_sim and wild > best_wild):
                 best, best_sim, best_wild = cand, sim, wild
+        if best is None or best_sim < self.join_share:
+            best, best_sim = self._compatible(tokens), self.join_share
         if best is not None and best_sim >= self.join_share:
             tpl = self.templates[best]
             if not (self.frozen and best < self.n_seen):
@@ -336,6 +367,18 @@ class TemplateTree:
         self.cache.remember_masked(masked, idx)
         return idx
 
+    def _compatible(self, tokens: list[str]) -> int | None:
+        """The merge step: the first template of this length, on any route, that differs from
+        the message only where one of the two has a variable (``[main]`` and ``[<var>]`` as the
+        thread of one log statement), if any; a frozen baseline's templates only where their
+        own variables cover the message."""
+        for cand in self._by_length.get(len(tokens), ()):
+            tpl = self.templates[cand]
+            keep = self.frozen and cand < self.n_seen
+            if all(a == b or WILDCARD in a or (WILDCARD in b and not keep) for a, b in zip(tpl.tokens, tokens)):
+                return cand
+        return None
+
     def _new(self, seed: str, tokens: list[str], path: tuple[str, ...], structured: bool = False) -> int:
         tid = _stable_id(seed)
         while tid in self._ids:  # astronomically rare; keep ids unique and deterministic
@@ -344,6 +387,8 @@ class TemplateTree:
         idx = len(self.templates)
         self.templates.append(Template(tid, idx, list(tokens), path, 0, structured, not self.frozen))
         self._ids[tid] = idx
+        if not structured:
+            self._by_length.setdefault(len(tokens), []).append(idx)
         return idx
 
     # -- persistence ------------------------------------------------------------
@@ -370,6 +415,7 @@ class TemplateTree:
         if tpl.structured:
             self._events[tokens[0]] = idx
             return
+        self._by_length.setdefault(len(tokens), []).append(idx)
         node = self._tree.setdefault(len(tokens), {})
         for key in tpl.path:
             node = node.setdefault(key, {})
