@@ -51,6 +51,10 @@ test: $(VENV)/.installed-test
 	@{ command -v systemd-journal-remote || test -x /lib/systemd/systemd-journal-remote; } >/dev/null 2>&1 || { export DEBIAN_FRONTEND=noninteractive; \
 	  { apt-get update -qq && apt-get install -y -qq --no-install-recommends systemd-journal-remote; } >/dev/null 2>&1 \
 	  || echo "make: systemd-journal-remote could not be installed (needs root and apt-get); the journald tests will be skipped"; }
+	@# Debian's postgresql (a real server under pgbench, for tests/test_postgres_real.py): the same rule
+	@{ ls /usr/lib/postgresql/*/bin/postgres && command -v pgbench; } >/dev/null 2>&1 || { export DEBIAN_FRONTEND=noninteractive; \
+	  { apt-get update -qq && apt-get install -y -qq --no-install-recommends postgresql; } >/dev/null 2>&1 \
+	  || echo "make: postgresql could not be installed (needs root and apt-get); its test will be skipped"; }
 	$(PY) -m pytest -q
 
 bench: $(VENV)/.installed-test
