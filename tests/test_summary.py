@@ -4,6 +4,7 @@ the detail's bounds and redaction, and text that is safe on a terminal."""
 from __future__ import annotations
 
 import itertools
+import json
 
 import pytest
 
@@ -80,3 +81,23 @@ def test_terminal_text_has_no_control_characters():
     assert "\x1b" not in table([row])
     d = detail({**row, "first_seen": 0.0, "stats": {}, "representative": toy_alert("r", samples=[evil])})
     assert "\x1b" not in text(d) and "\x07" not in text(d)
+
+
+def test_score_text_view_names_the_strongest_explanation_first(tmp_path):
+    """`score --output text` on the demo: each alert is a block whose first line is the same
+    title the incident would carry, then when, why, and the raw samples."""
+    from tracewatch.alerts.summary import title
+
+    from .conftest import run_cli
+
+    run_cli("demo", "--dir", str(tmp_path), check=True)
+    cfg, day = str(tmp_path / "tracewatch.toml"), str(tmp_path / "today" / "today.log")
+    alerts = [json.loads(x) for x in run_cli("score", "--config", cfg, day, check=True).stdout.splitlines()]
+    blocks = run_cli("score", "--config", cfg, "--output", "text", day, check=True).stdout.strip().split("\n\n")
+    assert len(blocks) == len(alerts) > 10
+    for alert, block in zip(alerts, blocks):
+        first, when, why, *rest = block.splitlines()
+        assert first == f"{alert['source']} {alert['session_key']}: {title(alert)}"
+        assert when.startswith("  when ") and f"{alert['events']} events" in when
+        assert why.startswith("  why ") and ", ".join(alert["reasons"]) in why
+        assert all(f"  | {s}" in rest for s in alert["samples"])

@@ -79,7 +79,8 @@ def cmd_score(args) -> int:
     cfg = _config(args)
     baseline = load_baseline(cfg.state_dir, args.baseline)
     pairs = assign_sources(cfg, args.inputs, args.source)
-    pipeline = score_files(cfg, pairs, baseline, _out, score_all=args.all)
+    pipeline = score_files(cfg, pairs, baseline, _out if args.output == "json" else _alert_text,
+                           score_all=args.all)
     sys.stdout.flush()
     n_alerts = sum(pipeline.alerts.values())
     if args.verbose:
@@ -87,6 +88,12 @@ def cmd_score(args) -> int:
         print(f"tracewatch: {sum(pipeline.sessions_scored.values())} sessions scored with baseline "
               f"{baseline.version}; alerts by reason: {reasons}", file=sys.stderr)
     return 1 if args.fail_on_alert and n_alerts else 0
+
+
+def _alert_text(alert: dict) -> None:
+    from .alerts.summary import alert_text
+
+    print(alert_text(alert), end="\n\n")
 
 
 def cmd_templates(args) -> int:
@@ -461,6 +468,8 @@ def build_parser() -> argparse.ArgumentParser:
     with_config(sp, adhoc=True)
     sp.add_argument("--source", metavar="NAME", help="the source the INPUT files belong to")
     sp.add_argument("--all", action="store_true", help="print every session, not only alerts")
+    sp.add_argument("--output", "-o", choices=["json", "text"], default="json",
+                    help="json: one JSON object per alert (default); text: a readable view for a terminal")
     sp.add_argument("--baseline", metavar="VERSION", help="score with this baseline version")
     sp.add_argument("--fail-on-alert", action="store_true", help="exit 1 when any alert was raised")
     sp.add_argument("--verbose", "-v", action="store_true", help="print a summary on stderr")

@@ -166,3 +166,29 @@ def text(d: dict) -> str:
         lines.append("sample lines (redacted):")
         lines += [f"  {safe(s)}" for s in d["samples"]]
     return "\n".join(lines)
+
+
+def _num(x, digits: int = 3) -> str:
+    return f"{x:.{digits}f}" if isinstance(x, (int, float)) else str(x)
+
+
+def alert_text(alert: dict) -> str:
+    """One alert for a terminal (``tracewatch score --output text``): what is wrong first, then
+    the session, the evidence and the difference from the closest normal session."""
+    reasons = ", ".join(alert.get("reasons") or []) or "no alert (--all)"
+    lines = [f"{safe(alert.get('source'))} {safe(alert.get('session_key'))}: {safe(title(alert))}",
+             f"  when        {_utc(alert.get('start'))} → {_utc(alert.get('end'))} UTC, "
+             f"{alert.get('events')} events, closed by {alert.get('closed_by') or '-'}",
+             f"  why         {reasons}; score {_num(alert.get('score'))} (threshold "
+             f"{_num(alert.get('threshold'))}), p-value {_num(alert.get('p_value'), 4)}"]
+    for u in (alert.get("unseen_events") or [])[:5]:
+        lines.append(f"  never seen  {quote(safe(u['template']))} ×{u.get('count', 1)}")
+    diff = alert.get("diff") or []
+    if diff:
+        lines.append("  against the closest normal session:")
+        lines += [f"    {safe(x)}" for x in diff[:MAX_DIFF]]
+        if len(diff) > MAX_DIFF:
+            lines.append(f"    … {len(diff) - MAX_DIFF} more")
+    for s in alert.get("samples") or []:
+        lines.append(f"  | {safe(s)[:MAX_SAMPLE]}")
+    return "\n".join(lines)
