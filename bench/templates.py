@@ -14,8 +14,8 @@ from pathlib import Path
 
 sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
 
-from tests.log_shapes import SHAPES, corpus, grouping_accuracy  # noqa: E402
-from tracewatch.templates import TemplateTree  # noqa: E402
+from tests.log_shapes import SHAPES, corpus, grouping_accuracy
+from tracewatch.templates import TemplateTree
 
 BLOCK = 1024
 

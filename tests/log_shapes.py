@@ -55,7 +55,7 @@ Maker = Callable[[R], str]
 
 
 def _ssh(r: R) -> dict[str, tuple[int, Maker]]:
-    sshd = lambda r: f"sshd[{_pid(r)}]:"  # noqa: E731
+    sshd = lambda r: f"sshd[{_pid(r)}]:"
     return {
         "ssh-accept-pw": (8, lambda r: f"{sshd(r)} Accepted password for {_user(r)} from {_ip(r)} port {_port(r)} ssh2"),
         "ssh-accept-key": (8, lambda r: f"{sshd(r)} Accepted publickey for {_user(r)} from {_ip(r)} port {_port(r)} "
@@ -96,7 +96,7 @@ def _web(r: R) -> dict[str, tuple[int, Maker]]:
 
 
 def _jvm(r: R) -> dict[str, tuple[int, Maker]]:
-    thread = lambda r: f"[{r.choice(['main', f'pool-{r.randint(1, 4)}-thread-{r.randint(1, 32)}', f'http-nio-8080-exec-{r.randint(1, 50)}'])}]"  # noqa: E731,E501
+    thread = lambda r: f"[{r.choice(['main', f'pool-{r.randint(1, 4)}-thread-{r.randint(1, 32)}', f'http-nio-8080-exec-{r.randint(1, 50)}'])}]"
     return {
         "jvm-start": (1, lambda r: f"{thread(r)} net.lockerhub.App: Started App in {r.uniform(2, 30):.3f} seconds "
                                    f"(JVM running for {r.uniform(3, 40):.3f})"),
@@ -119,8 +119,8 @@ def _jvm(r: R) -> dict[str, tuple[int, Maker]]:
 
 
 def _kernel(r: R) -> dict[str, tuple[int, Maker]]:
-    dev = lambda r: r.choice(["sda", "sdb", "nvme0n1", "vda"])  # noqa: E731
-    iface = lambda r: r.choice(["eth0", "eth1", "ens3", "enp0s31f6"])  # noqa: E731
+    dev = lambda r: r.choice(["sda", "sdb", "nvme0n1", "vda"])
+    iface = lambda r: r.choice(["eth0", "eth1", "ens3", "enp0s31f6"])
     return {
         "k-oom": (2, lambda r: f"Out of memory: Killed process {_pid(r)} ({r.choice(['java', 'postgres', 'python3'])}) "
                                f"total-vm:{r.randint(10**5, 10**7)}kB, anon-rss:{r.randint(10**4, 10**6)}kB, "
@@ -146,8 +146,8 @@ def _kernel(r: R) -> dict[str, tuple[int, Maker]]:
 
 
 def _proxy(r: R) -> dict[str, tuple[int, Maker]]:
-    front = lambda r: r.choice(["fe_https", "fe_http"])  # noqa: E731
-    back = lambda r: f"{r.choice(['be_api', 'be_static'])}/{r.choice(['srv1', 'srv2', 'srv3'])}"  # noqa: E731
+    front = lambda r: r.choice(["fe_https", "fe_http"])
+    back = lambda r: f"{r.choice(['be_api', 'be_static'])}/{r.choice(['srv1', 'srv2', 'srv3'])}"
     return {
         "px-http": (40, lambda r: f"gatewayd[{_pid(r)}]: {_ip(r)}:{_port(r)} {front(r)} {back(r)} "
                                   f"{r.randint(0, 50)}/{r.randint(0, 5)}/{r.randint(0, 900)} {r.choice([200, 201, 404])} "
@@ -168,7 +168,7 @@ def _proxy(r: R) -> dict[str, tuple[int, Maker]]:
 
 
 def _db(r: R) -> dict[str, tuple[int, Maker]]:
-    pg = lambda r: f"[{_pid(r)}]"  # noqa: E731
+    pg = lambda r: f"[{_pid(r)}]"
     return {
         "db-slow": (25, lambda r: f"{pg(r)} LOG:  duration: {r.uniform(100, 9000):.3f} ms  statement: SELECT id FROM "
                                   f"parcels WHERE locker_id = {r.randint(1, 900)}"),
@@ -190,8 +190,8 @@ def _db(r: R) -> dict[str, tuple[int, Maker]]:
 
 
 def _scheduler(r: R) -> dict[str, tuple[int, Maker]]:
-    job = lambda r: r.randint(10**5, 10**6)  # noqa: E731
-    nodes = lambda r: ",".join(f"node{r.randint(1, 64):02d}" for _ in range(r.randint(1, 5)))  # noqa: E731
+    job = lambda r: r.randint(10**5, 10**6)
+    nodes = lambda r: ",".join(f"node{r.randint(1, 64):02d}" for _ in range(r.randint(1, 5)))
     return {
         "sch-alloc": (15, lambda r: f"sched: Allocate JobId={job(r)} NodeList={nodes(r)} #CPUs={r.randint(1, 64)} "
                                     f"Partition={r.choice(['batch', 'short', 'gpu'])}"),
@@ -207,8 +207,8 @@ def _scheduler(r: R) -> dict[str, tuple[int, Maker]]:
 
 
 def _storage(r: R) -> dict[str, tuple[int, Maker]]:
-    blk = lambda r: f"blk_{r.choice(['', '-'])}{r.randint(10**17, 10**18)}"  # noqa: E731
-    hp = lambda r: f"/{_ip(r)}:{_port(r)}"  # noqa: E731
+    blk = lambda r: f"blk_{r.choice(['', '-'])}{r.randint(10**17, 10**18)}"
+    hp = lambda r: f"/{_ip(r)}:{_port(r)}"
     return {
         "st-recv": (20, lambda r: f"Receiving block {blk(r)} src: {hp(r)} dest: {hp(r)}"),
         "st-received": (20, lambda r: f"Received block {blk(r)} of size {r.randint(10**4, 10**8)} from {hp(r)}"),

@@ -11,8 +11,17 @@ import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
+from tests.log_shapes import SHAPES, corpus, grouping_accuracy
 from tracewatch.demo.scenario import deposit, health, pickup, returns
-from tracewatch.templates import _ID_RUN, TemplateCache, TemplateTree, _coarse, _shapes, _zero, mask
+from tracewatch.templates import (
+    _ID_RUN,
+    TemplateCache,
+    TemplateTree,
+    _coarse,
+    _shapes,
+    _zero,
+    mask,
+)
 
 
 @pytest.mark.parametrize(
@@ -183,3 +192,50 @@ def test_cache_bound_and_policy():
     messages = [f"door {i} opened by courier {c}" for i in range(40) for c in ("alice", "bob", f"x{i}y")]
     assert miner.add_many(messages) == TemplateTree().add_many(messages)
     assert len(miner.cache.masked) <= 5 and len(miner.cache.shapes) <= 5 and len(miner.cache.coarse) <= 5
+
+
+# shapes not yet at the target: a constant token that takes several values at one position of
+# an otherwise variable line (the access log's user, the proxy's front end, cron's user), and
+# two proxy health-check statements that share most of their tokens
+_BELOW_TARGET = {"webserver", "proxy", "scheduler"}
+
+
+@pytest.mark.parametrize(
+    "shape",
+    [pytest.param(s, marks=pytest.mark.xfail(strict=True, reason="below 0.95 grouping accuracy"))
+     if s in _BELOW_TARGET else s for s in SHAPES],
+)
+def test_grouping_accuracy_per_log_shape(shape):
+    """Grouping accuracy (tests/log_shapes.py) of 3,000 messages in one real-world shape is at
+    least 0.95 — the bar set for tracewatch; the fixed-depth tree's paper reports about 0.87 on
+    average over public system logs (He et al. 2017, from memory)."""
+    truth, messages = corpus(shape, 3000)
+    miner = TemplateTree()
+    acc = grouping_accuracy(truth, [i for lo in range(0, 3000, 1024) for i in miner.add_many(messages[lo:lo + 1024])])
+    print(f"{shape}: grouping accuracy {acc:.3f}, {len(set(truth))} true templates, {len(miner.templates)} mined")
+    assert acc >= 0.95
+
+
+@pytest.mark.parametrize(
+    "message, masked",
+    [
+        ("sshd[4121]: Accepted password for erin", "sshd[<var>]: Accepted password for erin"),
+        ("[pool-2-thread-7] net.lockerhub.App: up", "[<var>] net.lockerhub.App: up"),
+        ("lookup for cell-north.lockers.internal failed", "lookup for <var> failed"),
+        ("java.lang.IllegalStateException: closed", "java.lang.IllegalStateException: closed"),
+        ("ask 10.0.0.1:50010 to delete blk_12 blk_-34 blk_56", "ask <var> to delete <var>"),
+        ("user u123 198.51.100.7 port 22", "user <var> <var> port <var>"),
+    ],
+    ids=["program-pid", "bracketed-thread", "host-name", "class-name", "id-list", "unlike-neighbours"],
+)
+def test_mask_real_log_tokens(message, masked):
+    assert mask(message) == masked
+
+
+def test_templates_differing_only_in_variables_merge():
+    """A log statement whose thread is sometimes a constant and sometimes numbered is one
+    template, whichever comes first."""
+    m = TemplateTree()
+    a = m.add("[main] net.lockerhub.cache.Sizes: evicted 12 entries from cache lockers")
+    b = m.add("[pool-1-thread-3] net.lockerhub.cache.Sizes: evicted 7 entries from cache lockers")
+    assert a == b and m.text(a) == "<var> net.lockerhub.cache.Sizes: evicted <var> entries from cache lockers"

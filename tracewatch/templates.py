@@ -117,13 +117,13 @@ _ID_RUN_TEXT = re.compile(_ID_RUN.pattern.decode())
 def _collapse_lists(tokens: list[str], raw: list[str]) -> list[str]:
     """A run of bare ``<var>`` tokens of one kind (equal once their id-like runs are taken out,
     as ``blk_1 blk_-2``) as one: a list of ids is one template whatever its length."""
-    out, last = [tokens[0]], None
-    for tok, word in zip(tokens, raw):
-        kind = _ID_RUN_TEXT.sub("", word) if tok == WILDCARD else None
-        if kind is None or kind != last:
+    out = [tokens[0]]
+    for i in range(1, len(tokens)):
+        tok = tokens[i]
+        if tok != WILDCARD or tokens[i - 1] != WILDCARD or (
+                _ID_RUN_TEXT.sub("", raw[i]) != _ID_RUN_TEXT.sub("", raw[i - 1])):
             out.append(tok)
-        last = kind
-    return out[1:]
+    return out
 
 
 def mask(message: str) -> str:
