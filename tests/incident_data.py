@@ -256,3 +256,65 @@ def live_setup(root: Path, *, seed: int, top: str = "", tail: str = "") -> tuple
     base.write_text("\n".join(scaled(generate(parcel_lockers(), 400, 0, seed=seed, span_s=400))) + "\n")
     fit_files(cfg, assign_sources(cfg, [str(base)]))
     return cfg_path, port
+
+
+# -- a day with six kinds of fault, each about one named step -------------------------------------------
+# kind → (workflows, what is done to the session, the step, a phrase of its template the title must quote);
+# a kind spread over several workflows has a different context in each
+KINDS = {
+    "missing_auth": (("deposit", "returns"), "drop", "courier authenticated", "authenticated at locker"),
+    "missing_release": (("pickup",), "drop", "compartment released", "released on locker"),
+    "retry_door": (("deposit",), "retry", "door opened", "opened on locker"),
+    "retry_battery": (("health",), "retry", "battery read", "battery at"),
+    "unseen_jam": (("pickup", "deposit", "returns", "health"), "insert", 0, "reports jammed bolt"),
+    "unseen_ledger": (("deposit", "pickup", "returns", "health"), "insert", 3, "ledger write deadlock"),
+}
+
+
+def _apply(kind: str, sess: GeneratedSession, rng: random.Random) -> bool:
+    workflows, how, step, _ = KINDS[kind]
+    if sess.workflow not in workflows:
+        return False
+    if how == "drop":
+        kept = [s for s in sess.steps if s.name != step]
+        if len(kept) == len(sess.steps):
+            return False
+        sess.steps = kept
+    elif how == "retry":
+        at = [i for i, s in enumerate(sess.steps) if s.name == step]
+        if not at:
+            return False
+        sess.steps[at[0]:at[0] + 1] = [sess.steps[at[0]]] * rng.randint(15, 40)
+    else:
+        sess.steps.insert(rng.randrange(1, len(sess.steps)), parcel_lockers().novel[step](rng))
+    sess.label = kind
+    return True
+
+
+@functools.cache
+def six_kinds_day(root: Path, per_kind: int = 32, n_normal: int = 300, span_s: float = 3 * 3600
+                  ) -> tuple[Config, list[dict], dict[str, str]]:
+    """A baseline and a day of ``n_normal`` untouched sessions plus ``per_kind`` sessions of each
+    kind in :data:`KINDS`, fitted and scored by the real pipeline: (config, alerts in the order
+    raised, session key → kind or "normal")."""
+    sc = parcel_lockers()
+    root.mkdir(parents=True, exist_ok=True)
+    base = generate(sc, 800, 0, seed=41, start=datetime(2026, 11, 29, tzinfo=timezone.utc))
+    (root / "baseline.log").write_text("\n".join(render_text(sc, base)) + "\n")
+    rng = random.Random(42)
+    day = generate(sc, n_normal + 20 * per_kind, 0, seed=43, start=STORM_START, span_s=span_s)
+    counts = dict.fromkeys(KINDS, 0)
+    for sess in day[n_normal:]:
+        for kind in sorted(KINDS, key=counts.get):
+            if counts[kind] < per_kind and _apply(kind, sess, rng):
+                counts[kind] += 1
+                _retime(sess, rng)
+                break
+    assert min(counts.values()) == per_kind, counts
+    day = day[:n_normal] + [s for s in day[n_normal:] if s.label != NORMAL]
+    (root / "day.log").write_text("\n".join(render_text(sc, day)) + "\n")
+    cfg = config(root)
+    baseline, _, _ = fit_files(cfg, assign_sources(cfg, [str(root / "baseline.log")]))
+    alerts: list[dict] = []
+    score_files(cfg, assign_sources(cfg, [str(root / "day.log")]), baseline, alerts.append)
+    return cfg, [a for a in alerts if a.get("alert")], {s.key: s.label for s in day}

@@ -188,3 +188,31 @@ def test_a_damaged_incident_is_left_out_of_grouping_and_logged_once(store, caplo
     damaged = [r for r in caplog.records if "is damaged" in r.getMessage()]
     assert len(damaged) == 1 and f"incident {iid}" in damaged[0].getMessage()
     assert store.incident(second)["count"] == 2
+
+
+# -- grouping by what is wrong ------------------------------------------------------------------------
+def test_six_kinds_day_groups_by_signature(tmp_path_factory):
+    from .incident_data import KINDS, six_kinds_day
+
+    cfg, alerts, labels = six_kinds_day(tmp_path_factory.mktemp("six"))
+    assert len(alerts) >= 150
+    assert {labels[a["session_key"]] for a in alerts} == set(KINDS)  # no false alarm among them
+    store = IncidentStore.open(tmp_path_factory.mktemp("six-state"))
+    try:
+        tr = IncidentTracker(store, cfg.incidents, clock=lambda: T0)
+        kinds_of: dict[int, Counter] = {}
+        for a in alerts:
+            kinds_of.setdefault(tr.add(a), Counter())[labels[a["session_key"]]] += 1
+        assert len(kinds_of) <= 12, {i: dict(c) for i, c in kinds_of.items()}
+        for iid, kinds in kinds_of.items():
+            assert len(kinds) == 1, (iid, dict(kinds))
+            (kind,) = kinds
+            title = store.incident(iid)["title"]
+            assert KINDS[kind][3] in title, (kind, title)
+            assert title.startswith({"missing": "step ", "retry": "retry of ", "unseen": "never-seen event "}[
+                kind.split("_")[0]]), title
+        # one incident per kind: the signature joins what similarity alone splits (10 incidents here
+        # when every signature is blanked out)
+        assert sorted(next(iter(k)) for k in kinds_of.values()) == sorted(KINDS)
+    finally:
+        store.close()

@@ -41,6 +41,30 @@ def test_wal_and_schema_version(tmp_path):
     store.close()
 
 
+def test_schema_2_store_gains_signatures_in_place(tmp_path):
+    import sqlite3
+
+    from tracewatch.alerts.incidents import IncidentTracker
+    from tracewatch.config import parse_config
+
+    store = IncidentStore.open(tmp_path)
+    IncidentTracker(store, parse_config({}).incidents).add(toy_alert("old", "A"))
+    store.close()
+    with sqlite3.connect(tmp_path / "incidents.db") as db:  # the file as schema 2 wrote it
+        db.execute("ALTER TABLE incidents DROP COLUMN signature")
+        db.execute("UPDATE meta SET value = '2' WHERE key = 'schema_version'")
+    db.close()
+    store = IncidentStore.open(tmp_path)
+    try:
+        assert store.db.execute("SELECT value FROM meta WHERE key = 'schema_version'").fetchone()[0] == "3"
+        tracker = IncidentTracker(store, parse_config({}).incidents)
+        # the old incident has no signature: the new alert joins it by similarity, as before
+        assert tracker.add(toy_alert("new", "A", t=1_800_000_010.0)) == 1
+        assert store.db.execute("SELECT signature FROM incidents").fetchall() == [("",)]
+    finally:
+        store.close()
+
+
 def test_newer_schema_and_foreign_files_are_clear_errors(tmp_path):
     store = IncidentStore.open(tmp_path / "a")
     store.db.execute("UPDATE meta SET value = '99' WHERE key = 'schema_version'")

@@ -4,6 +4,12 @@ reads a handful of incidents instead of thousands of alerts.
 Stage: alerts → **incidents** → summaries, page, notifications. Alerts are compared by their
 vectors (:mod:`tracewatch.alerts.vectors`: explanation and sequence n-grams, cosine geometry).
 
+First by what is wrong: an alert joins the nearest incident (open or acknowledged with an alert
+within ``window_s``, or expected) whose signature — the source and the kind and subject of its
+opening alert's strongest explanation (:func:`tracewatch.alerts.summary.signature`: the same
+never-seen event, the same retried step, the same missing step ...) — is the alert's, however
+far its other terms are. Failing that, by similarity:
+
 Online average linkage: the distance of a new alert x to an incident I is the mean cosine
 distance to I's alerts, 1 − x·(Σ_{m∈I} m)/|I|, so keeping the sum of the members' vectors
 gives average linkage exactly at the cost of one dot product per incident. The alert joins
@@ -130,19 +136,23 @@ class IncidentTracker:
                 known = store.incident_of(alert["alert_id"], db=db)
                 if known is not None:
                     return known
-                best, best_d = None, math.inf
+                sig = summary.signature(alert)
+                best, best_d, same = None, math.inf, False
                 candidates = store.candidates(t - self.cfg.window_s, db=db)
-                for iid, count in candidates:
+                for iid, count, their_sig in candidates:
+                    mine = bool(sig) and their_sig == sig
+                    if same and not mine:
+                        continue
                     g = self._group(db, iid, count)
                     if g is None:
                         continue
                     d = 1.0 - dot(x, g.total) / g.count
-                    if d < best_d:
-                        best, best_d = iid, d
-                if best is not None and best_d <= self.cfg.cut:
+                    if (mine and not same) or d < best_d:
+                        best, best_d, same = iid, d, mine
+                if best is not None and (same or best_d <= self.cfg.cut):
                     iid, noted = self._join(db, best, self._groups[best], alert, x, t, changed)
                 else:
-                    iid, noted = self._open(db, alert, x, t, changed)
+                    iid, noted = self._open(db, alert, x, t, sig, changed)
                 store.record_alert(alert["alert_id"], iid, t, db=db)
         except BaseException:
             for iid in changed:
@@ -172,7 +182,8 @@ class IncidentTracker:
             g = self._groups[iid] = _Group(state.row["count"], state.total, state.members)
         return g
 
-    def _open(self, db: sqlite3.Connection, alert: dict, x: Vector, t: float, changed: dict) -> tuple[int, bool]:
+    def _open(self, db: sqlite3.Connection, alert: dict, x: Vector, t: float, sig: str,
+              changed: dict) -> tuple[int, bool]:
         stats: dict = {}
         _stats_add(stats, alert)
         now = self.clock()
@@ -180,7 +191,7 @@ class IncidentTracker:
         quiet = hint is not None and hint.get("action") == "suppress"
         iid = self.store.new_incident(status="expected" if quiet else "open", title=summary.title(alert), t=t,
                                       now=now, stats=stats, centroid=x, representative=alert,
-                                      status_by="triage" if quiet else "", suggestion=hint, db=db)
+                                      status_by="triage" if quiet else "", suggestion=hint, signature=sig, db=db)
         self.store.add_member(iid, alert["alert_id"], x, alert, db=db)
         changed[iid] = _Group(1, dict(x), [(alert["alert_id"], x)])
         if quiet:

@@ -43,7 +43,7 @@ import orjson
 from ..errors import StateError
 from . import rows
 
-SCHEMA_VERSION = 2
+SCHEMA_VERSION = 3
 FILENAME = "incidents.db"
 STATUSES = rows.STATUSES  # open, acknowledged, resolved, expected
 FIRING = ("open", "acknowledged")
@@ -66,7 +66,8 @@ CREATE TABLE IF NOT EXISTS incidents (
     stats TEXT NOT NULL,
     centroid TEXT NOT NULL,
     representative TEXT NOT NULL,
-    suggestion TEXT NOT NULL DEFAULT ''
+    suggestion TEXT NOT NULL DEFAULT '',
+    signature TEXT NOT NULL DEFAULT ''
 );
 CREATE INDEX IF NOT EXISTS incidents_status_seen ON incidents (status, last_seen);
 CREATE TABLE IF NOT EXISTS members (
@@ -108,7 +109,9 @@ CREATE TABLE IF NOT EXISTS labels (
 # -- triage labels (tracewatch/triage.py): schema 1 → 2 --
 _MIGRATIONS = {1: ("ALTER TABLE incidents ADD COLUMN suggestion TEXT NOT NULL DEFAULT ''",
                    "CREATE TABLE IF NOT EXISTS labels (incident_id INTEGER PRIMARY KEY, label TEXT NOT NULL, "
-                   "by TEXT NOT NULL, note TEXT NOT NULL DEFAULT '', ts REAL NOT NULL)")}
+                   "by TEXT NOT NULL, note TEXT NOT NULL DEFAULT '', ts REAL NOT NULL)"),
+               # -- the signature alerts are grouped by (alerts/summary.py): schema 2 → 3 --
+               2: ("ALTER TABLE incidents ADD COLUMN signature TEXT NOT NULL DEFAULT ''",)}
 
 # the columns every incident listing returns (the heavy JSON columns only on demand)
 _LIST_COLUMNS = ("id, status, title, first_seen, last_seen, count, escalated, created, status_changed, "
@@ -331,10 +334,10 @@ class IncidentStore:
         row = db.execute("SELECT incident_id FROM alerts WHERE alert_id = ?", (alert_id,)).fetchone()
         return None if row is None else row[0]
 
-    def candidates(self, active_since: float, *, db: sqlite3.Connection) -> list[tuple[int, object]]:
-        """(id, count) of the incidents an alert may join: open or acknowledged with an alert
-        since ``active_since``, or expected. The counts are as stored (checked by :meth:`group`)."""
-        return db.execute("SELECT id, count FROM incidents WHERE (status IN ('open', 'acknowledged') "
+    def candidates(self, active_since: float, *, db: sqlite3.Connection) -> list[tuple[int, object, str]]:
+        """(id, count, signature) of the incidents an alert may join: open or acknowledged with an
+        alert since ``active_since``, or expected. The counts are as stored (checked by :meth:`group`)."""
+        return db.execute("SELECT id, count, signature FROM incidents WHERE (status IN ('open', 'acknowledged') "
                           "AND last_seen >= ?) OR status = 'expected'", (active_since,)).fetchall()
 
     def group(self, incident_id: int, *, db: sqlite3.Connection) -> rows.Group:
@@ -368,12 +371,13 @@ class IncidentStore:
             raise self._damaged(f"incident {incident_id}'s member alert {alert_id}", exc) from exc
 
     def new_incident(self, *, status: str, title: str, t: float, now: float, stats: dict, centroid: dict,
-                     representative: dict, status_by: str, suggestion: dict | None, db: sqlite3.Connection) -> int:
+                     representative: dict, status_by: str, suggestion: dict | None, signature: str = "",
+                     db: sqlite3.Connection) -> int:
         cur = db.execute(
             "INSERT INTO incidents (status, title, first_seen, last_seen, count, created, status_changed, stats, "
-            "centroid, representative, status_by, suggestion) VALUES (?, ?, ?, ?, 1, ?, ?, ?, ?, ?, ?, ?)",
+            "centroid, representative, status_by, suggestion, signature) VALUES (?, ?, ?, ?, 1, ?, ?, ?, ?, ?, ?, ?, ?)",
             (status, title, t, t, now, now, dumps(stats), dumps(centroid), dumps(representative), status_by,
-             dumps(suggestion) if suggestion is not None else ""))
+             dumps(suggestion) if suggestion is not None else "", signature))
         return cur.lastrowid
 
     def update_incident(self, incident_id: int, *, db: sqlite3.Connection, **values) -> None:

@@ -1,7 +1,8 @@
 """Summaries: an incident said in words an on-call engineer can act on.
 
 Stage: alerts → incidents → **summary** → page, CLI, notifications. The title comes from the
-strongest explanation of the representative alert, in this order: an event never seen at fit,
+strongest explanation of the representative alert (:func:`strongest`, also the key alerts are
+grouped by, :func:`signature`), in this order: an event never seen at fit,
 a step repeated many times in a row, an essential step missing, a step order never seen, a
 step more frequent than normal, and only then "unlike the baseline". The detail adds the
 step-by-step difference from the closest normal session, what the incident's alerts share,
@@ -33,11 +34,12 @@ def _more(items: list, shown: int = 1) -> str:
     return f" (+{len(items) - shown} more)" if len(items) > shown else ""
 
 
-def title(alert: dict) -> str:
-    """One line naming the strongest explanation of ``alert``."""
+def strongest(alert: dict) -> tuple[str, str, str]:
+    """The strongest explanation of ``alert`` as (kind, what it is about, the title's rest):
+    kind is one of "unseen", "retry", "missing", "order", "frequent", "unlike"."""
     unseen = sorted(alert.get("unseen_events") or [], key=lambda u: -u.get("count", 1))
     if unseen:
-        return f"never-seen event {quote(unseen[0]['template'])}{_more(unseen)}"
+        return "unseen", unseen[0]["template"], _more(unseen)
     repeats = []
     for line in alert.get("diff") or []:
         m = _REPEATED.match(line)
@@ -47,20 +49,43 @@ def title(alert: dict) -> str:
                 repeats.append((times, m.group(3)))
     if repeats:
         times, template = max(repeats)
-        return f"retry of {quote(template)} repeated {times}×{_more(repeats)}"
+        return "retry", template, f" repeated {times}×{_more(repeats)}"
     missing = [m["ngram"] for m in alert.get("missing") or [] if ARROW not in m["ngram"]]
     if missing:
-        return f"step {quote(missing[0])} missing{_more(missing)}"
+        return "missing", missing[0], _more(missing)
     unexpected = alert.get("unexpected") or []
     new_order = [u["ngram"] for u in unexpected if not u.get("seen_at_fit", True) and ARROW in u["ngram"]]
     if new_order:
         a, _, b = new_order[0].partition(ARROW)
-        b = b.split(ARROW)[0]
-        return f"step order never seen: {quote(a, 60)} then {quote(b, 60)}"
+        return "order", f"{a}{ARROW}{b.split(ARROW)[0]}", ""
     frequent = [u["ngram"] for u in unexpected if ARROW not in u["ngram"]]
     if frequent:
-        return f"step {quote(frequent[0])} more frequent than normal"
-    return f"session unlike the baseline (nearest normal group #{alert.get('cluster', '?')})"
+        return "frequent", frequent[0], ""
+    return "unlike", str(alert.get("cluster", "?")), ""
+
+
+def signature(alert: dict) -> str:
+    """What is wrong, as a key alerts are grouped by: the source and the kind and subject of the
+    strongest explanation ("" when that is only "unlike the baseline", which has no subject)."""
+    kind, about, _ = strongest(alert)
+    return "" if kind == "unlike" else f"{alert.get('source', '?')}\x1f{kind}\x1f{about}"
+
+
+def title(alert: dict) -> str:
+    """One line naming the strongest explanation of ``alert``."""
+    kind, about, rest = strongest(alert)
+    if kind == "unseen":
+        return f"never-seen event {quote(about)}{rest}"
+    if kind == "retry":
+        return f"retry of {quote(about)}{rest}"
+    if kind == "missing":
+        return f"step {quote(about)} missing{rest}"
+    if kind == "order":
+        a, _, b = about.partition(ARROW)
+        return f"step order never seen: {quote(a, 60)} then {quote(b, 60)}"
+    if kind == "frequent":
+        return f"step {quote(about)} more frequent than normal"
+    return f"session unlike the baseline (nearest normal group #{about})"
 
 
 def shared(stats: dict, count: int) -> dict[str, list[dict]]:
