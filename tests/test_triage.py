@@ -273,9 +273,10 @@ def test_one_label_is_not_enough(tmp_path):
 def test_schema_1_store_is_upgraded_in_place(tmp_path):
     store = IncidentStore.open(tmp_path)
     IncidentTracker(store, parse_config({}).incidents).add(toy_alert("a1", "A"))
-    db = store.db  # make it look like a schema-1 file: no labels table, no suggestion column
+    db = store.db  # make it look like a schema-1 file: no labels table, no suggestion or signature column
     db.execute("DROP TABLE labels")
     db.execute("ALTER TABLE incidents DROP COLUMN suggestion")
+    db.execute("ALTER TABLE incidents DROP COLUMN signature")
     db.execute("UPDATE meta SET value = '1' WHERE key = 'schema_version'")
     store.close()
     store = IncidentStore.open(tmp_path, create=False)
