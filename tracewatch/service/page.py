@@ -69,10 +69,18 @@ def triage_text(inc: dict) -> str:
     return f"triage {verb} {hint['label']} (margin {hint.get('margin')})"
 
 
-def list_page(incidents: list[dict], counts: dict[str, int], notify: dict[str, dict], *, refresh_s: int) -> str:
-    """All incidents, most recently active first."""
-    tally = ", ".join(f'<span class="{e(s)}">{counts.get(s, 0)} {e(s)}</span>'
-                      for s in STATUSES)
+def list_page(incidents: list[dict], counts: dict[str, int], notify: dict[str, dict], *, refresh_s: int,
+              status: str | None = None, offset: int = 0, limit: int = 200) -> str:
+    """One page of incidents (of one ``status``, if given), most recently active first; each
+    status in the tally links to its filter, and "newer"/"older" links page through."""
+    tally = ", ".join(f'<a class="{e(s)}" href="/?status={e(s)}">{counts.get(s, 0)} {e(s)}</a>'
+                      for s in STATUSES) + ' — <a href="/">all</a>'
+    keep = f"status={e(status)}&amp;" if status else ""
+    paging = []
+    if offset > 0:
+        paging.append(f'<a href="/?{keep}offset={max(0, offset - limit)}&amp;limit={limit}">newer</a>')
+    if len(incidents) == limit:
+        paging.append(f'<a href="/?{keep}offset={offset + limit}&amp;limit={limit}">older</a>')
     rows = []
     for inc in incidents:
         rows.append(
@@ -91,7 +99,9 @@ def list_page(incidents: list[dict], counts: dict[str, int], notify: dict[str, d
             state += f", last error: {st['last_error']}"
         sinks.append(f"<li>{e(name)}: {e(state)}</li>")
     notes = f"<h2>Notifications</h2><ul>{''.join(sinks)}</ul>" if sinks else ""
-    body = f"<h1>tracewatch — incidents</h1><p>{tally}</p>\n{table}\n{notes}"
+    shown = f"<p>showing {e(status) if status else 'all'}, from #{offset + 1}" + (
+        f" — {' · '.join(paging)}" if paging else "") + "</p>"
+    body = f"<h1>tracewatch — incidents</h1><p>{tally}</p>\n{shown}\n{table}\n{notes}"
     return _page("tracewatch incidents", body, refresh_s=refresh_s)
 
 
