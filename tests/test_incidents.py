@@ -126,14 +126,57 @@ def test_expected_incident_absorbs_alerts_silently(store):
     assert events(store) == before  # opened, resolved — nothing for the 28 expected alerts
 
 
+class Wall:
+    """A wall clock the test moves (far from the alerts' event times, as in a replay)."""
+
+    def __init__(self, t: float) -> None:
+        self.t = t
+
+    def __call__(self) -> float:
+        return self.t
+
+
 def test_auto_resolve_on_tick(store):
-    tr = tracker(store, auto_resolve_s=300)
+    wall = Wall(T0 + 86_400)
+    tr = IncidentTracker(store, parse_config({"incidents": {"auto_resolve_s": 300}}).incidents, clock=wall)
     iid = tr.add(toy_alert("1", "A", t=T0))
+    wall.t += 299
     assert tr.tick(T0 + 299) == []
+    wall.t += 2
     assert tr.tick(T0 + 301) == [iid]
     assert store.incident(iid)["status"] == "resolved"
     assert store.incident(iid)["status_by"].startswith("auto")
     assert events(store) == [(iid, "opened"), (iid, "resolved")]
+
+
+def test_auto_resolve_runs_on_event_time_across_a_restart(tmp_path):
+    # a replay of yesterday's logs: alerts an hour apart in event time, a few wall seconds apart
+    wall = Wall(T0 + 86_400)
+    cfg = parse_config({"incidents": {"auto_resolve_s": 1800, "window_s": 600}}).incidents
+    store = IncidentStore.open(tmp_path)
+    tr = IncidentTracker(store, cfg, clock=wall)
+    ids = []
+    for n in range(5):
+        ids.append(tr.add(toy_alert(f"r{n}", f"E{n}", t=T0 + 900 * n)))
+        wall.t += 1
+        tr.tick(T0 + 900 * n)
+    # event time T0 + 3600: the incidents of T0 and T0 + 900 are quiet for over 1800 s, the rest not
+    assert [store.incident(i)["status"] for i in ids] == ["resolved", "resolved", "open", "open", "open"]
+    store.close()
+
+    # a restart: before any new record the daemon's clock falls back to the wall clock, a day ahead
+    store = IncidentStore.open(tmp_path)
+    try:
+        tr = IncidentTracker(store, cfg, clock=wall)
+        wall.t += 5
+        assert tr.tick(wall.t) == []  # the event clock resumes at the newest alert, T0 + 3600
+        assert [store.incident(i)["status"] for i in ids[2:]] == ["open"] * 3
+        wall.t += 500  # quiet for 500 s more: T0 + 4100 on the event clock; T0 + 1800 is now quiet
+        assert tr.tick(wall.t) == [ids[2]]
+        wall.t += 1800  # and then, with no alert at all, the rest in turn
+        assert sorted(tr.tick(wall.t)) == ids[3:]
+    finally:
+        store.close()
 
 
 # -- the storm -----------------------------------------------------------------------------------------
@@ -216,3 +259,16 @@ def test_six_kinds_day_groups_by_signature(tmp_path_factory):
         assert sorted(next(iter(k)) for k in kinds_of.values()) == sorted(KINDS)
     finally:
         store.close()
+
+
+def test_one_log_line_per_incident_opened(store, caplog):
+    import logging
+
+    caplog.set_level(logging.INFO, logger="tracewatch.incidents")
+    tr = tracker(store)
+    first = tr.add(toy_alert("1", "A", source="api\x1b[2J"))
+    assert tr.add(toy_alert("2", "A", source="api\x1b[2J", t=T0 + 5)) == first  # joins: no line
+    second = tr.add(toy_alert("3", "C"))
+    lines = [r.getMessage() for r in caplog.records if " opened" in r.getMessage()]
+    assert lines == [f"incident {first} opened: never-seen event 'event A <var>' (source api?[2J, session k-1)",
+                     f"incident {second} opened: never-seen event 'event C <var>' (source api, session k-3)"]

@@ -5,6 +5,7 @@ HTML, and in headless Chromium on a daemon that follows a real log file."""
 from __future__ import annotations
 
 import json
+import re
 import shutil
 import subprocess
 import tempfile
@@ -137,3 +138,42 @@ def test_browser_shows_incidents_and_never_runs_log_markup(tmp_path):
     sample = "".join(detail.text)
     assert f"courier «redacted» sent {SCRIPT}" in sample  # shown as text, after redaction
     assert "CR1234" not in sample
+
+
+def test_page_filters_by_status_and_pages(served):
+    from tracewatch.alerts.incidents import set_status
+    from tracewatch.service.page import CSP
+
+    ids = [served.incidents.add(toy_alert(f"p{n}", f"E{n}", t=1_800_000_000.0 + n)) for n in range(5)]
+    set_status(served.incidents.store, ids[0], "resolve", by="test")
+    set_status(served.incidents.store, ids[1], "resolve", by="test")
+
+    def listed(query: str) -> list[str]:
+        status, headers, body = request(served.port, "GET", "/" + query)
+        assert status == 200 and headers["Content-Security-Policy"] == CSP
+        return re.findall(r'href="/incidents/(\d+)"', body.decode())
+
+    # the toy alerts each have their own never-seen event: five incidents
+    assert len(set(ids)) == 5
+    assert listed("") == [str(i) for i in reversed(ids)]  # newest first
+    assert listed("?status=resolved") == [str(ids[1]), str(ids[0])]
+    assert listed("?status=open") == [str(i) for i in reversed(ids[2:])]
+    assert listed("?status=open&limit=2") == [str(ids[4]), str(ids[3])]
+    _, _, body = request(served.port, "GET", "/?status=open&limit=2")
+    assert 'href="/?status=open&amp;offset=2&amp;limit=2">older</a>' in body.decode()
+    assert listed("?status=open&limit=2&offset=2") == [str(ids[2])]
+    status, headers, body = request(served.port, "GET", "/?status=bogus")
+    assert status == 400 and "status: use one of open" in body.decode()
+    assert headers["Content-Security-Policy"] == CSP
+
+
+def test_relative_times():
+    from tracewatch.service.page import ago, list_page
+
+    now = 1_800_000_000.0
+    assert [ago(now - d, now) for d in (0.4, 59, 61, 7200, 3 * 86_400)] == [
+        "just now", "59 s ago", "1 min ago", "2 h ago", "3 d ago"]
+    assert ago(now + 120, now) == "in 2 min" and ago(None, now) == "–"
+    html_ = list_page([{"id": 1, "status": "open", "count": 2, "first_seen": now - 600, "last_seen": now - 30,
+                        "title": "t", "sources": []}], {}, {}, refresh_s=30, now=now)
+    assert '<span title="2027-01-15 07:59:30 UTC">30 s ago</span>' in html_  # date(1) -ud @1799999970

@@ -120,7 +120,9 @@ class IncidentTracker:
         self.triage = triage
         self._groups: dict[int, _Group] = {}
         self._damaged: set[int] = set()  # incidents left out of grouping (logged once each)
-        self._last_tick = -math.inf
+        self._last_tick = -math.inf  # wall clock: how often tick runs
+        self._latest: float | None = None  # the newest alert's event time (from the store at first)
+        self._latest_wall = 0.0  # the wall time it was last moved
 
     # -- adding alerts ----------------------------------------------------------------------------
     def add(self, alert: dict) -> int | None:
@@ -149,7 +151,8 @@ class IncidentTracker:
                     d = 1.0 - dot(x, g.total) / g.count
                     if (mine and not same) or d < best_d:
                         best, best_d, same = iid, d, mine
-                if best is not None and (same or best_d <= self.cfg.cut):
+                opened = not (best is not None and (same or best_d <= self.cfg.cut))
+                if not opened:
                     iid, noted = self._join(db, best, self._groups[best], alert, x, t, changed)
                 else:
                     iid, noted = self._open(db, alert, x, t, sig, changed)
@@ -159,6 +162,11 @@ class IncidentTracker:
                 self._groups.pop(iid, None)
             raise
         self._groups.update(changed)
+        self._saw(t)
+        if opened:
+            log.info("incident %d opened%s: %s (source %s, session %s)", iid, "" if noted else " as expected",
+                     summary.safe(summary.title(alert)), summary.safe(alert.get("source", "?")),
+                     summary.safe(alert.get("session_key", "?")))
         if len(self._groups) > 4 * len(candidates) + 256:
             keep = {c[0] for c in candidates} | set(changed)
             self._groups = {i: g for i, g in self._groups.items() if i in keep}
@@ -241,12 +249,32 @@ class IncidentTracker:
         return iid, noted
 
     # -- time ----------------------------------------------------------------------------------------
+    def _saw(self, t: float | None) -> None:
+        if self._latest is None or (t is not None and t > self._latest):
+            self._latest = t if self._latest is None else max(t, self._latest)
+            self._latest_wall = self.clock()
+
+    def event_now(self, now: float) -> float | None:
+        """The event clock quiet incidents are judged by: the newest alert's own time plus the
+        wall seconds since it arrived, and never more than ``now`` (the caller's event time).
+        After a restart it starts at the store's newest alert, so neither a replay of old logs
+        nor a caller falling back to the wall clock resolves everything at once."""
+        if self._latest is None:
+            self._saw(self.store.latest_seen())
+            if self._latest is None:
+                return None
+        return min(now, self._latest + max(0.0, self.clock() - self._latest_wall))
+
     def tick(self, now: float) -> list[int]:
-        """Resolve open or acknowledged incidents with no alert for ``auto_resolve_s`` (event
-        time); at most once a second. Returns the ids resolved."""
-        if not self.cfg.auto_resolve_s or now - self._last_tick < TICK_EVERY_S:
+        """Resolve open or acknowledged incidents with no alert for ``auto_resolve_s`` on the
+        event clock (:meth:`event_now`); at most once a wall-clock second. Returns the ids resolved."""
+        wall = self.clock()
+        if not self.cfg.auto_resolve_s or wall - self._last_tick < TICK_EVERY_S:
             return []
-        self._last_tick = now
+        self._last_tick = wall
+        now = self.event_now(now)
+        if now is None:
+            return []
         limit = now - self.cfg.auto_resolve_s
         done = []
         for iid in self.store.quiet_incidents(limit):

@@ -399,6 +399,10 @@ class IncidentStore:
     def record_alert(self, alert_id: str, incident_id: int, t: float, *, db: sqlite3.Connection) -> None:
         db.execute("INSERT INTO alerts (alert_id, incident_id, ts) VALUES (?, ?, ?)", (alert_id, incident_id, t))
 
+    def latest_seen(self) -> float | None:
+        """The event time of the newest alert of any incident (None while there is none)."""
+        return self.db.execute("SELECT MAX(last_seen) FROM incidents").fetchone()[0]
+
     def quiet_incidents(self, before: float) -> list[int]:
         """Open or acknowledged incidents whose last alert is older than ``before``."""
         return [r[0] for r in self.db.execute(

@@ -91,7 +91,7 @@ class Daemon:
         # sources that are not file globs: the journal, the OTLP receiver's spools (sources/streams.py)
         self.streams: list[StreamSource] = stream_sources(cfg, self.state_dir)
         self.otlp = self.otlp_thread = None
-        self.incidents = Incidents(cfg)  # grouping, page, notifications (tracewatch/service/incidents.py)
+        self.incidents = Incidents(cfg, clock=wall)  # grouping, page, notifications (tracewatch/service/incidents.py)
         self.watch = BaselineWatch(self.state_dir)
         self.refit = RefitJob(cfg, self.state_dir, lock=self.lock, store=lambda: self.incidents.store, wall=wall)
         self.report = DaemonStatus(self)

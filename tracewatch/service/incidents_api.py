@@ -92,28 +92,34 @@ def route(h: BaseHTTPRequestHandler, incidents: Incidents | None) -> bool:
     return True
 
 
+PAGE_ROWS = 50  # incidents per page of the HTML list
+
+
 def _get(h: BaseHTTPRequestHandler, inc: Incidents, path: str, query: dict[str, list[str]]) -> None:
     cfg = inc.cfg.incidents
     store = inc.store
-    if path == "/":
-        rows = [brief(i) for i in store.incidents(limit=200)]
-        status = inc.notifier.status() if inc.notifier is not None else {}
-        _html(h, 200, page.list_page(rows, store.counts(), status, refresh_s=cfg.page_refresh_s))
-        return
-    if path == "/api/incidents":
+    if path in ("/", "/api/incidents"):
         try:
-            status = query.get("status", [None])[0]
+            status = query.get("status", [None])[0] or None
             if status is not None and status not in STATUSES:
                 raise ValueError(f"status: use one of {', '.join(STATUSES)}")
             since = parse_since(query["since"][0]) if "since" in query else None
-            limit = int(query.get("limit", ["100"])[0])
+            limit = int(query.get("limit", [str(PAGE_ROWS if path == "/" else 100)])[0])
             offset = int(query.get("offset", ["0"])[0])
             if not 1 <= limit <= MAX_LIST or offset < 0:
                 raise ValueError(f"limit must be between 1 and {MAX_LIST}, offset >= 0")
         except ValueError as exc:
-            send_json(h, 400, {"error": str(exc)})
+            if path == "/":
+                _html(h, 400, page.message_page("Bad request", str(exc), refresh_s=cfg.page_refresh_s))
+            else:
+                send_json(h, 400, {"error": str(exc)})
             return
         rows = [brief(i) for i in store.incidents(status=status, since=since, limit=limit, offset=offset)]
+        if path == "/":
+            notify = inc.notifier.status() if inc.notifier is not None else {}
+            _html(h, 200, page.list_page(rows, store.counts(), notify, refresh_s=cfg.page_refresh_s,
+                                         status=status, offset=offset, limit=limit))
+            return
         notify = inc.notifier.status() if inc.notifier is not None else {}
         send_json(h, 200, {"incidents": rows, "counts": store.counts(), "notify": notify})
         return

@@ -12,6 +12,7 @@ that forbids scripts.
 from __future__ import annotations
 
 import html
+import time
 from datetime import datetime, timezone
 
 from ..alerts.store import STATUSES
@@ -46,6 +47,23 @@ def when(ts: float | None) -> str:
     return datetime.fromtimestamp(ts, tz=timezone.utc).strftime("%Y-%m-%d %H:%M:%S UTC")
 
 
+def ago(ts: float | None, now: float) -> str:
+    """``ts`` relative to ``now``, in the largest whole unit: "just now", "5 min ago", "2 h ago"."""
+    if ts is None:
+        return "–"
+    d = now - ts
+    for unit, size in (("d", 86_400), ("h", 3600), ("min", 60), ("s", 1)):
+        if abs(d) >= size:
+            n = int(abs(d) // size)
+            return f"{n} {unit} ago" if d > 0 else f"in {n} {unit}"
+    return "just now"
+
+
+def _rel(ts: float | None, now: float) -> str:
+    """The relative time, with the absolute one as its tooltip."""
+    return f'<span title="{e(when(ts))}">{e(ago(ts, now))}</span>'
+
+
 def _page(title: str, body: str, *, refresh_s: int) -> str:
     return (f'<!DOCTYPE html>\n<html lang="en"><head><meta charset="utf-8">'
             f'<meta http-equiv="refresh" content="{int(refresh_s)}">'
@@ -69,16 +87,25 @@ def triage_text(inc: dict) -> str:
     return f"triage {verb} {hint['label']} (margin {hint.get('margin')})"
 
 
-def list_page(incidents: list[dict], counts: dict[str, int], notify: dict[str, dict], *, refresh_s: int) -> str:
-    """All incidents, most recently active first."""
-    tally = ", ".join(f'<span class="{e(s)}">{counts.get(s, 0)} {e(s)}</span>'
-                      for s in STATUSES)
+def list_page(incidents: list[dict], counts: dict[str, int], notify: dict[str, dict], *, refresh_s: int,
+              status: str | None = None, offset: int = 0, limit: int = 200, now: float | None = None) -> str:
+    """One page of incidents (of one ``status``, if given), most recently active first; each
+    status in the tally links to its filter, and "newer"/"older" links page through."""
+    tally = ", ".join(f'<a class="{e(s)}" href="/?status={e(s)}">{counts.get(s, 0)} {e(s)}</a>'
+                      for s in STATUSES) + ' — <a href="/">all</a>'
+    now = time.time() if now is None else now
+    keep = f"status={e(status)}&amp;" if status else ""
+    paging = []
+    if offset > 0:
+        paging.append(f'<a href="/?{keep}offset={max(0, offset - limit)}&amp;limit={limit}">newer</a>')
+    if len(incidents) == limit:
+        paging.append(f'<a href="/?{keep}offset={offset + limit}&amp;limit={limit}">older</a>')
     rows = []
     for inc in incidents:
         rows.append(
             f'<tr><td><a href="/incidents/{int(inc["id"])}">#{int(inc["id"])}</a></td>'
             f'<td class="{e(inc["status"])}">{e(inc["status"])}</td><td class="n">{int(inc["count"])}</td>'
-            f'<td>{e(when(inc["first_seen"]))}</td><td>{e(when(inc["last_seen"]))}</td>'
+            f'<td>{_rel(inc["first_seen"], now)}</td><td>{_rel(inc["last_seen"], now)}</td>'
             f'<td>{e(", ".join(inc.get("sources") or []))}</td><td class="title">{e(inc["title"])}</td>'
             f'<td class="triage">{e(triage_text(inc))}</td></tr>')
     table = ("<table><thead><tr><th>id</th><th>status</th><th>alerts</th><th>first seen</th><th>last seen</th>"
@@ -91,7 +118,9 @@ def list_page(incidents: list[dict], counts: dict[str, int], notify: dict[str, d
             state += f", last error: {st['last_error']}"
         sinks.append(f"<li>{e(name)}: {e(state)}</li>")
     notes = f"<h2>Notifications</h2><ul>{''.join(sinks)}</ul>" if sinks else ""
-    body = f"<h1>tracewatch — incidents</h1><p>{tally}</p>\n{table}\n{notes}"
+    shown = f"<p>showing {e(status) if status else 'all'}, from #{offset + 1}" + (
+        f" — {' · '.join(paging)}" if paging else "") + "</p>"
+    body = f"<h1>tracewatch — incidents</h1><p>{tally}</p>\n{shown}\n{table}\n{notes}"
     return _page("tracewatch incidents", body, refresh_s=refresh_s)
 
 
