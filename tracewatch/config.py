@@ -14,6 +14,7 @@ from typing import Annotated, Literal
 from pydantic import BaseModel, ConfigDict, Field, ValidationError, field_validator, model_validator
 
 from .errors import ConfigError
+from .timestamps import check_ts_format
 from .formats import FORMATS
 from .model.score import ScorerName
 
@@ -38,7 +39,7 @@ def _check_regex(value: str | None, *, groups: tuple[str, ...] = ()) -> str | No
 # options that belong to one format; setting one for another format is a config error
 _FORMAT_ONLY = {"session_field": "syslog", "span_event": "otlp-json", "max_document_bytes": "otlp-json",
                 "strace_session": "strace", "journal_key_fields": "journald", "journalctl_args": "journald",
-                "log_key_attribute": "otlp-logs-json"}
+                "log_key_attribute": "otlp-logs-json", "ts_format": "text"}
 # formats that wrap the application's lines, read by an inner format (tracewatch/formats/container.py)
 CONTAINER_FORMATS = ("cri", "docker-json")
 _CONTAINER_ONLY = ("payload_format", "container_key_prefix")
@@ -68,6 +69,10 @@ class SourceConfig(_Section):
     continuation_pattern: str | None = None
     continuation_max: int = Field(default=50, ge=0)
     max_line_bytes: int = Field(default=65536, ge=64)
+    # text (group `ts`): how times are written, a layout of tracewatch/timestamps.py (iso8601,
+    # epoch, epoch_ms, postgres, syslog, asctime, yymmdd, log4j) or a strptime pattern; unset:
+    # the layout of the source's first readable stamp
+    ts_format: str | None = None
     start_at: Literal["end", "beginning"] = "end"
     # -- syslog, otlp-json and strace options (tracewatch/formats/{syslog,otlp,strace}.py) ------
     # syslog: take the session key from a header field (hostname, app_name, procid, msgid) or a
@@ -133,6 +138,11 @@ class SourceConfig(_Section):
     @classmethod
     def _line_pattern(cls, v: str | None) -> str | None:
         return _check_regex(v, groups=("message",))
+
+    @field_validator("ts_format")
+    @classmethod
+    def _ts_format(cls, v: str | None) -> str | None:
+        return check_ts_format(v)
 
     @field_validator("continuation_pattern")
     @classmethod
