@@ -73,6 +73,9 @@ class SourceConfig(_Section):
     # epoch, epoch_ms, postgres, syslog, asctime, yymmdd, log4j) or a strptime pattern; unset:
     # the layout of the source's first readable stamp
     ts_format: str | None = None
+    # fit refuses (score warns) when more than this share of the source's lines are rejected, or
+    # of its keyed records carry no usable time
+    max_unread_share: float = Field(default=0.5, ge=0, le=1)
     start_at: Literal["end", "beginning"] = "end"
     # -- syslog, otlp-json and strace options (tracewatch/formats/{syslog,otlp,strace}.py) ------
     # syslog: take the session key from a header field (hostname, app_name, procid, msgid) or a
