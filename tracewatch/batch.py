@@ -54,7 +54,7 @@ def run_files(pipeline: Pipeline, pairs: list[tuple[str, Path]], *,
     and the line offsets of every block read, before the pipeline does."""
     for source, path in pairs:
         stream = str(path)
-        for lines, offsets, repairs in read_blocks(path, pipeline.cfg.source(source).max_line_bytes):
+        for lines, offsets, repairs in read_blocks(path, pipeline.cfg.source(source).line_limit):
             if on_block is not None:
                 on_block(stream, offsets)
             pipeline.feed_block(source, stream, lines, offsets, repairs)

@@ -398,6 +398,8 @@ def format_report(r: dict, version: str, path, pipeline: Pipeline | None) -> str
                      f"(lines read {sum(pipeline.lines.values())}, rejected {rejected}"
                      + (f": {', '.join(f'{k[1]}={v}' for k, v in sorted(pipeline.rejected.items()))}" if rejected else "")
                      + ")")
+        if pipeline.repaired:
+            lines.append("repaired lines: " + ", ".join(f"{s} {r}={n}" for (s, r), n in sorted(pipeline.repaired.items())))
         if pipeline.untimed:
             lines.append("untimed: " + ", ".join(f"{s}={n}" for s, n in sorted(pipeline.untimed.items()))
                          + " records with a session key but no usable time")

@@ -110,6 +110,12 @@ class SourceConfig(_Section):
     log_key_attribute: str | None = Field(default=None, min_length=1, max_length=256)
 
     @property
+    def line_limit(self) -> int:
+        """Bytes a line is read up to: ``max_document_bytes`` for otlp-json (an exporter writes a
+        whole export batch on one line), else ``max_line_bytes``."""
+        return max(self.max_line_bytes, self.max_document_bytes) if self.format == "otlp-json" else self.max_line_bytes
+
+    @property
     def content_format(self) -> str:
         """The format of the application's own lines: the inner one for container logs."""
         return self.payload_format if self.format in CONTAINER_FORMATS else self.format
