@@ -159,3 +159,15 @@ def test_text_source_with_ts_format(tmp_path):
                           datetime(2026, 12, 2, 7, 40, 35, 100000, tzinfo=_UTC).timestamp()]
     with pytest.raises(Exception, match="ts_format"):
         parse_config({"sources": [{"name": "db", "ts_format": "nope"}]})
+
+
+def test_jsonl_source_with_ts_format(tmp_path):
+    from tracewatch.config import parse_config
+    from tracewatch.formats import make_format
+
+    cfg = parse_config({"sources": [{"name": "jobs", "format": "jsonl", "ts_format": "asctime", "session_key": "job"}]})
+    cols = make_format(cfg.sources[0]).read_block(
+        ['{"time": "Sun Dec 04 04:47:44 2005", "job": "j1", "message": "slot 3 assigned"}'], [0])
+    assert cols.times == [datetime(2005, 12, 4, 4, 47, 44, tzinfo=_UTC).timestamp()]
+    with pytest.raises(Exception, match="ts_format: only used with"):
+        parse_config({"sources": [{"name": "t", "format": "syslog", "ts_format": "asctime"}]})

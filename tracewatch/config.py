@@ -39,7 +39,7 @@ def _check_regex(value: str | None, *, groups: tuple[str, ...] = ()) -> str | No
 # options that belong to one format; setting one for another format is a config error
 _FORMAT_ONLY = {"session_field": "syslog", "span_event": "otlp-json", "max_document_bytes": "otlp-json",
                 "strace_session": "strace", "journal_key_fields": "journald", "journalctl_args": "journald",
-                "log_key_attribute": "otlp-logs-json", "ts_format": "text"}
+                "log_key_attribute": "otlp-logs-json"}
 # formats that wrap the application's lines, read by an inner format (tracewatch/formats/container.py)
 CONTAINER_FORMATS = ("cri", "docker-json")
 _CONTAINER_ONLY = ("payload_format", "container_key_prefix")
@@ -69,7 +69,7 @@ class SourceConfig(_Section):
     continuation_pattern: str | None = None
     continuation_max: int = Field(default=50, ge=0)
     max_line_bytes: int = Field(default=65536, ge=64)
-    # text (group `ts`): how times are written, a layout of tracewatch/timestamps.py (iso8601,
+    # text (group `ts`) and jsonl (time_field): how times are written, a layout of tracewatch/timestamps.py (iso8601,
     # epoch, epoch_ms, postgres, syslog, asctime, yymmdd, log4j) or a strptime pattern; unset:
     # the layout of the source's first readable stamp
     ts_format: str | None = None
@@ -127,6 +127,8 @@ class SourceConfig(_Section):
         for key, fmt in _FORMAT_ONLY.items():
             if key in self.model_fields_set and self.content_format != fmt:
                 raise ValueError(f"{key}: only used with format = \"{fmt}\"")
+        if "ts_format" in self.model_fields_set and self.content_format not in ("text", "jsonl"):
+            raise ValueError('ts_format: only used with format = "text" or "jsonl" (or as their payload_format)')
         if self.journalctl_args is not None:
             if self.format != "journald":
                 raise ValueError('journalctl_args: only used with format = "journald"')
