@@ -8,7 +8,8 @@ import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
-from tracewatch.timestamps import LAYOUTS, iso8601_numpy, parse_timestamp, timestamps
+from tracewatch.timestamps import (LAYOUTS, StampReader, check_ts_format, iso8601_numpy, parse_timestamp,
+                                   syslog_yearless, timestamps)
 
 
 def test_parse_timestamp_forms():
@@ -91,3 +92,82 @@ def test_every_block_reader_equals_its_one_text_reader(layout, texts):
     if got is not None:
         assert got == [layout.one(t) for t in texts]
     assert timestamps([*texts, None]) == [*map(parse_timestamp, texts), None]
+
+
+# -- the other common layouts: expected values computed with datetime(..., tzinfo=utc).timestamp()
+_UTC = timezone.utc
+
+
+@pytest.mark.parametrize(("text", "expected"), [
+    ("2026-12-02 07:40:34.082 UTC", datetime(2026, 12, 2, 7, 40, 34, 82000, tzinfo=_UTC)),  # PostgreSQL %m
+    ("2026-12-02 07:40:34 UTC", datetime(2026, 12, 2, 7, 40, 34, tzinfo=_UTC)),  # PostgreSQL %t
+    ("2026-12-02 10:40:34.082 +03", datetime(2026, 12, 2, 7, 40, 34, 82000, tzinfo=_UTC)),
+    ("[Sun Dec 04 04:47:44 2005]", datetime(2005, 12, 4, 4, 47, 44, tzinfo=_UTC)),  # Apache httpd 2.2
+    ("Sun Dec 04 04:47:44.123456 2005", datetime(2005, 12, 4, 4, 47, 44, 123456, tzinfo=_UTC)),  # 2.4
+    ("081109 203615", datetime(2008, 11, 9, 20, 36, 15, tzinfo=_UTC)),
+    ("2015-07-29 17:41:44,747", datetime(2015, 7, 29, 17, 41, 44, 747000, tzinfo=_UTC)),  # log4j
+])
+def test_common_layouts(text, expected):
+    assert parse_timestamp(text) == expected.timestamp()
+    assert StampReader().many([text, text]) == [expected.timestamp()] * 2
+
+
+def test_named_layout_and_strptime_pattern():
+    assert StampReader("yymmdd").one("081109 203615") == datetime(2008, 11, 9, 20, 36, 15, tzinfo=_UTC).timestamp()
+    assert StampReader("yymmdd").one("2008-11-09T20:36:15Z") is None  # a set layout reads only itself
+    clf = StampReader("%d/%b/%Y:%H:%M:%S %z")  # web server access logs
+    assert clf.one("10/Oct/2000:13:55:36 -0700") == datetime(2000, 10, 10, 20, 55, 36, tzinfo=_UTC).timestamp()
+    with pytest.raises(ValueError, match="neither a layout"):
+        check_ts_format("dd-mm-yyyy")
+
+
+@pytest.mark.parametrize(("ref", "expected"), [
+    (datetime(2026, 12, 2, 8, 0, tzinfo=_UTC), datetime(2026, 12, 2, 7, 40, 34, tzinfo=_UTC)),
+    (datetime(2027, 1, 1, 0, 5, tzinfo=_UTC), datetime(2026, 12, 2, 7, 40, 34, tzinfo=_UTC)),  # Dec read in Jan
+    (datetime(2026, 12, 1, 12, 0, tzinfo=_UTC), datetime(2026, 12, 2, 7, 40, 34, tzinfo=_UTC)),  # < 1 day skew
+    (datetime(2026, 11, 30, 0, 0, tzinfo=_UTC), datetime(2025, 12, 2, 7, 40, 34, tzinfo=_UTC)),
+])
+def test_syslog_year_inference(ref, expected):
+    assert syslog_yearless("Dec  2 07:40:34", ref.timestamp()) == expected.timestamp()
+
+
+def test_jan_stamp_read_just_before_new_year():
+    ref = datetime(2026, 12, 31, 23, 59, tzinfo=_UTC).timestamp()
+    assert syslog_yearless("Jan  1 00:00:10", ref) == datetime(2027, 1, 1, 0, 0, 10, tzinfo=_UTC).timestamp()
+    assert syslog_yearless("Feb 29 10:00:00", datetime(2026, 3, 1, tzinfo=_UTC).timestamp()) == \
+        datetime(2024, 2, 29, 10, tzinfo=_UTC).timestamp()
+
+
+def test_auto_detection_keeps_the_first_layout():
+    reader = StampReader()
+    assert reader.many(["081109 203615", "081109 203616"])[1] == datetime(2008, 11, 9, 20, 36, 16, tzinfo=_UTC).timestamp()
+    assert reader.layout is LAYOUTS["yymmdd"]
+    assert reader.one("garbage") is None and reader.layout is LAYOUTS["yymmdd"]
+
+
+def test_text_source_with_ts_format(tmp_path):
+    from tracewatch.config import parse_config
+    from tracewatch.formats import make_format
+
+    cfg = parse_config({"state_dir": str(tmp_path), "sources": [{
+        "name": "db", "ts_format": "postgres",
+        "line_pattern": r"^(?P<ts>\S+ \S+ \S+) \[(?P<key>\d+)\] (?P<message>.*)$"}]})
+    fmt = make_format(cfg.sources[0])
+    cols = fmt.read_block(["2026-12-02 07:40:34.082 UTC [4242] LOG:  checkpoint starting: time",
+                           "2026-12-02 07:40:35.100 UTC [4242] LOG:  checkpoint complete"], [0, 1])
+    assert cols.times == [datetime(2026, 12, 2, 7, 40, 34, 82000, tzinfo=_UTC).timestamp(),
+                          datetime(2026, 12, 2, 7, 40, 35, 100000, tzinfo=_UTC).timestamp()]
+    with pytest.raises(Exception, match="ts_format"):
+        parse_config({"sources": [{"name": "db", "ts_format": "nope"}]})
+
+
+def test_jsonl_source_with_ts_format(tmp_path):
+    from tracewatch.config import parse_config
+    from tracewatch.formats import make_format
+
+    cfg = parse_config({"sources": [{"name": "jobs", "format": "jsonl", "ts_format": "asctime", "session_key": "job"}]})
+    cols = make_format(cfg.sources[0]).read_block(
+        ['{"time": "Sun Dec 04 04:47:44 2005", "job": "j1", "message": "slot 3 assigned"}'], [0])
+    assert cols.times == [datetime(2005, 12, 4, 4, 47, 44, tzinfo=_UTC).timestamp()]
+    with pytest.raises(Exception, match="ts_format: only used with"):
+        parse_config({"sources": [{"name": "t", "format": "syslog", "ts_format": "asctime"}]})

@@ -59,7 +59,7 @@ def run_files(pipeline: Pipeline, pairs: list[tuple[str, Path]], *,
         return
     for source, path in pairs:
         stream = str(path)
-        for lines, offsets, repairs in read_blocks(path, pipeline.cfg.source(source).max_line_bytes):
+        for lines, offsets, repairs in read_blocks(path, pipeline.cfg.source(source).line_limit):
             if on_block is not None:
                 on_block(stream, offsets)
             pipeline.feed_block(source, stream, lines, offsets, repairs)
@@ -155,6 +155,24 @@ def template_rows(cfg: Config, pairs: list[tuple[str, Path]]) -> tuple[list[tupl
     return rows, pipeline
 
 
+def unread_lines(pipeline: Pipeline, *, refuse: bool) -> list[str]:
+    """One line per input problem of the run (:meth:`Pipeline.input_problems`). With ``refuse``
+    (fit) only the problems above the source's ``max_unread_share``, worded as a refusal; else
+    (score) every problem, as a warning."""
+    out = []
+    for source, what, count, total in pipeline.input_problems():
+        limit = pipeline.cfg.source(source).max_unread_share
+        above = total > 0 and count / total > limit
+        if refuse and not above:
+            continue
+        head = "fit refused: " if refuse else "warning: "
+        tail = (f", above max_unread_share {limit}; no baseline written" if refuse
+                else (f", above max_unread_share {limit}" if above else ""))
+        hint = " (check ts_format)" if "time" in what else " (check format and line_pattern)"
+        out.append(f"{head}source '{source}': {count} of {total} {what}{tail}{hint}")
+    return out
+
+
 def fit_files(cfg: Config, pairs: list[tuple[str, Path]]):
     """Read normal sessions from files, fit a baseline, save it as the current version."""
     from .baselines import check_writable, save_baseline
@@ -163,6 +181,8 @@ def fit_files(cfg: Config, pairs: list[tuple[str, Path]]):
     check_writable(cfg.state_dir)
     pipeline = Pipeline(cfg)
     run_files(pipeline, pairs)
+    for line in unread_lines(pipeline, refuse=True):
+        raise InputError(line)
     baseline = fit_baseline(pipeline.fit_sessions(), pipeline.miner, cfg)
     path = save_baseline(baseline, cfg.state_dir)
     return baseline, path, pipeline

@@ -17,7 +17,7 @@ from . import __version__
 from .alerts.store import STATUSES
 from .baselines import (baselines_dir, current_version, list_versions, load_baseline, load_baseline_dir,
                         set_current)
-from .batch import assign_sources, fit_files, score_files, template_rows
+from .batch import assign_sources, fit_files, score_files, template_rows, unread_lines
 from .config import Config, IncidentsConfig, adhoc_config, load_config
 from .errors import ConfigError, TracewatchError
 from .pipeline import Pipeline
@@ -68,6 +68,8 @@ def cmd_fit(args) -> int:
     cfg = _config(args)
     pairs = assign_sources(cfg, args.inputs, args.source)
     baseline, path, pipeline = fit_files(cfg, pairs)
+    for line in unread_lines(pipeline, refuse=False):
+        print(f"tracewatch: {line}", file=sys.stderr)
     if args.json:
         _out({"version": baseline.version, "path": str(path), **baseline.report})
     else:
@@ -82,6 +84,8 @@ def cmd_score(args) -> int:
     pipeline = score_files(cfg, pairs, baseline, _out if args.output == "json" else _alert_text,
                            score_all=args.all)
     sys.stdout.flush()
+    for line in unread_lines(pipeline, refuse=False):
+        print(f"tracewatch: {line}", file=sys.stderr)
     n_alerts = sum(pipeline.alerts.values())
     if args.verbose:
         reasons = ", ".join(f"{r}={n}" for (_, r), n in sorted(pipeline.alerts.items())) or "none"
@@ -401,6 +405,11 @@ def format_report(r: dict, version: str, path, pipeline: Pipeline | None) -> str
                      f"(lines read {sum(pipeline.lines.values())}, rejected {rejected}"
                      + (f": {', '.join(f'{k[1]}={v}' for k, v in sorted(pipeline.rejected.items()))}" if rejected else "")
                      + ")")
+        if pipeline.repaired:
+            lines.append("repaired lines: " + ", ".join(f"{s} {r}={n}" for (s, r), n in sorted(pipeline.repaired.items())))
+        if pipeline.untimed:
+            lines.append("untimed: " + ", ".join(f"{s}={n}" for s, n in sorted(pipeline.untimed.items()))
+                         + " records with a session key but no usable time")
     lines.append(f"sessions: {r['sessions']} ({r['train_sessions']} to fit, {r['calibration_sessions']} to "
                  f"calibrate), {r['distinct_sequences']} distinct sequences in the fit part")
     lines.append(f"templates: {r['templates']}   n-grams: {r['ngrams']}   scorer: {r['scorer']}")

@@ -14,6 +14,7 @@ from typing import Annotated, Literal
 from pydantic import BaseModel, ConfigDict, Field, ValidationError, field_validator, model_validator
 
 from .errors import ConfigError
+from .timestamps import check_ts_format
 from .formats import FORMATS
 from .model.score import ScorerName
 
@@ -68,6 +69,13 @@ class SourceConfig(_Section):
     continuation_pattern: str | None = None
     continuation_max: int = Field(default=50, ge=0)
     max_line_bytes: int = Field(default=65536, ge=64)
+    # text (group `ts`) and jsonl (time_field): how times are written, a layout of tracewatch/timestamps.py (iso8601,
+    # epoch, epoch_ms, postgres, syslog, asctime, yymmdd, log4j) or a strptime pattern; unset:
+    # the layout of the source's first readable stamp
+    ts_format: str | None = None
+    # fit refuses (score warns) when more than this share of the source's lines are rejected, or
+    # of its keyed records carry no usable time
+    max_unread_share: float = Field(default=0.5, ge=0, le=1)
     start_at: Literal["end", "beginning"] = "end"
     # -- syslog, otlp-json and strace options (tracewatch/formats/{syslog,otlp,strace}.py) ------
     # syslog: take the session key from a header field (hostname, app_name, procid, msgid) or a
@@ -102,6 +110,12 @@ class SourceConfig(_Section):
     log_key_attribute: str | None = Field(default=None, min_length=1, max_length=256)
 
     @property
+    def line_limit(self) -> int:
+        """Bytes a line is read up to: ``max_document_bytes`` for otlp-json (an exporter writes a
+        whole export batch on one line), else ``max_line_bytes``."""
+        return max(self.max_line_bytes, self.max_document_bytes) if self.format == "otlp-json" else self.max_line_bytes
+
+    @property
     def content_format(self) -> str:
         """The format of the application's own lines: the inner one for container logs."""
         return self.payload_format if self.format in CONTAINER_FORMATS else self.format
@@ -113,6 +127,8 @@ class SourceConfig(_Section):
         for key, fmt in _FORMAT_ONLY.items():
             if key in self.model_fields_set and self.content_format != fmt:
                 raise ValueError(f"{key}: only used with format = \"{fmt}\"")
+        if "ts_format" in self.model_fields_set and self.content_format not in ("text", "jsonl"):
+            raise ValueError('ts_format: only used with format = "text" or "jsonl" (or as their payload_format)')
         if self.journalctl_args is not None:
             if self.format != "journald":
                 raise ValueError('journalctl_args: only used with format = "journald"')
@@ -133,6 +149,11 @@ class SourceConfig(_Section):
     @classmethod
     def _line_pattern(cls, v: str | None) -> str | None:
         return _check_regex(v, groups=("message",))
+
+    @field_validator("ts_format")
+    @classmethod
+    def _ts_format(cls, v: str | None) -> str | None:
+        return check_ts_format(v)
 
     @field_validator("continuation_pattern")
     @classmethod

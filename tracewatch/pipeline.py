@@ -72,6 +72,7 @@ class Pipeline:
         self.rejected = Counter()  # (source, reason) -> lines
         self.repaired = Counter()  # (source, reason) -> lines decoded with replacement / truncated
         self.lines = Counter()  # source -> lines read
+        self.untimed = Counter()  # source -> records with a session key but no usable time
         self.sessions_scored = Counter()  # source -> sessions
         self.alerts = Counter()  # (source, reason) -> alerts
 
@@ -124,6 +125,8 @@ class Pipeline:
         if not len(cols):
             return
         self.records[source] += len(cols)
+        if None in cols.times:  # keyed records without a time: their sessions never idle out
+            self.untimed[source] += sum(1 for key, ts in zip(cols.keys, cols.times) if ts is None and key is not None)
         idxs = self.miner.add_many(cols.messages, cols.events)
         if self.on_records is not None:
             self.on_records(source, stream, cols, idxs)
@@ -193,6 +196,21 @@ class Pipeline:
             for reason in verdict["reasons"]:
                 self.alerts[(sess.source, reason)] += 1
             self.on_verdict(verdict)
+
+    def input_problems(self) -> list[tuple[str, str, int, int]]:
+        """``(source, what, count, out of)`` for every source whose input was badly read: lines
+        rejected (``what`` names the reasons) or keyed records without a usable time."""
+        out = []
+        for src in self.cfg.sources:
+            name = src.name
+            rejected = sorted(((n, r) for (s, r), n in self.rejected.items() if s == name), reverse=True)
+            if rejected:
+                reasons = ", ".join(f"{r}={n}" for n, r in rejected)
+                out.append((name, f"lines rejected ({reasons})", sum(n for n, _ in rejected), self.lines[name]))
+            if self.untimed[name]:
+                out.append((name, "records with a session key carry no usable time", self.untimed[name],
+                            self.records[name]))
+        return out
 
     def fit_sessions(self) -> list[tuple[str, tuple[int, ...]]]:
         """``(source, event sequence)`` of every session collected for fitting."""

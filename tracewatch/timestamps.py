@@ -15,6 +15,7 @@ from __future__ import annotations
 
 import functools
 import re
+import time
 from collections.abc import Callable, Sequence
 from dataclasses import dataclass
 from datetime import datetime, timezone
@@ -182,30 +183,146 @@ def epoch_millis(text: str) -> Stamp:
     return int(text) / 1000.0 if _EPOCH_MS.fullmatch(text) else None
 
 
+# -- other common layouts ----------------------------------------------------------------------
+_MONTHS = {m: i for i, m in enumerate(("Jan", "Feb", "Mar", "Apr", "May", "Jun", "Jul", "Aug", "Sep", "Oct",
+                                       "Nov", "Dec"), 1)}
+_ZONE = re.compile(r"(?:UTC|GMT|Z)|([+-])(\d\d)(?::?(\d\d))?")
+
+
+def _utc(year: int, month: int, day: int, hms: str, frac: str | None, offset: int = 0) -> Stamp:
+    """Seconds of a UTC (less ``offset`` seconds) date and ``HH:MM:SS`` time; None if impossible."""
+    try:
+        dt = datetime(year, month, day, int(hms[0:2]), int(hms[3:5]), int(hms[6:8]),
+                      int((frac or "0").ljust(6, "0")[:6]), tzinfo=timezone.utc)
+    except ValueError:
+        return None
+    return dt.timestamp() - offset
+
+
+_PG = re.compile(r"(\d{4})-(\d\d)-(\d\d) (\d\d:\d\d:\d\d)(?:\.(\d{1,6}))? (\S+)")
+
+
+def postgres(text: str) -> Stamp:
+    """PostgreSQL's ``log_line_prefix`` ``%m`` / ``%t``: ``2026-12-02 07:40:34.082 UTC`` (zone
+    UTC/GMT or a numeric offset such as ``+03`` or ``-0530``; named zones are ambiguous: None)."""
+    m = _PG.fullmatch(text.strip())
+    if m is None:
+        return None
+    z = _ZONE.fullmatch(m[6])
+    if z is None:
+        return None
+    offset = 0 if z[1] is None else (1 if z[1] == "+" else -1) * (int(z[2]) * 3600 + int(z[3] or 0) * 60)
+    return _utc(int(m[1]), int(m[2]), int(m[3]), m[4], m[5], offset)
+
+
+def infer_year(month: int, day: int, hms: str, frac: str | None, reference: float | None = None) -> Stamp:
+    """A yearless stamp placed in the year that puts it nearest before ``reference`` (now when
+    None), as RFC 3164 section 4.3 receivers must do: of the years around the reference, the
+    latest whose stamp is not more than a day after it (a day's grace for clock skew), so a
+    December stamp read in January belongs to the year before."""
+    ref = time.time() if reference is None else reference
+    year = datetime.fromtimestamp(ref, tz=timezone.utc).year
+    for y in range(year + 1, year - 8, -1):  # back to the last leap year for 29 February
+        stamp = _utc(y, month, day, hms, frac)
+        if stamp is not None and stamp <= ref + 86400:
+            return stamp
+    return None
+
+
+_YEARLESS = re.compile(r"([A-Z][a-z]{2}) {1,2}(\d{1,2}) (\d\d:\d\d:\d\d)(?:\.(\d{1,6}))?")
+
+
+def syslog_yearless(text: str, reference: float | None = None) -> Stamp:
+    """The BSD syslog (RFC 3164) stamp ``Dec  2 07:40:34`` (day padded with a space), year
+    inferred by :func:`infer_year`; UTC."""
+    m = _YEARLESS.fullmatch(text.strip())
+    if m is None or m[1] not in _MONTHS:
+        return None
+    return infer_year(_MONTHS[m[1]], int(m[2]), m[3], m[4], reference)
+
+
+_ASCTIME = re.compile(r"\[?(?:Mon|Tue|Wed|Thu|Fri|Sat|Sun) ([A-Z][a-z]{2}) {1,2}(\d{1,2}) "
+                      r"(\d\d:\d\d:\d\d)(?:\.(\d{1,6}))? (\d{4})\]?")
+
+
+def asctime(text: str) -> Stamp:
+    """C's ``asctime`` layout, as Apache httpd's error log writes it: ``[Sun Dec 04 04:47:44
+    2005]`` (brackets optional; 2.4's microseconds too); UTC."""
+    m = _ASCTIME.fullmatch(text.strip())
+    if m is None or m[1] not in _MONTHS:
+        return None
+    return _utc(int(m[5]), _MONTHS[m[1]], int(m[2]), m[3], m[4])
+
+
+_COMPACT = re.compile(r"(\d\d)(\d\d)(\d\d) (\d\d)(\d\d)(\d\d)")
+
+
+def yymmdd_hhmmss(text: str) -> Stamp:
+    """``081109 203615``: two-digit year (69-99 the 1900s, 00-68 the 2000s, as POSIX strptime
+    ``%y``), month, day, then hours, minutes, seconds; UTC."""
+    m = _COMPACT.fullmatch(text.strip())
+    if m is None:
+        return None
+    yy = int(m[1])
+    return _utc(yy + (1900 if yy >= 69 else 2000), int(m[2]), int(m[3]), f"{m[4]}:{m[5]}:{m[6]}", None)
+
+
+def strptime_reader(pattern: str) -> Callable[[str], Stamp]:
+    """A reader for a ``strptime`` pattern; no zone in it: UTC; no year: :func:`infer_year`."""
+    yearless = "%Y" not in pattern and "%y" not in pattern and "%G" not in pattern
+
+    def read(text: str) -> Stamp:
+        try:  # a yearless text is read in 2000, a leap year, so that 29 February reads too
+            dt = datetime.strptime(text.strip() + " 2000", pattern + " %Y") if yearless \
+                else datetime.strptime(text.strip(), pattern)
+        except (ValueError, TypeError):
+            return None
+        if yearless:
+            return infer_year(dt.month, dt.day, dt.strftime("%H:%M:%S"), f"{dt.microsecond:06d}")
+        if dt.tzinfo is None:
+            dt = dt.replace(tzinfo=timezone.utc)
+        return dt.timestamp()
+
+    return read
+
+
 # -- the table ---------------------------------------------------------------------------------
 # Tried in this order by parse_timestamp; block readers first by timestamps.
 LAYOUTS: dict[str, Layout] = {layout.name: layout for layout in (
     Layout("iso8601", iso8601, iso8601_block),
     Layout("epoch", epoch_seconds),
     Layout("epoch_ms", epoch_millis),
+    Layout("postgres", postgres),
+    Layout("syslog", syslog_yearless),
+    Layout("asctime", asctime),
+    Layout("yymmdd", yymmdd_hhmmss),
 )}
+# log4j's ISO8601 layout (2015-07-29 17:41:44,747) is ISO 8601 with a comma
+LAYOUTS["log4j"] = LAYOUTS["iso8601"]
 _ISO = LAYOUTS["iso8601"]
 
 
 def parse_timestamp(text: str | None) -> Stamp:
     """Seconds since the epoch of a time written in any layout of :data:`LAYOUTS` (ISO 8601 /
-    RFC 3339 with ``,`` or ``.`` fractions, or a plain epoch number); None if unreadable. Times
-    without a zone are taken as UTC."""
+    RFC 3339 with ``,`` or ``.`` fractions, a plain epoch number, PostgreSQL's, BSD syslog's,
+    asctime's, ``yymmdd HHMMSS``); None if unreadable. Times without a zone are taken as UTC."""
+    return detect(text)[0]
+
+
+def detect(text: str | None) -> tuple[Stamp, Layout | None]:
+    """The stamp of ``text`` and the first layout of :data:`LAYOUTS` that reads it."""
     if not text:
-        return None
-    if len(text) >= 10 and text[4] == "-" and text[7] == "-":  # the common case: no other layout
-        return _ISO.one(text)
+        return None, None
+    if len(text) >= 10 and text[4] == "-" and text[7] == "-":  # the common case
+        stamp = _ISO.one(text)
+        if stamp is not None:
+            return stamp, _ISO
     for layout in LAYOUTS.values():
-        if layout is not _ISO:
-            stamp = layout.one(text)
-            if stamp is not None:
-                return stamp
-    return _ISO.one(text.strip())
+        stamp = layout.one(text)
+        if stamp is not None:
+            return stamp, layout
+    stamp = _ISO.one(text.strip())
+    return stamp, (_ISO if stamp is not None else None)
 
 
 def timestamps(texts: Sequence[str | None]) -> list[Stamp]:
@@ -219,4 +336,58 @@ def timestamps(texts: Sequence[str | None]) -> list[Stamp]:
     return list(map(parse_timestamp, texts))
 
 
-__all__ = ["LAYOUTS", "Layout", "iso8601", "iso8601_block", "iso8601_numpy", "parse_timestamp", "timestamps"]
+class StampReader:
+    """One source's reader of times: the layout named by its ``ts_format`` (a name in
+    :data:`LAYOUTS` or a ``strptime`` pattern), or, unset, the layout the first readable stamp
+    shows, kept for the texts after it (a text it cannot read is tried against every layout,
+    and the layout that reads it is kept from then on)."""
+
+    def __init__(self, ts_format: str | None = None) -> None:
+        self.fixed = ts_format is not None
+        if ts_format is None:
+            self.layout: Layout | None = None
+        elif ts_format in LAYOUTS:
+            self.layout = LAYOUTS[ts_format]
+        else:
+            self.layout = Layout(ts_format, strptime_reader(ts_format))
+
+    def one(self, text: str | None) -> Stamp:
+        if not text:
+            return None
+        layout = self.layout
+        if layout is not None:
+            stamp = layout.one(text)
+            if stamp is not None or self.fixed:
+                return stamp
+        stamp, found = detect(text)
+        if found is not None:
+            self.layout = found
+        return stamp
+
+    def many(self, texts: Sequence[str | None]) -> list[Stamp]:
+        layout = self.layout
+        if layout is None:
+            return list(map(self.one, texts))
+        stamps = layout.block(texts) if layout.block is not None else None
+        if stamps is None:
+            stamps = [layout.one(t) if t else None for t in texts]
+        if self.fixed or None not in stamps:
+            return stamps
+        return [s if s is not None else self.one(t) for s, t in zip(stamps, texts)]
+
+
+def check_ts_format(value: str | None) -> str | None:
+    """A ``ts_format`` as the config takes it: a layout's name or a ``strptime`` pattern."""
+    if value is None or value in LAYOUTS:
+        return value
+    if "%" not in value:
+        raise ValueError(f"ts_format: {value!r} is neither a layout ({', '.join(LAYOUTS)}) nor a strptime "
+                         "pattern such as '%d/%b/%Y:%H:%M:%S %z'")
+    try:
+        datetime.now().strftime(value)
+    except ValueError as exc:
+        raise ValueError(f"ts_format: {value!r}: {exc}") from exc
+    return value
+
+
+__all__ = ["LAYOUTS", "Layout", "StampReader", "check_ts_format", "detect", "infer_year", "iso8601", "iso8601_block", "iso8601_numpy", "parse_timestamp", "timestamps"]

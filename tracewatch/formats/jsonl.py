@@ -18,7 +18,8 @@ import orjson
 
 from ..config import SourceConfig
 from ..records import Columns, Record, Rejection
-from . import Format, Output, _list, parse_timestamp, timestamps
+from ..timestamps import StampReader
+from . import Format, Output, _list
 
 
 def _getter(path: str | None):
@@ -68,6 +69,7 @@ class JsonlFormat(Format):
         self._msg = _getter(src.message_field)
         self._key = _getter(src.session_key)
         self._ts = _getter(src.time_field)
+        self._stamps = StampReader(src.ts_format)  # the layout, chosen once per stream
         self._level = _getter(src.level_field)
         self._event = _getter(src.event_field)
         # top-level fields: the same lookup by itemgetter, for whole blocks (``_column``)
@@ -112,7 +114,7 @@ class JsonlFormat(Format):
         stamps = self._column(self._ts, objs) if self._ts else [None] * n
         kinds = set(map(type, stamps))
         if kinds == {str}:
-            stamps = timestamps(stamps)
+            stamps = self._stamps.many(stamps)
         elif kinds != {type(None)}:
             stamps = list(map(self._time, stamps))
         return Columns(self._texts(self._key, objs), stamps, self._texts(self._level, objs), messages,
@@ -136,8 +138,7 @@ class JsonlFormat(Format):
                 pass
         return list(map(getter, objs))
 
-    @staticmethod
-    def _time(value) -> float | None:
+    def _time(self, value) -> float | None:
         if isinstance(value, (int, float)) and not isinstance(value, bool):
             return float(value) / (1000.0 if value > 1e11 else 1.0)
-        return parse_timestamp(value) if isinstance(value, str) else None
+        return self._stamps.one(value) if isinstance(value, str) else None

@@ -21,7 +21,8 @@ from itertools import repeat
 
 from ..config import SourceConfig
 from ..records import Columns, Record, Rejection
-from . import Format, Output, _list, parse_timestamp, timestamps
+from ..timestamps import StampReader
+from . import Format, Output, _list
 
 _group = re.Match.group
 
@@ -52,6 +53,7 @@ class TextFormat(Format):
         self._key_group = self._key.groupindex["key"] if self._key is not None else 0
         self._cont = re.compile(src.continuation_pattern) if src.continuation_pattern else None
         self._cont_max = src.continuation_max
+        self._stamps = StampReader(src.ts_format)  # the layout, chosen once per stream
         self._pending: Record | None = None
         self._pending_lines = 0
 
@@ -76,7 +78,7 @@ class TextFormat(Format):
         key = m.group(gkey) if gkey else None
         if key is None:
             key = self._key_of(line)
-        return Record(self.source, key, parse_timestamp(m.group(gts)) if gts else None,
+        return Record(self.source, key, self._stamps.one(m.group(gts)) if gts else None,
                       m.group(glevel) if glevel else None, m.group(gm) or "", line, offset)
 
     def feed(self, line: str, offset: int) -> Output:
@@ -166,6 +168,6 @@ class TextFormat(Format):
         if None in messages:  # an optional message group that took no part: ""
             messages = [m or "" for m in messages]
         keys = self._keys(lines, list(map(_group, matches, repeat(gkey))) if gkey else None)
-        stamps = timestamps(list(map(_group, matches, repeat(gts)))) if gts else [None] * n
+        stamps = self._stamps.many(list(map(_group, matches, repeat(gts)))) if gts else [None] * n
         levels = list(map(_group, matches, repeat(glevel))) if glevel else [None] * n
         return Columns(keys, stamps, levels, messages, [None] * n, _list(lines), _list(offsets))

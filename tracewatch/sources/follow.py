@@ -86,7 +86,7 @@ class Tail:
     def __init__(self, src: SourceConfig, path: str, fd: int, st: os.stat_result, offset: int,
                  now: float) -> None:
         self.source = src.name
-        self.max_line_bytes = src.max_line_bytes
+        self.max_line_bytes = src.line_limit
         self.path = path
         self.fd = fd
         self.dev, self.ino = st.st_dev, st.st_ino
