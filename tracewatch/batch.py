@@ -88,7 +88,7 @@ def fit_files(cfg: Config, pairs: list[tuple[str, Path]]):
     check_writable(cfg.state_dir)
     pipeline = Pipeline(cfg)
     run_files(pipeline, pairs)
-    baseline = fit_baseline(pipeline.fit_sessions(), pipeline.miner, cfg)
+    baseline = fit_baseline(pipeline.fit_sessions(), pipeline.miner, cfg, pipeline.fit_keys())
     path = save_baseline(baseline, cfg.state_dir)
     return baseline, path, pipeline
 

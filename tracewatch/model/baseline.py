@@ -221,24 +221,101 @@ def _unflat(flat: np.ndarray, offsets: np.ndarray) -> list[Seq]:
 
 
 # -- fitting -------------------------------------------------------------------------------
-def fit_baseline(sessions: list[tuple[str, Seq]], miner: TemplateTree, cfg: Config) -> Baseline:
-    """Fit on normal ``(source, event sequence)`` sessions: split train / calibration,
+def fit_baseline(sessions: list[tuple[str, Seq]], miner: TemplateTree, cfg: Config,
+                 keys: Sequence[str] | None = None) -> Baseline:
+    """Fit on normal ``(source, event sequence)`` sessions (``keys``: their session keys, for the
+    report): set aside probable incidents (:func:`_cross_fit`), split train / calibration,
     vectorise, cluster, fit the scorer, then calibrate each source on its own held-out
     sessions. Freezes ``miner``: templates made after this are unseen."""
-    import scipy.sparse as sp
-
-    from ..features import NgramVectorizer
-    from .fit import ClusterModel  # scikit-learn's clustering loads only when fitting
-
     n = len(sessions)
     if n < MIN_SESSIONS:
         raise BaselineError(f"only {n} sessions found in the input; a baseline needs at least "
                             f"{MIN_SESSIONS} (check session_key and the input files)")
     mcfg = cfg.model
     rng = np.random.default_rng(mcfg.seed)
-    n_cal = max(1, int(round(n * mcfg.calibration_fraction)))
-    order = rng.permutation(n)
+    suspects = _cross_fit(sessions, miner, cfg)
+    order = np.array([i for i in rng.permutation(n) if i not in suspects], dtype=np.int64)
+    n_cal = max(1, int(round(len(order) * mcfg.calibration_fraction)))
     cal_idx, train_idx = np.sort(order[:n_cal]), np.sort(order[n_cal:])
+    baseline, model, distinct, weights = _build(sessions, train_idx, cal_idx, miner, cfg)
+    baseline.report = _report(baseline, model, cfg, n=n, n_train=len(train_idx), n_cal=n_cal,
+                              distinct=distinct, weights=weights)
+    baseline.report["probable_incidents"] = [
+        {"session_key": keys[i] if keys is not None else f"#{i}", "source": sessions[i][0],
+         "reason": reason} for i, reason in sorted(suspects.items())]
+    miner.freeze()
+    return baseline
+
+
+CROSS_FOLDS = 5
+CROSS_ROUNDS = 2  # a second pass, on what the first kept, finds incidents the first one's hid
+
+
+def _cross_fit(sessions: list[tuple[str, Seq]], miner: TemplateTree, cfg: Config) -> dict[int, str]:
+    """The baseline sessions that are probably incidents, each with a short reason.
+
+    Cross-fitting (sample splitting): Chernozhukov et al., "Double/debiased machine learning
+    for treatment and structural parameters", Econometrics Journal 2018; for conformal scores,
+    Lei, G'Sell, Rinaldo, Tibshirani, Wasserman, "Distribution-free predictive inference for
+    regression", JASA 2018. The sessions are dealt into :data:`CROSS_FOLDS` seeded folds; a
+    model fitted on the other folds scores each fold, so no session is judged by a model that
+    learnt it (an incident's own steps never count as seen). A held-out session's p-value is
+    taken against the other folds' calibration scores with their top ``expected_bad_share``
+    dropped (that share of the reference is presumed bad: left in, a 2% contamination alone
+    would put every incident's p-value near 0.02). A session is set aside when its p-value is
+    at most ``expected_bad_share / 10`` (on exchangeable normal sessions, about a tenth as many
+    false exclusions as the expected incidents), and never below the smallest p-value the
+    reference can give. A second pass on the sessions the first kept finds incidents that
+    resembled others in the first pass's fitting folds. ``expected_bad_share = 0`` turns this off."""
+    share = cfg.model.expected_bad_share
+    found: dict[int, str] = {}
+    if share <= 0 or len(sessions) < CROSS_FOLDS * 2 * MIN_SESSIONS:
+        return found
+    for rnd in range(CROSS_ROUNDS):
+        new = _cross_fit_round(sessions, miner, cfg, found, rnd)
+        if not new:
+            break
+        found.update(new)
+    return found
+
+
+def _cross_fit_round(sessions: list[tuple[str, Seq]], miner: TemplateTree, cfg: Config, skip: dict[int, str],
+                     rnd: int) -> dict[int, str]:
+    """One pass of :func:`_cross_fit` over the sessions not in ``skip``."""
+    share = cfg.model.expected_bad_share
+    rng = np.random.default_rng([cfg.model.seed, 1, rnd])
+    folds = np.array_split(rng.permutation([i for i in range(len(sessions)) if i not in skip]), CROSS_FOLDS)
+    found: dict[int, str] = {}
+    for f, held in enumerate(folds):
+        rest = rng.permutation(np.concatenate([folds[g] for g in range(CROSS_FOLDS) if g != f]))
+        n_cal = max(1, int(round(len(rest) * cfg.model.calibration_fraction)))
+        model, *_ = _build(sessions, np.sort(rest[n_cal:]), np.sort(rest[:n_cal]), miner, cfg)
+        scorer = model.make_scorer()
+        by_source: dict[str, list[int]] = {}
+        for i in held.tolist():
+            by_source.setdefault(sessions[i][0], []).append(i)
+        for source, idx in by_source.items():
+            ref = model.conformal(source).calibration_scores_
+            ref = ref[:len(ref) - int(np.ceil(share * len(ref)))]  # sorted: the presumed bad top dropped
+            cut = max(share / 10, 1 / (len(ref) + 1))
+            scores = np.array([r[0] for r in scorer.score(source, [sessions[i][1] for i in idx])])
+            p = (1.0 + len(ref) - np.searchsorted(ref, scores, side="left")) / (len(ref) + 1.0)
+            top = float(ref[-1]) if len(ref) else 0.0
+            for i, s, pv in zip(idx, scores.tolist(), p.tolist()):
+                if pv <= cut:
+                    found[i] = f"score {s:.3g} above every normal one of the other folds (max {top:.3g})"
+    return found
+
+
+def _build(sessions: list[tuple[str, Seq]], train_idx: np.ndarray, cal_idx: np.ndarray, miner: TemplateTree,
+           cfg: Config) -> tuple[Baseline, object, list[Seq], np.ndarray]:
+    """Vectorise and cluster ``train_idx``, fit the scorer, calibrate on ``cal_idx``."""
+    import scipy.sparse as sp
+
+    from ..features import NgramVectorizer
+    from .fit import ClusterModel  # scikit-learn's clustering loads only when fitting
+
+    mcfg = cfg.model
     counts = Counter(sessions[i] for i in train_idx)  # distinct (source, sequence) with counts
     row_sources = [src for src, _ in counts]
     distinct = [seq for _, seq in counts]
@@ -261,10 +338,7 @@ def fit_baseline(sessions: list[tuple[str, Seq]], miner: TemplateTree, cfg: Conf
         normal_labels=labels[keep], normal_sources=[row_sources[r] for r in keep], scorer=scorer,
         calibration={}, report={})
     _calibrate(baseline, [sessions[i] for i in cal_idx], mcfg.false_alarm_rate)
-    baseline.report = _report(baseline, model, cfg, n=n, n_train=len(train_idx), n_cal=n_cal,
-                              distinct=distinct, weights=weights)
-    miner.freeze()
-    return baseline
+    return baseline, model, distinct, weights
 
 
 def _cluster_df(X, labels: np.ndarray, weights: np.ndarray, model) -> np.ndarray:
