@@ -68,3 +68,33 @@ def test_dirty_baseline(tmp_path, scenario, bad_share, seed):
         # short at the same step), survives cross-fitting as a small shape of its own
         pytest.xfail(f"recall below 0.95 with 2% bad baseline sessions: {low}")
     assert not low, f"recall below 0.95: {low}"
+
+
+@pytest.mark.parametrize("n, rate, warned", [(60, 0.01, True), (60, 0.1, False)])
+def test_fit_report_states_the_lowest_reachable_rate(tmp_path, n, rate, warned):
+    base = generate(parcel_lockers(), n, 0, seed=5)
+    (tmp_path / "b.log").write_text("\n".join(render_text(parcel_lockers(), base)) + "\n")
+    cfg = parse_config({
+        "state_dir": str(tmp_path / "state"),
+        "sources": [{"name": "app", "line_pattern": parcel_lockers().line_pattern}],
+        "sessions": {"idle_timeout_s": 30},
+        "model": {"false_alarm_rate": rate},
+    })
+    baseline, _, _ = fit_files(cfg, assign_sources(cfg, [str(tmp_path / "b.log")]))
+    report = baseline.report
+    n_cal = report["calibration_sessions"]  # 15 of 60 (calibration_fraction 0.25)
+    assert report["lowest_false_alarm_rate"] == pytest.approx(1 / (n_cal + 1), abs=1e-6)
+    lines = [x for x in report["notes"] if "lowest rate" in x]
+    assert len(lines) == (1 if warned else 0)
+    if warned:
+        assert "calibration_fraction" in lines[0] and f"1/{n_cal + 1}" in lines[0]
+
+
+def test_fit_summary_lists_the_probable_incidents(tmp_path):
+    from tracewatch.cli import format_report
+
+    _, report, planted = dirty_run(tmp_path, bike_docks(), bad_share=0.01, seed=36)
+    text = format_report(report, "v", tmp_path, None)
+    assert f"probable incidents in the baseline period ({len(report['probable_incidents'])} sessions" in text
+    assert sum(key in text for key in planted) >= min(len(planted), 10)  # the first ones, listed by key
+    assert "lowest reachable false_alarm_rate" in text

@@ -139,6 +139,7 @@ class FitReport(_Strict):
     probable_incidents: list[_Incident] = Field(default_factory=list, max_length=100_000)
     thresholds: dict[_SourceName, _Threshold] = Field(max_length=MAX_SOURCES + 1)
     false_alarm_rate: float = Field(gt=0, lt=0.5)
+    lowest_false_alarm_rate: float | None = Field(default=None, gt=0, le=1)
     scorer: str
     unseen_weight: _Finite = Field(ge=0)
     refit: _Refit | None = None

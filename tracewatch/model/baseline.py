@@ -418,15 +418,18 @@ def _report(b: Baseline, model, cfg: Config, *, n: int, n_train: int, n_cal: int
         "unseen_weight": mcfg.unseen_weight,
     }
     need = int(np.ceil(1 / mcfg.false_alarm_rate)) - 1
+    # a conformal p-value is at least 1/(n+1): no rate below that can come from distance alone
+    report["lowest_false_alarm_rate"] = round(1 / (n_cal + 1), 6)
+    if mcfg.false_alarm_rate * (n_cal + 1) < 1 - 1e-9:  # the test ConformalThreshold.fit makes
+        report["notes"].append(
+            f"false_alarm_rate={mcfg.false_alarm_rate} is below the lowest rate {n_cal} calibration sessions "
+            f"can give (1/{n_cal + 1} = {1 / (n_cal + 1):.4g}), so only never-seen events raise alerts: "
+            f"fit on at least {need} calibration sessions (more baseline sessions, or a higher "
+            f"calibration_fraction than {mcfg.calibration_fraction})")
     for src, c in b.calibration.items():
         if c.usable_:
             continue
-        if src == POOLED:
-            report["notes"].append(
-                f"the calibration set ({n_cal} sessions) is too small for false_alarm_rate="
-                f"{mcfg.false_alarm_rate}: at least {need} are needed, so only never-seen events can "
-                "raise alerts; fit on more sessions")
-        else:
+        if src != POOLED:  # the pooled one: the note on the lowest rate above
             report["notes"].append(
                 f"source {src!r} has {len(c.calibration_scores_)} calibration sessions, fewer than the "
                 f"{need} its own threshold needs; it uses the threshold of all sources pooled")
