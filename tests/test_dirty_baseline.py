@@ -52,7 +52,7 @@ def dirty_run(tmp_path: Path, scenario, *, bad_share: float, seed: int, **model)
     (bike_docks(), 0.01, 34), (bike_docks(), 0.02, 35),
 ], ids=["lockers-0", "lockers-1", "lockers-2", "bikes-1", "bikes-2"])
 def test_dirty_baseline(tmp_path, scenario, bad_share, seed):
-    # the asked expected_bad_share: the default (1%), or the planted share when larger
+    # the asked expected_bad_share: 1%, or the planted share when larger
     t, report, planted = dirty_run(tmp_path, scenario, bad_share=bad_share, seed=seed,
                                    expected_bad_share=max(0.01, bad_share))
     listed = {x["session_key"] for x in report["probable_incidents"]}
@@ -93,7 +93,7 @@ def test_fit_report_states_the_lowest_reachable_rate(tmp_path, n, rate, warned):
 def test_fit_summary_lists_the_probable_incidents(tmp_path):
     from tracewatch.cli import format_report
 
-    _, report, planted = dirty_run(tmp_path, bike_docks(), bad_share=0.01, seed=36)
+    _, report, planted = dirty_run(tmp_path, bike_docks(), bad_share=0.01, seed=36, expected_bad_share=0.01)
     text = format_report(report, "v", tmp_path, None)
     assert f"probable incidents in the baseline period ({len(report['probable_incidents'])} sessions" in text
     assert sum(key in text for key in planted) >= min(len(planted), 10)  # the first ones, listed by key

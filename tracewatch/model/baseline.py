@@ -106,7 +106,8 @@ class Baseline:
         self.calibration = calibration
         self.report = report
         self.version = version
-        self._by_cluster: dict[int, tuple[np.ndarray, ...]] = {}
+        self._normal_matrix = None  # the distinct baseline sessions' vectors (closest_normal)
+        self._rows_of: dict[str, np.ndarray] = {}
 
     @property
     def false_alarm_rate(self) -> float:
@@ -139,27 +140,29 @@ class Baseline:
         unseen = np.fromiter((max(s) >= n_seen for s in seqs), dtype=bool, count=len(seqs))
         return Judgement(results, p_values, p_values <= self.false_alarm_rate, unseen)
 
-    def closest_normal(self, vec: SessionVector, cluster: int) -> Seq:
-        """The distinct baseline session of ``cluster`` closest to a session vector (the
-        cluster's sessions are vectorised on first use: only alerts ask)."""
-        cached = self._by_cluster.get(cluster)
-        if cached is None:
-            rows = np.flatnonzero(self.normal_labels == cluster)
-            vecs = [self.vectorizer._vector(self.normal_seqs[r]) for r in rows]
-            sizes = np.array([len(v.indices) for v in vecs], dtype=np.int64)
-            filled = sizes > 0
-            starts = (np.cumsum(sizes) - sizes)[filled]  # of each filled row's entries
-            data = np.concatenate([v.values for v in vecs]) if vecs else np.zeros(0)
-            indices = np.concatenate([v.indices for v in vecs]) if vecs else np.zeros(0, np.int64)
-            cached = self._by_cluster[cluster] = (rows, data, indices, filled, starts)
-        rows, data, indices, filled, starts = cached
-        if not filled.any() or len(vec.indices) == 0:
-            return self.medoids[cluster]
-        dense = np.zeros(self.centers.shape[1])
-        dense[vec.indices] = vec.values
-        dots = np.zeros(len(rows))
-        dots[filled] = np.add.reduceat(data * dense[indices], starts)  # row sums of the products
-        return self.normal_seqs[int(rows[int(np.argmax(dots))])]
+    def closest_normal(self, vec: SessionVector, source: str) -> tuple[Seq, int]:
+        """The distinct baseline session of ``source`` (of any source when it has none) nearest a
+        session vector in plain cosine distance, and its cluster: the workflow an alert is
+        explained against. Plain distance, not distance over a cluster's spread, which would send
+        a session far from everything to the widest cluster. The baseline sessions are
+        vectorised on first use: only alerts ask."""
+        import scipy.sparse as sp
+
+        if self._normal_matrix is None:
+            self._normal_matrix = sp.vstack(
+                [self.vectorizer.transform(self.normal_seqs[lo:lo + FIT_BLOCK])[0]
+                 for lo in range(0, len(self.normal_seqs), FIT_BLOCK)], format="csr")
+        rows = self._rows_of.get(source)
+        if rows is None:
+            own = np.flatnonzero(np.asarray(self.normal_sources, dtype=object) == source)
+            rows = self._rows_of[source] = own if len(own) else np.arange(len(self.normal_seqs))
+        if len(vec.indices) == 0:  # nothing in common with any baseline session
+            r = int(rows[0])
+        else:
+            dense = np.zeros(self.centers.shape[1])
+            dense[vec.indices] = vec.values
+            r = int(rows[int(np.argmax(self._normal_matrix[rows] @ dense))])
+        return self.normal_seqs[r], int(self.normal_labels[r])
 
     # -- the arrays of storage_table(self.scorer) -------------------------------------------
     def to_arrays(self) -> dict[str, object]:
