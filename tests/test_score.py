@@ -138,15 +138,22 @@ def test_center_distances_equal_the_sparse_product():
     assert len(vecs[-1].indices) == 0  # the empty row took part
 
 
-def test_closest_normal_equals_the_sparse_argmax(demo_fit):
+def test_closest_normal_is_the_plain_cosine_nearest_neighbour(demo_fit):
+    from sklearn.neighbors import NearestNeighbors
+
     b = demo_fit.baseline
     loaded = load_baseline(demo_fit.cfg.state_dir)  # as saved and loaded
-    for cluster in range(len(b.centers)):
-        rows = np.flatnonzero(b.normal_labels == cluster)
-        # the reference: the cluster's sessions as a scipy CSR matrix, one sparse product
-        R = b.vectorizer.transform([b.normal_seqs[r] for r in rows])[0]
-        for seq in b.normal_seqs[:30] + [(0, 1, 2, 999)]:
-            v = b.vectorizer.vector(seq)
-            x = sp.csr_matrix((v.values, v.indices, [0, len(v.indices)]), shape=(1, b.centers.shape[1]))
-            ref = b.normal_seqs[int(rows[int(np.argmax((R @ x.T).toarray().ravel()))])]
-            assert loaded.closest_normal(v, cluster) == ref == b.closest_normal(v, cluster)
+    # the reference: scikit-learn's brute-force nearest neighbour in cosine distance, over the
+    # distinct baseline sessions of the source, without any cluster spread
+    R = b.vectorizer.transform(b.normal_seqs)[0]
+    nn = NearestNeighbors(n_neighbors=1, metric="cosine", algorithm="brute").fit(R)
+    for seq in b.normal_seqs[:30] + [(0, 1, 2, 999), (3, 3, 3, 3, 3, 3, 1)]:
+        v = b.vectorizer.vector(seq)
+        x = sp.csr_matrix((v.values, v.indices, [0, len(v.indices)]), shape=(1, b.centers.shape[1]))
+        dist, idx = nn.kneighbors(x)
+        got, cluster = b.closest_normal(v, "api")
+        assert loaded.closest_normal(v, "api") == (got, cluster)
+        best = 1.0 - (R[b.normal_seqs.index(got)] @ x.T).toarray().item() / max(np.linalg.norm(v.values), 1e-300)
+        assert best == pytest.approx(dist.item(), abs=1e-9)  # as near as sklearn's (ties may differ)
+        assert cluster == b.normal_labels[b.normal_seqs.index(got)]
+    assert b.closest_normal(b.vectorizer.vector(b.normal_seqs[5]), "api")[0] == b.normal_seqs[5]

@@ -94,6 +94,12 @@ class _Contamination(_Strict):
     representative: _Steps
 
 
+class _Incident(_Strict):  # a baseline session set aside as a probable incident
+    session_key: _Text
+    source: _SourceName
+    reason: _Text
+
+
 class _Threshold(_Strict):
     threshold: _Finite | None
     calibration_sessions: _Count
@@ -130,8 +136,10 @@ class FitReport(_Strict):
     notes: list[_Text] = Field(max_length=1000)
     clusters: list[_ClusterInfo] = Field(max_length=MAX_ITEMS)
     contamination: list[_Contamination] = Field(max_length=MAX_ITEMS)
+    probable_incidents: list[_Incident] = Field(default_factory=list, max_length=100_000)
     thresholds: dict[_SourceName, _Threshold] = Field(max_length=MAX_SOURCES + 1)
     false_alarm_rate: float = Field(gt=0, lt=0.5)
+    lowest_false_alarm_rate: float | None = Field(default=None, gt=0, le=1)
     scorer: str
     unseen_weight: _Finite = Field(ge=0)
     refit: _Refit | None = None

@@ -183,7 +183,7 @@ def fit_files(cfg: Config, pairs: list[tuple[str, Path]]):
     run_files(pipeline, pairs)
     for line in unread_lines(pipeline, refuse=True):
         raise InputError(line)
-    baseline = fit_baseline(pipeline.fit_sessions(), pipeline.miner, cfg)
+    baseline = fit_baseline(pipeline.fit_sessions(), pipeline.miner, cfg, pipeline.fit_keys())
     path = save_baseline(baseline, cfg.state_dir)
     return baseline, path, pipeline
 

@@ -216,6 +216,7 @@ def _since(value: str | None) -> float | None:
 
 
 MAX_INCIDENT_ID = (1 << 63) - 1  # incident ids are SQLite integers
+PRINT_INCIDENTS = 20  # probable baseline incidents the fit summary lists one by one
 
 
 def incident_id(text: str) -> int:
@@ -433,6 +434,15 @@ def format_report(r: dict, version: str, path, pipeline: Pipeline | None) -> str
             lines.append(f"  {c['sessions']} session(s) ({c['share']:.2%}): {' | '.join(c['representative'])}")
     else:
         lines.append("contamination: none found")
+    incidents = r.get("probable_incidents", [])
+    if incidents:
+        lines.append(f"probable incidents in the baseline period ({len(incidents)} sessions, set aside):")
+        lines += [f"  {x['session_key']} ({x['source']}): {x['reason']}" for x in incidents[:PRINT_INCIDENTS]]
+        if len(incidents) > PRINT_INCIDENTS:
+            lines.append(f"  ... and {len(incidents) - PRINT_INCIDENTS} more (all in the baseline's manifest)")
+    if r.get("lowest_false_alarm_rate") is not None:
+        lines.append(f"lowest reachable false_alarm_rate: {r['lowest_false_alarm_rate']:.4g} "
+                     f"(1/(calibration sessions + 1))")
     if r.get("refit"):  # a candidate of `baselines refit` or the daemon's refit
         from .refit import format_gates
 

@@ -210,6 +210,12 @@ class ModelConfig(_Section):
     # at fit counts for (new transitions between known steps are the commonest anomaly)
     unseen_weight: float = Field(default=5.0, ge=0)
     calibration_fraction: float = Field(default=0.25, gt=0, lt=0.9)
+    # the share of baseline sessions expected to be incidents; cross-fitting sets such sessions
+    # aside before fitting and the fit report lists them. 0 (the default) trusts the baseline;
+    # 0.01 (a few incidents on an ordinary day) is the value to try with the centroid scorer.
+    # Off by default: the rarest normal shapes are set aside with the incidents, which costs
+    # false alarms where every shape counts (the knn scorer, refits of small pools)
+    expected_bad_share: float = Field(default=0.0, ge=0, lt=0.5)
     # clusters holding less than this share of the baseline are reported as contamination
     min_cluster_share: float = Field(default=0.005, ge=0, lt=0.5)
     restarts: int = Field(default=4, ge=1)

@@ -216,6 +216,10 @@ class Pipeline:
         """``(source, event sequence)`` of every session collected for fitting."""
         return [(source, seq) for source, _, seq in self.collected]
 
+    def fit_keys(self) -> list[str]:
+        """The session key of each of :meth:`fit_sessions`, in the same order."""
+        return [key for _, key, _ in self.collected]
+
     # -- daemon hooks: live time, checkpoints, baseline switches ---------------------------
     # With ``clock`` given, the pipeline never ticks by itself; the daemon calls
     # ``tick(live_time())`` (tracewatch.sessions.LiveTime: the watermark below, moved on by the

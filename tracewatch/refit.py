@@ -372,7 +372,10 @@ def refit(data: RefitData, cfg: Config, state_dir: Path | None = None, *,
     report["pool"].update(fit=len(fit_part), holdout=len(holdout))
     miner = _candidate_miner(data.templates, data.n_seen, {t for _, ids in fit_part for t in ids})
     index = {t.id: t.index for t in miner.templates}
-    candidate = fit_baseline([(src, tuple(index[t] for t in ids)) for src, ids in fit_part], miner, cfg)
+    # the pool is already judged (quiet sessions and labelled ones) and the gates check the
+    # candidate: no cross-fitting, which would set the newest normal shapes aside
+    fit_cfg = cfg.model_copy(update={"model": cfg.model.model_copy(update={"expected_bad_share": 0.0})})
+    candidate = fit_baseline([(src, tuple(index[t] for t in ids)) for src, ids in fit_part], miner, fit_cfg)
     gates += _candidate_gates(candidate, holdout, data, cfg)
 
     passed = all(g["passed"] for g in gates)

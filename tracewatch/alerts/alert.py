@@ -80,8 +80,9 @@ def build_verdict(session: Session, seq: tuple[int, ...], score: float, cluster:
     }
     if explain_it:
         vec = baseline.vectorizer.vector(seq)
-        verdict.update(explain(seq, vec, cluster, baseline.centers[cluster], baseline.cluster_df[cluster],
-                               baseline.medoids[cluster], baseline.closest_normal(vec, cluster),
+        closest, near = baseline.closest_normal(vec, session.source)  # explained against its workflow
+        verdict.update(explain(seq, vec, near, baseline.centers[near], baseline.cluster_df[near],
+                               baseline.medoids[near], closest,
                                baseline.vectorizer, miner.text, miner.is_seen))
         verdict["samples"] = [redact(s) for s in session.samples]
     return verdict

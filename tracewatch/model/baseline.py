@@ -106,7 +106,8 @@ class Baseline:
         self.calibration = calibration
         self.report = report
         self.version = version
-        self._by_cluster: dict[int, tuple[np.ndarray, ...]] = {}
+        self._normal_matrix = None  # the distinct baseline sessions' vectors (closest_normal)
+        self._rows_of: dict[str, np.ndarray] = {}
 
     @property
     def false_alarm_rate(self) -> float:
@@ -139,27 +140,29 @@ class Baseline:
         unseen = np.fromiter((max(s) >= n_seen for s in seqs), dtype=bool, count=len(seqs))
         return Judgement(results, p_values, p_values <= self.false_alarm_rate, unseen)
 
-    def closest_normal(self, vec: SessionVector, cluster: int) -> Seq:
-        """The distinct baseline session of ``cluster`` closest to a session vector (the
-        cluster's sessions are vectorised on first use: only alerts ask)."""
-        cached = self._by_cluster.get(cluster)
-        if cached is None:
-            rows = np.flatnonzero(self.normal_labels == cluster)
-            vecs = [self.vectorizer._vector(self.normal_seqs[r]) for r in rows]
-            sizes = np.array([len(v.indices) for v in vecs], dtype=np.int64)
-            filled = sizes > 0
-            starts = (np.cumsum(sizes) - sizes)[filled]  # of each filled row's entries
-            data = np.concatenate([v.values for v in vecs]) if vecs else np.zeros(0)
-            indices = np.concatenate([v.indices for v in vecs]) if vecs else np.zeros(0, np.int64)
-            cached = self._by_cluster[cluster] = (rows, data, indices, filled, starts)
-        rows, data, indices, filled, starts = cached
-        if not filled.any() or len(vec.indices) == 0:
-            return self.medoids[cluster]
-        dense = np.zeros(self.centers.shape[1])
-        dense[vec.indices] = vec.values
-        dots = np.zeros(len(rows))
-        dots[filled] = np.add.reduceat(data * dense[indices], starts)  # row sums of the products
-        return self.normal_seqs[int(rows[int(np.argmax(dots))])]
+    def closest_normal(self, vec: SessionVector, source: str) -> tuple[Seq, int]:
+        """The distinct baseline session of ``source`` (of any source when it has none) nearest a
+        session vector in plain cosine distance, and its cluster: the workflow an alert is
+        explained against. Plain distance, not distance over a cluster's spread, which would send
+        a session far from everything to the widest cluster. The baseline sessions are
+        vectorised on first use: only alerts ask."""
+        import scipy.sparse as sp
+
+        if self._normal_matrix is None:
+            self._normal_matrix = sp.vstack(
+                [self.vectorizer.transform(self.normal_seqs[lo:lo + FIT_BLOCK])[0]
+                 for lo in range(0, len(self.normal_seqs), FIT_BLOCK)], format="csr")
+        rows = self._rows_of.get(source)
+        if rows is None:
+            own = np.flatnonzero(np.asarray(self.normal_sources, dtype=object) == source)
+            rows = self._rows_of[source] = own if len(own) else np.arange(len(self.normal_seqs))
+        if len(vec.indices) == 0:  # nothing in common with any baseline session
+            r = int(rows[0])
+        else:
+            dense = np.zeros(self.centers.shape[1])
+            dense[vec.indices] = vec.values
+            r = int(rows[int(np.argmax(self._normal_matrix[rows] @ dense))])
+        return self.normal_seqs[r], int(self.normal_labels[r])
 
     # -- the arrays of storage_table(self.scorer) -------------------------------------------
     def to_arrays(self) -> dict[str, object]:
@@ -221,24 +224,101 @@ def _unflat(flat: np.ndarray, offsets: np.ndarray) -> list[Seq]:
 
 
 # -- fitting -------------------------------------------------------------------------------
-def fit_baseline(sessions: list[tuple[str, Seq]], miner: TemplateTree, cfg: Config) -> Baseline:
-    """Fit on normal ``(source, event sequence)`` sessions: split train / calibration,
+def fit_baseline(sessions: list[tuple[str, Seq]], miner: TemplateTree, cfg: Config,
+                 keys: Sequence[str] | None = None) -> Baseline:
+    """Fit on normal ``(source, event sequence)`` sessions (``keys``: their session keys, for the
+    report): set aside probable incidents (:func:`_cross_fit`), split train / calibration,
     vectorise, cluster, fit the scorer, then calibrate each source on its own held-out
     sessions. Freezes ``miner``: templates made after this are unseen."""
-    import scipy.sparse as sp
-
-    from ..features import NgramVectorizer
-    from .fit import ClusterModel  # scikit-learn's clustering loads only when fitting
-
     n = len(sessions)
     if n < MIN_SESSIONS:
         raise BaselineError(f"only {n} sessions found in the input; a baseline needs at least "
                             f"{MIN_SESSIONS} (check session_key and the input files)")
     mcfg = cfg.model
     rng = np.random.default_rng(mcfg.seed)
-    n_cal = max(1, int(round(n * mcfg.calibration_fraction)))
-    order = rng.permutation(n)
+    suspects = _cross_fit(sessions, miner, cfg)
+    order = np.array([i for i in rng.permutation(n) if i not in suspects], dtype=np.int64)
+    n_cal = max(1, int(round(len(order) * mcfg.calibration_fraction)))
     cal_idx, train_idx = np.sort(order[:n_cal]), np.sort(order[n_cal:])
+    baseline, model, distinct, weights = _build(sessions, train_idx, cal_idx, miner, cfg)
+    baseline.report = _report(baseline, model, cfg, n=n, n_train=len(train_idx), n_cal=n_cal,
+                              distinct=distinct, weights=weights)
+    baseline.report["probable_incidents"] = [
+        {"session_key": keys[i] if keys is not None else f"#{i}", "source": sessions[i][0],
+         "reason": reason} for i, reason in sorted(suspects.items())]
+    miner.freeze()
+    return baseline
+
+
+CROSS_FOLDS = 5
+CROSS_ROUNDS = 2  # a second pass, on what the first kept, finds incidents the first one's hid
+
+
+def _cross_fit(sessions: list[tuple[str, Seq]], miner: TemplateTree, cfg: Config) -> dict[int, str]:
+    """The baseline sessions that are probably incidents, each with a short reason.
+
+    Cross-fitting (sample splitting): Chernozhukov et al., "Double/debiased machine learning
+    for treatment and structural parameters", Econometrics Journal 2018; for conformal scores,
+    Lei, G'Sell, Rinaldo, Tibshirani, Wasserman, "Distribution-free predictive inference for
+    regression", JASA 2018. The sessions are dealt into :data:`CROSS_FOLDS` seeded folds; a
+    model fitted on the other folds scores each fold, so no session is judged by a model that
+    learnt it (an incident's own steps never count as seen). A held-out session's p-value is
+    taken against the other folds' calibration scores with their top ``expected_bad_share``
+    dropped (that share of the reference is presumed bad: left in, a 2% contamination alone
+    would put every incident's p-value near 0.02). A session is set aside when its p-value is
+    at most ``expected_bad_share / 10`` (on exchangeable normal sessions, about a tenth as many
+    false exclusions as the expected incidents), and never below the smallest p-value the
+    reference can give. A second pass on the sessions the first kept finds incidents that
+    resembled others in the first pass's fitting folds. ``expected_bad_share = 0`` turns this off."""
+    share = cfg.model.expected_bad_share
+    found: dict[int, str] = {}
+    if share <= 0 or len(sessions) < CROSS_FOLDS * 2 * MIN_SESSIONS:
+        return found
+    for rnd in range(CROSS_ROUNDS):
+        new = _cross_fit_round(sessions, miner, cfg, found, rnd)
+        if not new:
+            break
+        found.update(new)
+    return found
+
+
+def _cross_fit_round(sessions: list[tuple[str, Seq]], miner: TemplateTree, cfg: Config, skip: dict[int, str],
+                     rnd: int) -> dict[int, str]:
+    """One pass of :func:`_cross_fit` over the sessions not in ``skip``."""
+    share = cfg.model.expected_bad_share
+    rng = np.random.default_rng([cfg.model.seed, 1, rnd])
+    folds = np.array_split(rng.permutation([i for i in range(len(sessions)) if i not in skip]), CROSS_FOLDS)
+    found: dict[int, str] = {}
+    for f, held in enumerate(folds):
+        rest = rng.permutation(np.concatenate([folds[g] for g in range(CROSS_FOLDS) if g != f]))
+        n_cal = max(1, int(round(len(rest) * cfg.model.calibration_fraction)))
+        model, *_ = _build(sessions, np.sort(rest[n_cal:]), np.sort(rest[:n_cal]), miner, cfg)
+        scorer = model.make_scorer()
+        by_source: dict[str, list[int]] = {}
+        for i in held.tolist():
+            by_source.setdefault(sessions[i][0], []).append(i)
+        for source, idx in by_source.items():
+            ref = model.conformal(source).calibration_scores_
+            ref = ref[:len(ref) - int(np.ceil(share * len(ref)))]  # sorted: the presumed bad top dropped
+            cut = max(share / 10, 1 / (len(ref) + 1))
+            scores = np.array([r[0] for r in scorer.score(source, [sessions[i][1] for i in idx])])
+            p = (1.0 + len(ref) - np.searchsorted(ref, scores, side="left")) / (len(ref) + 1.0)
+            top = float(ref[-1]) if len(ref) else 0.0
+            for i, s, pv in zip(idx, scores.tolist(), p.tolist()):
+                if pv <= cut:
+                    found[i] = f"score {s:.3g} above every normal one of the other folds (max {top:.3g})"
+    return found
+
+
+def _build(sessions: list[tuple[str, Seq]], train_idx: np.ndarray, cal_idx: np.ndarray, miner: TemplateTree,
+           cfg: Config) -> tuple[Baseline, object, list[Seq], np.ndarray]:
+    """Vectorise and cluster ``train_idx``, fit the scorer, calibrate on ``cal_idx``."""
+    import scipy.sparse as sp
+
+    from ..features import NgramVectorizer
+    from .fit import ClusterModel  # scikit-learn's clustering loads only when fitting
+
+    mcfg = cfg.model
     counts = Counter(sessions[i] for i in train_idx)  # distinct (source, sequence) with counts
     row_sources = [src for src, _ in counts]
     distinct = [seq for _, seq in counts]
@@ -261,10 +341,7 @@ def fit_baseline(sessions: list[tuple[str, Seq]], miner: TemplateTree, cfg: Conf
         normal_labels=labels[keep], normal_sources=[row_sources[r] for r in keep], scorer=scorer,
         calibration={}, report={})
     _calibrate(baseline, [sessions[i] for i in cal_idx], mcfg.false_alarm_rate)
-    baseline.report = _report(baseline, model, cfg, n=n, n_train=len(train_idx), n_cal=n_cal,
-                              distinct=distinct, weights=weights)
-    miner.freeze()
-    return baseline
+    return baseline, model, distinct, weights
 
 
 def _cluster_df(X, labels: np.ndarray, weights: np.ndarray, model) -> np.ndarray:
@@ -344,15 +421,18 @@ def _report(b: Baseline, model, cfg: Config, *, n: int, n_train: int, n_cal: int
         "unseen_weight": mcfg.unseen_weight,
     }
     need = int(np.ceil(1 / mcfg.false_alarm_rate)) - 1
+    # a conformal p-value is at least 1/(n+1): no rate below that can come from distance alone
+    report["lowest_false_alarm_rate"] = round(1 / (n_cal + 1), 6)
+    if mcfg.false_alarm_rate * (n_cal + 1) < 1 - 1e-9:  # the test ConformalThreshold.fit makes
+        report["notes"].append(
+            f"false_alarm_rate={mcfg.false_alarm_rate} is below the lowest rate {n_cal} calibration sessions "
+            f"can give (1/{n_cal + 1} = {1 / (n_cal + 1):.4g}), so only never-seen events raise alerts: "
+            f"fit on at least {need} calibration sessions (more baseline sessions, or a higher "
+            f"calibration_fraction than {mcfg.calibration_fraction})")
     for src, c in b.calibration.items():
         if c.usable_:
             continue
-        if src == POOLED:
-            report["notes"].append(
-                f"the calibration set ({n_cal} sessions) is too small for false_alarm_rate="
-                f"{mcfg.false_alarm_rate}: at least {need} are needed, so only never-seen events can "
-                "raise alerts; fit on more sessions")
-        else:
+        if src != POOLED:  # the pooled one: the note on the lowest rate above
             report["notes"].append(
                 f"source {src!r} has {len(c.calibration_scores_)} calibration sessions, fewer than the "
                 f"{need} its own threshold needs; it uses the threshold of all sources pooled")
