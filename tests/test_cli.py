@@ -52,6 +52,19 @@ def test_fit_then_score_contract(demo_dir):
     again = [orjson.loads(x) for x in run_cli("score", "--config", str(demo_dir / "tracewatch.toml"), day,
                                                check=True).stdout.splitlines()]
     assert [x["alert_id"] for x in again] == [x["alert_id"] for x in alerts]
+    # --fail-on-alert: alerts exit 3, distinct from 1 (a runtime problem) and 2 (bad config/arguments)
+    failed = run_cli("score", "--fail-on-alert", "--config", str(demo_dir / "tracewatch.toml"), day)
+    assert failed.returncode == 3 and len(failed.stdout.splitlines()) == len(alerts)
+    quiet = run_cli("score", "--fail-on-alert", "--config", str(demo_dir / "tracewatch.toml"),
+                    str(demo_dir / "logs" / "baseline.log"), "--baseline", "v0001")
+    assert quiet.returncode in (0, 3) and (quiet.returncode == 3) == bool(quiet.stdout.strip())
+
+
+@pytest.mark.parametrize("command", ["check-config", "fit", "score", "run", "incidents", "demo"])
+def test_subcommand_help_has_example_and_exit_codes(command):
+    out = run_cli(command, "--help", check=True).stdout
+    assert f"example:\n  tracewatch {command}" in out and "exit codes: 0 success" in out
+    assert "3 alerts with --fail-on-alert" in out
 
 
 @pytest.mark.parametrize(

@@ -93,3 +93,19 @@ def test_example_config_in_the_repository_is_valid():
     cfg = load_config(ROOT / "config" / "tracewatch.example.toml")
     assert [s.format for s in cfg.sources] == ["text", "jsonl"]
     assert cfg.server.listen.startswith("127.0.0.1:")
+
+
+def test_paths_and_state_dir_relative_to_config_file(tmp_path, monkeypatch):
+    """A relative glob and state_dir mean the config file's folder, whatever the working directory."""
+    from tracewatch.batch import assign_sources
+    conf = tmp_path / "etc"
+    (conf / "logs").mkdir(parents=True)
+    (conf / "logs" / "a.log").write_text("door 1 opened\n")
+    (tmp_path / "b.log").write_text("door 2 opened\n")
+    absglob = str(tmp_path.resolve() / "b*.log")
+    (conf / "tw.toml").write_text(f'[[sources]]\nname = "x"\nformat = "text"\npaths = ["logs/*.log", "{absglob}"]\n')
+    monkeypatch.chdir(tmp_path)
+    cfg = load_config(conf / "tw.toml")
+    assert cfg.state_dir == (conf / "tracewatch-state").resolve()
+    assert cfg.sources[0].paths == [str(conf.resolve() / "logs/*.log"), absglob]
+    assert sorted(p.name for _, p in assign_sources(cfg, [])) == ["a.log", "b.log"]  # found from another directory

@@ -73,8 +73,34 @@ def test_exposition_parses_and_follows_the_naming_rules():
     assert families
     allowed = {"source", "reason", "version", "le"}
     for fam in families:
+        if fam.name.startswith(("process_", "python_")):
+            continue  # prometheus_client's standard collectors, with their own labels
         assert fam.name.startswith("tracewatch_")
         for sample in fam.samples:
             assert set(sample.labels) <= allowed, sample
             if fam.type == "counter":
                 assert sample.name.endswith(("_total", "_created")), sample.name
+
+
+def test_standard_collectors_build_info_and_promtool():
+    """process_*/python_* families, tracewatch_build_info, no _created series; and Prometheus's own
+    linter (`promtool check metrics`, from Debian's prometheus package) accepts the exposition."""
+    import shutil
+    import subprocess
+
+    import pytest
+
+    from tracewatch import __version__
+
+    reg = CollectorRegistry()
+    DaemonMetrics(reg, _pipeline_snapshot).observe_score("api", 1.0)
+    text = generate_latest(reg).decode()
+    names = {f.name for f in text_string_to_metric_families(text)}
+    assert {"process_cpu_seconds", "process_resident_memory_bytes", "python_info", "python_gc_objects_collected"} <= names
+    assert f'tracewatch_build_info{{version="{__version__}"}} 1.0' in text
+    assert "_created" not in text
+    if shutil.which("promtool") is None:
+        pytest.skip("promtool not installed (Debian package prometheus; `make test` installs it)")
+    proc = subprocess.run(["promtool", "check", "metrics"], input=text, capture_output=True, text=True, timeout=30)
+    assert proc.returncode == 0, proc.stdout + proc.stderr
+

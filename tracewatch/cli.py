@@ -91,7 +91,7 @@ def cmd_score(args) -> int:
         reasons = ", ".join(f"{r}={n}" for (_, r), n in sorted(pipeline.alerts.items())) or "none"
         print(f"tracewatch: {sum(pipeline.sessions_scored.values())} sessions scored with baseline "
               f"{baseline.version}; alerts by reason: {reasons}", file=sys.stderr)
-    return 1 if args.fail_on_alert and n_alerts else 0
+    return EXIT_ALERTS if args.fail_on_alert and n_alerts else 0
 
 
 def _alert_text(alert: dict) -> None:
@@ -459,6 +459,21 @@ def format_report(r: dict, version: str, path, pipeline: Pipeline | None) -> str
 
 
 # -- the command tree ---------------------------------------------------------------------------
+EXIT_ALERTS = 3  # `score --fail-on-alert` found alerts (and `refit` refused): ran fine, the finding is bad
+EXIT_HELP = ("exit codes: 0 success; 1 runtime problem (unreadable input, missing or corrupt baseline);\n"
+             f"  2 bad config or arguments; {EXIT_ALERTS} alerts with --fail-on-alert, or a refit refused; 130 interrupted")
+EXAMPLES = {
+    "check-config": "tracewatch check-config --config config/tracewatch.example.toml",
+    "fit": "tracewatch fit --config tw.toml logs/monday/*.log",
+    "score": "tracewatch score --config tw.toml --fail-on-alert logs/tuesday/*.log",
+    "templates": "tracewatch templates --format text some.log",
+    "baselines": "tracewatch baselines --config tw.toml",
+    "run": "tracewatch run --config tw.toml",
+    "incidents": "tracewatch incidents --config tw.toml",
+    "demo": "tracewatch demo --dir ./tracewatch-demo",
+}
+
+
 def build_parser() -> argparse.ArgumentParser:
     p = _Parser(prog="tracewatch", description="Log and execution-trace anomaly detection. " + CAUTION)
     p.add_argument("--version", action="version", version=f"tracewatch {__version__}")
@@ -490,7 +505,7 @@ def build_parser() -> argparse.ArgumentParser:
     sp.add_argument("--output", "-o", choices=["json", "text"], default="json",
                     help="json: one JSON object per alert (default); text: a readable view for a terminal")
     sp.add_argument("--baseline", metavar="VERSION", help="score with this baseline version")
-    sp.add_argument("--fail-on-alert", action="store_true", help="exit 1 when any alert was raised")
+    sp.add_argument("--fail-on-alert", action="store_true", help=f"exit {EXIT_ALERTS} when any alert was raised")
     sp.add_argument("--verbose", "-v", action="store_true", help="print a summary on stderr")
     sp.add_argument("inputs", nargs="*", metavar="INPUT")
     sp.set_defaults(func=cmd_score)
@@ -554,6 +569,10 @@ def build_parser() -> argparse.ArgumentParser:
     sp.add_argument("--seed", type=int, default=7)
     sp.add_argument("--show", type=int, default=6, help="how many alerts to print in full")
     sp.set_defaults(func=cmd_demo)
+    for name, sp in sub.choices.items():
+        example = EXAMPLES.get(name, "")
+        sp.formatter_class = argparse.RawDescriptionHelpFormatter
+        sp.epilog = (f"example:\n  {example}\n\n" if example else "") + EXIT_HELP
     return p
 
 

@@ -497,7 +497,7 @@ def parse_config(data: dict, *, origin: str = "config") -> Config:
 
 
 def load_config(path: str | Path) -> Config:
-    """Read and validate a TOML config file; relative ``state_dir`` is taken from the file's folder."""
+    """Read and validate a TOML config file; relative ``state_dir`` and ``paths`` are taken from the file's folder."""
     path = Path(path)
     try:
         raw = path.read_bytes()
@@ -508,9 +508,14 @@ def load_config(path: str | Path) -> Config:
     except (tomllib.TOMLDecodeError, UnicodeDecodeError) as exc:
         raise ConfigError(f"{path}: not valid TOML: {exc}") from exc
     cfg = parse_config(data, origin=str(path))
+    base = path.parent.resolve()
     if not cfg.state_dir.is_absolute():
-        cfg = cfg.model_copy(update={"state_dir": (path.parent / cfg.state_dir).resolve()})
-    return cfg
+        cfg = cfg.model_copy(update={"state_dir": (base / cfg.state_dir).resolve()})
+    # source globs are taken from the config file's folder too, so a command works from any directory
+    sources = [s.model_copy(update={"paths": [str(base / g) if not Path(g).is_absolute() else g
+                                              for g in s.paths]}) if s.paths else s
+               for s in cfg.sources]
+    return cfg.model_copy(update={"sources": sources})
 
 
 def adhoc_config(fmt: str, *, state_dir: Path | None = None) -> Config:

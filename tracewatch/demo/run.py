@@ -7,6 +7,8 @@ and what was caught (per anomaly kind) or raised in vain (false alarms).
 
 from __future__ import annotations
 
+import shutil
+import sys
 import time
 from pathlib import Path
 
@@ -137,5 +139,14 @@ def run_demo(folder: Path, *, seed: int = 7, show: int = 6) -> int:
             print(f"  {kind:<24} {row['sessions']:>7}  {row['flagged']:>7}  ({what} {row['share']:.1%})")
         print(f"  precision of alerts: {t['_all']['precision']:.1%}\n")
     print(f"configured false_alarm_rate {cfg.model.false_alarm_rate:.1%}; done in {time.perf_counter() - t0:.1f} s.")
-    print(f"Try: tracewatch score --config {cfg_path} {day_path}")
+    print(f"Try: {_command()} score --config {cfg_path} {day_path}")
     return 0
+
+
+def _command() -> str:
+    """How to call tracewatch from here: its bare name when on PATH, else the venv's script."""
+    exe = Path(sys.executable).with_name("tracewatch")
+    on_path = shutil.which("tracewatch")
+    if on_path and Path(on_path).resolve() == exe.resolve():
+        return "tracewatch"
+    return str(exe) if exe.exists() else "tracewatch"

@@ -28,9 +28,16 @@ from __future__ import annotations
 
 from collections.abc import Callable, Iterator
 
-from prometheus_client import CollectorRegistry, Histogram
+from prometheus_client import (GCCollector, PlatformCollector, ProcessCollector, CollectorRegistry, Histogram,
+                               disable_created_metrics)
 from prometheus_client.core import CounterMetricFamily, GaugeMetricFamily, Metric
 from prometheus_client.registry import Collector
+
+from .. import __version__
+
+# no `*_created` series beside counters and histograms: they double the series count and no rule
+# here reads them (prometheus_client's switch is process-wide)
+disable_created_metrics()
 
 # session scores are distances in units of the nearest cluster's spread
 SCORE_BUCKETS = (0.25, 0.5, 0.75, 1.0, 1.5, 2.0, 3.0, 5.0, 8.0, 13.0, 21.0, float("inf"))
@@ -77,6 +84,9 @@ class _SnapshotCollector(Collector):
             yield fam
         for key, name, doc in _PLAIN_COUNTERS:
             yield CounterMetricFamily(name, doc, value=snap.get(key, 0))
+        build = GaugeMetricFamily("tracewatch_build_info", "The running tracewatch (value 1).", labels=["version"])
+        build.add_metric([__version__], 1)
+        yield build
         yield GaugeMetricFamily("tracewatch_sessions_open", "Sessions open now.",
                                 value=snap.get("sessions_open", 0))
         info = GaugeMetricFamily("tracewatch_baseline_info", "The baseline in use (value 1).", labels=["version"])
@@ -131,6 +141,10 @@ class DaemonMetrics:
                                 "(distance to the nearest normal cluster, in units of its spread).",
                                 ["source"], buckets=SCORE_BUCKETS, registry=registry)
         registry.register(_SnapshotCollector(snapshot))
+        # the standard process_*, python_info and python_gc_* families, on this registry
+        ProcessCollector(registry=registry)
+        PlatformCollector(registry=registry)
+        GCCollector(registry=registry)
 
     def observe_score(self, source: str, score: float) -> None:
         self.scores.labels(source).observe(score)
