@@ -120,12 +120,18 @@ def test_sysusers_file_creates_the_units_user(tmp_path):
     assert f"Creating user '{user}'" in proc.stdout + proc.stderr
 
 
-def test_unit_and_the_config_it_runs_agree():
+def test_unit_and_the_config_it_runs_agree(tmp_path):
     """The config README installs is valid, keeps its state where StateDirectory= lets it write,
     reads logs under ReadOnlyPaths= and listens where IPAddressAllow= admits."""
     unit = unit_settings(UNIT)
-    run_cli("check-config", "--config", str(UNIT_CONFIG), check=True)
-    cfg = load_config(UNIT_CONFIG)
+    readme = (ROOT / "README.md").read_text()
+    (install,) = [line for line in readme.splitlines() if line.startswith("sed ") and "/etc/tracewatch/" in line]
+    sed = shlex.split(install.split(" > ")[0])  # README's own sed, run on the example config
+    installed = tmp_path / "tracewatch.toml"
+    installed.write_text(subprocess.run(sed[:-1] + [str(UNIT_CONFIG)], capture_output=True, text=True,
+                                        check=True).stdout)
+    run_cli("check-config", "--config", str(installed), check=True)
+    cfg = load_config(installed)
     assert str(cfg.state_dir) == "/var/lib/" + unit["StateDirectory"][0]
     (read_only,) = unit["ReadOnlyPaths"]
     assert all(p.startswith(read_only + "/") for s in cfg.sources for p in s.paths)

@@ -84,7 +84,7 @@ class TimeMerge:
 
     def __init__(self, pipeline: Pipeline, pairs: list[tuple[str, Path]]) -> None:
         self.pipeline = pipeline
-        self.files = [(source, str(path), read_blocks(path, pipeline.cfg.source(source).max_line_bytes))
+        self.files = [(source, str(path), read_blocks(path, pipeline.cfg.source(source).line_limit))
                       for source, path in pairs]
         self.newest = {stream: float("-inf") for _, stream, _ in self.files}  # newest time read
         self.waiting: dict[str, list[tuple]] = {}  # source -> (sort time, seq, row)

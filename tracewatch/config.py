@@ -111,9 +111,11 @@ class SourceConfig(_Section):
 
     @property
     def line_limit(self) -> int:
-        """Bytes a line is read up to: ``max_document_bytes`` for otlp-json (an exporter writes a
-        whole export batch on one line), else ``max_line_bytes``."""
-        return max(self.max_line_bytes, self.max_document_bytes) if self.format == "otlp-json" else self.max_line_bytes
+        """Bytes a line is read up to: ``max_document_bytes`` for otlp-json and otlp-logs-json (an
+        exporter writes a whole export batch on one line), else ``max_line_bytes``."""
+        if self.format in ("otlp-json", "otlp-logs-json"):
+            return max(self.max_line_bytes, self.max_document_bytes)
+        return self.max_line_bytes
 
     @property
     def content_format(self) -> str:
