@@ -9,7 +9,6 @@ from __future__ import annotations
 from datetime import datetime, timezone
 from pathlib import Path
 
-import orjson
 import pytest
 
 from tracewatch.batch import assign_sources, fit_files, score_files

@@ -9,7 +9,7 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 
 from tracewatch.timestamps import (LAYOUTS, StampReader, check_ts_format, iso8601_numpy, parse_timestamp,
-                                   syslog_yearless, timestamps)
+                                   syslog_yearless)
 
 
 def test_parse_timestamp_forms():
@@ -48,7 +48,7 @@ _MOMENT = st.datetimes(min_value=datetime(1700, 1, 1), max_value=datetime(2255, 
 @settings(max_examples=300, deadline=None)
 @given(layout=_LAYOUT, moments=st.lists(_MOMENT, min_size=1, max_size=40))
 def test_block_timestamps_equal_datetime(layout, moments):
-    """``timestamps`` of a block sharing one layout (the numpy path) equals, exactly,
+    """``StampReader().many`` of a block sharing one layout (the numpy path) equals, exactly,
     Python's own ``datetime.fromisoformat(...).timestamp()`` of each text (the reference;
     times without a zone taken as UTC, as parse_timestamp does)."""
     sep, frac, dot, zone = layout
@@ -63,7 +63,7 @@ def test_block_timestamps_equal_datetime(layout, moments):
         dt = datetime.fromisoformat(text.replace(",", "."))
         expected.append(dt.replace(tzinfo=dt.tzinfo or timezone.utc).timestamp())
     assert iso8601_numpy(texts) is not None  # this layout takes the block path
-    assert timestamps(texts) == expected
+    assert StampReader().many(texts) == expected
 
 
 @pytest.mark.parametrize("texts", [
@@ -75,7 +75,7 @@ def test_block_timestamps_equal_datetime(layout, moments):
 ], ids=["mixed-layouts", "february-30", "hour-24", "nanoseconds", "not-a-digit"])
 def test_block_timestamps_fall_back_to_the_general_path(texts):
     assert iso8601_numpy(texts) is None
-    assert timestamps(texts) == [parse_timestamp(t) for t in texts]
+    assert StampReader().many(texts) == [parse_timestamp(t) for t in texts]
 
 
 _ISO_TEXT = st.tuples(_LAYOUT, _MOMENT).map(
@@ -87,11 +87,11 @@ _ISO_TEXT = st.tuples(_LAYOUT, _MOMENT).map(
 @given(texts=st.lists(st.one_of(_ISO_TEXT, _ISO_TEXT.map(lambda t: t[:-1]), st.text(max_size=30)), max_size=20))
 def test_every_block_reader_equals_its_one_text_reader(layout, texts):
     """A layout's block reader, where it answers, gives what its one-text reader gives; and
-    ``timestamps`` of any texts is ``parse_timestamp`` of each."""
+    a StampReader's ``many`` of any texts is ``parse_timestamp`` of each."""
     got = layout.block(texts)
     if got is not None:
         assert got == [layout.one(t) for t in texts]
-    assert timestamps([*texts, None]) == [*map(parse_timestamp, texts), None]
+    assert StampReader().many([*texts, None]) == [*map(parse_timestamp, texts), None]
 
 
 # -- the other common layouts: expected values computed with datetime(..., tzinfo=utc).timestamp()

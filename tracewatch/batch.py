@@ -9,6 +9,7 @@ from __future__ import annotations
 import fnmatch
 from collections.abc import Callable
 from itertools import repeat
+from operator import itemgetter
 from pathlib import Path
 
 from .config import Config
@@ -112,7 +113,7 @@ class TimeMerge:
                 rows[:] = [r for r in rows if r[0] > until]
             else:
                 rows.clear()
-            ready.sort(key=lambda r: (r[0], r[1]))
+            ready.sort(key=itemgetter(0, 1))  # time, then input order (seq is unique: rows never compared)
             self.pipeline.sessionize(source, [list(c) for c in zip(*(r[2] for r in ready))])
 
     def run(self) -> None:

@@ -4,7 +4,7 @@ Stage: formats → **timestamps** → (a record's ``ts``). One table, :data:`LAY
 layout tracewatch reads; each has a reader for one text and, where a log's usual case deserves
 it, a reader for a whole block of texts that share the layout (``None`` back when they do not:
 those texts take the one-by-one reader). :func:`parse_timestamp` tries the layouts in order;
-:func:`timestamps` is the same for many texts, by block where it can be.
+:class:`StampReader` reads one source's texts, by block where it can be.
 
 To add a layout, write its one-text reader (and, if it is common in volume, its block reader)
 and add a :class:`Layout` to :data:`LAYOUTS`; tests compare every block reader with its one-text
@@ -184,7 +184,7 @@ def epoch_millis(text: str) -> Stamp:
 
 
 # -- other common layouts ----------------------------------------------------------------------
-_MONTHS = {m: i for i, m in enumerate(("Jan", "Feb", "Mar", "Apr", "May", "Jun", "Jul", "Aug", "Sep", "Oct",
+MONTHS = {m: i for i, m in enumerate(("Jan", "Feb", "Mar", "Apr", "May", "Jun", "Jul", "Aug", "Sep", "Oct",
                                        "Nov", "Dec"), 1)}
 _ZONE = re.compile(r"(?:UTC|GMT|Z)|([+-])(\d\d)(?::?(\d\d))?")
 
@@ -215,18 +215,35 @@ def postgres(text: str) -> Stamp:
     return _utc(int(m[1]), int(m[2]), int(m[3]), m[4], m[5], offset)
 
 
-def infer_year(month: int, day: int, hms: str, frac: str | None, reference: float | None = None) -> Stamp:
-    """A yearless stamp placed in the year that puts it nearest before ``reference`` (now when
-    None), as RFC 3164 section 4.3 receivers must do: of the years around the reference, the
-    latest whose stamp is not more than a day after it (a day's grace for clock skew), so a
-    December stamp read in January belongs to the year before."""
-    ref = time.time() if reference is None else reference
-    year = datetime.fromtimestamp(ref, tz=timezone.utc).year
-    for y in range(year + 1, year - 8, -1):  # back to the last leap year for 29 February
-        stamp = _utc(y, month, day, hms, frac)
-        if stamp is not None and stamp <= ref + 86400:
-            return stamp
+FUTURE_SLACK_DAYS = 1  # a yearless date up to a day ahead of the clock is this year's (zones differ)
+
+
+@functools.lru_cache(maxsize=4096)
+def yearless_midnight(month: int, day: int, today: int) -> float | None:
+    """Epoch of 00:00 UTC on ``month``/``day`` in the latest year not more than
+    ``FUTURE_SLACK_DAYS`` ahead of day number ``today`` (days since the epoch), as RFC 3164
+    section 4.3 receivers must place a yearless stamp: a December stamp read in January belongs
+    to the year before. None for a date no year has. Cached: one entry a date and day."""
+    year = datetime.fromtimestamp(today * 86400, tz=timezone.utc).year + 1
+    for y in range(year, year - 9, -1):  # back to the last leap year for 29 February
+        try:
+            midnight = datetime(y, month, day, tzinfo=timezone.utc).timestamp()
+        except ValueError:
+            continue
+        if midnight <= (today + FUTURE_SLACK_DAYS) * 86400:
+            return midnight
     return None
+
+
+def infer_year(month: int, day: int, hms: str, frac: str | None, reference: float | None = None) -> Stamp:
+    """A yearless ``HH:MM:SS`` stamp of ``month``/``day`` placed by :func:`yearless_midnight`
+    relative to ``reference`` (now when None); UTC."""
+    ref = time.time() if reference is None else reference
+    midnight = yearless_midnight(month, day, int(ref // 86400))
+    h, m, sec = int(hms[0:2]), int(hms[3:5]), int(hms[6:8])
+    if midnight is None or h > 23 or m > 59 or sec > 60:
+        return None
+    return midnight + h * 3600 + m * 60 + sec + (int(frac.ljust(6, "0")[:6]) / 1e6 if frac else 0.0)
 
 
 _YEARLESS = re.compile(r"([A-Z][a-z]{2}) {1,2}(\d{1,2}) (\d\d:\d\d:\d\d)(?:\.(\d{1,6}))?")
@@ -236,9 +253,9 @@ def syslog_yearless(text: str, reference: float | None = None) -> Stamp:
     """The BSD syslog (RFC 3164) stamp ``Dec  2 07:40:34`` (day padded with a space), year
     inferred by :func:`infer_year`; UTC."""
     m = _YEARLESS.fullmatch(text.strip())
-    if m is None or m[1] not in _MONTHS:
+    if m is None or m[1] not in MONTHS:
         return None
-    return infer_year(_MONTHS[m[1]], int(m[2]), m[3], m[4], reference)
+    return infer_year(MONTHS[m[1]], int(m[2]), m[3], m[4], reference)
 
 
 _ASCTIME = re.compile(r"\[?(?:Mon|Tue|Wed|Thu|Fri|Sat|Sun) ([A-Z][a-z]{2}) {1,2}(\d{1,2}) "
@@ -249,9 +266,9 @@ def asctime(text: str) -> Stamp:
     """C's ``asctime`` layout, as Apache httpd's error log writes it: ``[Sun Dec 04 04:47:44
     2005]`` (brackets optional; 2.4's microseconds too); UTC."""
     m = _ASCTIME.fullmatch(text.strip())
-    if m is None or m[1] not in _MONTHS:
+    if m is None or m[1] not in MONTHS:
         return None
-    return _utc(int(m[5]), _MONTHS[m[1]], int(m[2]), m[3], m[4])
+    return _utc(int(m[5]), MONTHS[m[1]], int(m[2]), m[3], m[4])
 
 
 _COMPACT = re.compile(r"(\d\d)(\d\d)(\d\d) (\d\d)(\d\d)(\d\d)")
@@ -287,7 +304,7 @@ def strptime_reader(pattern: str) -> Callable[[str], Stamp]:
 
 
 # -- the table ---------------------------------------------------------------------------------
-# Tried in this order by parse_timestamp; block readers first by timestamps.
+# Tried in this order by parse_timestamp and by a StampReader looking for its layout.
 LAYOUTS: dict[str, Layout] = {layout.name: layout for layout in (
     Layout("iso8601", iso8601, iso8601_block),
     Layout("epoch", epoch_seconds),
@@ -323,17 +340,6 @@ def detect(text: str | None) -> tuple[Stamp, Layout | None]:
             return stamp, layout
     stamp = _ISO.one(text.strip())
     return stamp, (_ISO if stamp is not None else None)
-
-
-def timestamps(texts: Sequence[str | None]) -> list[Stamp]:
-    """``parse_timestamp`` of many texts: by a layout's block reader when every text is of that
-    layout, else one by one."""
-    for layout in LAYOUTS.values():
-        if layout.block is not None:
-            stamps = layout.block(texts)
-            if stamps is not None:
-                return stamps
-    return list(map(parse_timestamp, texts))
 
 
 class StampReader:
@@ -390,4 +396,4 @@ def check_ts_format(value: str | None) -> str | None:
     return value
 
 
-__all__ = ["LAYOUTS", "Layout", "StampReader", "check_ts_format", "detect", "infer_year", "iso8601", "iso8601_block", "iso8601_numpy", "parse_timestamp", "timestamps"]
+__all__ = ["LAYOUTS", "MONTHS", "Layout", "StampReader", "check_ts_format", "detect", "infer_year", "yearless_midnight", "iso8601", "iso8601_block", "iso8601_numpy", "parse_timestamp"]

@@ -25,7 +25,7 @@ from typing import TYPE_CHECKING, ClassVar
 import orjson
 
 from ..records import Columns, Record, Rejection
-from ..timestamps import parse_timestamp, timestamps
+from ..timestamps import parse_timestamp
 
 if TYPE_CHECKING:  # the config imports this table; the formats import the config only when used
     from ..config import SourceConfig
@@ -152,4 +152,4 @@ def make_format(src: SourceConfig, stream: str | None = None) -> Format:
 
 
 __all__ = ["FORMATS", "Columns", "Format", "Output", "Record", "Rejection", "collect", "feed_lines",
-           "format_class", "make_format", "parse_timestamp", "timestamps"]
+           "format_class", "make_format", "parse_timestamp"]

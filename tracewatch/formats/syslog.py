@@ -23,17 +23,15 @@ import re
 import time
 from collections.abc import Callable
 from dataclasses import dataclass
-from datetime import datetime, timezone
-from functools import lru_cache
-
 from collections.abc import Sequence
+from datetime import datetime
+from functools import partial
 from itertools import repeat
 from operator import and_
-from functools import partial
 
 from ..config import SourceConfig
 from ..records import Columns, Record, Rejection
-from ..timestamps import iso8601_numpy
+from ..timestamps import MONTHS, iso8601_numpy, yearless_midnight
 from . import Format, Output, _list
 
 # RFC 5424 section 6.2.1, table 2 (the same names as RFC 3164 section 4.1.1)
@@ -41,7 +39,6 @@ SEVERITIES = ("emerg", "alert", "crit", "err", "warning", "notice", "info", "deb
 HEADER_FIELDS = ("hostname", "app_name", "procid", "msgid")
 NIL = "-"
 BOM = "\ufeff"
-FUTURE_SLACK_DAYS = 1  # a BSD date up to a day ahead of the clock is this year's (zones differ)
 
 _SD_NAME = r'[^ =\]"]{1,32}'
 # PARAM-VALUE: any characters but '"' and '\', or a backslash and any character, written as an
@@ -58,8 +55,6 @@ _RFC3339 = re.compile(r"\d{4}-\d\d-\d\dT\d\d:\d\d:\d\d(?:\.\d{1,6})?(?:Z|[+-]\d\
 _SD_ELEMENT = re.compile(rf'\[({_SD_NAME})((?: {_SD_NAME}="{_SD_VALUE}")*)\]', re.S)
 _SD_PARAM = re.compile(rf'({_SD_NAME})="({_SD_VALUE})"', re.S)
 _SD_ESCAPE = re.compile(r'\\(["\\\]])')
-_MONTHS = {m: i for i, m in enumerate(("Jan", "Feb", "Mar", "Apr", "May", "Jun", "Jul", "Aug", "Sep", "Oct",
-                                       "Nov", "Dec"), start=1)}
 _RFC3164 = re.compile(r"(?:<(\d{1,3})>)?(Jan|Feb|Mar|Apr|May|Jun|Jul|Aug|Sep|Oct|Nov|Dec) ([ \d]?\d) "
                       r"(\d\d):(\d\d):(\d\d) (\S+)(?: (.*))?\Z", re.S)
 _FILE3339 = re.compile(r"(?:<(\d{1,3})>)?(\d{4}-\d\d-\d\dT\d\d:\d\d:\d\d(?:\.\d+)?(?:Z|[+-]\d\d:\d\d)) (\S+)"
@@ -92,21 +87,6 @@ def parse_structured_data(text: str) -> tuple[dict[str, dict[str, str]], int] | 
             params.setdefault(name, unescape_sd(value))
         pos = m.end()
     return (sd, pos) if pos else None
-
-
-@lru_cache(maxsize=4096)
-def _bsd_midnight(month: int, day: int, today: int) -> float | None:
-    """Epoch of 00:00 UTC on ``month``/``day`` in the latest year not more than the slack
-    ahead of day number ``today`` (days since the epoch); None for a date no year has."""
-    year = datetime.fromtimestamp(today * 86400, tz=timezone.utc).year + 1
-    for y in range(year, year - 9, -1):  # Feb 29 may need a few years back
-        try:
-            midnight = datetime(y, month, day, tzinfo=timezone.utc).timestamp()
-        except ValueError:
-            continue
-        if midnight <= (today + FUTURE_SLACK_DAYS) * 86400:
-            return midnight
-    return None
 
 
 def _rfc3339(text: str) -> float | None:
@@ -158,7 +138,7 @@ def parse(line: str, now: float) -> SyslogMessage | None:
             return _rfc5424((*m.groups()[:6], NIL, m.group(7)), "bad_structured_data")
     if (m := _RFC3164.match(line)) is not None:
         pri, mon, day, hh, mm, ss, host, msg = m.groups()
-        midnight = _bsd_midnight(_MONTHS[mon], int(day), int(now // 86400))
+        midnight = yearless_midnight(MONTHS[mon], int(day), int(now // 86400))
         if midnight is None or int(hh) > 23 or int(mm) > 59 or int(ss) > 60:
             return _bsd("rfc3164", pri, None, host, msg, "bad_timestamp")
         return _bsd("rfc3164", pri, midnight + int(hh) * 3600 + int(mm) * 60 + int(ss), host, msg, None)
