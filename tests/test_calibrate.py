@@ -7,7 +7,7 @@ import math
 import numpy as np
 import pytest
 
-from tracewatch.model.calibrate import ConformalThreshold
+from tracewatch.model.estimators import ConformalThreshold
 
 
 def test_p_values_by_hand():

@@ -16,8 +16,8 @@ from __future__ import annotations
 import pytest
 from sklearn.utils.estimator_checks import parametrize_with_checks
 
-from tracewatch.features import NgramVectorizer
-from tracewatch.model.calibrate import ConformalThreshold
+from tracewatch.model.estimators import NgramVectorizer
+from tracewatch.model.estimators import ConformalThreshold
 from tracewatch.model.fit import ClusterModel
 from tracewatch.triage import KernelPerceptron
 

@@ -7,7 +7,8 @@ import pytest
 import scipy.sparse as sp
 from sklearn.feature_extraction.text import TfidfTransformer
 
-from tracewatch.features import END, PAD, START, NgramVectorizer, ngrams
+from tracewatch.features import END, PAD, START, ngrams
+from tracewatch.model.estimators import NgramVectorizer
 from tracewatch.model.baseline import ARRAYS
 
 

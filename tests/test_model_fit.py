@@ -8,7 +8,7 @@ import scipy.sparse as sp
 from sklearn.cluster import KMeans
 from sklearn.metrics import adjusted_rand_score, silhouette_score
 
-from tracewatch.features import NgramVectorizer
+from tracewatch.model.estimators import NgramVectorizer
 from tracewatch.model import fit
 from tracewatch.model.fit import ClusterModel, kneedle, weighted_silhouette
 

@@ -14,7 +14,8 @@ from sklearn.base import clone
 from tracewatch.baselines import load_baseline, save_baseline
 from tracewatch.config import parse_config
 from tracewatch.errors import ConfigError
-from tracewatch.features import NgramVectorizer, SessionVector, stack
+from tracewatch.features import SessionVector, stack
+from tracewatch.model.estimators import NgramVectorizer
 from tracewatch.model.arrays import check_shapes, check_values, encode_names
 from tracewatch.model.baseline import ARRAYS, fit_baseline, storage_table
 from tracewatch.model.score import SCORERS, CentroidScorer, KnnScorer, SessionScorer

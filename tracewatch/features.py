@@ -18,8 +18,6 @@ from collections.abc import Mapping, Sequence
 from typing import TYPE_CHECKING
 
 import numpy as np
-from sklearn.base import BaseEstimator, TransformerMixin
-from sklearn.utils.validation import check_is_fitted
 
 if TYPE_CHECKING:
     import scipy.sparse as sp
@@ -52,20 +50,22 @@ class SessionVector:
         self.unseen_mass = unseen_mass  # squared norm of that part (≤ 1)
 
 
-class NgramVectorizer(TransformerMixin, BaseEstimator):
-    """Event n-gram tf-idf vectoriser, a scikit-learn estimator.
+class NgramWeights:
+    """Fitted event n-gram tf-idf weights: what scoring needs, with numpy alone.
 
-    ``fit(X, sample_weight=...)`` on event sequences (``X``: sequences of template indices)
+    ``count(X, sample_weight)`` on event sequences (``X``: sequences of template indices)
     learns ``vocabulary_`` (n-gram → column), ``idf_``, ``unseen_idf_`` (the idf of an n-gram
     never seen) and ``n_sessions_``; a weight counts a sequence that many times, so distinct
-    sequences can stand for many identical sessions.
+    sequences can stand for many identical sessions. The scikit-learn estimator over it is
+    :class:`tracewatch.model.estimators.NgramVectorizer` (fit uses it); a baseline loaded for
+    scoring holds this class, so scoring never imports scikit-learn (about 1 s of start-up).
     """
 
     def __init__(self, ngram_max: int = 3) -> None:
         self.ngram_max = ngram_max
 
-    def fit(self, X: Sequence[Sequence[int]], y=None, sample_weight: Sequence[float] | None = None
-            ) -> "NgramVectorizer":
+    def count(self, X: Sequence[Sequence[int]], sample_weight: Sequence[float] | None = None) -> "NgramWeights":
+        """Learn the vocabulary and idf of ``X`` (checked: event sequences, one weight each)."""
         if not isinstance(self.ngram_max, numbers.Integral) or self.ngram_max < 1:
             raise ValueError(f"ngram_max must be a whole number of at least 1, not {self.ngram_max!r}")
         _check_sequences(X)
@@ -86,10 +86,6 @@ class NgramVectorizer(TransformerMixin, BaseEstimator):
         return self
 
     def vector(self, seq: Sequence[int]) -> SessionVector:
-        check_is_fitted(self)
-        return self._vector(seq)
-
-    def _vector(self, seq: Sequence[int]) -> SessionVector:
         vocab, idf = self.vocabulary_, self.idf_
         cols: list[int] = []
         tfs: list[float] = []
@@ -112,14 +108,12 @@ class NgramVectorizer(TransformerMixin, BaseEstimator):
 
     def transform(self, X: Sequence[Sequence[int]]) -> tuple[sp.csr_matrix, np.ndarray]:
         """CSR matrix of in-vocabulary weights and the unseen mass of each row."""
-        check_is_fitted(self)
-        vecs = [self._vector(s) for s in X]
+        vecs = [self.vector(s) for s in X]
         return stack(vecs, len(self.vocabulary_)), np.array([v.unseen_mass for v in vecs])
 
     @property
     def grams_(self) -> list[NGram]:
         """The vocabulary's n-grams in column order."""
-        check_is_fitted(self)
         cached = self.__dict__.get("_grams")
         if cached is None or len(cached) != len(self.vocabulary_):
             cached = self.__dict__["_grams"] = sorted(self.vocabulary_, key=self.vocabulary_.__getitem__)
@@ -132,7 +126,6 @@ class NgramVectorizer(TransformerMixin, BaseEstimator):
     # persistence: the n-grams as rows of an int matrix padded with PAD (tracewatch/model/baseline.py
     # lists these arrays in the storage table)
     def to_arrays(self) -> dict[str, np.ndarray]:
-        check_is_fitted(self)
         grams = self.grams_
         mat = np.full((len(grams), self.ngram_max), PAD, dtype=np.int64)
         for i, g in enumerate(grams):
@@ -140,7 +133,7 @@ class NgramVectorizer(TransformerMixin, BaseEstimator):
         return {"vocab_ngrams": mat, "idf": self.idf_, "idf_meta": np.array([self.unseen_idf_, self.n_sessions_])}
 
     @classmethod
-    def from_arrays(cls, ngram_max: int, arrays: Mapping[str, np.ndarray]) -> "NgramVectorizer":
+    def from_arrays(cls, ngram_max: int, arrays: Mapping[str, np.ndarray]) -> "NgramWeights":
         """The fitted vectoriser :meth:`to_arrays` describes; ValueError when the n-gram rows are
         not n-grams (padding inside, markers in the middle) or repeat one another."""
         vec = cls(ngram_max)

@@ -1,10 +1,10 @@
 """The baseline model: what normal sessions look like, and the one rule that judges a session.
 
 Stage: features → **model** → alerts. :func:`fit_baseline` splits normal sessions into a fit
-part and a held-out calibration part, vectorises the fit part (:class:`NgramVectorizer`),
+part and a held-out calibration part, vectorises the fit part (:class:`~tracewatch.model.estimators.NgramVectorizer`),
 clusters it (:class:`~tracewatch.model.fit.ClusterModel`), fits the configured scorer plug-in
 (tracewatch/model/score.py) and calibrates every source on its own held-out sessions
-(:class:`~tracewatch.model.calibrate.ConformalThreshold`). The fitted :class:`Baseline` holds
+(:class:`~tracewatch.model.estimators.ConformalThreshold`). The fitted :class:`Baseline` holds
 those parts; :meth:`Baseline.judge` is the one rule that flags a session, used by ``score``,
 the daemon and the refit gates alike. It hands on verdicts to tracewatch/alerts/alert.py and
 its arrays, through :data:`ARRAYS`, to the storage in tracewatch/baselines.py.
@@ -24,13 +24,13 @@ from .score import Result, Scorer, SessionScorer, make_scorer
 
 if TYPE_CHECKING:
     from ..config import Config
-    from ..features import NgramVectorizer, SessionVector
+    from ..features import NgramWeights, SessionVector
     from ..templates import TemplateTree
-    from .calibrate import ConformalThreshold
+    from .calibrate import Calibration
 
-# The estimators (and scikit-learn with them) are imported where a baseline is built, fitted or
-# loaded, not with this module: the storage checks a baseline against ARRAYS before paying for
-# them, so a damaged one is refused at once.
+# The estimators (and scikit-learn with them) are imported where a baseline is built or fitted,
+# not with this module; a loaded baseline holds their plain fitted states (NgramWeights,
+# Calibration), so scoring never imports scikit-learn.
 
 MIN_SESSIONS = 10
 FIT_BLOCK = 50_000  # distinct rows vectorised (and counted per cluster) at a time
@@ -85,10 +85,10 @@ class Baseline:
     one conformal threshold per source. Made by :func:`fit_baseline` or by loading
     (tracewatch/baselines.py); ``version`` is set when it is saved or loaded."""
 
-    def __init__(self, *, miner: TemplateTree, vectorizer: NgramVectorizer, centers: np.ndarray,
+    def __init__(self, *, miner: TemplateTree, vectorizer: NgramWeights, centers: np.ndarray,
                  cluster_weights: np.ndarray, cluster_df: np.ndarray, cluster_sources: list[str],
                  medoids: list[Seq], normal_seqs: list[Seq], normal_labels: np.ndarray,
-                 normal_sources: list[str], scorer: Scorer, calibration: dict[str, ConformalThreshold],
+                 normal_sources: list[str], scorer: Scorer, calibration: dict[str, Calibration],
                  report: dict, version: str = "unsaved") -> None:
         self.miner = miner
         self.vectorizer = vectorizer
@@ -113,7 +113,7 @@ class Baseline:
     def false_alarm_rate(self) -> float:
         return self.calibration[POOLED].false_alarm_rate
 
-    def conformal(self, source: str) -> ConformalThreshold:
+    def conformal(self, source: str) -> Calibration:
         """The calibration of ``source`` (or the pooled one when it had too few sessions)."""
         own = self.calibration.get(source)
         return own if own is not None and own.usable_ else self.calibration[POOLED]
@@ -191,8 +191,8 @@ class Baseline:
                     false_alarm_rate: float, report: dict, version: str) -> "Baseline":
         """The baseline :meth:`to_arrays` describes, from arrays already checked against the
         table (shapes, ranges, offsets); ValueError for what the table cannot say."""
-        from ..features import NgramVectorizer
-        from .calibrate import ConformalThreshold
+        from ..features import NgramWeights
+        from .calibrate import Calibration
 
         if not len(arrays["centers"]) or not len(arrays["normal_labels"]):
             raise ValueError("a baseline needs a cluster and a baseline session")
@@ -200,9 +200,9 @@ class Baseline:
         offsets = arrays["calibration_offsets"].tolist()
         if len(set(cal_sources)) != len(cal_sources) or POOLED not in cal_sources:
             raise ValueError("the calibration must name each source once and the pooled one")
-        calibration = {src: ConformalThreshold(false_alarm_rate).fit(scores[a:b])
+        calibration = {src: Calibration(false_alarm_rate).calibrate(scores[a:b])
                        for src, a, b in zip(cal_sources, offsets, offsets[1:])}
-        return cls(miner=miner, vectorizer=NgramVectorizer.from_arrays(ngram_max, arrays),
+        return cls(miner=miner, vectorizer=NgramWeights.from_arrays(ngram_max, arrays),
                    centers=arrays["centers"], cluster_weights=arrays["cluster_weights"],
                    cluster_df=arrays["cluster_df"], cluster_sources=arrays["cluster_sources"],
                    medoids=_unflat(arrays["medoid_events"], arrays["medoid_offsets"]),
@@ -315,7 +315,7 @@ def _build(sessions: list[tuple[str, Seq]], train_idx: np.ndarray, cal_idx: np.n
     """Vectorise and cluster ``train_idx``, fit the scorer, calibrate on ``cal_idx``."""
     import scipy.sparse as sp
 
-    from ..features import NgramVectorizer
+    from .estimators import NgramVectorizer
     from .fit import ClusterModel  # scikit-learn's clustering loads only when fitting
 
     mcfg = cfg.model
@@ -370,7 +370,7 @@ def _owners(labels: np.ndarray, weights: np.ndarray, row_sources: list[str], mod
 
 def _calibrate(baseline: Baseline, held_out: list[tuple[str, Seq]], rate: float) -> None:
     """One threshold per source from its own held-out sessions, and the pooled one."""
-    from .calibrate import ConformalThreshold
+    from .estimators import ConformalThreshold
 
     scorer = baseline.make_scorer()
     by_source: dict[str, list[Seq]] = {}

@@ -12,28 +12,27 @@ from __future__ import annotations
 import math
 
 import numpy as np
-from sklearn.base import BaseEstimator
-from sklearn.utils.validation import check_array, check_is_fitted
 
 
-class ConformalThreshold(BaseEstimator):
-    """A scikit-learn estimator over scores (one nonconformity score per session, higher = more
-    anomalous): ``fit(calibration_scores)`` stores them sorted as ``calibration_scores_`` and
-    derives ``threshold_``: an alarm is raised exactly when a score is above it. ``threshold_``
-    is +inf when the calibration set is too small for the rate (fewer than 1/rate − 1 sessions);
-    ``usable_`` then is False."""
+class Calibration:
+    """Conformal calibration over scores (one nonconformity score per session, higher = more
+    anomalous), with numpy alone: ``calibrate(calibration_scores)`` stores them sorted as
+    ``calibration_scores_`` and derives ``threshold_``: an alarm is raised exactly when a score
+    is above it. ``threshold_`` is +inf when the calibration set is too small for the rate
+    (fewer than 1/rate − 1 sessions); ``usable_`` then is False. The scikit-learn estimator over
+    it is :class:`tracewatch.model.estimators.ConformalThreshold`; a loaded baseline holds this
+    class, so scoring never imports scikit-learn."""
 
     def __init__(self, false_alarm_rate: float = 0.005) -> None:
         self.false_alarm_rate = false_alarm_rate
 
-    def fit(self, X, y=None, sample_weight=None) -> "ConformalThreshold":
-        """``X``: the calibration sessions' scores (1-D). Each session counts once: the p-value's
-        guarantee is about exchangeable sessions, so there are no sample weights."""
-        if sample_weight is not None:
-            raise ValueError("ConformalThreshold takes no sample weights: give every calibration score")
+    def calibrate(self, X) -> "Calibration":
+        """``X``: the calibration sessions' scores (1-D, finite)."""
         if not 0 < self.false_alarm_rate < 1:
             raise ValueError(f"false_alarm_rate must be between 0 and 1, not {self.false_alarm_rate!r}")
-        cal = check_array(X, ensure_2d=False, dtype=np.float64)
+        cal = np.asarray(X, dtype=np.float64)
+        if not np.isfinite(cal).all():
+            raise ValueError("calibration scores must be finite numbers")
         if cal.ndim == 2 and cal.shape[1] == 1:
             cal = cal[:, 0]
         if cal.ndim != 1:
@@ -49,12 +48,10 @@ class ConformalThreshold(BaseEstimator):
         return self
 
     def p_values(self, X) -> np.ndarray:
-        check_is_fitted(self)
         cal = self.calibration_scores_
         s = np.asarray(X, dtype=float)
         at_least = len(cal) - np.searchsorted(cal, s, side="left")
         return (1.0 + at_least) / (len(cal) + 1.0)
 
     def alarms(self, X) -> np.ndarray:
-        check_is_fitted(self)
         return np.asarray(X, dtype=float) > self.threshold_

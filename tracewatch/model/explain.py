@@ -15,7 +15,7 @@ from typing import TYPE_CHECKING
 import numpy as np
 
 if TYPE_CHECKING:
-    from ..features import NgramVectorizer, SessionVector
+    from ..features import NgramWeights, SessionVector
 
 MAX_ITEMS = 5
 MAX_DIFF = 20
@@ -68,7 +68,7 @@ def step_diff(session: Sequence[int], normal: Sequence[int], text: Callable[[int
 
 def explain(seq: Sequence[int], vec: SessionVector, cluster: int, center: np.ndarray,
             cluster_df: np.ndarray, medoid: Sequence[int], closest: Sequence[int],
-            vectorizer: NgramVectorizer,
+            vectorizer: NgramWeights,
             text: Callable[[int], str], is_seen: Callable[[int], bool]) -> dict:
     """The explanation fields of an alert: the step difference is taken against ``closest``,
     the cluster's baseline session most like this one, which reads far better than a diff

@@ -37,7 +37,7 @@ from .arrays import Array
 if TYPE_CHECKING:
     import scipy.sparse as sp
 
-    from ..features import NgramVectorizer, SessionVector
+    from ..features import NgramWeights, SessionVector
 
 KNN_BLOCK = 256
 SPREAD_FLOOR = 1e-2  # the least spread of a cluster (model/fit.py): distances are divided by it
@@ -211,7 +211,7 @@ class SessionScorer:
     ``knn``, that source's baseline sessions): sessions of different sources share no
     events, so comparing them across sources only adds noise."""
 
-    def __init__(self, vectorizer: NgramVectorizer, centers: np.ndarray, scorer: Scorer, *,
+    def __init__(self, vectorizer: NgramWeights, centers: np.ndarray, scorer: Scorer, *,
                  cluster_sources: Sequence[str], row_sources: Sequence[str], cache_size: int = 100_000) -> None:
         self.vectorizer = vectorizer
         self.scorer = scorer
@@ -248,7 +248,7 @@ class SessionScorer:
                 todo.setdefault(seq, []).append(i)
         if todo:
             keys = list(todo)
-            results = self.score_vectors(source, [self.vectorizer._vector(s) for s in keys])
+            results = self.score_vectors(source, [self.vectorizer.vector(s) for s in keys])
             if len(cache) + len(keys) > self.cache_size:
                 cache.clear()
             for seq, res in zip(keys, results):

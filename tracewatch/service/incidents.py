@@ -19,7 +19,6 @@ from ..alerts.sinks import Notifier
 from ..alerts.store import IncidentStore
 from ..config import Config
 from ..errors import StateError
-from ..triage import Triage
 
 log = logging.getLogger("tracewatch.incidents")
 
@@ -45,7 +44,11 @@ class Incidents:
             state_dir = Path(self.cfg.state_dir)
             self._store = IncidentStore.open(state_dir)
             self.notifier = Notifier.from_config(self._store, self.cfg)
-            triage = Triage(self.cfg.triage, state_dir) if self.cfg.triage.enabled else None
+            triage = None
+            if self.cfg.triage.enabled:  # the kernel perceptron brings scikit-learn: only when asked
+                from ..triage import Triage
+
+                triage = Triage(self.cfg.triage, state_dir)
             self.tracker = IncidentTracker(self._store, self.cfg.incidents, clock=self.clock,
                                            on_outbox=self.notifier.wake, triage=triage)
         return self._store
