@@ -272,3 +272,49 @@ def test_one_log_line_per_incident_opened(store, caplog):
     lines = [r.getMessage() for r in caplog.records if " opened" in r.getMessage()]
     assert lines == [f"incident {first} opened: never-seen event 'event A <var>' (source api?[2J, session k-1)",
                      f"incident {second} opened: never-seen event 'event C <var>' (source api, session k-3)"]
+
+
+# -- rate, reach and severity --------------------------------------------------------------------------
+def _sessions_per_minute(log) -> Counter:
+    """Sessions per minute of their last line, read from the generated log itself (not from the
+    pipeline): the ``req=`` key and the ISO time of each line."""
+    from datetime import datetime
+
+    last: dict[str, float] = {}
+    for line in log.read_text().splitlines():
+        stamp, _, rest = line.partition(" ")
+        key = rest.split(" req=", 1)[1].split(" ", 1)[0]
+        last[key] = max(last.get(key, 0.0), datetime.fromisoformat(stamp.replace("Z", "+00:00")).timestamp())
+    return Counter(int(t // 60) for t in last.values())
+
+
+def test_rate_reach_and_severity_on_a_generated_day(tmp_path_factory):
+    from tracewatch.alerts.summary import rate_text, reach
+
+    from .incident_data import KINDS, six_kinds_day
+
+    root = tmp_path_factory.mktemp("rate")
+    cfg, verdicts, labels = six_kinds_day(root, every_session=True)  # every session, alert or not
+    per_minute = _sessions_per_minute(root / "day.log")
+    assert sum(per_minute.values()) == len(verdicts) == len(labels)  # every generated session was scored
+    store = IncidentStore.open(tmp_path_factory.mktemp("rate-state"))
+    try:
+        tr = IncidentTracker(store, cfg.incidents, clock=lambda: T0)
+        for v in verdicts:
+            tr.add(v)
+        tr.flush()
+        rows = store.incidents()
+        assert len(rows) == len(KINDS)
+        for row in rows:
+            got = reach(row)
+            first, last = int(row["first_seen"] // 60), int(row["last_seen"] // 60)
+            sessions = sum(n for m, n in per_minute.items() if first <= m <= last)
+            assert got["rate"] == {"alerts": row["count"], "sessions": sessions, "window_s": 60 * (last - first + 1)}
+            assert got["reach"] == {"share": round(row["count"] / sessions, 4), "sources": 1}
+            # each kind hits 32 of the day's 492 sessions over three hours: 3 or more alerts and
+            # at least 2% of the sessions, under 20% — "high" by the rule
+            assert 0.02 <= got["reach"]["share"] < 0.2 and got["severity"] == "high", (row["title"], got)
+            assert rate_text({**row, **got, "sources": ["locker-api"]}).startswith(
+                f"{row['count']} of {sessions} sessions of locker-api in ")
+    finally:
+        store.close()

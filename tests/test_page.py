@@ -174,6 +174,8 @@ def test_relative_times():
     assert [ago(now - d, now) for d in (0.4, 59, 61, 7200, 3 * 86_400)] == [
         "just now", "59 s ago", "1 min ago", "2 h ago", "3 d ago"]
     assert ago(now + 120, now) == "in 2 min" and ago(None, now) == "–"
-    html_ = list_page([{"id": 1, "status": "open", "count": 2, "first_seen": now - 600, "last_seen": now - 30,
-                        "title": "t", "sources": []}], {}, {}, refresh_s=30, now=now)
+    from tracewatch.alerts.summary import brief
+
+    html_ = list_page([brief({"id": 1, "status": "open", "count": 2, "first_seen": now - 600, "last_seen": now - 30,
+                              "title": "t", "stats": {}})], {}, {}, refresh_s=30, now=now)
     assert '<span title="2027-01-15 07:59:30 UTC">30 s ago</span>' in html_  # date(1) -ud @1799999970

@@ -52,11 +52,13 @@ def test_schema_2_store_gains_signatures_in_place(tmp_path):
     store.close()
     with sqlite3.connect(tmp_path / "incidents.db") as db:  # the file as schema 2 wrote it
         db.execute("ALTER TABLE incidents DROP COLUMN signature")
+        db.execute("DROP TABLE sessions")
         db.execute("UPDATE meta SET value = '2' WHERE key = 'schema_version'")
     db.close()
     store = IncidentStore.open(tmp_path)
     try:
-        assert store.db.execute("SELECT value FROM meta WHERE key = 'schema_version'").fetchone()[0] == "3"
+        assert store.db.execute("SELECT value FROM meta WHERE key = 'schema_version'").fetchone()[0] == "4"
+        assert store.incident(1)["sessions"] == 0  # schema 4's session counts: none before the upgrade
         tracker = IncidentTracker(store, parse_config({}).incidents)
         # the old incident has no signature: the new alert joins it by similarity, as before
         assert tracker.add(toy_alert("new", "A", t=1_800_000_010.0)) == 1

@@ -9,7 +9,7 @@ import json
 import pytest
 
 from tracewatch.alerts.alert import Redactor
-from tracewatch.alerts.summary import MAX_SAMPLE, detail, safe, table, text, title
+from tracewatch.alerts.summary import MAX_SAMPLE, brief, detail, rate_text, reach, safe, severity, table, text, title
 from tracewatch.service.incidents import Incidents
 
 from .incident_data import config, storm, toy_alert
@@ -77,8 +77,9 @@ def test_detail_bounds_and_redacts_samples():
 def test_terminal_text_has_no_control_characters():
     evil = "door \x1b[2J\x1b]0;owned\x07 opened"
     assert safe(evil) == "door ?[2J?]0;owned? opened"
-    row = {"id": 1, "status": "open", "count": 2, "last_seen": 0.0, "sources": ["api"], "title": evil}
-    assert "\x1b" not in table([row])
+    row = {"id": 1, "status": "open", "count": 2, "first_seen": 0.0, "last_seen": 0.0, "title": evil,
+           "stats": {"sources": {"api\x1b[2J": 2}}}
+    assert "\x1b" not in table([brief(row)])
     d = detail({**row, "first_seen": 0.0, "stats": {}, "representative": toy_alert("r", samples=[evil])})
     assert "\x1b" not in text(d) and "\x07" not in text(d)
 
@@ -101,3 +102,30 @@ def test_score_text_view_names_the_strongest_explanation_first(tmp_path):
         assert when.startswith("  when ") and f"{alert['events']} events" in when
         assert why.startswith("  why ") and ", ".join(alert["reasons"]) in why
         assert all(f"  | {s}" in rest for s in alert["samples"])
+
+
+# -- rate, reach and severity, by hand ---------------------------------------------------------------
+@pytest.mark.parametrize("alerts, share, sources, expected", [
+    (1, 0.5, 1, "low"),  # one alert is never more than low, whatever its share
+    (3, 0.02, 1, "high"), (3, 0.019, 1, "low"), (2, 0.5, 1, "low"),
+    (3, None, 2, "high"),  # two sources: high even where sessions were not counted
+    (10, 0.2, 1, "critical"), (10, 0.199, 1, "high"), (9, 0.9, 1, "high"),
+    (10, 0.001, 3, "critical"),
+], ids=["one-alert", "high-at-2%", "below-2%", "two-alerts", "two-sources", "critical-at-20%",
+        "below-20%", "nine-alerts", "three-sources"])
+def test_severity_rule(alerts, share, sources, expected):
+    assert severity(alerts, share, sources) == expected
+
+
+def test_rate_and_reach_of_a_stored_row():
+    # 12 alerts from 08:00:30 to 08:09:10 (2027-01-15 UTC; 1_800_000_000 is 08:00:00, a whole
+    # minute: 30_000_000 × 60): minutes 08:00 … 08:09, ten minutes; 300 sessions in them
+    row = {"id": 1, "status": "open", "title": "t", "count": 12, "first_seen": 1_800_000_030.0,
+           "last_seen": 1_800_000_550.0, "sessions": 300, "stats": {"sources": {"locker-api": 12}}}
+    got = reach(row)
+    assert got == {"severity": "high", "rate": {"alerts": 12, "sessions": 300, "window_s": 600},
+                   "reach": {"share": 0.04, "sources": 1}}
+    listed = brief(row)
+    assert rate_text(listed) == "12 of 300 sessions of locker-api in 10 min (4%)"
+    assert table([listed]).splitlines()[1].split()[:7] == ["1", "open", "12", "4%", "of", "300", "high"]
+    assert rate_text(brief({**row, "sessions": 0})) == "12 alerts in 10 min (sessions of locker-api not counted)"

@@ -18,8 +18,11 @@ Tables (schema version in ``meta``):
     labels      the on-call label of an incident: "expected" or a known problem's name
                 (what tracewatch/triage.py learns from); incidents.suggestion holds triage's
                 suggestion for a new incident (JSON, '' for none)
+    sessions    sessions scored per source and minute of event time (what an incident's rate
+                and reach are measured against: :func:`tracewatch.alerts.summary.reach`)
 
-Schema 1 (before labels) is upgraded in place when opened.
+Older schemas (1: before labels, 2: before signatures, 3: before session counts) are upgraded
+in place when opened.
 
 Every SQL statement of tracewatch lives in this module: the tracker, the notifier, HTTP and the
 CLI call its methods (those that take ``db`` run inside the caller's :meth:`transaction`).
@@ -43,7 +46,7 @@ import orjson
 from ..errors import StateError
 from . import rows
 
-SCHEMA_VERSION = 3
+SCHEMA_VERSION = 4
 FILENAME = "incidents.db"
 STATUSES = rows.STATUSES  # open, acknowledged, resolved, expected
 FIRING = ("open", "acknowledged")
@@ -105,13 +108,22 @@ CREATE TABLE IF NOT EXISTS labels (
     note TEXT NOT NULL DEFAULT '',
     ts REAL NOT NULL
 );
+CREATE TABLE IF NOT EXISTS sessions (
+    source TEXT NOT NULL,
+    minute INTEGER NOT NULL,
+    count INTEGER NOT NULL,
+    PRIMARY KEY (source, minute)
+) WITHOUT ROWID;
 """
 # -- triage labels (tracewatch/triage.py): schema 1 → 2 --
 _MIGRATIONS = {1: ("ALTER TABLE incidents ADD COLUMN suggestion TEXT NOT NULL DEFAULT ''",
                    "CREATE TABLE IF NOT EXISTS labels (incident_id INTEGER PRIMARY KEY, label TEXT NOT NULL, "
                    "by TEXT NOT NULL, note TEXT NOT NULL DEFAULT '', ts REAL NOT NULL)"),
                # -- the signature alerts are grouped by (alerts/summary.py): schema 2 → 3 --
-               2: ("ALTER TABLE incidents ADD COLUMN signature TEXT NOT NULL DEFAULT ''",)}
+               2: ("ALTER TABLE incidents ADD COLUMN signature TEXT NOT NULL DEFAULT ''",),
+               # -- sessions scored per source and minute (rate and reach): schema 3 → 4 --
+               3: ("CREATE TABLE IF NOT EXISTS sessions (source TEXT NOT NULL, minute INTEGER NOT NULL, "
+                   "count INTEGER NOT NULL, PRIMARY KEY (source, minute)) WITHOUT ROWID",)}
 
 # the columns every incident listing returns (the heavy JSON columns only on demand)
 _LIST_COLUMNS = ("id, status, title, first_seen, last_seen, count, escalated, created, status_changed, "
@@ -119,6 +131,13 @@ _LIST_COLUMNS = ("id, status, title, first_seen, last_seen, count, escalated, cr
                  "(SELECT label FROM labels WHERE labels.incident_id = incidents.id)")
 _LIST_KEYS = ("id", "status", "title", "first_seen", "last_seen", "count", "escalated", "created",
               "status_changed", "status_by", "note")
+# the sessions scored of an incident's sources in the minutes of its window (first to last alert)
+_SESSIONS = ("(SELECT COALESCE(SUM(s.count), 0) FROM sessions s WHERE s.source IN (SELECT key FROM json_each("
+             "CASE WHEN json_valid(incidents.stats) THEN incidents.stats ELSE '{}' END, '$.sources')) "
+             "AND s.minute BETWEEN CAST(incidents.first_seen / 60 AS INTEGER) "
+             "AND CAST(incidents.last_seen / 60 AS INTEGER))")
+# what is read for showing an incident: the listed columns and the sessions of its window
+_READ_COLUMNS = f"{_LIST_COLUMNS}, {_SESSIONS}"
 # what the tracker may change on an incident row
 _UPDATABLE = frozenset({"count", "first_seen", "last_seen", "stats", "centroid", "representative", "title",
                         "escalated"})
@@ -277,9 +296,10 @@ class IncidentStore:
                           "afresh (alerts.jsonl keeps every alert)")
 
     def _row(self, r) -> dict:
-        """A listed row (:data:`_LIST_COLUMNS`) as a checked dict."""
+        """A listed row (:data:`_LIST_COLUMNS`, or :data:`_READ_COLUMNS` with the sessions of its
+        window) as a checked dict."""
         try:
-            return rows.incident_row(dict(zip(_LIST_KEYS, r[:11])), r[11], r[12], r[13])
+            return rows.incident_row(dict(zip(_LIST_KEYS, r[:11])), r[11], r[12], r[13], *r[14:15])
         except rows.Damaged as exc:
             raise self._damaged(f"incident {r[0]!r:.40}", exc) from exc
 
@@ -297,7 +317,7 @@ class IncidentStore:
         if since is not None:
             where.append("last_seen >= ?")
             args.append(since)
-        sql = f"SELECT {_LIST_COLUMNS} FROM incidents"
+        sql = f"SELECT {_READ_COLUMNS} FROM incidents"
         if where:
             sql += " WHERE " + " AND ".join(where)
         sql += " ORDER BY last_seen DESC, id DESC LIMIT ? OFFSET ?"
@@ -310,7 +330,7 @@ class IncidentStore:
         """One incident with its representative alert (None when there is none with that id)."""
         if not storable_id(incident_id):
             return None
-        row = (db or self.db).execute(f"SELECT {_LIST_COLUMNS}, representative FROM incidents WHERE id = ?",
+        row = (db or self.db).execute(f"SELECT {_READ_COLUMNS}, representative FROM incidents WHERE id = ?",
                                       (incident_id,)).fetchone()
         if row is None:
             return None
@@ -399,6 +419,14 @@ class IncidentStore:
     def record_alert(self, alert_id: str, incident_id: int, t: float, *, db: sqlite3.Connection) -> None:
         db.execute("INSERT INTO alerts (alert_id, incident_id, ts) VALUES (?, ?, ?)", (alert_id, incident_id, t))
 
+    def count_sessions(self, counts: dict[tuple[str, int], int], *, db: sqlite3.Connection) -> None:
+        """Add ``{(source, minute): sessions scored}`` to the counts (minute = event time // 60)."""
+        db.executemany("INSERT INTO sessions (source, minute, count) VALUES (?, ?, ?) ON CONFLICT (source, minute) "
+                       "DO UPDATE SET count = count + excluded.count", [(s, m, n) for (s, m), n in counts.items()])
+
+    def prune_sessions(self, before_minute: int, *, db: sqlite3.Connection) -> None:
+        db.execute("DELETE FROM sessions WHERE minute < ?", (before_minute,))
+
     def latest_seen(self) -> float | None:
         """The event time of the newest alert of any incident (None while there is none)."""
         return self.db.execute("SELECT MAX(last_seen) FROM incidents").fetchone()[0]
@@ -427,7 +455,7 @@ class IncidentStore:
         where, args = ("id = ?", (incident_id,)) if incident_id is not None else (
             "status IN ('open', 'acknowledged')" if firing else "1", ())
         out = []
-        for r in (db or self.db).execute(f"SELECT {_LIST_COLUMNS}, {_from_representative('$.diff')} "
+        for r in (db or self.db).execute(f"SELECT {_READ_COLUMNS}, {_from_representative('$.diff')} "
                                          f"FROM incidents WHERE {where} ORDER BY last_seen DESC, id DESC LIMIT ?",
                                          (*args, limit)):
             row = self._row(r[:-1])

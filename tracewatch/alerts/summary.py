@@ -88,6 +88,51 @@ def title(alert: dict) -> str:
     return f"session unlike the baseline (nearest normal group #{about})"
 
 
+# -- rate, reach and severity -------------------------------------------------------------------------
+SEVERITIES = ("low", "high", "critical")
+# (severity, at least this many alerts, and at least this share of the sessions, or this many sources),
+# the first that holds; otherwise "low". tracewatch's own rule of thumb (README, Incidents).
+SEVERITY_RULE = (("critical", 10, 0.20, 3), ("high", 3, 0.02, 2))
+
+
+def severity(alerts: int, share: float | None, sources: int) -> str:
+    for name, least, least_share, wide in SEVERITY_RULE:
+        if alerts >= least and ((share or 0.0) >= least_share or sources >= wide):
+            return name
+    return "low"
+
+
+def reach(incident: dict) -> dict:
+    """How fast and how wide an incident hits. Rate: its alerts against the sessions scored of
+    its sources in the minutes of its window (first to last alert; the store reads them as
+    ``sessions``). Reach: the share of those sessions that are its alerts, and its number of
+    sources. Severity from both (:data:`SEVERITY_RULE`). With no sessions counted (an incident
+    older than the counts) the share is None."""
+    count = int(incident.get("count") or 0)
+    sessions = int(incident.get("sessions") or 0)
+    minutes = int(incident["last_seen"] // 60) - int(incident["first_seen"] // 60) + 1
+    share = round(min(1.0, count / sessions), 4) if sessions else None
+    n_sources = len((incident.get("stats") or {}).get("sources") or incident.get("sources") or ())
+    return {"severity": severity(count, share, n_sources),
+            "rate": {"alerts": count, "sessions": sessions, "window_s": 60 * minutes},
+            "reach": {"share": share, "sources": n_sources}}
+
+
+def _span(seconds: float) -> str:
+    minutes = round(seconds / 60)
+    return f"{minutes} min" if minutes < 120 else f"{minutes / 60:.1f} h"
+
+
+def rate_text(d: dict) -> str:
+    """"12 of 300 sessions of locker-api in 10 min (4%)" for the list or detail form."""
+    rate, share = d["rate"], d["reach"]["share"]
+    of = ", ".join(d.get("sources") or []) or "its sources"
+    if share is None:
+        return f"{rate['alerts']} alerts in {_span(rate['window_s'])} (sessions of {of} not counted)"
+    pct = f"{share:.0%}" if share >= 0.01 else f"{share:.1%}"
+    return f"{rate['alerts']} of {rate['sessions']} sessions of {of} in {_span(rate['window_s'])} ({pct})"
+
+
 def shared(stats: dict, count: int) -> dict[str, list[dict]]:
     """What at least half of an incident's alerts have in common, most common first."""
     out: dict[str, list[dict]] = {}
@@ -110,6 +155,7 @@ def detail(incident: dict, *, max_samples: int = 5, redact: Callable[[str], str]
         diff = diff[:MAX_DIFF] + [f"… {len(diff) - MAX_DIFF} more differences"]
     return {
         **{k: v for k, v in incident.items() if k not in ("representative", "stats")},
+        **reach(incident),
         "shared": shared(incident.get("stats") or {}, incident.get("count", 0)),
         "sources": sorted((incident.get("stats") or {}).get("sources", {})),
         "diff": diff,
@@ -127,6 +173,7 @@ def brief(incident: dict) -> dict:
     out = {k: v for k, v in incident.items() if k not in ("representative", "stats")}
     out["sources"] = sorted(stats.get("sources", {}))
     out["reasons"] = sorted(stats.get("reasons", {}))
+    out.update(reach(incident))
     return out
 
 
@@ -155,13 +202,16 @@ def table(rows: list[dict], *, width: int = 60) -> str:
     """A compact table of incidents (the list form from :func:`brief`)."""
     if not rows:
         return "no incidents"
-    out = [f"{'ID':>5}  {'STATUS':<12}  {'ALERTS':>6}  {'LAST SEEN (UTC)':<19}  {'SOURCES':<16}  TITLE"]
+    out = [f"{'ID':>5}  {'STATUS':<12}  {'ALERTS':>6}  {'OF SESSIONS':>11}  {'SEVERITY':<8}  {'LAST SEEN (UTC)':<19}  "
+           f"{'SOURCES':<16}  TITLE"]
     for r in rows:
         sources = safe(",".join(r.get("sources") or []))
         sources = sources if len(sources) <= 16 else sources[:15] + "…"
         t = safe(r["title"])
-        out.append(f"{r['id']:>5}  {r['status']:<12}  {r['count']:>6}  {_utc(r['last_seen']):<19}  "
-                   f"{sources:<16}  {t if len(t) <= width else t[:width - 1] + '…'}")
+        share = r["reach"]["share"]
+        of = "-" if share is None else f"{share:.0%} of {r['rate']['sessions']}"
+        out.append(f"{r['id']:>5}  {r['status']:<12}  {r['count']:>6}  {of:>11}  {r['severity']:<8}  "
+                   f"{_utc(r['last_seen']):<19}  {sources:<16}  {t if len(t) <= width else t[:width - 1] + '…'}")
     return "\n".join(out)
 
 
@@ -170,7 +220,8 @@ def text(d: dict) -> str:
     rep = d.get("representative") or {}
     lines = [f"incident #{d['id']}: {safe(d['title'])}",
              f"  status      {d['status']}" + (f" (by {safe(d['status_by'])})" if d.get("status_by") else ""),
-             f"  alerts      {d['count']}",
+             f"  severity    {d['severity']}",
+             f"  alerts      {safe(rate_text(d))}, from {d['reach']['sources']} source(s)",
              f"  first seen  {_utc(d['first_seen'])} UTC",
              f"  last seen   {_utc(d['last_seen'])} UTC",
              f"  sources     {safe(', '.join(d.get('sources') or []))}",

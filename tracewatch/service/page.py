@@ -16,6 +16,7 @@ import time
 from datetime import datetime, timezone
 
 from ..alerts.store import STATUSES
+from ..alerts.summary import rate_text
 
 CAUTION = ("This page shows text taken from logs (after the configured redaction patterns); logs can hold "
            "secrets and personal data. Keep this port on loopback or behind your own access control. "
@@ -29,7 +30,8 @@ body{font:15px/1.45 system-ui,sans-serif;margin:1.5em auto;max-width:72em;paddin
 h1{font-size:1.35em}h2{font-size:1.1em;margin-top:1.6em}
 table{border-collapse:collapse;width:100%}th,td{text-align:left;padding:.3em .5em;border-bottom:1px solid #ddd;
 vertical-align:top}th{background:#f3f3f3}td.n{text-align:right;font-variant-numeric:tabular-nums}
-.open{color:#a40000;font-weight:600}.acknowledged{color:#8a5a00}.resolved{color:#2f6b2f}.expected{color:#555}
+.open{color:#a40000;font-weight:600}.sev-critical{color:#fff;background:#a40000;font-weight:600}
+.sev-high{color:#8a3b00;font-weight:600}.sev-low{color:#555}.acknowledged{color:#8a5a00}.resolved{color:#2f6b2f}.expected{color:#555}
 pre{background:#f6f6f6;padding:.6em;overflow-x:auto;white-space:pre-wrap;word-break:break-all}
 footer{margin-top:2.5em;font-size:.85em;color:#555;border-top:1px solid #ddd;padding-top:.6em}
 code{background:#f3f3f3;padding:0 .2em}
@@ -87,6 +89,11 @@ def triage_text(inc: dict) -> str:
     return f"triage {verb} {hint['label']} (margin {hint.get('margin')})"
 
 
+def _share(inc: dict) -> str:
+    share = inc["reach"]["share"]
+    return "" if share is None else f' <small>({share:.0%} of {int(inc["rate"]["sessions"])})</small>'
+
+
 def list_page(incidents: list[dict], counts: dict[str, int], notify: dict[str, dict], *, refresh_s: int,
               status: str | None = None, offset: int = 0, limit: int = 200, now: float | None = None) -> str:
     """One page of incidents (of one ``status``, if given), most recently active first; each
@@ -104,11 +111,13 @@ def list_page(incidents: list[dict], counts: dict[str, int], notify: dict[str, d
     for inc in incidents:
         rows.append(
             f'<tr><td><a href="/incidents/{int(inc["id"])}">#{int(inc["id"])}</a></td>'
-            f'<td class="{e(inc["status"])}">{e(inc["status"])}</td><td class="n">{int(inc["count"])}</td>'
+            f'<td class="{e(inc["status"])}">{e(inc["status"])}</td>'
+            f'<td class="sev-{e(inc["severity"])}">{e(inc["severity"])}</td>'
+            f'<td class="n" title="{e(rate_text(inc))}">{int(inc["count"])}{_share(inc)}</td>'
             f'<td>{_rel(inc["first_seen"], now)}</td><td>{_rel(inc["last_seen"], now)}</td>'
             f'<td>{e(", ".join(inc.get("sources") or []))}</td><td class="title">{e(inc["title"])}</td>'
             f'<td class="triage">{e(triage_text(inc))}</td></tr>')
-    table = ("<table><thead><tr><th>id</th><th>status</th><th>alerts</th><th>first seen</th><th>last seen</th>"
+    table = ("<table><thead><tr><th>id</th><th>status</th><th>severity</th><th>alerts (of sessions)</th><th>first seen</th><th>last seen</th>"
              "<th>sources</th><th>what happened</th><th>triage</th></tr></thead><tbody>\n" + "\n".join(rows) + "\n</tbody></table>"
              if rows else "<p>No incidents recorded.</p>")
     sinks = []
@@ -134,7 +143,9 @@ def detail_page(d: dict, *, refresh_s: int) -> str:
     rep = d.get("representative") or {}
     facts = [("status", f'<span class="{e(d["status"])}">{e(d["status"])}</span>'
                         + (f" by {e(d['status_by'])}" if d.get("status_by") else "")),
-             ("alerts", e(d["count"])), ("first seen", e(when(d["first_seen"]))),
+             ("severity", f'<span class="sev-{e(d["severity"])}">{e(d["severity"])}</span>'),
+             ("alerts", e(f"{rate_text(d)}, from {d['reach']['sources']} source(s)")),
+             ("first seen", e(when(d["first_seen"]))),
              ("last seen", e(when(d["last_seen"]))), ("sources", e(", ".join(d.get("sources") or []))),
              ("representative session", f"{e(rep.get('source'))} / {e(rep.get('session_key'))} "
                                         f"(score {e(rep.get('score'))}, p = {e(rep.get('p_value'))})")]
