@@ -216,6 +216,37 @@ def test_storm_gives_two_incidents_not_hundreds_of_notifications(storm_data, tmp
                            for ev, step in (("opened", None), ("escalated", 10), ("escalated", 100))})
 
 
+def _by_hand(value: str) -> str:
+    """The title's redaction of a plain value, by hand: first and last character, or "…"."""
+    return "…" if len(value) <= 2 else f"{value[0]}…{value[-1]}"
+
+
+def test_storm_titles_carry_a_redacted_example_of_the_first_alert(storm_data, tmp_path_factory, tmp_path):
+    import re
+
+    _, alerts, labels = storm_data
+    log = (tmp_path_factory.getbasetemp() / "incident-storm" / "storm.log").read_text().splitlines()
+    # the line of the never-seen event is among an alert's samples wherever it stands in the session
+    unseen = [a for a in alerts if labels[a["session_key"]] == UNSEEN]
+    assert all(any("reports jammed bolt" in x for x in a["samples"]) and len(a["samples"]) <= 6 for a in unseen)
+    assert sum(not any("reports jammed bolt" in x for x in a["samples"][:3]) for a in unseen) > 50  # past the first 3
+    store = IncidentStore.open(tmp_path / "state")
+    try:
+        tr = tracker(store)
+        first: dict[int, dict] = {}
+        for a in alerts:
+            first.setdefault(tr.add(a), a)
+        shapes = {UNSEEN: (r"latch sensor on door (\S+) reports jammed bolt", "latch sensor on door {} reports jammed bolt"),
+                  RETRY: (r"door (\S+) opened on locker (\S+)", "door {} opened on locker {}")}
+        for iid, a in first.items():
+            pattern, shape = shapes[labels[a["session_key"]]]
+            line = next(x for x in log if f" req={a['session_key']} " in x and re.search(pattern, x))
+            values = re.search(pattern, line).groups()  # the first alert's own values, from the log
+            assert store.incident(iid)["title"].endswith(f" (e.g. {shape.format(*map(_by_hand, values))})")
+    finally:
+        store.close()
+
+
 # -- a damaged stored incident -----------------------------------------------------------------------------
 @pytest.mark.parametrize("sql", ["UPDATE incidents SET count = 0 WHERE id = 1",  # was a division by zero
                                  "UPDATE incidents SET centroid = '[0.5]' WHERE id = 1",

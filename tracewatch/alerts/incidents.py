@@ -252,7 +252,7 @@ class IncidentTracker:
                         "stats": stats, "centroid": total}
         if medoid != rep_id:
             rep = alert if medoid == aid else store.member_alert(iid, medoid, db=db)
-            values.update(representative=rep, title=summary.title(rep))
+            values.update(representative=rep, title=summary.retitle(row["title"], rep))
         step = max((s for s in self.cfg.escalation_steps if s <= count), default=0)
         noted = row["status"] == "open" and step > row["escalated"]
         if noted:

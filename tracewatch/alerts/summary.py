@@ -71,8 +71,94 @@ def signature(alert: dict) -> str:
     return "" if kind == "unlike" else f"{alert.get('source', '?')}\x1f{kind}\x1f{about}"
 
 
+# -- the example in a title: one real value, redacted ----------------------------------------------------
+WILDCARD = "<var>"
+HIDDEN = "«redacted»"  # as the configured redaction patterns write it (tracewatch/alerts/alert.py)
+# hidden whole: an e-mail address (anything with an @), an IP address (with or without a port), a
+# token (16 or more letters, digits and +/=_.- holding both a letter and a digit)
+_TOKEN = re.compile(r"(?=\S*[A-Za-z])(?=\S*\d)[A-Za-z0-9+/=_.\-]{16,}")
+_HOST_PORT = re.compile(r"^\[?([0-9A-Fa-f:.]+?)\]?(?::\d{1,5})?$")
+
+
+def _is_ip(value: str) -> bool:
+    import ipaddress
+
+    for text in (value, *(m.group(1) for m in [_HOST_PORT.match(value)] if m)):
+        try:
+            ipaddress.ip_address(text)
+            return True
+        except ValueError:
+            pass
+    return False
+
+
+def redact_value(value: str) -> str:
+    """One variable value as a title shows it: hidden whole when it looks like an e-mail address,
+    an IP address or a token (or the configured patterns hid part of it); otherwise its first and
+    last characters around "…" ("4512" → "4…2"), and "…" alone for one or two characters.
+    Surrounding quotes stay."""
+    if len(value) >= 2 and value[0] == value[-1] and value[0] in "\"'":
+        return value[0] + redact_value(value[1:-1]) + value[0]
+    if "@" in value or HIDDEN in value or _TOKEN.fullmatch(value) or _is_ip(value):
+        return HIDDEN
+    return "…" if len(value) <= 2 else f"{value[0]}…{value[-1]}"
+
+
+def _pattern(template: str) -> re.Pattern:
+    """A template as a regex over a raw line: its words in order, each ``<var>`` a group."""
+    var = r'("[^"]*"|\S+?)'
+    words = ["".join(var if part == WILDCARD else re.escape(part) for part in re.split(f"({WILDCARD})", w))
+             for w in template.split()]
+    return re.compile(r"(?<!\S)" + r"\s+".join(words) + r"(?!\S)")
+
+
+def example(template: str, alert: dict) -> str | None:
+    """``template`` filled in with the values of the first of ``alert``'s sample lines that it
+    matches, each redacted (:func:`redact_value`); None when it has no variable or no sample shows it."""
+    if WILDCARD not in template:
+        return None
+    pattern = _pattern(template)
+    for line in alert.get("samples") or []:
+        m = pattern.search(line)
+        if m:
+            values = iter(m.groups())
+            return re.sub(re.escape(WILDCARD), lambda _: redact_value(next(values)), " ".join(template.split()))
+    return None
+
+
 def title(alert: dict) -> str:
-    """One line naming the strongest explanation of ``alert``."""
+    """One line naming the strongest explanation of ``alert``, with an example where a sample
+    line of it shows the template's values: "never-seen event 'courier <var> authenticated' (e.g.
+    courier 4…2 authenticated)". Missing steps have none (the session has no line of them)."""
+    head = headline(alert)
+    kind, about, _ = strongest(alert)
+    if kind in _EXAMPLED:
+        shown = example(about, alert)
+        if shown is not None:
+            return f"{head}{_EG}{quote(shown)[1:-1]})"
+    return head
+
+
+_EXAMPLED = ("unseen", "retry", "frequent")  # the kinds whose subject is a line of the session
+_EG = " (e.g. "
+
+
+def retitle(old: str, alert: dict) -> str:
+    """The title for a new representative ``alert``: while it names the same template as the
+    old title, the old title's example stays (the first alert's) beside the new headline
+    ("repeated 39×" may change); else :func:`title`."""
+    kind, about, _ = strongest(alert)
+    head = headline(alert)
+    at = head.find(quote(about))
+    if kind in _EXAMPLED and at >= 0 and old.startswith(head[:at + len(quote(about))]):
+        cut = old.find(_EG, at + len(quote(about)))
+        if cut >= 0:
+            return head + old[cut:]
+    return title(alert)
+
+
+def headline(alert: dict) -> str:
+    """The title without its example."""
     kind, about, rest = strongest(alert)
     if kind == "unseen":
         return f"never-seen event {quote(about)}{rest}"
