@@ -320,7 +320,7 @@ def _sessions_per_minute(log) -> Counter:
 
 
 def test_rate_reach_and_severity_on_a_generated_day(tmp_path_factory):
-    from tracewatch.alerts.summary import rate_text, reach
+    from tracewatch.alerts.summary import detail, rate_text, reach
 
     from .incident_data import KINDS, six_kinds_day
 
@@ -331,12 +331,22 @@ def test_rate_reach_and_severity_on_a_generated_day(tmp_path_factory):
     store = IncidentStore.open(tmp_path_factory.mktemp("rate-state"))
     try:
         tr = IncidentTracker(store, cfg.incidents, clock=lambda: T0)
+        times: dict[int, list[float]] = {}
         for v in verdicts:
-            tr.add(v)
+            iid = tr.add(v)
+            if iid is not None:
+                times.setdefault(iid, []).append(v["end"])
         tr.flush()
         rows = store.incidents()
         assert len(rows) == len(KINDS)
         for row in rows:
+            # its timeline: the alerts' own end times, per bar
+            tl = detail(row, alert_counts=lambda b: store.alert_counts(b, incident_id=row["id"]))["timeline"]
+            b = tl["bucket_s"]
+            assert b == 300  # under four hours (48 bars of 5 min): 5 min each
+            assert sum(tl["alerts"]) == row["count"]
+            assert Counter({tl["start"] // b + i: n for i, n in enumerate(tl["alerts"]) if n}) == Counter(
+                int(t // b) for t in times[row["id"]])
             got = reach(row)
             first, last = int(row["first_seen"] // 60), int(row["last_seen"] // 60)
             sessions = sum(n for m, n in per_minute.items() if first <= m <= last)

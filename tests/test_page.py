@@ -179,3 +179,17 @@ def test_relative_times():
     html_ = list_page([brief({"id": 1, "status": "open", "count": 2, "first_seen": now - 600, "last_seen": now - 30,
                               "title": "t", "stats": {}})], {}, {}, refresh_s=30, now=now)
     assert '<span title="2027-01-15 07:59:30 UTC">30 s ago</span>' in html_  # date(1) -ud @1799999970
+
+
+def test_detail_page_charts_alerts_over_time(served):
+    t0 = 1_800_000_000.0  # 08:00:00 UTC: alerts in minutes 0, 0 and 2 → bars of 2, 0 and 1
+    ids = {served.incidents.add(toy_alert(f"t{n}", "A", t=t0 + dt)) for n, dt in enumerate((0, 10, 130))}
+    assert len(ids) == 1
+    status, headers, body = request(served.port, "GET", f"/incidents/{ids.pop()}")
+    html_ = body.decode()
+    svg = re.findall(r"<svg .*?</svg>", html_)
+    assert status == 200 and len(svg) == 1 and "script" not in headers["Content-Security-Policy"]
+    # 720 px over three bars: 240 px slots, bars 192 px wide; 102 px of plot: the peak is full height
+    assert re.findall(r'<rect x="(\d+)" y="(\d+)" width="(\d+)" height="(\d+)"/>', svg[0]) == [
+        ("0", "0", "192", "102"), ("480", "51", "192", "51")]
+    assert "2027-01-15 08:00:00 UTC" in svg[0] and "2027-01-15 08:02:00 UTC" in svg[0] and "peak 2 per 1 min" in svg[0]

@@ -114,6 +114,10 @@ def test_cli_table_json_since_show_and_status(filled):
     shown = run_cli("incidents", "show", "2", *c, check=True).stdout
     assert "incident #2: never-seen event 'event B <var>'" in shown
     assert "\x1b" not in shown and "?[31mred?[0m <b>bold</b>" in shown  # terminal-safe sample
+    assert "alerts over time (1 min per bar, UTC):" in shown  # one alert: one bar of one
+    assert [line.split()[-2:] for line in shown.splitlines() if line.endswith("█ 1")] == [["█" * 40, "1"]]
+    old = json.loads(run_cli("incidents", "show", "1", *c, "--json", check=True).stdout)["timeline"]
+    assert old["bucket_s"] == 60 and old["alerts"] == [3]  # three alerts a second apart
     detail = json.loads(run_cli("incidents", "show", "2", *c, "--json", check=True).stdout)
     assert detail["diff"] == ["not seen before: event B <var>"] and detail["representative"]["alert_id"] == "new"
     out = run_cli("incidents", "ack", "1", *c, "--note", "on it", check=True).stdout

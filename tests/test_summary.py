@@ -5,12 +5,14 @@ from __future__ import annotations
 
 import itertools
 import json
+from collections import Counter
 
 import pytest
 
 from tracewatch.alerts.alert import Redactor
-from tracewatch.alerts.summary import (HIDDEN, MAX_SAMPLE, brief, detail, example, rate_text, reach, redact_value,
-                                       retitle, safe, severity, table, text, title)
+from tracewatch.alerts.summary import (HIDDEN, MAX_SAMPLE, brief, bucket_for, detail, example, rate_text, reach,
+                                       redact_value, retitle, safe, severity, table, text, timeline, timeline_text,
+                                       title)
 from tracewatch.service.incidents import Incidents
 
 from .incident_data import config, storm, toy_alert
@@ -162,3 +164,24 @@ def test_title_carries_one_redacted_example():
     assert title(retry) == f"retry of '{door}' repeated 37× (e.g. door 4…1 opened)"
     assert retitle(title(retry), again) == f"retry of '{door}' repeated 12× (e.g. door 4…1 opened)"
     assert retitle(title(alert), {**other, "unseen_events": [{"template": "x <var>", "count": 1}]}) == "never-seen event 'x <var>'"
+
+
+# -- alerts over time ----------------------------------------------------------------------------------
+@pytest.mark.parametrize("span_s, bucket", [(0, 60), (47 * 60, 60), (48 * 60, 300), (5 * 3600, 600),
+                                             (23 * 3600, 1800), (24 * 3600, 3600), (47 * 86_400, 86_400), (94 * 86_400, 2 * 86_400)],
+                         ids=["one-alert", "47-min", "48-min", "5-h", "23-h", "1-d", "47-d", "94-d"])
+def test_bar_width(span_s, bucket):
+    # at most 48 bars, both ends included: 24 h from 08:00 in 30-min bars would be 49
+    t0 = 1_800_000_000.0  # 2027-01-15 08:00 UTC, on a whole hour
+    b = bucket_for(t0, t0 + span_s)
+    assert b == bucket and int((t0 + span_s) // b) - int(t0 // b) < 48
+
+
+def test_timeline_by_hand():
+    # alerts at 08:00:30, 08:01:10, 08:01:50 and 08:03:00: bars of one minute from 08:00 to 08:03
+    t0 = 1_800_000_000.0
+    times = [t0 + 30, t0 + 70, t0 + 110, t0 + 180]
+    tl = timeline(times[0], times[-1], lambda b: dict(Counter(int(t // b) for t in times)))
+    assert tl == {"bucket_s": 60, "start": t0, "alerts": [1, 2, 0, 1]}
+    assert timeline_text(tl, width=4) == ["alerts over time (1 min per bar, UTC):", "  01-15 08:00  ██ 1",
+                                          "  01-15 08:01  ████ 2", "  01-15 08:02  0", "  01-15 08:03  ██ 1"]

@@ -276,7 +276,8 @@ def cmd_incidents(args) -> int:
                 found = store.incident(args.id)
                 if found is None:
                     raise IncidentNotFound(args.id)
-                detail = summary.detail(found, max_samples=cfg.incidents.max_samples, redact=Redactor(cfg.redact))
+                detail = summary.detail(found, max_samples=cfg.incidents.max_samples, redact=Redactor(cfg.redact),
+                                        alert_counts=lambda b: store.alert_counts(b, incident_id=args.id))
             else:  # IncidentNotFound, InvalidTransition: one line, exit code 1
                 out = set_status(store, args.id, action, by=f"cli:{getpass.getuser()}", note=args.note or "")
                 detail = summary.brief(out)

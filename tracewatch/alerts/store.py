@@ -150,6 +150,18 @@ def _from_representative(path: str) -> str:
     return f"CASE WHEN json_valid(representative) THEN json_extract(representative, '{path}') ELSE x'00' END"
 
 
+def _filters(*, status: str | None = None, since: float | None = None, incident_id: int | None = None
+             ) -> tuple[str, list]:
+    """The WHERE clause (and its arguments) choosing incidents of a status, active since, or one."""
+    where, args = [], []
+    for sql, value in (("incidents.status = ?", status), ("incidents.last_seen >= ?", since),
+                       ("incidents.id = ?", incident_id)):
+        if value is not None:
+            where.append(sql)
+            args.append(value)
+    return ("WHERE " + " AND ".join(where) if where else ""), args
+
+
 def dumps(obj) -> str:
     return orjson.dumps(obj, option=orjson.OPT_SERIALIZE_NUMPY).decode()
 
@@ -310,18 +322,18 @@ class IncidentStore:
     def incidents(self, *, status: str | None = None, since: float | None = None, limit: int = 100,
                   offset: int = 0) -> list[dict]:
         """Incidents, most recently active first, without the heavy columns."""
-        where, args = [], []
-        if status is not None:
-            where.append("status = ?")
-            args.append(status)
-        if since is not None:
-            where.append("last_seen >= ?")
-            args.append(since)
-        sql = f"SELECT {_READ_COLUMNS} FROM incidents"
-        if where:
-            sql += " WHERE " + " AND ".join(where)
-        sql += " ORDER BY last_seen DESC, id DESC LIMIT ? OFFSET ?"
+        where, args = _filters(status=status, since=since)
+        sql = f"SELECT {_READ_COLUMNS} FROM incidents {where} ORDER BY last_seen DESC, id DESC LIMIT ? OFFSET ?"
         return self._rows(sql, (*args, limit, offset))
+
+    def alert_counts(self, bucket_s: int, *, incident_id: int | None = None, status: str | None = None,
+                     since: float | None = None) -> dict[int, int]:
+        """Alerts per bucket of ``bucket_s`` seconds of event time (bucket n starts at n × bucket_s):
+        of one incident, or of every incident (of a status, active since)."""
+        where, args = _filters(status=status, since=since, incident_id=incident_id)
+        found = self.db.execute(f"SELECT CAST(a.ts / ? AS INTEGER), COUNT(*) FROM alerts a JOIN incidents "
+                                f"ON incidents.id = a.incident_id {where} GROUP BY 1", (bucket_s, *args))
+        return {b: n for b, n in found if isinstance(b, int)}  # (a damaged time is left out)
 
     def counts(self) -> dict[str, int]:
         return dict(self.db.execute("SELECT status, COUNT(*) FROM incidents GROUP BY status").fetchall())

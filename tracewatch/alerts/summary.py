@@ -204,9 +204,12 @@ def reach(incident: dict) -> dict:
             "reach": {"share": share, "sources": n_sources}}
 
 
-def _span(seconds: float) -> str:
+def duration(seconds: float) -> str:
+    """A length of time in words: "10 min", "3.0 h", "2 d"."""
     minutes = round(seconds / 60)
-    return f"{minutes} min" if minutes < 120 else f"{minutes / 60:.1f} h"
+    if minutes < 120:
+        return f"{minutes} min"
+    return f"{minutes / 60:.1f} h" if minutes < 48 * 60 else f"{minutes / 1440:.3g} d"
 
 
 def rate_text(d: dict) -> str:
@@ -214,9 +217,32 @@ def rate_text(d: dict) -> str:
     rate, share = d["rate"], d["reach"]["share"]
     of = ", ".join(d.get("sources") or []) or "its sources"
     if share is None:
-        return f"{rate['alerts']} alerts in {_span(rate['window_s'])} (sessions of {of} not counted)"
+        return f"{rate['alerts']} alerts in {duration(rate['window_s'])} (sessions of {of} not counted)"
     pct = f"{share:.0%}" if share >= 0.01 else f"{share:.1%}"
-    return f"{rate['alerts']} of {rate['sessions']} sessions of {of} in {_span(rate['window_s'])} ({pct})"
+    return f"{rate['alerts']} of {rate['sessions']} sessions of {of} in {duration(rate['window_s'])} ({pct})"
+
+
+# -- alerts over time ---------------------------------------------------------------------------------
+BUCKETS_S = (60, 300, 600, 1800, 3600, 3 * 3600, 6 * 3600, 86_400)  # the widths a bar may have
+MAX_BARS = 48
+
+
+def bucket_for(first: float, last: float) -> int:
+    """The narrowest bar of :data:`BUCKETS_S` that shows ``first`` … ``last`` in at most
+    :data:`MAX_BARS` bars (whole days per bar beyond)."""
+    for b in BUCKETS_S:
+        if int(last // b) - int(first // b) < MAX_BARS:
+            return b
+    return 86_400 * -(-int(last - first) // (86_400 * (MAX_BARS - 1)))
+
+
+def timeline(first: float, last: float, alert_counts: Callable[[int], dict[int, int]]) -> dict:
+    """Alerts per bar from ``first`` to ``last``: ``{"bucket_s", "start", "alerts": [n, …]}``;
+    ``alert_counts(bucket_s)`` gives the alerts per bucket index (as the store counts them)."""
+    b = bucket_for(first, last)
+    lo, hi = int(first // b), int(last // b)
+    got = alert_counts(b)
+    return {"bucket_s": b, "start": lo * b, "alerts": [got.get(i, 0) for i in range(lo, hi + 1)]}
 
 
 def shared(stats: dict, count: int) -> dict[str, list[dict]]:
@@ -229,9 +255,11 @@ def shared(stats: dict, count: int) -> dict[str, list[dict]]:
     return out
 
 
-def detail(incident: dict, *, max_samples: int = 5, redact: Callable[[str], str] | None = None) -> dict:
-    """The incident with what a person needs to act: title, step difference, what its alerts
-    share, the closest normal session, and bounded, redacted sample lines."""
+def detail(incident: dict, *, max_samples: int = 5, redact: Callable[[str], str] | None = None,
+           alert_counts: Callable[[int], dict[int, int]] | None = None) -> dict:
+    """The incident with what a person needs to act: title, rate and severity, step difference,
+    what its alerts share, the closest normal session, bounded, redacted sample lines, and (given
+    ``alert_counts``, see :func:`timeline`) its alerts over time."""
     rep = incident.get("representative") or {}
     samples = [s if len(s) <= MAX_SAMPLE else s[:MAX_SAMPLE - 1] + "…" for s in (rep.get("samples") or [])]
     if redact is not None:
@@ -247,6 +275,8 @@ def detail(incident: dict, *, max_samples: int = 5, redact: Callable[[str], str]
         "diff": diff,
         "closest_normal": list(rep.get("closest_normal") or [])[:200],
         "samples": samples[:max_samples],
+        **({"timeline": timeline(incident["first_seen"], incident["last_seen"], alert_counts)}
+           if alert_counts is not None else {}),
         "representative": {k: rep.get(k) for k in ("alert_id", "source", "session_key", "score", "p_value",
                                                      "reasons", "cluster", "events", "baseline_version",
                                                      "start", "end")},
@@ -315,6 +345,8 @@ def text(d: dict) -> str:
              f"(alert {rep.get('alert_id')}, score {rep.get('score')})"]
     if d.get("note"):
         lines.append(f"  note        {safe(d['note'])}")
+    if d.get("timeline"):
+        lines += timeline_text(d["timeline"])
     if d.get("diff"):
         lines.append("difference from the closest normal session:")
         lines += [f"  {safe(x)}" for x in d["diff"]]
@@ -328,6 +360,18 @@ def text(d: dict) -> str:
         lines.append("sample lines (redacted):")
         lines += [f"  {safe(s)}" for s in d["samples"]]
     return "\n".join(lines)
+
+
+def timeline_text(tl: dict, *, width: int = 40) -> list[str]:
+    """A timeline (:func:`timeline`) as one line per bar: its start (UTC), a bar, the count."""
+    b, alerts = tl["bucket_s"], tl["alerts"]
+    top = max(alerts, default=0) or 1
+    lines = [f"alerts over time ({duration(b)} per bar, UTC):"]
+    for i, n in enumerate(alerts):
+        at = _utc(tl["start"] + i * b)
+        bar = "█" * max(1 if n else 0, round(width * n / top))
+        lines.append(f"  {at[5:16] if b < 86_400 else at[:10]}  {bar}{' ' if n else ''}{n}")
+    return lines
 
 
 def _num(x, digits: int = 3) -> str:

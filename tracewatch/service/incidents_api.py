@@ -131,7 +131,8 @@ def _get(h: BaseHTTPRequestHandler, inc: Incidents, path: str, query: dict[str, 
         else:
             _html(h, 404, page.message_page("Not found", f"No incident at {path}.", refresh_s=cfg.page_refresh_s))
         return
-    d = detail(found, max_samples=cfg.max_samples, redact=Redactor(inc.cfg.redact))
+    d = detail(found, max_samples=cfg.max_samples, redact=Redactor(inc.cfg.redact),
+               alert_counts=lambda b: store.alert_counts(b, incident_id=found["id"]))
     if path.startswith("/api/"):
         d["alert_ids"] = store.alert_ids(d["id"])
         send_json(h, 200, d)

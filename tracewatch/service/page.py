@@ -16,7 +16,7 @@ import time
 from datetime import datetime, timezone
 
 from ..alerts.store import STATUSES
-from ..alerts.summary import rate_text
+from ..alerts.summary import duration, rate_text
 
 CAUTION = ("This page shows text taken from logs (after the configured redaction patterns); logs can hold "
            "secrets and personal data. Keep this port on loopback or behind your own access control. "
@@ -89,6 +89,32 @@ def triage_text(inc: dict) -> str:
     return f"triage {verb} {hint['label']} (margin {hint.get('margin')})"
 
 
+# -- alerts over time: inline SVG (markup of the page, not a fetched resource: the CSP allows it) --
+BAR = "#d9480f"  # the bars' colour (the browser test looks for it in a screenshot)
+
+
+def bars_svg(tl: dict, *, width: int = 720, height: int = 120, axis: bool = True) -> str:
+    """A timeline (:func:`tracewatch.alerts.summary.timeline`) as an SVG bar chart: one bar per
+    bucket, scaled to the peak; with ``axis``, the first and last bucket's times and the peak."""
+    alerts, b = tl["alerts"], tl["bucket_s"]
+    slot = max(1, width // max(1, len(alerts)))
+    width = slot * max(1, len(alerts))
+    plot = height - (18 if axis else 0)
+    top = max(alerts, default=0) or 1
+    rects = "".join(f'<rect x="{i * slot}" y="{plot - h}" width="{max(1, slot - max(1, slot // 5))}" height="{h}"/>'
+                    for i, n in enumerate(alerts) if n for h in [max(1, round(plot * n / top))])
+    labels = ""
+    if axis:
+        last = tl["start"] + (len(alerts) - 1) * b
+        labels = (f'<g font-size="11" fill="#555"><text x="0" y="{height - 4}">{e(when(tl["start"]))}</text>'
+                  f'<text x="{width}" y="{height - 4}" text-anchor="end">{e(when(last))}</text>'
+                  f'<text x="{width}" y="11" text-anchor="end">peak {int(top)} per {e(duration(b))}</text></g>')
+    return (f'<svg class="chart" xmlns="http://www.w3.org/2000/svg" width="{width}" height="{height}" '
+            f'viewBox="0 0 {width} {height}" role="img" aria-label="alerts over time, {e(duration(b))} per bar">'
+            f'<line x1="0" y1="{plot}" x2="{width}" y2="{plot}" stroke="#bbb"/>'
+            f'<g fill="{BAR}" shape-rendering="crispEdges">{rects}</g>{labels}</svg>')
+
+
 def _share(inc: dict) -> str:
     share = inc["reach"]["share"]
     return "" if share is None else f' <small>({share:.0%} of {int(inc["rate"]["sessions"])})</small>'
@@ -155,6 +181,8 @@ def detail_page(d: dict, *, refresh_s: int) -> str:
         facts.append(("triage", e(triage_text(d))))
     parts = [f"<p><a href=\"/\">← all incidents</a></p><h1>#{iid}: {e(d['title'])}</h1>",
              "<table>" + "".join(f"<tr><th>{k}</th><td>{v}</td></tr>" for k, v in facts) + "</table>"]
+    if d.get("timeline"):
+        parts.append(f"<h2>Alerts over time</h2>{bars_svg(d['timeline'])}")
     if d.get("diff"):
         parts.append("<h2>Difference from the closest normal session</h2><ul class=\"diff\">"
                      + "".join(f"<li>{e(line)}</li>" for line in d["diff"]) + "</ul>")
