@@ -131,10 +131,11 @@ _LIST_COLUMNS = ("id, status, title, first_seen, last_seen, count, escalated, cr
                  "(SELECT label FROM labels WHERE labels.incident_id = incidents.id)")
 _LIST_KEYS = ("id", "status", "title", "first_seen", "last_seen", "count", "escalated", "created",
               "status_changed", "status_by", "note")
+# an incident's sources (the keys of its statistics' "sources"; none where the column is not JSON)
+_SOURCES = "json_each(CASE WHEN json_valid(incidents.stats) THEN incidents.stats ELSE '{}' END, '$.sources')"
 # the sessions scored of an incident's sources in the minutes of its window (first to last alert)
-_SESSIONS = ("(SELECT COALESCE(SUM(s.count), 0) FROM sessions s WHERE s.source IN (SELECT key FROM json_each("
-             "CASE WHEN json_valid(incidents.stats) THEN incidents.stats ELSE '{}' END, '$.sources')) "
-             "AND s.minute BETWEEN CAST(incidents.first_seen / 60 AS INTEGER) "
+_SESSIONS = ("(SELECT COALESCE(SUM(s.count), 0) FROM sessions s WHERE s.source IN (SELECT key FROM "
+             f"{_SOURCES}) AND s.minute BETWEEN CAST(incidents.first_seen / 60 AS INTEGER) "
              "AND CAST(incidents.last_seen / 60 AS INTEGER))")
 # what is read for showing an incident: the listed columns and the sessions of its window
 _READ_COLUMNS = f"{_LIST_COLUMNS}, {_SESSIONS}"
@@ -150,12 +151,14 @@ def _from_representative(path: str) -> str:
     return f"CASE WHEN json_valid(representative) THEN json_extract(representative, '{path}') ELSE x'00' END"
 
 
-def _filters(*, status: str | None = None, since: float | None = None, incident_id: int | None = None
-             ) -> tuple[str, list]:
-    """The WHERE clause (and its arguments) choosing incidents of a status, active since, or one."""
+def _filters(*, status: str | None = None, since: float | None = None, incident_id: int | None = None,
+             source: str | None = None, from_ts: float | None = None) -> tuple[str, list]:
+    """The WHERE clause (and its arguments) choosing incidents of a status, active since, of a
+    source, or one; and (``from_ts``, with the alerts table as ``a``) alerts since."""
     where, args = [], []
     for sql, value in (("incidents.status = ?", status), ("incidents.last_seen >= ?", since),
-                       ("incidents.id = ?", incident_id)):
+                       ("incidents.id = ?", incident_id), ("a.ts >= ?", from_ts),
+                       (f"EXISTS (SELECT 1 FROM {_SOURCES} WHERE key = ?)", source)):
         if value is not None:
             where.append(sql)
             args.append(value)
@@ -319,18 +322,26 @@ class IncidentStore:
         return [self._row(r) for r in self.db.execute(sql, args)]
 
     # -- reading -----------------------------------------------------------------------------------
-    def incidents(self, *, status: str | None = None, since: float | None = None, limit: int = 100,
-                  offset: int = 0) -> list[dict]:
-        """Incidents, most recently active first, without the heavy columns."""
-        where, args = _filters(status=status, since=since)
-        sql = f"SELECT {_READ_COLUMNS} FROM incidents {where} ORDER BY last_seen DESC, id DESC LIMIT ? OFFSET ?"
+    def incidents(self, *, status: str | None = None, since: float | None = None, source: str | None = None,
+                  limit: int = 100, offset: int = 0, open_first: bool = False) -> list[dict]:
+        """Incidents (of a status, active since, of a source), most recently active first — the
+        open ones before all others with ``open_first`` — without the heavy columns."""
+        where, args = _filters(status=status, since=since, source=source)
+        order = "status = 'open' DESC, " if open_first else ""
+        sql = (f"SELECT {_READ_COLUMNS} FROM incidents {where} ORDER BY {order}last_seen DESC, id DESC "
+               "LIMIT ? OFFSET ?")
         return self._rows(sql, (*args, limit, offset))
 
+    def sources(self, limit: int = 50) -> list[str]:
+        """The sources incidents came from, by name."""
+        return [r[0] for r in self.db.execute(f"SELECT DISTINCT key FROM incidents, {_SOURCES} "
+                                              "WHERE typeof(key) = 'text' ORDER BY key LIMIT ?", (limit,))]
+
     def alert_counts(self, bucket_s: int, *, incident_id: int | None = None, status: str | None = None,
-                     since: float | None = None) -> dict[int, int]:
+                     source: str | None = None, from_ts: float | None = None) -> dict[int, int]:
         """Alerts per bucket of ``bucket_s`` seconds of event time (bucket n starts at n × bucket_s):
-        of one incident, or of every incident (of a status, active since)."""
-        where, args = _filters(status=status, since=since, incident_id=incident_id)
+        of one incident, or of every incident (of a status, of a source), from ``from_ts`` on."""
+        where, args = _filters(status=status, incident_id=incident_id, source=source, from_ts=from_ts)
         found = self.db.execute(f"SELECT CAST(a.ts / ? AS INTEGER), COUNT(*) FROM alerts a JOIN incidents "
                                 f"ON incidents.id = a.incident_id {where} GROUP BY 1", (bucket_s, *args))
         return {b: n for b, n in found if isinstance(b, int)}  # (a damaged time is left out)

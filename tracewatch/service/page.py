@@ -13,6 +13,7 @@ from __future__ import annotations
 
 import html
 import time
+from urllib.parse import urlencode
 from datetime import datetime, timezone
 
 from ..alerts.store import STATUSES
@@ -34,7 +35,7 @@ vertical-align:top}th{background:#f3f3f3}td.n{text-align:right;font-variant-nume
 .sev-high{color:#8a3b00;font-weight:600}.sev-low{color:#555}.acknowledged{color:#8a5a00}.resolved{color:#2f6b2f}.expected{color:#555}
 pre{background:#f6f6f6;padding:.6em;overflow-x:auto;white-space:pre-wrap;word-break:break-all}
 footer{margin-top:2.5em;font-size:.85em;color:#555;border-top:1px solid #ddd;padding-top:.6em}
-code{background:#f3f3f3;padding:0 .2em}
+code{background:#f3f3f3;padding:0 .2em}td.title{overflow-wrap:anywhere}svg.chart{display:block}
 """
 
 
@@ -91,6 +92,7 @@ def triage_text(inc: dict) -> str:
 
 # -- alerts over time: inline SVG (markup of the page, not a fetched resource: the CSP allows it) --
 BAR = "#d9480f"  # the bars' colour (the browser test looks for it in a screenshot)
+MAX_BAR = 48  # pixels: a bar is never wider (a chart of one or two bars stays a chart)
 
 
 def bars_svg(tl: dict, *, width: int = 720, height: int = 120, axis: bool = True) -> str:
@@ -101,7 +103,8 @@ def bars_svg(tl: dict, *, width: int = 720, height: int = 120, axis: bool = True
     width = slot * max(1, len(alerts))
     plot = height - (18 if axis else 0)
     top = max(alerts, default=0) or 1
-    rects = "".join(f'<rect x="{i * slot}" y="{plot - h}" width="{max(1, slot - max(1, slot // 5))}" height="{h}"/>'
+    bar = min(MAX_BAR, max(1, slot - max(1, slot // 5)))  # a gap of a fifth between bars
+    rects = "".join(f'<rect x="{i * slot}" y="{plot - h}" width="{bar}" height="{h}"/>'
                     for i, n in enumerate(alerts) if n for h in [max(1, round(plot * n / top))])
     labels = ""
     if axis:
@@ -120,31 +123,56 @@ def _share(inc: dict) -> str:
     return "" if share is None else f' <small>({share:.0%} of {int(inc["rate"]["sessions"])})</small>'
 
 
+def _href(**params) -> str:
+    """A link to the list with these filters (escaped for an attribute)."""
+    query = urlencode({k: v for k, v in params.items() if v is not None})
+    return e("/?" + query if query else "/")
+
+
+def _choice(label: str, href: str, chosen: bool, cls: str = "") -> str:
+    attr = f' class="{e(cls)}"' if cls else ""
+    link = f'<a{attr} href="{href}">{label}</a>'
+    return f"<strong>{link}</strong>" if chosen else link
+
+
 def list_page(incidents: list[dict], counts: dict[str, int], notify: dict[str, dict], *, refresh_s: int,
-              status: str | None = None, offset: int = 0, limit: int = 200, now: float | None = None) -> str:
-    """One page of incidents (of one ``status``, if given), most recently active first; each
-    status in the tally links to its filter, and "newer"/"older" links page through."""
-    tally = ", ".join(f'<a class="{e(s)}" href="/?status={e(s)}">{counts.get(s, 0)} {e(s)}</a>'
-                      for s in STATUSES) + ' — <a href="/">all</a>'
+              status: str | None = None, source: str | None = None, sources: list[str] = (), offset: int = 0,
+              limit: int = 200, now: float | None = None, overall: dict | None = None,
+              charts: dict[int, dict] | None = None) -> str:
+    """One page of incidents (of one ``status`` and one ``source``, if given), open ones first,
+    then most recently active first; each status in the tally and each source links to its
+    filter, and "newer"/"older" links page through. ``overall`` (alerts over time of every
+    incident of the filter) and ``charts`` (per incident id, on the same time axis) are drawn as
+    inline SVG."""
+    tally = ", ".join(_choice(f"{counts.get(s, 0)} {e(s)}", _href(status=s, source=source), s == status, s)
+                      for s in STATUSES) + " — " + _choice("all", _href(source=source), status is None)
+    by_source = ""
+    if sources or source:
+        by_source = "<p>sources: " + " · ".join(
+            _choice(e(name), _href(status=status, source=name), name == source)
+            for name in sorted({*sources, *([source] if source else [])})) + " — " + _choice(
+            "all sources", _href(status=status), source is None) + "</p>"
     now = time.time() if now is None else now
-    keep = f"status={e(status)}&amp;" if status else ""
     paging = []
     if offset > 0:
-        paging.append(f'<a href="/?{keep}offset={max(0, offset - limit)}&amp;limit={limit}">newer</a>')
+        paging.append(f'<a href="{_href(status=status, source=source, offset=max(0, offset - limit), limit=limit)}">newer</a>')
     if len(incidents) == limit:
-        paging.append(f'<a href="/?{keep}offset={offset + limit}&amp;limit={limit}">older</a>')
+        paging.append(f'<a href="{_href(status=status, source=source, offset=offset + limit, limit=limit)}">older</a>')
+    charts = charts or {}
     rows = []
     for inc in incidents:
+        chart = bars_svg(charts[inc["id"]], width=144, height=24, axis=False) if inc["id"] in charts else ""
         rows.append(
             f'<tr><td><a href="/incidents/{int(inc["id"])}">#{int(inc["id"])}</a></td>'
             f'<td class="{e(inc["status"])}">{e(inc["status"])}</td>'
             f'<td class="sev-{e(inc["severity"])}">{e(inc["severity"])}</td>'
             f'<td class="n" title="{e(rate_text(inc))}">{int(inc["count"])}{_share(inc)}</td>'
-            f'<td>{_rel(inc["first_seen"], now)}</td><td>{_rel(inc["last_seen"], now)}</td>'
+            f'<td>{chart}</td><td>{_rel(inc["first_seen"], now)}</td><td>{_rel(inc["last_seen"], now)}</td>'
             f'<td>{e(", ".join(inc.get("sources") or []))}</td><td class="title">{e(inc["title"])}</td>'
             f'<td class="triage">{e(triage_text(inc))}</td></tr>')
-    table = ("<table><thead><tr><th>id</th><th>status</th><th>severity</th><th>alerts (of sessions)</th><th>first seen</th><th>last seen</th>"
-             "<th>sources</th><th>what happened</th><th>triage</th></tr></thead><tbody>\n" + "\n".join(rows) + "\n</tbody></table>"
+    table = ("<table><thead><tr><th>id</th><th>status</th><th>severity</th><th>alerts (of sessions)</th>"
+             "<th>over time</th><th>first seen</th><th>last seen</th><th>sources</th><th>what happened</th>"
+             "<th>triage</th></tr></thead><tbody>\n" + "\n".join(rows) + "\n</tbody></table>"
              if rows else "<p>No incidents recorded.</p>")
     sinks = []
     for name, st in notify.items():
@@ -153,9 +181,13 @@ def list_page(incidents: list[dict], counts: dict[str, int], notify: dict[str, d
             state += f", last error: {st['last_error']}"
         sinks.append(f"<li>{e(name)}: {e(state)}</li>")
     notes = f"<h2>Notifications</h2><ul>{''.join(sinks)}</ul>" if sinks else ""
-    shown = f"<p>showing {e(status) if status else 'all'}, from #{offset + 1}" + (
+    what = f"{e(status) if status else 'all'}" + (f" of {e(source)}" if source else "")
+    shown = f"<p>showing {what}, open first, from #{offset + 1}" + (
         f" — {' · '.join(paging)}" if paging else "") + "</p>"
-    body = f"<h1>tracewatch — incidents</h1><p>{tally}</p>\n{shown}\n{table}\n{notes}"
+    drawn = (f'<h2>Alerts over time</h2><div class="overall">{bars_svg(overall)}</div>'
+             f"<p><small>every incident shown by this filter ({what}), per {e(duration(overall['bucket_s']))}"
+             "</small></p>" if overall is not None else "")
+    body = f"<h1>tracewatch — incidents</h1><p>{tally}</p>\n{by_source}\n{shown}\n{drawn}\n{table}\n{notes}"
     return _page("tracewatch incidents", body, refresh_s=refresh_s)
 
 
