@@ -359,3 +359,47 @@ def test_rate_reach_and_severity_on_a_generated_day(tmp_path_factory):
                 f"{row['count']} of {sessions} sessions of locker-api in ")
     finally:
         store.close()
+
+
+# -- `score --incidents`: a replay grouped as the daemon groups ----------------------------------------
+def test_score_incidents_groups_a_replay_as_the_daemon_does(tmp_path):
+    import json
+
+    from tracewatch.demo.scenario import parcel_lockers
+
+    from .conftest import run_cli
+    from .incident_data import KINDS, six_kinds_day
+
+    root = tmp_path / "day"
+    cfg, alerts, labels = six_kinds_day(root)
+    assert len(alerts) >= 150 and {labels[a["session_key"]] for a in alerts} == set(KINDS)
+    conf = root / "tw.toml"  # the config six_kinds_day scored with (incident_data.config), as a file
+    conf.write_text(f"state_dir = 'state'\n[[sources]]\nname = 'locker-api'\nline_pattern = '''"
+                    f"{parcel_lockers().line_pattern}'''\n[sessions]\nidle_timeout_s = 30\n"
+                    "[model]\nfalse_alarm_rate = 0.01\n")
+    day = str(root / "day.log")
+    replayed = [json.loads(x) for x in run_cli("score", "--config", str(conf), "--incidents", day,
+                                               check=True).stdout.splitlines()]
+    kind_of = {a["alert_id"]: labels[a["session_key"]] for a in alerts}
+    assert len(replayed) <= 12
+    assert [len(i["alert_ids"]) for i in replayed] == [i["count"] for i in replayed]
+    assert sorted(a for i in replayed for a in i["alert_ids"]) == sorted(kind_of)  # every alert, once
+    for inc in replayed:
+        assert len({kind_of[a] for a in inc["alert_ids"]}) == 1, inc["title"]  # each of one kind
+        assert inc["severity"] in ("high", "critical") and sum(inc["timeline"]["alerts"]) == inc["count"]
+    # the same incidents as the daemon's grouping of the same alerts in a store
+    store = IncidentStore.open(tmp_path / "state")
+    try:
+        tr = IncidentTracker(store, cfg.incidents, clock=lambda: T0)
+        members: dict[int, set[str]] = {}
+        for a in alerts:
+            members.setdefault(tr.add(a), set()).add(a["alert_id"])
+        daemon = sorted((store.incident(i)["title"], sorted(ids)) for i, ids in members.items())
+    finally:
+        store.close()
+    assert sorted((i["title"], sorted(i["alert_ids"])) for i in replayed) == daemon
+    text = run_cli("score", "--config", str(conf), "--incidents", "-o", "text", day, check=True).stdout
+    assert text.splitlines()[0].split()[:3] == ["ID", "STATUS", "ALERTS"] and text.count("incident #") == len(replayed)
+    assert "alerts over time" in text
+    proc = run_cli("score", "--config", str(conf), "--incidents", "--all", day)
+    assert proc.returncode == 2 and "choose one" in proc.stderr

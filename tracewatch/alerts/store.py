@@ -365,6 +365,7 @@ class IncidentStore:
         return out
 
     def alert_ids(self, incident_id: int, limit: int = 100) -> list[str]:
+        """The ids of an incident's alerts, newest first (``limit`` -1: all)."""
         if not storable_id(incident_id):
             return []
         rows_ = self.db.execute("SELECT alert_id FROM alerts WHERE incident_id = ? ORDER BY ts DESC LIMIT ?",
