@@ -227,7 +227,9 @@ def cmd_run(args) -> int:
 INCIDENTS_HELP = (
     "Incidents are alerts grouped by resemblance; the daemon keeps them in <state_dir>/incidents.db. "
     "Without an action, print a compact table (most recently active first); 'show ID' prints one in "
-    "detail; 'ack', 'resolve' and 'expected' change its status. Reads the state directly (--config) "
+    "detail (with its timeline); 'ack', 'resolve' and 'expected' change its status. Each incident shows "
+    "its severity and rate: its alerts against the sessions scored of its sources while it ran (README, "
+    "Incidents). Reads the state directly (--config) "
     "or a running daemon's API (--url); a state change through --url needs the bearer token ([incidents] "
     "token, or the environment variable named by token_env, default TRACEWATCH_INCIDENT_TOKEN). "
     "Caution: incidents carry log-derived text (redacted by your patterns); keep the daemon's port on "

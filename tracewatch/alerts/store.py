@@ -86,6 +86,7 @@ CREATE TABLE IF NOT EXISTS alerts (
     ts REAL NOT NULL
 );
 CREATE INDEX IF NOT EXISTS alerts_incident ON alerts (incident_id, ts);
+CREATE INDEX IF NOT EXISTS alerts_ts ON alerts (ts);
 CREATE TABLE IF NOT EXISTS outbox (
     id INTEGER PRIMARY KEY AUTOINCREMENT,
     incident_id INTEGER NOT NULL,
@@ -123,7 +124,8 @@ _MIGRATIONS = {1: ("ALTER TABLE incidents ADD COLUMN suggestion TEXT NOT NULL DE
                2: ("ALTER TABLE incidents ADD COLUMN signature TEXT NOT NULL DEFAULT ''",),
                # -- sessions scored per source and minute (rate and reach): schema 3 → 4 --
                3: ("CREATE TABLE IF NOT EXISTS sessions (source TEXT NOT NULL, minute INTEGER NOT NULL, "
-                   "count INTEGER NOT NULL, PRIMARY KEY (source, minute)) WITHOUT ROWID",)}
+                   "count INTEGER NOT NULL, PRIMARY KEY (source, minute)) WITHOUT ROWID",
+                   "CREATE INDEX IF NOT EXISTS alerts_ts ON alerts (ts)")}  # (the page's chart of every incident)
 
 # the columns every incident listing returns (the heavy JSON columns only on demand)
 _LIST_COLUMNS = ("id, status, title, first_seen, last_seen, count, escalated, created, status_changed, "

@@ -324,9 +324,9 @@ def table(rows: list[dict], *, width: int = 60) -> str:
         sources = safe(",".join(r.get("sources") or []))
         sources = sources if len(sources) <= 16 else sources[:15] + "…"
         t = safe(r["title"])
-        share = r["reach"]["share"]
+        share = (r.get("reach") or {}).get("share")  # (none from an older daemon's API)
         of = "-" if share is None else f"{share:.0%} of {r['rate']['sessions']}"
-        out.append(f"{r['id']:>5}  {r['status']:<12}  {r['count']:>6}  {of:>11}  {r['severity']:<8}  "
+        out.append(f"{r['id']:>5}  {r['status']:<12}  {r['count']:>6}  {of:>11}  {r.get('severity', '-'):<8}  "
                    f"{_utc(r['last_seen']):<19}  {sources:<16}  {t if len(t) <= width else t[:width - 1] + '…'}")
     return "\n".join(out)
 
@@ -336,8 +336,9 @@ def text(d: dict) -> str:
     rep = d.get("representative") or {}
     lines = [f"incident #{d['id']}: {safe(d['title'])}",
              f"  status      {d['status']}" + (f" (by {safe(d['status_by'])})" if d.get("status_by") else ""),
-             f"  severity    {d['severity']}",
-             f"  alerts      {safe(rate_text(d))}, from {d['reach']['sources']} source(s)",
+             f"  severity    {d.get('severity', '-')}",
+             f"  alerts      {safe(rate_text(d))}, from {d['reach']['sources']} source(s)" if "rate" in d
+             else f"  alerts      {d['count']}",
              f"  first seen  {_utc(d['first_seen'])} UTC",
              f"  last seen   {_utc(d['last_seen'])} UTC",
              f"  sources     {safe(', '.join(d.get('sources') or []))}",
