@@ -254,3 +254,23 @@ def test_detail_page_charts_alerts_over_time(served):
     assert re.findall(r'<rect x="(\d+)" y="(\d+)" width="(\d+)" height="(\d+)"/>', svg[0]) == [
         ("0", "0", "48", "102"), ("480", "51", "48", "51")]
     assert "2027-01-15 08:00:00 UTC" in svg[0] and "2027-01-15 08:02:00 UTC" in svg[0] and "peak 2 per 1 min" in svg[0]
+
+
+def test_png_reader_on_a_hand_made_image():
+    """The screenshots' reader (tests/png.py) on a 2×2 RGB image whose second row uses the
+    Average filter, which Chromium's screenshots here happen not to (they use None, Sub, Up and
+    Paeth, checked pixel-exactly in the browser test). PNG specification §9.2: Recon(x) =
+    Filt(x) + floor((Recon(a) + Recon(b)) / 2), a the byte one pixel left, b the byte above."""
+    import struct
+    import zlib
+
+    from .png import SIGNATURE, read_png
+
+    def chunk(kind: bytes, body: bytes) -> bytes:
+        return struct.pack(">I", len(body)) + kind + body + struct.pack(">I", zlib.crc32(kind + body))
+
+    rows = bytes([0, 10, 20, 30, 40, 50, 60]) + bytes([3, 5, 5, 5, 5, 5, 5])
+    png = (SIGNATURE + chunk(b"IHDR", struct.pack(">IIBBBBB", 2, 2, 8, 2, 0, 0, 0))
+           + chunk(b"IDAT", zlib.compress(rows)) + chunk(b"IEND", b""))
+    # by hand: 5 + (0 + 10) // 2 = 10, 15, 20; then 5 + (10 + 40) // 2 = 30, 5 + (15 + 50) // 2 = 37, 45
+    assert read_png(png).tolist() == [[[10, 20, 30], [40, 50, 60]], [[10, 15, 20], [30, 37, 45]]]
