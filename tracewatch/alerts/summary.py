@@ -4,16 +4,22 @@ Stage: alerts → incidents → **summary** → page, CLI, notifications. The ti
 strongest explanation of the representative alert (:func:`strongest`, also the key alerts are
 grouped by, :func:`signature`), in this order: an event never seen at fit,
 a step repeated many times in a row, an essential step missing, a step order never seen, a
-step more frequent than normal, and only then "unlike the baseline". The detail adds the
+step more frequent than normal, and only then "unlike the baseline"; beside the template it
+shows one example line of the first alert with every value redacted (:func:`redact_value`).
+Every form carries the incident's rate, reach and severity (:func:`reach`). The detail adds the
 step-by-step difference from the closest normal session, what the incident's alerts share,
-and a few raw sample lines — bounded, and passed through the redaction patterns again so a
-pattern added later also covers samples stored before.
+its alerts over time (:func:`timeline`) and a few raw sample lines — bounded, and passed
+through the redaction patterns again so a pattern added later also covers samples stored before.
 """
 
 from __future__ import annotations
 
+import ipaddress
 import re
 from collections.abc import Callable
+
+from ..templates import WILDCARD
+from .alert import REDACTED
 
 MAX_TEMPLATE = 100  # characters of a template quoted in a title
 MAX_SAMPLE = 500  # characters of one sample line
@@ -72,17 +78,16 @@ def signature(alert: dict) -> str:
 
 
 # -- the example in a title: one real value, redacted ----------------------------------------------------
-WILDCARD = "<var>"
-HIDDEN = "«redacted»"  # as the configured redaction patterns write it (tracewatch/alerts/alert.py)
+HIDDEN = REDACTED  # as the configured redaction patterns write it
 # hidden whole: an e-mail address (anything with an @), an IP address (with or without a port), a
 # token (16 or more letters, digits and +/=_.- holding both a letter and a digit)
 _TOKEN = re.compile(r"(?=\S*[A-Za-z])(?=\S*\d)[A-Za-z0-9+/=_.\-]{16,}")
 _HOST_PORT = re.compile(r"^\[?([0-9A-Fa-f:.]+?)\]?(?::\d{1,5})?$")
+_EXAMPLED = ("unseen", "retry", "frequent")  # the kinds whose subject is a line of the session
+_EG = " (e.g. "
 
 
 def _is_ip(value: str) -> bool:
-    import ipaddress
-
     for text in (value, *(m.group(1) for m in [_HOST_PORT.match(value)] if m)):
         try:
             ipaddress.ip_address(text)
@@ -139,10 +144,6 @@ def title(alert: dict) -> str:
     return head
 
 
-_EXAMPLED = ("unseen", "retry", "frequent")  # the kinds whose subject is a line of the session
-_EG = " (e.g. "
-
-
 def retitle(old: str, alert: dict) -> str:
     """The title for a new representative ``alert``: while it names the same template as the
     old title, the old title's example stays (the first alert's) beside the new headline
@@ -175,13 +176,13 @@ def headline(alert: dict) -> str:
 
 
 # -- rate, reach and severity -------------------------------------------------------------------------
-SEVERITIES = ("low", "high", "critical")
 # (severity, at least this many alerts, and at least this share of the sessions, or this many sources),
 # the first that holds; otherwise "low". tracewatch's own rule of thumb (README, Incidents).
 SEVERITY_RULE = (("critical", 10, 0.20, 3), ("high", 3, 0.02, 2))
 
 
 def severity(alerts: int, share: float | None, sources: int) -> str:
+    """low, high or critical by :data:`SEVERITY_RULE` (a share of None counts as none)."""
     for name, least, least_share, wide in SEVERITY_RULE:
         if alerts >= least and ((share or 0.0) >= least_share or sources >= wide):
             return name
