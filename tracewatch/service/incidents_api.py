@@ -34,7 +34,7 @@ import orjson
 
 from ..alerts.alert import Redactor
 from ..alerts.incidents import ACTIONS
-from ..alerts.store import STATUSES
+from ..alerts.store import STATUSES, IncidentStore
 from ..alerts.summary import brief, detail, timeline
 from ..errors import IncidentNotFound, InvalidTransition, TracewatchError
 from . import page
@@ -94,13 +94,12 @@ def route(h: BaseHTTPRequestHandler, incidents: Incidents | None) -> bool:
 
 
 PAGE_ROWS = 50  # incidents per page of the HTML list
-
-
 MAX_SOURCE = 200  # characters of a ?source= filter
 PAGE_SPAN_S = 7 * 86_400  # the list's charts cover at most the week before its newest alert
 
 
-def _charts(store, rows: list[dict], status: str | None, source: str | None) -> tuple[dict | None, dict[int, dict]]:
+def _charts(store: IncidentStore, rows: list[dict], status: str | None, source: str | None
+            ) -> tuple[dict | None, dict[int, dict]]:
     """The list's charts, on one time axis (from the listed incidents' first alert to their
     last): alerts over time of every incident of the filter, and of each listed incident."""
     if not rows:
@@ -108,9 +107,9 @@ def _charts(store, rows: list[dict], status: str | None, source: str | None) -> 
     end = max(r["last_seen"] for r in rows)
     start = max(min(r["first_seen"] for r in rows), end - PAGE_SPAN_S)
     overall = timeline(start, end, lambda b: store.alert_counts(b, status=status, source=source, from_ts=start))
-    return overall, {r["id"]: timeline(start, end, lambda b, i=r["id"]: store.alert_counts(b, incident_id=i,
-                                                                                            from_ts=start))
-                     for r in rows}
+    each = {r["id"]: timeline(start, end, lambda b, i=r["id"]: store.alert_counts(b, incident_id=i, from_ts=start))
+            for r in rows}
+    return overall, each
 
 
 def _get(h: BaseHTTPRequestHandler, inc: Incidents, path: str, query: dict[str, list[str]]) -> None:
