@@ -36,9 +36,11 @@ from itertools import repeat
 
 from .config import SessionsConfig
 
-# raw sample lines kept per session for its alert: its first MAX_SAMPLES lines, and as many more
-# lines of events never seen at fit (the example in its incident's title); bounds memory per session
-MAX_SAMPLES = 3
+# raw sample lines kept per session for its alert: its first FIRST_SAMPLES lines, then lines of
+# events never seen at fit (the example in its incident's title), MAX_SAMPLES in all (bounds memory
+# per open session)
+FIRST_SAMPLES = 3
+MAX_SAMPLES = 6
 
 
 class Session:
@@ -156,7 +158,7 @@ class Sessionizer:
             if t > sess.last_ts:
                 sess.last_ts = t
             sess.last_seen = t
-            if len(sess.samples) < MAX_SAMPLES or (event >= unseen_from and len(sess.samples) < 2 * MAX_SAMPLES):
+            if len(sess.samples) < FIRST_SAMPLES or (event >= unseen_from and len(sess.samples) < MAX_SAMPLES):
                 sess.samples.append(raw)
             if end is not None and end.search(message):
                 self._close(skey, "end", closed)
