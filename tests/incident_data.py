@@ -91,6 +91,18 @@ def storm(root: Path, n_faulty: int = 400, n_normal: int = 100) -> tuple[Config,
     return cfg, alerts, {s.key: s.label for s in day}
 
 
+@functools.cache
+def storm_verdicts(root: Path) -> list[dict]:
+    """Every session's verdict of :func:`storm` (alert or not), scored again with its baseline."""
+    from tracewatch.baselines import load_baseline
+
+    cfg, _, _ = storm(root)
+    verdicts: list[dict] = []
+    score_files(cfg, assign_sources(cfg, [str(root / "storm.log")]), load_baseline(cfg.state_dir), verdicts.append,
+                score_all=True)
+    return verdicts
+
+
 # -- a receiver on loopback, standing in for a webhook and for Alertmanager ---------------------------
 class Receiver:
     """A real HTTP server on 127.0.0.1 that records every POST (path, headers, JSON body, the

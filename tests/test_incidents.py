@@ -216,6 +216,28 @@ def test_storm_gives_two_incidents_not_hundreds_of_notifications(storm_data, tmp
                            for ev, step in (("opened", None), ("escalated", 10), ("escalated", 100))})
 
 
+def test_storm_incidents_are_critical(tmp_path_factory, tmp_path):
+    from tracewatch.alerts.summary import brief
+
+    from .incident_data import storm_verdicts
+
+    verdicts = storm_verdicts(tmp_path_factory.getbasetemp() / "incident-storm")
+    _, alerts, _ = storm(tmp_path_factory.getbasetemp() / "incident-storm")
+    assert len(verdicts) == 500 and [v for v in verdicts if v["alert"]] == alerts  # 400 faulty, 100 normal
+    inc = Incidents(config(tmp_path))  # as the daemon: every verdict, alert or not
+    try:
+        for v in verdicts:
+            inc.add(v)
+        inc.tracker.flush()
+        rows = [brief(r) for r in inc.store.incidents()]
+    finally:
+        inc.close()
+    # both faults hit about 200 of the 500 sessions of four minutes: at least 10 alerts and 20%
+    assert len(rows) == 2 and sum(r["rate"]["sessions"] for r in rows) <= 2 * 500
+    for r in rows:
+        assert r["severity"] == "critical" and 0.3 <= r["reach"]["share"] <= 0.5, (r["title"], r["rate"], r["reach"])
+
+
 def _by_hand(value: str) -> str:
     """The title's redaction of a plain value, by hand: first and last character, or "…"."""
     return "…" if len(value) <= 2 else f"{value[0]}…{value[-1]}"
