@@ -91,6 +91,18 @@ def storm(root: Path, n_faulty: int = 400, n_normal: int = 100) -> tuple[Config,
     return cfg, alerts, {s.key: s.label for s in day}
 
 
+@functools.cache
+def storm_verdicts(root: Path) -> list[dict]:
+    """Every session's verdict of :func:`storm` (alert or not), scored again with its baseline."""
+    from tracewatch.baselines import load_baseline
+
+    cfg, _, _ = storm(root)
+    verdicts: list[dict] = []
+    score_files(cfg, assign_sources(cfg, [str(root / "storm.log")]), load_baseline(cfg.state_dir), verdicts.append,
+                score_all=True)
+    return verdicts
+
+
 # -- a receiver on loopback, standing in for a webhook and for Alertmanager ---------------------------
 class Receiver:
     """A real HTTP server on 127.0.0.1 that records every POST (path, headers, JSON body, the
@@ -292,11 +304,12 @@ def _apply(kind: str, sess: GeneratedSession, rng: random.Random) -> bool:
 
 
 @functools.cache
-def six_kinds_day(root: Path, per_kind: int = 32, n_normal: int = 300, span_s: float = 3 * 3600
-                  ) -> tuple[Config, list[dict], dict[str, str]]:
+def six_kinds_day(root: Path, per_kind: int = 32, n_normal: int = 300, span_s: float = 3 * 3600, *,
+                  every_session: bool = False) -> tuple[Config, list[dict], dict[str, str]]:
     """A baseline and a day of ``n_normal`` untouched sessions plus ``per_kind`` sessions of each
     kind in :data:`KINDS`, fitted and scored by the real pipeline: (config, alerts in the order
-    raised, session key → kind or "normal")."""
+    raised — with ``every_session``, every session's verdict —, session key → kind or "normal").
+    The day is ``root``/day.log, the baseline is fitted in ``root``/state."""
     sc = parcel_lockers()
     root.mkdir(parents=True, exist_ok=True)
     base = generate(sc, 800, 0, seed=41, start=datetime(2026, 11, 29, tzinfo=timezone.utc))
@@ -316,5 +329,5 @@ def six_kinds_day(root: Path, per_kind: int = 32, n_normal: int = 300, span_s: f
     cfg = config(root)
     baseline, _, _ = fit_files(cfg, assign_sources(cfg, [str(root / "baseline.log")]))
     alerts: list[dict] = []
-    score_files(cfg, assign_sources(cfg, [str(root / "day.log")]), baseline, alerts.append)
-    return cfg, [a for a in alerts if a.get("alert")], {s.key: s.label for s in day}
+    score_files(cfg, assign_sources(cfg, [str(root / "day.log")]), baseline, alerts.append, score_all=every_session)
+    return cfg, [a for a in alerts if every_session or a.get("alert")], {s.key: s.label for s in day}

@@ -11,6 +11,7 @@ import json
 import os
 import shutil
 import socket
+import sqlite3
 import threading
 import time
 from pathlib import Path
@@ -86,6 +87,12 @@ def test_live_alerts_equal_the_batch_through_rotation_copytruncate_and_restart(f
     assert _comparable(got) == _comparable(expected)
     assert [a["alert_id"] for a in json.loads(body)["alerts"]] == [a["alert_id"] for a in got]
     assert status["sessions_evicted"] == 0 and status["sources"][0]["lag_bytes"] == 0
+    # every session scored, alert or not, counted once for the incidents' rates, across the restart
+    db = sqlite3.connect(cfg_path.parent / "state" / "incidents.db")
+    try:
+        assert db.execute("SELECT SUM(count) FROM sessions").fetchone()[0] == status["sources"][0]["sessions_scored"]
+    finally:
+        db.close()
 
 
 def _kill_points(cfg_path: Path, n_lines: int) -> list:

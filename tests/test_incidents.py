@@ -216,6 +216,59 @@ def test_storm_gives_two_incidents_not_hundreds_of_notifications(storm_data, tmp
                            for ev, step in (("opened", None), ("escalated", 10), ("escalated", 100))})
 
 
+def test_storm_incidents_are_critical(tmp_path_factory, tmp_path):
+    from tracewatch.alerts.summary import brief
+
+    from .incident_data import storm_verdicts
+
+    verdicts = storm_verdicts(tmp_path_factory.getbasetemp() / "incident-storm")
+    _, alerts, _ = storm(tmp_path_factory.getbasetemp() / "incident-storm")
+    assert len(verdicts) == 500 and [v for v in verdicts if v["alert"]] == alerts  # 400 faulty, 100 normal
+    inc = Incidents(config(tmp_path))  # as the daemon: every verdict, alert or not
+    try:
+        for v in verdicts:
+            inc.add(v)
+        inc.tracker.flush()
+        rows = [brief(r) for r in inc.store.incidents()]
+    finally:
+        inc.close()
+    # both faults hit about 200 of the 500 sessions of four minutes: at least 10 alerts and 20%
+    assert len(rows) == 2 and sum(r["rate"]["sessions"] for r in rows) <= 2 * 500
+    for r in rows:
+        assert r["severity"] == "critical" and 0.3 <= r["reach"]["share"] <= 0.5, (r["title"], r["rate"], r["reach"])
+
+
+def _by_hand(value: str) -> str:
+    """The title's redaction of a plain value, by hand: first and last character, or "…"."""
+    return "…" if len(value) <= 2 else f"{value[0]}…{value[-1]}"
+
+
+def test_storm_titles_carry_a_redacted_example_of_the_first_alert(storm_data, tmp_path_factory, tmp_path):
+    import re
+
+    _, alerts, labels = storm_data
+    log = (tmp_path_factory.getbasetemp() / "incident-storm" / "storm.log").read_text().splitlines()
+    # the line of the never-seen event is among an alert's samples wherever it stands in the session
+    unseen = [a for a in alerts if labels[a["session_key"]] == UNSEEN]
+    assert all(any("reports jammed bolt" in x for x in a["samples"]) and len(a["samples"]) <= 6 for a in unseen)
+    assert sum(not any("reports jammed bolt" in x for x in a["samples"][:3]) for a in unseen) > 50  # past the first 3
+    store = IncidentStore.open(tmp_path / "state")
+    try:
+        tr = tracker(store)
+        first: dict[int, dict] = {}
+        for a in alerts:
+            first.setdefault(tr.add(a), a)
+        shapes = {UNSEEN: (r"latch sensor on door (\S+) reports jammed bolt", "latch sensor on door {} reports jammed bolt"),
+                  RETRY: (r"door (\S+) opened on locker (\S+)", "door {} opened on locker {}")}
+        for iid, a in first.items():
+            pattern, shape = shapes[labels[a["session_key"]]]
+            line = next(x for x in log if f" req={a['session_key']} " in x and re.search(pattern, x))
+            values = re.search(pattern, line).groups()  # the first alert's own values, from the log
+            assert store.incident(iid)["title"].endswith(f" (e.g. {shape.format(*map(_by_hand, values))})")
+    finally:
+        store.close()
+
+
 # -- a damaged stored incident -----------------------------------------------------------------------------
 @pytest.mark.parametrize("sql", ["UPDATE incidents SET count = 0 WHERE id = 1",  # was a division by zero
                                  "UPDATE incidents SET centroid = '[0.5]' WHERE id = 1",
@@ -272,3 +325,103 @@ def test_one_log_line_per_incident_opened(store, caplog):
     lines = [r.getMessage() for r in caplog.records if " opened" in r.getMessage()]
     assert lines == [f"incident {first} opened: never-seen event 'event A <var>' (source api?[2J, session k-1)",
                      f"incident {second} opened: never-seen event 'event C <var>' (source api, session k-3)"]
+
+
+# -- rate, reach and severity --------------------------------------------------------------------------
+def _sessions_per_minute(log) -> Counter:
+    """Sessions per minute of their last line, read from the generated log itself (not from the
+    pipeline): the ``req=`` key and the ISO time of each line."""
+    from datetime import datetime
+
+    last: dict[str, float] = {}
+    for line in log.read_text().splitlines():
+        stamp, _, rest = line.partition(" ")
+        key = rest.split(" req=", 1)[1].split(" ", 1)[0]
+        last[key] = max(last.get(key, 0.0), datetime.fromisoformat(stamp.replace("Z", "+00:00")).timestamp())
+    return Counter(int(t // 60) for t in last.values())
+
+
+def test_rate_reach_and_severity_on_a_generated_day(tmp_path_factory):
+    from tracewatch.alerts.summary import detail, rate_text, reach
+
+    from .incident_data import KINDS, six_kinds_day
+
+    root = tmp_path_factory.mktemp("rate")
+    cfg, verdicts, labels = six_kinds_day(root, every_session=True)  # every session, alert or not
+    per_minute = _sessions_per_minute(root / "day.log")
+    assert sum(per_minute.values()) == len(verdicts) == len(labels)  # every generated session was scored
+    store = IncidentStore.open(tmp_path_factory.mktemp("rate-state"))
+    try:
+        tr = IncidentTracker(store, cfg.incidents, clock=lambda: T0)
+        times: dict[int, list[float]] = {}
+        for v in verdicts:
+            iid = tr.add(v)
+            if iid is not None:
+                times.setdefault(iid, []).append(v["end"])
+        tr.flush()
+        rows = store.incidents()
+        assert len(rows) == len(KINDS)
+        for row in rows:
+            # its timeline: the alerts' own end times, per bar
+            tl = detail(row, alert_counts=lambda b: store.alert_counts(b, incident_id=row["id"]))["timeline"]
+            b = tl["bucket_s"]
+            assert b == 300  # under four hours (48 bars of 5 min): 5 min each
+            assert sum(tl["alerts"]) == row["count"]
+            assert Counter({tl["start"] // b + i: n for i, n in enumerate(tl["alerts"]) if n}) == Counter(
+                int(t // b) for t in times[row["id"]])
+            got = reach(row)
+            first, last = int(row["first_seen"] // 60), int(row["last_seen"] // 60)
+            sessions = sum(n for m, n in per_minute.items() if first <= m <= last)
+            assert got["rate"] == {"alerts": row["count"], "sessions": sessions, "window_s": 60 * (last - first + 1)}
+            assert got["reach"] == {"share": round(row["count"] / sessions, 4), "sources": 1}
+            # each kind hits 32 of the day's 492 sessions over three hours: 3 or more alerts and
+            # at least 2% of the sessions, under 20% — "high" by the rule
+            assert 0.02 <= got["reach"]["share"] < 0.2 and got["severity"] == "high", (row["title"], got)
+            assert rate_text({**row, **got, "sources": ["locker-api"]}).startswith(
+                f"{row['count']} of {sessions} sessions of locker-api in ")
+    finally:
+        store.close()
+
+
+# -- `score --incidents`: a replay grouped as the daemon groups ----------------------------------------
+def test_score_incidents_groups_a_replay_as_the_daemon_does(tmp_path):
+    import json
+
+    from tracewatch.demo.scenario import parcel_lockers
+
+    from .conftest import run_cli
+    from .incident_data import KINDS, six_kinds_day
+
+    root = tmp_path / "day"
+    cfg, alerts, labels = six_kinds_day(root)
+    assert len(alerts) >= 150 and {labels[a["session_key"]] for a in alerts} == set(KINDS)
+    conf = root / "tw.toml"  # the config six_kinds_day scored with (incident_data.config), as a file
+    conf.write_text(f"state_dir = 'state'\n[[sources]]\nname = 'locker-api'\nline_pattern = '''"
+                    f"{parcel_lockers().line_pattern}'''\n[sessions]\nidle_timeout_s = 30\n"
+                    "[model]\nfalse_alarm_rate = 0.01\n")
+    day = str(root / "day.log")
+    replayed = [json.loads(x) for x in run_cli("score", "--config", str(conf), "--incidents", day,
+                                               check=True).stdout.splitlines()]
+    kind_of = {a["alert_id"]: labels[a["session_key"]] for a in alerts}
+    assert len(replayed) <= 12
+    assert [len(i["alert_ids"]) for i in replayed] == [i["count"] for i in replayed]
+    assert sorted(a for i in replayed for a in i["alert_ids"]) == sorted(kind_of)  # every alert, once
+    for inc in replayed:
+        assert len({kind_of[a] for a in inc["alert_ids"]}) == 1, inc["title"]  # each of one kind
+        assert inc["severity"] in ("high", "critical") and sum(inc["timeline"]["alerts"]) == inc["count"]
+    # the same incidents as the daemon's grouping of the same alerts in a store
+    store = IncidentStore.open(tmp_path / "state")
+    try:
+        tr = IncidentTracker(store, cfg.incidents, clock=lambda: T0)
+        members: dict[int, set[str]] = {}
+        for a in alerts:
+            members.setdefault(tr.add(a), set()).add(a["alert_id"])
+        daemon = sorted((store.incident(i)["title"], sorted(ids)) for i, ids in members.items())
+    finally:
+        store.close()
+    assert sorted((i["title"], sorted(i["alert_ids"])) for i in replayed) == daemon
+    text = run_cli("score", "--config", str(conf), "--incidents", "-o", "text", day, check=True).stdout
+    assert text.splitlines()[0].split()[:3] == ["ID", "STATUS", "ALERTS"] and text.count("incident #") == len(replayed)
+    assert "alerts over time" in text
+    proc = run_cli("score", "--config", str(conf), "--incidents", "--all", day)
+    assert proc.returncode == 2 and "choose one" in proc.stderr

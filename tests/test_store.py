@@ -52,11 +52,13 @@ def test_schema_2_store_gains_signatures_in_place(tmp_path):
     store.close()
     with sqlite3.connect(tmp_path / "incidents.db") as db:  # the file as schema 2 wrote it
         db.execute("ALTER TABLE incidents DROP COLUMN signature")
+        db.execute("DROP TABLE sessions")
         db.execute("UPDATE meta SET value = '2' WHERE key = 'schema_version'")
     db.close()
     store = IncidentStore.open(tmp_path)
     try:
-        assert store.db.execute("SELECT value FROM meta WHERE key = 'schema_version'").fetchone()[0] == "3"
+        assert store.db.execute("SELECT value FROM meta WHERE key = 'schema_version'").fetchone()[0] == "4"
+        assert store.incident(1)["sessions"] == 0  # schema 4's session counts: none before the upgrade
         tracker = IncidentTracker(store, parse_config({}).incidents)
         # the old incident has no signature: the new alert joins it by similarity, as before
         assert tracker.add(toy_alert("new", "A", t=1_800_000_010.0)) == 1
@@ -112,6 +114,10 @@ def test_cli_table_json_since_show_and_status(filled):
     shown = run_cli("incidents", "show", "2", *c, check=True).stdout
     assert "incident #2: never-seen event 'event B <var>'" in shown
     assert "\x1b" not in shown and "?[31mred?[0m <b>bold</b>" in shown  # terminal-safe sample
+    assert "alerts over time (1 min per bar, UTC):" in shown  # one alert: one bar of one
+    assert [line.split()[-2:] for line in shown.splitlines() if line.endswith("█ 1")] == [["█" * 40, "1"]]
+    old = json.loads(run_cli("incidents", "show", "1", *c, "--json", check=True).stdout)["timeline"]
+    assert old["bucket_s"] == 60 and old["alerts"] == [3]  # three alerts a second apart
     detail = json.loads(run_cli("incidents", "show", "2", *c, "--json", check=True).stdout)
     assert detail["diff"] == ["not seen before: event B <var>"] and detail["representative"]["alert_id"] == "new"
     out = run_cli("incidents", "ack", "1", *c, "--note", "on it", check=True).stdout

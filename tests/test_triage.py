@@ -18,6 +18,7 @@ from sklearn.metrics.pairwise import cosine_similarity, rbf_kernel
 
 from tracewatch.alerts.incidents import IncidentTracker, set_status
 from tracewatch.alerts.store import SCHEMA_VERSION, IncidentStore
+from tracewatch.alerts.summary import brief, detail
 from tracewatch.batch import assign_sources, fit_files, score_files
 from tracewatch.cli import main
 from tracewatch.config import TriageConfig, parse_config
@@ -238,9 +239,9 @@ def test_tracker_hook_stores_suggestions_and_opens_expected_quietly(labelled, tm
         opened = {p["id"] for _, ev, p in store.outbox_after(0) if ev == "opened"}
         assert opened == {i for i, k in kind_of.items() if k != RETRY}  # no notification when suppressed
         jam = next(i for i, k in kind_of.items() if k == JAM)
-        listed = list_page([rows[jam]], store.counts(), {}, refresh_s=30)
+        listed = list_page([brief(rows[jam])], store.counts(), {}, refresh_s=30)  # the page takes the list form
         assert "triage suggests latch-jam (margin" in listed
-        shown = detail_page({**store.incident(jam), "note": "<b>x</b>"}, refresh_s=30)
+        shown = detail_page(detail({**store.incident(jam), "note": "<b>x</b>"}), refresh_s=30)
         assert "triage suggests latch-jam" in shown and "<b>x</b>" not in shown  # escaped
     finally:
         incidents.close()

@@ -194,3 +194,25 @@ def score_files(cfg: Config, pairs: list[tuple[str, Path]], baseline, on_verdict
     pipeline = Pipeline(cfg, baseline, on_verdict=on_verdict, score_all=score_all)
     run_files(pipeline, pairs)
     return pipeline
+
+
+def group_files(cfg: Config, pairs: list[tuple[str, Path]], baseline, store) -> Pipeline:
+    """``score --incidents``: replay the files and group their alerts into incidents in ``store``
+    as the daemon would — its tracker (and triage, when enabled), every session counted for the
+    rates — on the replay's event clock: before each verdict, incidents with no alert for
+    ``auto_resolve_s`` are resolved, as the daemon's tick would have."""
+    from .alerts.incidents import IncidentTracker, alert_time
+    from .triage import Triage
+
+    clock = [0.0]  # the newest event time replayed so far
+    triage = Triage(cfg.triage, Path(cfg.state_dir)) if cfg.triage.enabled else None
+    tracker = IncidentTracker(store, cfg.incidents, clock=lambda: clock[0], triage=triage)
+
+    def on_verdict(verdict: dict) -> None:
+        clock[0] = max(clock[0], alert_time(verdict, lambda: clock[0]))
+        tracker.tick(clock[0])
+        tracker.add(verdict)
+
+    pipeline = score_files(cfg, pairs, baseline, on_verdict, score_all=True)
+    tracker.flush()
+    return pipeline

@@ -79,10 +79,15 @@ def cmd_fit(args) -> int:
 
 def cmd_score(args) -> int:
     cfg = _config(args)
+    if args.incidents and args.all:
+        raise ConfigError("score: --incidents prints incidents, --all every session; choose one")
     baseline = load_baseline(cfg.state_dir, args.baseline)
     pairs = assign_sources(cfg, args.inputs, args.source)
-    pipeline = score_files(cfg, pairs, baseline, _out if args.output == "json" else _alert_text,
-                           score_all=args.all)
+    if args.incidents:
+        pipeline = _score_incidents(cfg, pairs, baseline, args.output)
+    else:
+        pipeline = score_files(cfg, pairs, baseline, _out if args.output == "json" else _alert_text,
+                               score_all=args.all)
     sys.stdout.flush()
     for line in unread_lines(pipeline, refuse=False):
         print(f"tracewatch: {line}", file=sys.stderr)
@@ -92,6 +97,38 @@ def cmd_score(args) -> int:
         print(f"tracewatch: {sum(pipeline.sessions_scored.values())} sessions scored with baseline "
               f"{baseline.version}; alerts by reason: {reasons}", file=sys.stderr)
     return EXIT_ALERTS if args.fail_on_alert and n_alerts else 0
+
+
+def _score_incidents(cfg: Config, pairs, baseline, output: str) -> Pipeline:
+    """`score --incidents`: the replay's alerts grouped as the daemon would, in a store of their
+    own (a temporary directory; the daemon's incidents.db is never touched), then printed: one
+    detail object per incident (json), or the table and each incident in detail (text)."""
+    import tempfile
+
+    from .alerts import summary
+    from .alerts.alert import Redactor
+    from .alerts.store import IncidentStore
+    from .batch import group_files
+
+    with tempfile.TemporaryDirectory(prefix="tracewatch-replay-") as tmp:
+        store = IncidentStore.open(Path(tmp))
+        try:
+            pipeline = group_files(cfg, pairs, baseline, store)
+            found = store.incidents(limit=-1)
+            details = [{**summary.detail(store.incident(r["id"]), max_samples=cfg.incidents.max_samples,
+                                         redact=Redactor(cfg.redact),
+                                         alert_counts=lambda b, i=r["id"]: store.alert_counts(b, incident_id=i)),
+                        "alert_ids": store.alert_ids(r["id"], limit=-1)} for r in found]
+        finally:
+            store.close()
+    if output == "json":
+        for d in details:
+            _out(d)
+    else:
+        print(summary.table([summary.brief(r) for r in found]), end="\n\n")
+        for d in details:
+            print(summary.text(d), end="\n\n")
+    return pipeline
 
 
 def _alert_text(alert: dict) -> None:
@@ -190,7 +227,9 @@ def cmd_run(args) -> int:
 INCIDENTS_HELP = (
     "Incidents are alerts grouped by resemblance; the daemon keeps them in <state_dir>/incidents.db. "
     "Without an action, print a compact table (most recently active first); 'show ID' prints one in "
-    "detail; 'ack', 'resolve' and 'expected' change its status. Reads the state directly (--config) "
+    "detail (with its timeline); 'ack', 'resolve' and 'expected' change its status. Each incident shows "
+    "its severity and rate: its alerts against the sessions scored of its sources while it ran (README, "
+    "Incidents). Reads the state directly (--config) "
     "or a running daemon's API (--url); a state change through --url needs the bearer token ([incidents] "
     "token, or the environment variable named by token_env, default TRACEWATCH_INCIDENT_TOKEN). "
     "Caution: incidents carry log-derived text (redacted by your patterns); keep the daemon's port on "
@@ -276,7 +315,8 @@ def cmd_incidents(args) -> int:
                 found = store.incident(args.id)
                 if found is None:
                     raise IncidentNotFound(args.id)
-                detail = summary.detail(found, max_samples=cfg.incidents.max_samples, redact=Redactor(cfg.redact))
+                detail = summary.detail(found, max_samples=cfg.incidents.max_samples, redact=Redactor(cfg.redact),
+                                        alert_counts=lambda b: store.alert_counts(b, incident_id=args.id))
             else:  # IncidentNotFound, InvalidTransition: one line, exit code 1
                 out = set_status(store, args.id, action, by=f"cli:{getpass.getuser()}", note=args.note or "")
                 detail = summary.brief(out)
@@ -502,6 +542,10 @@ def build_parser() -> argparse.ArgumentParser:
     with_config(sp, adhoc=True)
     sp.add_argument("--source", metavar="NAME", help="the source the INPUT files belong to")
     sp.add_argument("--all", action="store_true", help="print every session, not only alerts")
+    sp.add_argument("--incidents", action="store_true",
+                    help="group the alerts into incidents as the daemon would and print the incidents "
+                         "(json: one detail object per incident, with its alert_ids; text: a table, then each "
+                         "in detail)")
     sp.add_argument("--output", "-o", choices=["json", "text"], default="json",
                     help="json: one JSON object per alert (default); text: a readable view for a terminal")
     sp.add_argument("--baseline", metavar="VERSION", help="score with this baseline version")

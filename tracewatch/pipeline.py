@@ -51,6 +51,8 @@ class Pipeline:
         self.scorer = baseline.make_scorer() if baseline else None
         self.sessionizer = Sessionizer(cfg.sessions, frozenset(s.name for s in cfg.sources
                                                                if format_class(s.format).by_time))
+        if baseline is not None:
+            self.sessionizer.unseen_from = self.miner.n_seen
         self.on_verdict = on_verdict or (lambda v: None)
         self.score_all = score_all
         self.clock = clock
@@ -247,3 +249,4 @@ class Pipeline:
         self._drain()
         self.sessionizer.remap(baseline.miner.adopt(self.miner))
         self.baseline, self.miner, self.scorer = baseline, baseline.miner, baseline.make_scorer()
+        self.sessionizer.unseen_from = self.miner.n_seen

@@ -36,7 +36,11 @@ from itertools import repeat
 
 from .config import SessionsConfig
 
-MAX_SAMPLES = 3  # raw sample lines kept per session for its alert (bounds memory per open session)
+# raw sample lines kept per session for its alert: its first FIRST_SAMPLES lines, then lines of
+# events never seen at fit (the example in its incident's title), MAX_SAMPLES in all (bounds memory
+# per open session)
+FIRST_SAMPLES = 3
+MAX_SAMPLES = 6
 
 
 class Session:
@@ -90,6 +94,9 @@ class Sessionizer:
         self._deadlines: list[tuple[float, int, Session]] = []
         self._created = itertools.count()
         self._counts: dict[str, int] = {}
+        # template indices from here on are events never seen at fit (the pipeline sets it to the
+        # baseline's count of templates): their lines are kept as samples beyond the first ones
+        self.unseen_from = 1 << 62
         self.evicted = 0
         # key -> last activity of sessions evicted lately (bounded): what comes later for such a
         # key within the idle timeout is the rest of a session cut short, not a session of its own
@@ -126,6 +133,7 @@ class Sessionizer:
         evicted_keys = self._evicted_keys
         idle, max_duration, max_events, end = self.idle, self.max_duration, self.max_events, self._end
         by_time = source in self.by_time
+        unseen_from = self.unseen_from
         for skey, t, event, raw, offset, message in zip(zip(repeat(source), keys), times, events, raws, offsets,
                                                          messages):
             sess = get(skey)
@@ -150,7 +158,7 @@ class Sessionizer:
             if t > sess.last_ts:
                 sess.last_ts = t
             sess.last_seen = t
-            if len(sess.samples) < MAX_SAMPLES:
+            if len(sess.samples) < FIRST_SAMPLES or (event >= unseen_from and len(sess.samples) < MAX_SAMPLES):
                 sess.samples.append(raw)
             if end is not None and end.search(message):
                 self._close(skey, "end", closed)

@@ -25,6 +25,12 @@ escalated when the count reaches a step, resolved), so a crash loses or repeats 
 id already grouped is recognised (alerts raised again after a restart are not counted twice).
 An incident whose stored state is damaged is left out of grouping (logged once).
 
+Every verdict handed to :meth:`IncidentTracker.add`, alert or not, is counted as a session
+scored of its source in the minute of its event time: what an incident's rate and reach are
+measured against (:func:`tracewatch.alerts.summary.reach`). The counts are written with the
+next alert's transaction or the next :meth:`~IncidentTracker.tick` (a crash loses at most a
+second of them), and kept for :data:`SESSIONS_KEPT_DAYS` days of event time.
+
 What the tracker needs from outside is passed in: a triage object (anything with
 ``suggest(alert)``, :class:`tracewatch.triage.Triage`) and a callback for queued
 notifications (the notifier's ``wake``). Status changes return the incident or raise the
@@ -38,6 +44,7 @@ import logging
 import math
 import sqlite3
 import time
+from collections import Counter
 from collections.abc import Callable, Iterable
 from typing import Protocol
 
@@ -52,6 +59,7 @@ log = logging.getLogger("tracewatch.incidents")
 MAX_TERMS = 512  # the kept sum vector of an incident (the largest terms; the rest is noise)
 MAX_STATS = 100  # entries kept per statistic
 TICK_EVERY_S = 1.0
+SESSIONS_KEPT_DAYS = 90  # per-minute session counts older than this (event time) are dropped
 
 ACTIONS = {"ack": "acknowledged", "resolve": "resolved", "expected": "expected"}
 # status → statuses an action may move it from
@@ -123,13 +131,17 @@ class IncidentTracker:
         self._last_tick = -math.inf  # wall clock: how often tick runs
         self._latest: float | None = None  # the newest alert's event time (from the store at first)
         self._latest_wall = 0.0  # the wall time it was last moved
+        self._sessions: Counter[tuple[str, int]] = Counter()  # (source, minute) → scored, not yet written
+        self._pruned_day = -1
 
     # -- adding alerts ----------------------------------------------------------------------------
     def add(self, alert: dict) -> int | None:
-        """Group one alert; returns its incident id (None for a verdict that is no alert)."""
-        if not alert.get("alert"):
-            return None
+        """Count the verdict's session; group it when it is an alert and return its incident id
+        (None for a verdict that is no alert)."""
         t = alert_time(alert, self.clock)
+        if not alert.get("alert"):
+            self._sessions[(str(alert.get("source", "?")), int(t // 60))] += 1
+            return None
         x = alert_vector(alert)
         store = self.store
         changed: dict[int, _Group] = {}
@@ -138,6 +150,8 @@ class IncidentTracker:
                 known = store.incident_of(alert["alert_id"], db=db)
                 if known is not None:
                     return known
+                self._sessions[(str(alert.get("source", "?")), int(t // 60))] += 1
+                store.count_sessions(self._sessions, db=db)  # first: the notification queued reads them
                 sig = summary.signature(alert)
                 best, best_d, same = None, math.inf, False
                 candidates = store.candidates(t - self.cfg.window_s, db=db)
@@ -162,6 +176,7 @@ class IncidentTracker:
                 self._groups.pop(iid, None)
             raise
         self._groups.update(changed)
+        self._sessions.clear()
         self._saw(t)
         if opened:
             log.info("incident %d opened%s: %s (source %s, session %s)", iid, "" if noted else " as expected",
@@ -237,7 +252,7 @@ class IncidentTracker:
                         "stats": stats, "centroid": total}
         if medoid != rep_id:
             rep = alert if medoid == aid else store.member_alert(iid, medoid, db=db)
-            values.update(representative=rep, title=summary.title(rep))
+            values.update(representative=rep, title=summary.retitle(row["title"], rep))
         step = max((s for s in self.cfg.escalation_steps if s <= count), default=0)
         noted = row["status"] == "open" and step > row["escalated"]
         if noted:
@@ -265,14 +280,28 @@ class IncidentTracker:
                 return None
         return min(now, self._latest + max(0.0, self.clock() - self._latest_wall))
 
+    def flush(self) -> None:
+        """Write the sessions counted since the last write, and drop counts older than
+        :data:`SESSIONS_KEPT_DAYS` before them."""
+        if self._sessions:
+            day = min(m for _, m in self._sessions) // 1440
+            with self.store.transaction() as db:
+                self.store.count_sessions(self._sessions, db=db)
+                if day != self._pruned_day:  # once a day of event time
+                    self.store.prune_sessions((day - SESSIONS_KEPT_DAYS) * 1440, db=db)
+            self._sessions.clear()
+            self._pruned_day = day
+
     def tick(self, now: float) -> list[int]:
-        """Resolve open or acknowledged incidents with no alert for ``auto_resolve_s`` on the
-        event clock (:meth:`event_now`); at most once a wall-clock second. Returns the ids resolved."""
+        """Write the sessions counted (:meth:`flush`) and resolve open or acknowledged incidents
+        with no alert for ``auto_resolve_s`` on the event clock (:meth:`event_now`); at most once
+        a wall-clock second. Returns the ids resolved."""
         wall = self.clock()
-        if not self.cfg.auto_resolve_s or wall - self._last_tick < TICK_EVERY_S:
+        if wall - self._last_tick < TICK_EVERY_S:
             return []
         self._last_tick = wall
-        now = self.event_now(now)
+        self.flush()
+        now = self.event_now(now) if self.cfg.auto_resolve_s else None
         if now is None:
             return []
         limit = now - self.cfg.auto_resolve_s

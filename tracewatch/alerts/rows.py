@@ -73,6 +73,7 @@ class _Row(BaseModel):
     stats: Stats
     suggestion: _Suggestion | None
     label: Annotated[str, Field(max_length=200)] | None
+    sessions: Count = 0  # read for showing only: the sessions scored in its window
 
 
 class _Unseen(BaseModel):
@@ -162,10 +163,13 @@ def _json(raw, what: str, *, empty=None):
         raise Damaged(f"{what}: not JSON ({str(exc)[:80]})") from exc
 
 
-def incident_row(base: dict, stats, suggestion, label) -> dict:
-    """A listed row: ``base`` holds the plain columns; the JSON ones are decoded and checked."""
+def incident_row(base: dict, stats, suggestion, label, *sessions) -> dict:
+    """A listed row: ``base`` holds the plain columns; the JSON ones are decoded and checked
+    (and ``sessions``, when read, the sessions scored in the incident's window)."""
     row = {**base, "stats": _json(stats, "stats"),
            "suggestion": None if suggestion == "" else _json(suggestion, "suggestion"), "label": label}
+    if sessions:
+        row["sessions"] = sessions[0]
     return _check(_Row, row, "incident")
 
 

@@ -39,7 +39,7 @@ from .. import __version__
 from ..config import Config, NotifyConfig
 from ..errors import TracewatchError
 from .store import FIRING, IncidentStore
-from .summary import notice
+from .summary import notice, rate_text
 
 log = logging.getLogger("tracewatch.notify")
 
@@ -154,6 +154,9 @@ class AlertmanagerSink:
             "first_seen": rfc3339(incident["first_seen"]),
             "last_seen": rfc3339(incident["last_seen"]),
         }
+        if "rate" in incident:  # (notifications queued by an older tracewatch have no rate)
+            annotations["severity"] = incident["severity"]  # an annotation: it changes while the alert lives
+            annotations["rate"] = rate_text(incident)
         out = {"labels": labels, "annotations": annotations, "startsAt": rfc3339(incident["first_seen"]),
                "generatorURL": f"{self.page_url}/incidents/{incident['id']}"}
         if incident["status"] not in FIRING:

@@ -18,8 +18,11 @@ Tables (schema version in ``meta``):
     labels      the on-call label of an incident: "expected" or a known problem's name
                 (what tracewatch/triage.py learns from); incidents.suggestion holds triage's
                 suggestion for a new incident (JSON, '' for none)
+    sessions    sessions scored per source and minute of event time (what an incident's rate
+                and reach are measured against: :func:`tracewatch.alerts.summary.reach`)
 
-Schema 1 (before labels) is upgraded in place when opened.
+Older schemas (1: before labels, 2: before signatures, 3: before session counts) are upgraded
+in place when opened.
 
 Every SQL statement of tracewatch lives in this module: the tracker, the notifier, HTTP and the
 CLI call its methods (those that take ``db`` run inside the caller's :meth:`transaction`).
@@ -43,7 +46,7 @@ import orjson
 from ..errors import StateError
 from . import rows
 
-SCHEMA_VERSION = 3
+SCHEMA_VERSION = 4
 FILENAME = "incidents.db"
 STATUSES = rows.STATUSES  # open, acknowledged, resolved, expected
 FIRING = ("open", "acknowledged")
@@ -83,6 +86,7 @@ CREATE TABLE IF NOT EXISTS alerts (
     ts REAL NOT NULL
 );
 CREATE INDEX IF NOT EXISTS alerts_incident ON alerts (incident_id, ts);
+CREATE INDEX IF NOT EXISTS alerts_ts ON alerts (ts);
 CREATE TABLE IF NOT EXISTS outbox (
     id INTEGER PRIMARY KEY AUTOINCREMENT,
     incident_id INTEGER NOT NULL,
@@ -105,13 +109,23 @@ CREATE TABLE IF NOT EXISTS labels (
     note TEXT NOT NULL DEFAULT '',
     ts REAL NOT NULL
 );
+CREATE TABLE IF NOT EXISTS sessions (
+    source TEXT NOT NULL,
+    minute INTEGER NOT NULL,
+    count INTEGER NOT NULL,
+    PRIMARY KEY (source, minute)
+) WITHOUT ROWID;
 """
 # -- triage labels (tracewatch/triage.py): schema 1 → 2 --
 _MIGRATIONS = {1: ("ALTER TABLE incidents ADD COLUMN suggestion TEXT NOT NULL DEFAULT ''",
                    "CREATE TABLE IF NOT EXISTS labels (incident_id INTEGER PRIMARY KEY, label TEXT NOT NULL, "
                    "by TEXT NOT NULL, note TEXT NOT NULL DEFAULT '', ts REAL NOT NULL)"),
                # -- the signature alerts are grouped by (alerts/summary.py): schema 2 → 3 --
-               2: ("ALTER TABLE incidents ADD COLUMN signature TEXT NOT NULL DEFAULT ''",)}
+               2: ("ALTER TABLE incidents ADD COLUMN signature TEXT NOT NULL DEFAULT ''",),
+               # -- sessions scored per source and minute (rate and reach): schema 3 → 4 --
+               3: ("CREATE TABLE IF NOT EXISTS sessions (source TEXT NOT NULL, minute INTEGER NOT NULL, "
+                   "count INTEGER NOT NULL, PRIMARY KEY (source, minute)) WITHOUT ROWID",
+                   "CREATE INDEX IF NOT EXISTS alerts_ts ON alerts (ts)")}  # (the page's chart of every incident)
 
 # the columns every incident listing returns (the heavy JSON columns only on demand)
 _LIST_COLUMNS = ("id, status, title, first_seen, last_seen, count, escalated, created, status_changed, "
@@ -119,6 +133,14 @@ _LIST_COLUMNS = ("id, status, title, first_seen, last_seen, count, escalated, cr
                  "(SELECT label FROM labels WHERE labels.incident_id = incidents.id)")
 _LIST_KEYS = ("id", "status", "title", "first_seen", "last_seen", "count", "escalated", "created",
               "status_changed", "status_by", "note")
+# an incident's sources (the keys of its statistics' "sources"; none where the column is not JSON)
+_SOURCES = "json_each(CASE WHEN json_valid(incidents.stats) THEN incidents.stats ELSE '{}' END, '$.sources')"
+# the sessions scored of an incident's sources in the minutes of its window (first to last alert)
+_SESSIONS = ("(SELECT COALESCE(SUM(s.count), 0) FROM sessions s WHERE s.source IN (SELECT key FROM "
+             f"{_SOURCES}) AND s.minute BETWEEN CAST(incidents.first_seen / 60 AS INTEGER) "
+             "AND CAST(incidents.last_seen / 60 AS INTEGER))")
+# what is read for showing an incident: the listed columns and the sessions of its window
+_READ_COLUMNS = f"{_LIST_COLUMNS}, {_SESSIONS}"
 # what the tracker may change on an incident row
 _UPDATABLE = frozenset({"count", "first_seen", "last_seen", "stats", "centroid", "representative", "title",
                         "escalated"})
@@ -129,6 +151,20 @@ def _from_representative(path: str) -> str:
     """SQL for one field of the representative alert; a zero byte (refused when checked) where
     the column is not JSON, where json_extract would fail the whole query."""
     return f"CASE WHEN json_valid(representative) THEN json_extract(representative, '{path}') ELSE x'00' END"
+
+
+def _filters(*, status: str | None = None, since: float | None = None, incident_id: int | None = None,
+             source: str | None = None, from_ts: float | None = None) -> tuple[str, list]:
+    """The WHERE clause (and its arguments) choosing incidents of a status, active since, of a
+    source, or one; and (``from_ts``, with the alerts table as ``a``) alerts since."""
+    where, args = [], []
+    for sql, value in (("incidents.status = ?", status), ("incidents.last_seen >= ?", since),
+                       ("incidents.id = ?", incident_id), ("a.ts >= ?", from_ts),
+                       (f"EXISTS (SELECT 1 FROM {_SOURCES} WHERE key = ?)", source)):
+        if value is not None:
+            where.append(sql)
+            args.append(value)
+    return ("WHERE " + " AND ".join(where) if where else ""), args
 
 
 def dumps(obj) -> str:
@@ -277,9 +313,10 @@ class IncidentStore:
                           "afresh (alerts.jsonl keeps every alert)")
 
     def _row(self, r) -> dict:
-        """A listed row (:data:`_LIST_COLUMNS`) as a checked dict."""
+        """A listed row (:data:`_LIST_COLUMNS`, or :data:`_READ_COLUMNS` with the sessions of its
+        window) as a checked dict."""
         try:
-            return rows.incident_row(dict(zip(_LIST_KEYS, r[:11])), r[11], r[12], r[13])
+            return rows.incident_row(dict(zip(_LIST_KEYS, r[:11])), r[11], r[12], r[13], *r[14:15])
         except rows.Damaged as exc:
             raise self._damaged(f"incident {r[0]!r:.40}", exc) from exc
 
@@ -287,21 +324,29 @@ class IncidentStore:
         return [self._row(r) for r in self.db.execute(sql, args)]
 
     # -- reading -----------------------------------------------------------------------------------
-    def incidents(self, *, status: str | None = None, since: float | None = None, limit: int = 100,
-                  offset: int = 0) -> list[dict]:
-        """Incidents, most recently active first, without the heavy columns."""
-        where, args = [], []
-        if status is not None:
-            where.append("status = ?")
-            args.append(status)
-        if since is not None:
-            where.append("last_seen >= ?")
-            args.append(since)
-        sql = f"SELECT {_LIST_COLUMNS} FROM incidents"
-        if where:
-            sql += " WHERE " + " AND ".join(where)
-        sql += " ORDER BY last_seen DESC, id DESC LIMIT ? OFFSET ?"
+    def incidents(self, *, status: str | None = None, since: float | None = None, source: str | None = None,
+                  limit: int = 100, offset: int = 0, open_first: bool = False) -> list[dict]:
+        """Incidents (of a status, active since, of a source), most recently active first — the
+        open ones before all others with ``open_first`` — without the heavy columns."""
+        where, args = _filters(status=status, since=since, source=source)
+        order = "status = 'open' DESC, " if open_first else ""
+        sql = (f"SELECT {_READ_COLUMNS} FROM incidents {where} ORDER BY {order}last_seen DESC, id DESC "
+               "LIMIT ? OFFSET ?")
         return self._rows(sql, (*args, limit, offset))
+
+    def sources(self, limit: int = 50) -> list[str]:
+        """The sources incidents came from, by name."""
+        return [r[0] for r in self.db.execute(f"SELECT DISTINCT key FROM incidents, {_SOURCES} "
+                                              "WHERE typeof(key) = 'text' ORDER BY key LIMIT ?", (limit,))]
+
+    def alert_counts(self, bucket_s: int, *, incident_id: int | None = None, status: str | None = None,
+                     source: str | None = None, from_ts: float | None = None) -> dict[int, int]:
+        """Alerts per bucket of ``bucket_s`` seconds of event time (bucket n starts at n × bucket_s):
+        of one incident, or of every incident (of a status, of a source), from ``from_ts`` on."""
+        where, args = _filters(status=status, incident_id=incident_id, source=source, from_ts=from_ts)
+        found = self.db.execute(f"SELECT CAST(a.ts / ? AS INTEGER), COUNT(*) FROM alerts a JOIN incidents "
+                                f"ON incidents.id = a.incident_id {where} GROUP BY 1", (bucket_s, *args))
+        return {b: n for b, n in found if isinstance(b, int)}  # (a damaged time is left out)
 
     def counts(self) -> dict[str, int]:
         return dict(self.db.execute("SELECT status, COUNT(*) FROM incidents GROUP BY status").fetchall())
@@ -310,7 +355,7 @@ class IncidentStore:
         """One incident with its representative alert (None when there is none with that id)."""
         if not storable_id(incident_id):
             return None
-        row = (db or self.db).execute(f"SELECT {_LIST_COLUMNS}, representative FROM incidents WHERE id = ?",
+        row = (db or self.db).execute(f"SELECT {_READ_COLUMNS}, representative FROM incidents WHERE id = ?",
                                       (incident_id,)).fetchone()
         if row is None:
             return None
@@ -322,6 +367,7 @@ class IncidentStore:
         return out
 
     def alert_ids(self, incident_id: int, limit: int = 100) -> list[str]:
+        """The ids of an incident's alerts, newest first (``limit`` -1: all)."""
         if not storable_id(incident_id):
             return []
         rows_ = self.db.execute("SELECT alert_id FROM alerts WHERE incident_id = ? ORDER BY ts DESC LIMIT ?",
@@ -399,6 +445,14 @@ class IncidentStore:
     def record_alert(self, alert_id: str, incident_id: int, t: float, *, db: sqlite3.Connection) -> None:
         db.execute("INSERT INTO alerts (alert_id, incident_id, ts) VALUES (?, ?, ?)", (alert_id, incident_id, t))
 
+    def count_sessions(self, counts: dict[tuple[str, int], int], *, db: sqlite3.Connection) -> None:
+        """Add ``{(source, minute): sessions scored}`` to the counts (minute = event time // 60)."""
+        db.executemany("INSERT INTO sessions (source, minute, count) VALUES (?, ?, ?) ON CONFLICT (source, minute) "
+                       "DO UPDATE SET count = count + excluded.count", [(s, m, n) for (s, m), n in counts.items()])
+
+    def prune_sessions(self, before_minute: int, *, db: sqlite3.Connection) -> None:
+        db.execute("DELETE FROM sessions WHERE minute < ?", (before_minute,))
+
     def latest_seen(self) -> float | None:
         """The event time of the newest alert of any incident (None while there is none)."""
         return self.db.execute("SELECT MAX(last_seen) FROM incidents").fetchone()[0]
@@ -427,7 +481,7 @@ class IncidentStore:
         where, args = ("id = ?", (incident_id,)) if incident_id is not None else (
             "status IN ('open', 'acknowledged')" if firing else "1", ())
         out = []
-        for r in (db or self.db).execute(f"SELECT {_LIST_COLUMNS}, {_from_representative('$.diff')} "
+        for r in (db or self.db).execute(f"SELECT {_READ_COLUMNS}, {_from_representative('$.diff')} "
                                          f"FROM incidents WHERE {where} ORDER BY last_seen DESC, id DESC LIMIT ?",
                                          (*args, limit)):
             row = self._row(r[:-1])

@@ -4,16 +4,22 @@ Stage: alerts → incidents → **summary** → page, CLI, notifications. The ti
 strongest explanation of the representative alert (:func:`strongest`, also the key alerts are
 grouped by, :func:`signature`), in this order: an event never seen at fit,
 a step repeated many times in a row, an essential step missing, a step order never seen, a
-step more frequent than normal, and only then "unlike the baseline". The detail adds the
+step more frequent than normal, and only then "unlike the baseline"; beside the template it
+shows one example line of the first alert with every value redacted (:func:`redact_value`).
+Every form carries the incident's rate, reach and severity (:func:`reach`). The detail adds the
 step-by-step difference from the closest normal session, what the incident's alerts share,
-and a few raw sample lines — bounded, and passed through the redaction patterns again so a
-pattern added later also covers samples stored before.
+its alerts over time (:func:`timeline`) and a few raw sample lines — bounded, and passed
+through the redaction patterns again so a pattern added later also covers samples stored before.
 """
 
 from __future__ import annotations
 
+import ipaddress
 import re
 from collections.abc import Callable
+
+from ..templates import WILDCARD
+from .alert import REDACTED
 
 MAX_TEMPLATE = 100  # characters of a template quoted in a title
 MAX_SAMPLE = 500  # characters of one sample line
@@ -71,8 +77,89 @@ def signature(alert: dict) -> str:
     return "" if kind == "unlike" else f"{alert.get('source', '?')}\x1f{kind}\x1f{about}"
 
 
+# -- the example in a title: one real value, redacted ----------------------------------------------------
+HIDDEN = REDACTED  # as the configured redaction patterns write it
+# hidden whole: an e-mail address (anything with an @), an IP address (with or without a port), a
+# token (16 or more letters, digits and +/=_.- holding both a letter and a digit)
+_TOKEN = re.compile(r"(?=\S*[A-Za-z])(?=\S*\d)[A-Za-z0-9+/=_.\-]{16,}")
+_HOST_PORT = re.compile(r"^\[?([0-9A-Fa-f:.]+?)\]?(?::\d{1,5})?$")
+_EXAMPLED = ("unseen", "retry", "frequent")  # the kinds whose subject is a line of the session
+_EG = " (e.g. "
+
+
+def _is_ip(value: str) -> bool:
+    for text in (value, *(m.group(1) for m in [_HOST_PORT.match(value)] if m)):
+        try:
+            ipaddress.ip_address(text)
+            return True
+        except ValueError:
+            pass
+    return False
+
+
+def redact_value(value: str) -> str:
+    """One variable value as a title shows it: hidden whole when it looks like an e-mail address,
+    an IP address or a token (or the configured patterns hid part of it); otherwise its first and
+    last characters around "…" ("4512" → "4…2"), and "…" alone for one or two characters.
+    Surrounding quotes stay."""
+    if len(value) >= 2 and value[0] == value[-1] and value[0] in "\"'":
+        return value[0] + redact_value(value[1:-1]) + value[0]
+    if "@" in value or HIDDEN in value or _TOKEN.fullmatch(value) or _is_ip(value):
+        return HIDDEN
+    return "…" if len(value) <= 2 else f"{value[0]}…{value[-1]}"
+
+
+def _pattern(template: str) -> re.Pattern:
+    """A template as a regex over a raw line: its words in order, each ``<var>`` a group."""
+    var = r'("[^"]*"|\S+?)'
+    words = ["".join(var if part == WILDCARD else re.escape(part) for part in re.split(f"({WILDCARD})", w))
+             for w in template.split()]
+    return re.compile(r"(?<!\S)" + r"\s+".join(words) + r"(?!\S)")
+
+
+def example(template: str, alert: dict) -> str | None:
+    """``template`` filled in with the values of the first of ``alert``'s sample lines that it
+    matches, each redacted (:func:`redact_value`); None when it has no variable or no sample shows it."""
+    if WILDCARD not in template:
+        return None
+    pattern = _pattern(template)
+    for line in alert.get("samples") or []:
+        m = pattern.search(line)
+        if m:
+            values = iter(m.groups())
+            return re.sub(re.escape(WILDCARD), lambda _: redact_value(next(values)), " ".join(template.split()))
+    return None
+
+
 def title(alert: dict) -> str:
-    """One line naming the strongest explanation of ``alert``."""
+    """One line naming the strongest explanation of ``alert``, with an example where a sample
+    line of it shows the template's values: "never-seen event 'courier <var> authenticated' (e.g.
+    courier 4…2 authenticated)". Missing steps have none (the session has no line of them)."""
+    head = headline(alert)
+    kind, about, _ = strongest(alert)
+    if kind in _EXAMPLED:
+        shown = example(about, alert)
+        if shown is not None:
+            return f"{head}{_EG}{quote(shown)[1:-1]})"
+    return head
+
+
+def retitle(old: str, alert: dict) -> str:
+    """The title for a new representative ``alert``: while it names the same template as the
+    old title, the old title's example stays (the first alert's) beside the new headline
+    ("repeated 39×" may change); else :func:`title`."""
+    kind, about, _ = strongest(alert)
+    head = headline(alert)
+    at = head.find(quote(about))
+    if kind in _EXAMPLED and at >= 0 and old.startswith(head[:at + len(quote(about))]):
+        cut = old.find(_EG, at + len(quote(about)))
+        if cut >= 0:
+            return head + old[cut:]
+    return title(alert)
+
+
+def headline(alert: dict) -> str:
+    """The title without its example."""
     kind, about, rest = strongest(alert)
     if kind == "unseen":
         return f"never-seen event {quote(about)}{rest}"
@@ -88,6 +175,77 @@ def title(alert: dict) -> str:
     return f"session unlike the baseline (nearest normal group #{about})"
 
 
+# -- rate, reach and severity -------------------------------------------------------------------------
+# (severity, at least this many alerts, and at least this share of the sessions, or this many sources),
+# the first that holds; otherwise "low". tracewatch's own rule of thumb (README, Incidents).
+SEVERITY_RULE = (("critical", 10, 0.20, 3), ("high", 3, 0.02, 2))
+
+
+def severity(alerts: int, share: float | None, sources: int) -> str:
+    """low, high or critical by :data:`SEVERITY_RULE` (a share of None counts as none)."""
+    for name, least, least_share, wide in SEVERITY_RULE:
+        if alerts >= least and ((share or 0.0) >= least_share or sources >= wide):
+            return name
+    return "low"
+
+
+def reach(incident: dict) -> dict:
+    """How fast and how wide an incident hits. Rate: its alerts against the sessions scored of
+    its sources in the minutes of its window (first to last alert; the store reads them as
+    ``sessions``). Reach: the share of those sessions that are its alerts, and its number of
+    sources. Severity from both (:data:`SEVERITY_RULE`). With no sessions counted (an incident
+    older than the counts) the share is None."""
+    count = int(incident.get("count") or 0)
+    sessions = int(incident.get("sessions") or 0)
+    minutes = int(incident["last_seen"] // 60) - int(incident["first_seen"] // 60) + 1
+    share = round(min(1.0, count / sessions), 4) if sessions else None
+    n_sources = len((incident.get("stats") or {}).get("sources") or incident.get("sources") or ())
+    return {"severity": severity(count, share, n_sources),
+            "rate": {"alerts": count, "sessions": sessions, "window_s": 60 * minutes},
+            "reach": {"share": share, "sources": n_sources}}
+
+
+def duration(seconds: float) -> str:
+    """A length of time in words: "10 min", "3.0 h", "2 d"."""
+    minutes = round(seconds / 60)
+    if minutes < 120:
+        return f"{minutes} min"
+    return f"{minutes / 60:.1f} h" if minutes < 48 * 60 else f"{minutes / 1440:.3g} d"
+
+
+def rate_text(d: dict) -> str:
+    """"12 of 300 sessions of locker-api in 10 min (4%)" for the list or detail form."""
+    rate, share = d["rate"], d["reach"]["share"]
+    of = ", ".join(d.get("sources") or []) or "its sources"
+    if share is None:
+        return f"{rate['alerts']} alerts in {duration(rate['window_s'])} (sessions of {of} not counted)"
+    pct = f"{share:.0%}" if share >= 0.01 else f"{share:.1%}"
+    return f"{rate['alerts']} of {rate['sessions']} sessions of {of} in {duration(rate['window_s'])} ({pct})"
+
+
+# -- alerts over time ---------------------------------------------------------------------------------
+BUCKETS_S = (60, 300, 600, 1800, 3600, 3 * 3600, 6 * 3600, 86_400)  # the widths a bar may have
+MAX_BARS = 48
+
+
+def bucket_for(first: float, last: float) -> int:
+    """The narrowest bar of :data:`BUCKETS_S` that shows ``first`` … ``last`` in at most
+    :data:`MAX_BARS` bars (whole days per bar beyond)."""
+    for b in BUCKETS_S:
+        if int(last // b) - int(first // b) < MAX_BARS:
+            return b
+    return 86_400 * -(-int(last - first) // (86_400 * (MAX_BARS - 1)))
+
+
+def timeline(first: float, last: float, alert_counts: Callable[[int], dict[int, int]]) -> dict:
+    """Alerts per bar from ``first`` to ``last``: ``{"bucket_s", "start", "alerts": [n, …]}``;
+    ``alert_counts(bucket_s)`` gives the alerts per bucket index (as the store counts them)."""
+    b = bucket_for(first, last)
+    lo, hi = int(first // b), int(last // b)
+    got = alert_counts(b)
+    return {"bucket_s": b, "start": lo * b, "alerts": [got.get(i, 0) for i in range(lo, hi + 1)]}
+
+
 def shared(stats: dict, count: int) -> dict[str, list[dict]]:
     """What at least half of an incident's alerts have in common, most common first."""
     out: dict[str, list[dict]] = {}
@@ -98,9 +256,11 @@ def shared(stats: dict, count: int) -> dict[str, list[dict]]:
     return out
 
 
-def detail(incident: dict, *, max_samples: int = 5, redact: Callable[[str], str] | None = None) -> dict:
-    """The incident with what a person needs to act: title, step difference, what its alerts
-    share, the closest normal session, and bounded, redacted sample lines."""
+def detail(incident: dict, *, max_samples: int = 5, redact: Callable[[str], str] | None = None,
+           alert_counts: Callable[[int], dict[int, int]] | None = None) -> dict:
+    """The incident with what a person needs to act: title, rate and severity, step difference,
+    what its alerts share, the closest normal session, bounded, redacted sample lines, and (given
+    ``alert_counts``, see :func:`timeline`) its alerts over time."""
     rep = incident.get("representative") or {}
     samples = [s if len(s) <= MAX_SAMPLE else s[:MAX_SAMPLE - 1] + "…" for s in (rep.get("samples") or [])]
     if redact is not None:
@@ -110,11 +270,14 @@ def detail(incident: dict, *, max_samples: int = 5, redact: Callable[[str], str]
         diff = diff[:MAX_DIFF] + [f"… {len(diff) - MAX_DIFF} more differences"]
     return {
         **{k: v for k, v in incident.items() if k not in ("representative", "stats")},
+        **reach(incident),
         "shared": shared(incident.get("stats") or {}, incident.get("count", 0)),
         "sources": sorted((incident.get("stats") or {}).get("sources", {})),
         "diff": diff,
         "closest_normal": list(rep.get("closest_normal") or [])[:200],
         "samples": samples[:max_samples],
+        **({"timeline": timeline(incident["first_seen"], incident["last_seen"], alert_counts)}
+           if alert_counts is not None else {}),
         "representative": {k: rep.get(k) for k in ("alert_id", "source", "session_key", "score", "p_value",
                                                      "reasons", "cluster", "events", "baseline_version",
                                                      "start", "end")},
@@ -127,6 +290,7 @@ def brief(incident: dict) -> dict:
     out = {k: v for k, v in incident.items() if k not in ("representative", "stats")}
     out["sources"] = sorted(stats.get("sources", {}))
     out["reasons"] = sorted(stats.get("reasons", {}))
+    out.update(reach(incident))
     return out
 
 
@@ -155,13 +319,16 @@ def table(rows: list[dict], *, width: int = 60) -> str:
     """A compact table of incidents (the list form from :func:`brief`)."""
     if not rows:
         return "no incidents"
-    out = [f"{'ID':>5}  {'STATUS':<12}  {'ALERTS':>6}  {'LAST SEEN (UTC)':<19}  {'SOURCES':<16}  TITLE"]
+    out = [f"{'ID':>5}  {'STATUS':<12}  {'ALERTS':>6}  {'OF SESSIONS':>11}  {'SEVERITY':<8}  {'LAST SEEN (UTC)':<19}  "
+           f"{'SOURCES':<16}  TITLE"]
     for r in rows:
         sources = safe(",".join(r.get("sources") or []))
         sources = sources if len(sources) <= 16 else sources[:15] + "…"
         t = safe(r["title"])
-        out.append(f"{r['id']:>5}  {r['status']:<12}  {r['count']:>6}  {_utc(r['last_seen']):<19}  "
-                   f"{sources:<16}  {t if len(t) <= width else t[:width - 1] + '…'}")
+        share = (r.get("reach") or {}).get("share")  # (none from an older daemon's API)
+        of = "-" if share is None else f"{share:.0%} of {r['rate']['sessions']}"
+        out.append(f"{r['id']:>5}  {r['status']:<12}  {r['count']:>6}  {of:>11}  {r.get('severity', '-'):<8}  "
+                   f"{_utc(r['last_seen']):<19}  {sources:<16}  {t if len(t) <= width else t[:width - 1] + '…'}")
     return "\n".join(out)
 
 
@@ -170,7 +337,9 @@ def text(d: dict) -> str:
     rep = d.get("representative") or {}
     lines = [f"incident #{d['id']}: {safe(d['title'])}",
              f"  status      {d['status']}" + (f" (by {safe(d['status_by'])})" if d.get("status_by") else ""),
-             f"  alerts      {d['count']}",
+             f"  severity    {d.get('severity', '-')}",
+             f"  alerts      {safe(rate_text(d))}, from {d['reach']['sources']} source(s)" if "rate" in d
+             else f"  alerts      {d['count']}",
              f"  first seen  {_utc(d['first_seen'])} UTC",
              f"  last seen   {_utc(d['last_seen'])} UTC",
              f"  sources     {safe(', '.join(d.get('sources') or []))}",
@@ -178,6 +347,8 @@ def text(d: dict) -> str:
              f"(alert {rep.get('alert_id')}, score {rep.get('score')})"]
     if d.get("note"):
         lines.append(f"  note        {safe(d['note'])}")
+    if d.get("timeline"):
+        lines += timeline_text(d["timeline"])
     if d.get("diff"):
         lines.append("difference from the closest normal session:")
         lines += [f"  {safe(x)}" for x in d["diff"]]
@@ -191,6 +362,18 @@ def text(d: dict) -> str:
         lines.append("sample lines (redacted):")
         lines += [f"  {safe(s)}" for s in d["samples"]]
     return "\n".join(lines)
+
+
+def timeline_text(tl: dict, *, width: int = 40) -> list[str]:
+    """A timeline (:func:`timeline`) as one line per bar: its start (UTC), a bar, the count."""
+    b, alerts = tl["bucket_s"], tl["alerts"]
+    top = max(alerts, default=0) or 1
+    lines = [f"alerts over time ({duration(b)} per bar, UTC):"]
+    for i, n in enumerate(alerts):
+        at = _utc(tl["start"] + i * b)
+        bar = "█" * max(1 if n else 0, round(width * n / top))
+        lines.append(f"  {at[5:16] if b < 86_400 else at[:10]}  {bar}{' ' if n else ''}{n}")
+    return lines
 
 
 def _num(x, digits: int = 3) -> str:

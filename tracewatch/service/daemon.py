@@ -276,7 +276,10 @@ class Daemon:
         self.metrics.observe_score(verdict["source"], verdict["score"])
         if verdict["alert"]:
             self.journal.append(verdict)
-            iid = self.incidents.add(verdict)  # recognises an alert raised again after a restart
+        # every session is counted (incidents' rate and reach); an alert is grouped, and one
+        # raised again after a restart is recognised
+        iid = self.incidents.add(verdict)
+        if verdict["alert"]:
             self.refit.offer_alert(verdict, iid)  # refit: on-call may have said this pattern is normal
 
     def _checkpoint(self) -> None:

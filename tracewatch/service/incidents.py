@@ -58,8 +58,9 @@ class Incidents:
         self.notifier.start()
 
     def add(self, alert: dict) -> int | None:
-        """Group an alert. A store that fails (disk full, say) is logged and does not stop the
-        caller: alerts.jsonl stays the record, and later alerts are grouped when it works again."""
+        """Count a verdict's session and group it when it is an alert. A store that fails (disk
+        full, say) is logged and does not stop the caller: alerts.jsonl stays the record, and
+        later alerts are grouped when it works again."""
         try:
             self.store  # noqa: B018
             return self.tracker.add(alert)
@@ -88,6 +89,11 @@ class Incidents:
             self._store.release()
 
     def close(self) -> None:
+        if self.tracker is not None:
+            try:
+                self.tracker.flush()  # the sessions counted since the last tick
+            except (sqlite3.Error, StateError, OSError) as exc:
+                log.error("incident store: %s; the last second's session counts not written", exc)
         if self.notifier is not None:
             self.notifier.stop()
         if self._store is not None:

@@ -7,9 +7,10 @@ place where the incident layer's outcomes become HTTP status codes: IncidentNotF
 InvalidTransition → 409, any other TracewatchError (a store that cannot be opened or read) → 503.
 The CLI's client for these routes is :mod:`tracewatch.service.client`.
 
-    GET  /                              the incident list (HTML)
+    GET  /?status=&source=&limit=&offset=
+                                        the incident list (HTML), open incidents first, with charts
     GET  /incidents/{id}                one incident (HTML)
-    GET  /api/incidents?status=&since=&limit=&offset=
+    GET  /api/incidents?status=&source=&since=&limit=&offset=
                                         incidents, most recently active first (JSON)
     GET  /api/incidents/{id}            one incident in detail (JSON)
     POST /api/incidents/{id}/ack        acknowledge            ┐ need "Authorization: Bearer
@@ -33,8 +34,8 @@ import orjson
 
 from ..alerts.alert import Redactor
 from ..alerts.incidents import ACTIONS
-from ..alerts.store import STATUSES
-from ..alerts.summary import brief, detail
+from ..alerts.store import STATUSES, IncidentStore
+from ..alerts.summary import brief, detail, timeline
 from ..errors import IncidentNotFound, InvalidTransition, TracewatchError
 from . import page
 from .client import incident_token, parse_since
@@ -93,6 +94,22 @@ def route(h: BaseHTTPRequestHandler, incidents: Incidents | None) -> bool:
 
 
 PAGE_ROWS = 50  # incidents per page of the HTML list
+MAX_SOURCE = 200  # characters of a ?source= filter
+PAGE_SPAN_S = 7 * 86_400  # the list's charts cover at most the week before its newest alert
+
+
+def _charts(store: IncidentStore, rows: list[dict], status: str | None, source: str | None
+            ) -> tuple[dict | None, dict[int, dict]]:
+    """The list's charts, on one time axis (from the listed incidents' first alert to their
+    last): alerts over time of every incident of the filter, and of each listed incident."""
+    if not rows:
+        return None, {}
+    end = max(r["last_seen"] for r in rows)
+    start = max(min(r["first_seen"] for r in rows), end - PAGE_SPAN_S)
+    overall = timeline(start, end, lambda b: store.alert_counts(b, status=status, source=source, from_ts=start))
+    each = {r["id"]: timeline(start, end, lambda b, i=r["id"]: store.alert_counts(b, incident_id=i, from_ts=start))
+            for r in rows}
+    return overall, each
 
 
 def _get(h: BaseHTTPRequestHandler, inc: Incidents, path: str, query: dict[str, list[str]]) -> None:
@@ -103,6 +120,9 @@ def _get(h: BaseHTTPRequestHandler, inc: Incidents, path: str, query: dict[str, 
             status = query.get("status", [None])[0] or None
             if status is not None and status not in STATUSES:
                 raise ValueError(f"status: use one of {', '.join(STATUSES)}")
+            source = query.get("source", [None])[0] or None
+            if source is not None and len(source) > MAX_SOURCE:
+                raise ValueError(f"source: at most {MAX_SOURCE} characters")
             since = parse_since(query["since"][0]) if "since" in query else None
             limit = int(query.get("limit", [str(PAGE_ROWS if path == "/" else 100)])[0])
             offset = int(query.get("offset", ["0"])[0])
@@ -114,11 +134,14 @@ def _get(h: BaseHTTPRequestHandler, inc: Incidents, path: str, query: dict[str, 
             else:
                 send_json(h, 400, {"error": str(exc)})
             return
-        rows = [brief(i) for i in store.incidents(status=status, since=since, limit=limit, offset=offset)]
+        rows = [brief(i) for i in store.incidents(status=status, since=since, source=source, limit=limit,
+                                                  offset=offset, open_first=path == "/")]
         if path == "/":
             notify = inc.notifier.status() if inc.notifier is not None else {}
+            overall, charts = _charts(store, rows, status, source)
             _html(h, 200, page.list_page(rows, store.counts(), notify, refresh_s=cfg.page_refresh_s,
-                                         status=status, offset=offset, limit=limit))
+                                         status=status, source=source, sources=store.sources(), offset=offset,
+                                         limit=limit, overall=overall, charts=charts))
             return
         notify = inc.notifier.status() if inc.notifier is not None else {}
         send_json(h, 200, {"incidents": rows, "counts": store.counts(), "notify": notify})
@@ -131,7 +154,8 @@ def _get(h: BaseHTTPRequestHandler, inc: Incidents, path: str, query: dict[str, 
         else:
             _html(h, 404, page.message_page("Not found", f"No incident at {path}.", refresh_s=cfg.page_refresh_s))
         return
-    d = detail(found, max_samples=cfg.max_samples, redact=Redactor(inc.cfg.redact))
+    d = detail(found, max_samples=cfg.max_samples, redact=Redactor(inc.cfg.redact),
+               alert_counts=lambda b: store.alert_counts(b, incident_id=found["id"]))
     if path.startswith("/api/"):
         d["alert_ids"] = store.alert_ids(d["id"])
         send_json(h, 200, d)

@@ -13,9 +13,11 @@ from __future__ import annotations
 
 import html
 import time
+from urllib.parse import urlencode
 from datetime import datetime, timezone
 
 from ..alerts.store import STATUSES
+from ..alerts.summary import duration, rate_text
 
 CAUTION = ("This page shows text taken from logs (after the configured redaction patterns); logs can hold "
            "secrets and personal data. Keep this port on loopback or behind your own access control. "
@@ -29,10 +31,11 @@ body{font:15px/1.45 system-ui,sans-serif;margin:1.5em auto;max-width:72em;paddin
 h1{font-size:1.35em}h2{font-size:1.1em;margin-top:1.6em}
 table{border-collapse:collapse;width:100%}th,td{text-align:left;padding:.3em .5em;border-bottom:1px solid #ddd;
 vertical-align:top}th{background:#f3f3f3}td.n{text-align:right;font-variant-numeric:tabular-nums}
-.open{color:#a40000;font-weight:600}.acknowledged{color:#8a5a00}.resolved{color:#2f6b2f}.expected{color:#555}
+.open{color:#a40000;font-weight:600}.sev-critical{color:#fff;background:#a40000;font-weight:600}
+.sev-high{color:#8a3b00;font-weight:600}.sev-low{color:#555}.acknowledged{color:#8a5a00}.resolved{color:#2f6b2f}.expected{color:#555}
 pre{background:#f6f6f6;padding:.6em;overflow-x:auto;white-space:pre-wrap;word-break:break-all}
 footer{margin-top:2.5em;font-size:.85em;color:#555;border-top:1px solid #ddd;padding-top:.6em}
-code{background:#f3f3f3;padding:0 .2em}
+code{background:#f3f3f3;padding:0 .2em}td.title{overflow-wrap:anywhere}svg.chart{display:block}
 """
 
 
@@ -87,29 +90,89 @@ def triage_text(inc: dict) -> str:
     return f"triage {verb} {hint['label']} (margin {hint.get('margin')})"
 
 
+# -- alerts over time: inline SVG (markup of the page, not a fetched resource: the CSP allows it) --
+BAR = "#d9480f"  # the bars' colour (the browser test looks for it in a screenshot)
+MAX_BAR = 48  # pixels: a bar is never wider (a chart of one or two bars stays a chart)
+
+
+def bars_svg(tl: dict, *, width: int = 720, height: int = 120, axis: bool = True) -> str:
+    """A timeline (:func:`tracewatch.alerts.summary.timeline`) as an SVG bar chart: one bar per
+    bucket, scaled to the peak; with ``axis``, the first and last bucket's times and the peak."""
+    alerts, b = tl["alerts"], tl["bucket_s"]
+    slot = max(1, width // max(1, len(alerts)))
+    width = slot * max(1, len(alerts))
+    plot = height - (18 if axis else 0)
+    top = max(alerts, default=0) or 1
+    bar = min(MAX_BAR, max(1, slot - max(1, slot // 5)))  # a gap of a fifth between bars
+    rects = "".join(f'<rect x="{i * slot}" y="{plot - h}" width="{bar}" height="{h}"/>'
+                    for i, n in enumerate(alerts) if n for h in [max(1, round(plot * n / top))])
+    labels = ""
+    if axis:
+        last = tl["start"] + (len(alerts) - 1) * b
+        labels = (f'<g font-size="11" fill="#555"><text x="0" y="{height - 4}">{e(when(tl["start"]))}</text>'
+                  f'<text x="{width}" y="{height - 4}" text-anchor="end">{e(when(last))}</text>'
+                  f'<text x="{width}" y="11" text-anchor="end">peak {int(top)} per {e(duration(b))}</text></g>')
+    return (f'<svg class="chart" xmlns="http://www.w3.org/2000/svg" width="{width}" height="{height}" '
+            f'viewBox="0 0 {width} {height}" role="img" aria-label="alerts over time, {e(duration(b))} per bar">'
+            f'<line x1="0" y1="{plot}" x2="{width}" y2="{plot}" stroke="#bbb"/>'
+            f'<g fill="{BAR}" shape-rendering="crispEdges">{rects}</g>{labels}</svg>')
+
+
+def _share(inc: dict) -> str:
+    share = inc["reach"]["share"]
+    return "" if share is None else f' <small>({share:.0%} of {int(inc["rate"]["sessions"])})</small>'
+
+
+def _href(**params) -> str:
+    """A link to the list with these filters (escaped for an attribute)."""
+    query = urlencode({k: v for k, v in params.items() if v is not None})
+    return e("/?" + query if query else "/")
+
+
+def _choice(label: str, href: str, chosen: bool, cls: str = "") -> str:
+    attr = f' class="{e(cls)}"' if cls else ""
+    link = f'<a{attr} href="{href}">{label}</a>'
+    return f"<strong>{link}</strong>" if chosen else link
+
+
 def list_page(incidents: list[dict], counts: dict[str, int], notify: dict[str, dict], *, refresh_s: int,
-              status: str | None = None, offset: int = 0, limit: int = 200, now: float | None = None) -> str:
-    """One page of incidents (of one ``status``, if given), most recently active first; each
-    status in the tally links to its filter, and "newer"/"older" links page through."""
-    tally = ", ".join(f'<a class="{e(s)}" href="/?status={e(s)}">{counts.get(s, 0)} {e(s)}</a>'
-                      for s in STATUSES) + ' — <a href="/">all</a>'
+              status: str | None = None, source: str | None = None, sources: list[str] = (), offset: int = 0,
+              limit: int = 200, now: float | None = None, overall: dict | None = None,
+              charts: dict[int, dict] | None = None) -> str:
+    """One page of incidents (of one ``status`` and one ``source``, if given), open ones first,
+    then most recently active first; each status in the tally and each source links to its
+    filter, and "newer"/"older" links page through. ``overall`` (alerts over time of every
+    incident of the filter) and ``charts`` (per incident id, on the same time axis) are drawn as
+    inline SVG."""
+    tally = ", ".join(_choice(f"{counts.get(s, 0)} {e(s)}", _href(status=s, source=source), s == status, s)
+                      for s in STATUSES) + " — " + _choice("all", _href(source=source), status is None)
+    by_source = ""
+    if sources or source:
+        by_source = "<p>sources: " + " · ".join(
+            _choice(e(name), _href(status=status, source=name), name == source)
+            for name in sorted({*sources, *([source] if source else [])})) + " — " + _choice(
+            "all sources", _href(status=status), source is None) + "</p>"
     now = time.time() if now is None else now
-    keep = f"status={e(status)}&amp;" if status else ""
     paging = []
     if offset > 0:
-        paging.append(f'<a href="/?{keep}offset={max(0, offset - limit)}&amp;limit={limit}">newer</a>')
+        paging.append(f'<a href="{_href(status=status, source=source, offset=max(0, offset - limit), limit=limit)}">newer</a>')
     if len(incidents) == limit:
-        paging.append(f'<a href="/?{keep}offset={offset + limit}&amp;limit={limit}">older</a>')
+        paging.append(f'<a href="{_href(status=status, source=source, offset=offset + limit, limit=limit)}">older</a>')
+    charts = charts or {}
     rows = []
     for inc in incidents:
+        chart = bars_svg(charts[inc["id"]], width=144, height=24, axis=False) if inc["id"] in charts else ""
         rows.append(
             f'<tr><td><a href="/incidents/{int(inc["id"])}">#{int(inc["id"])}</a></td>'
-            f'<td class="{e(inc["status"])}">{e(inc["status"])}</td><td class="n">{int(inc["count"])}</td>'
-            f'<td>{_rel(inc["first_seen"], now)}</td><td>{_rel(inc["last_seen"], now)}</td>'
+            f'<td class="{e(inc["status"])}">{e(inc["status"])}</td>'
+            f'<td class="sev-{e(inc["severity"])}">{e(inc["severity"])}</td>'
+            f'<td class="n" title="{e(rate_text(inc))}">{int(inc["count"])}{_share(inc)}</td>'
+            f'<td>{chart}</td><td>{_rel(inc["first_seen"], now)}</td><td>{_rel(inc["last_seen"], now)}</td>'
             f'<td>{e(", ".join(inc.get("sources") or []))}</td><td class="title">{e(inc["title"])}</td>'
             f'<td class="triage">{e(triage_text(inc))}</td></tr>')
-    table = ("<table><thead><tr><th>id</th><th>status</th><th>alerts</th><th>first seen</th><th>last seen</th>"
-             "<th>sources</th><th>what happened</th><th>triage</th></tr></thead><tbody>\n" + "\n".join(rows) + "\n</tbody></table>"
+    table = ("<table><thead><tr><th>id</th><th>status</th><th>severity</th><th>alerts (of sessions)</th>"
+             "<th>over time</th><th>first seen</th><th>last seen</th><th>sources</th><th>what happened</th>"
+             "<th>triage</th></tr></thead><tbody>\n" + "\n".join(rows) + "\n</tbody></table>"
              if rows else "<p>No incidents recorded.</p>")
     sinks = []
     for name, st in notify.items():
@@ -118,9 +181,13 @@ def list_page(incidents: list[dict], counts: dict[str, int], notify: dict[str, d
             state += f", last error: {st['last_error']}"
         sinks.append(f"<li>{e(name)}: {e(state)}</li>")
     notes = f"<h2>Notifications</h2><ul>{''.join(sinks)}</ul>" if sinks else ""
-    shown = f"<p>showing {e(status) if status else 'all'}, from #{offset + 1}" + (
+    what = f"{e(status) if status else 'all'}" + (f" of {e(source)}" if source else "")
+    shown = f"<p>showing {what}, open first, from #{offset + 1}" + (
         f" — {' · '.join(paging)}" if paging else "") + "</p>"
-    body = f"<h1>tracewatch — incidents</h1><p>{tally}</p>\n{shown}\n{table}\n{notes}"
+    drawn = (f'<h2>Alerts over time</h2><div class="overall">{bars_svg(overall)}</div>'
+             f"<p><small>every incident shown by this filter ({what}), per {e(duration(overall['bucket_s']))}"
+             "</small></p>" if overall is not None else "")
+    body = f"<h1>tracewatch — incidents</h1><p>{tally}</p>\n{by_source}\n{shown}\n{drawn}\n{table}\n{notes}"
     return _page("tracewatch incidents", body, refresh_s=refresh_s)
 
 
@@ -134,7 +201,9 @@ def detail_page(d: dict, *, refresh_s: int) -> str:
     rep = d.get("representative") or {}
     facts = [("status", f'<span class="{e(d["status"])}">{e(d["status"])}</span>'
                         + (f" by {e(d['status_by'])}" if d.get("status_by") else "")),
-             ("alerts", e(d["count"])), ("first seen", e(when(d["first_seen"]))),
+             ("severity", f'<span class="sev-{e(d["severity"])}">{e(d["severity"])}</span>'),
+             ("alerts", e(f"{rate_text(d)}, from {d['reach']['sources']} source(s)")),
+             ("first seen", e(when(d["first_seen"]))),
              ("last seen", e(when(d["last_seen"]))), ("sources", e(", ".join(d.get("sources") or []))),
              ("representative session", f"{e(rep.get('source'))} / {e(rep.get('session_key'))} "
                                         f"(score {e(rep.get('score'))}, p = {e(rep.get('p_value'))})")]
@@ -144,6 +213,8 @@ def detail_page(d: dict, *, refresh_s: int) -> str:
         facts.append(("triage", e(triage_text(d))))
     parts = [f"<p><a href=\"/\">← all incidents</a></p><h1>#{iid}: {e(d['title'])}</h1>",
              "<table>" + "".join(f"<tr><th>{k}</th><td>{v}</td></tr>" for k, v in facts) + "</table>"]
+    if d.get("timeline"):
+        parts.append(f"<h2>Alerts over time</h2>{bars_svg(d['timeline'])}")
     if d.get("diff"):
         parts.append("<h2>Difference from the closest normal session</h2><ul class=\"diff\">"
                      + "".join(f"<li>{e(line)}</li>" for line in d["diff"]) + "</ul>")
