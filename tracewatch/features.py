@@ -58,11 +58,13 @@ class NgramVectorizer(TransformerMixin, BaseEstimator):
     ``fit(X, sample_weight=...)`` on event sequences (``X``: sequences of template indices)
     learns ``vocabulary_`` (n-gram → column), ``idf_``, ``unseen_idf_`` (the idf of an n-gram
     never seen) and ``n_sessions_``; a weight counts a sequence that many times, so distinct
-    sequences can stand for many identical sessions.
+    sequences can stand for many identical sessions. N-grams found in fewer than
+    ``min_support`` sessions stay out of the vocabulary: to a new session they are unseen.
     """
 
-    def __init__(self, ngram_max: int = 3) -> None:
+    def __init__(self, ngram_max: int = 3, min_support: float = 1.0) -> None:
         self.ngram_max = ngram_max
+        self.min_support = min_support
 
     def fit(self, X: Sequence[Sequence[int]], y=None, sample_weight: Sequence[float] | None = None
             ) -> "NgramVectorizer":
@@ -76,7 +78,10 @@ class NgramVectorizer(TransformerMixin, BaseEstimator):
         for seq, w in zip(X, weights):
             for gram in ngrams(seq, self.ngram_max):
                 df[gram] += w
-        grams = sorted(df, key=lambda g: (len(g), g))
+        # an n-gram of fewer than min_support sessions is weak evidence of normality (a few
+        # copies of an incident look like that too): it is left out, so it counts as unseen
+        least = min(self.min_support, max(df.values()))
+        grams = sorted((g for g, d in df.items() if d >= least), key=lambda g: (len(g), g))
         self.vocabulary_ = {g: i for i, g in enumerate(grams)}
         n = float(weights.sum())
         dfs = np.array([df[g] for g in grams], dtype=float)

@@ -147,11 +147,12 @@ class Baseline:
         a session far from everything to the widest cluster. The baseline sessions are
         vectorised on first use: only alerts ask."""
         import scipy.sparse as sp
+        from sklearn.preprocessing import normalize
 
-        if self._normal_matrix is None:
-            self._normal_matrix = sp.vstack(
+        if self._normal_matrix is None:  # unit rows: a session's n-grams too rare to learn left out
+            self._normal_matrix = normalize(sp.vstack(
                 [self.vectorizer.transform(self.normal_seqs[lo:lo + FIT_BLOCK])[0]
-                 for lo in range(0, len(self.normal_seqs), FIT_BLOCK)], format="csr")
+                 for lo in range(0, len(self.normal_seqs), FIT_BLOCK)], format="csr"))
         rows = self._rows_of.get(source)
         if rows is None:
             own = np.flatnonzero(np.asarray(self.normal_sources, dtype=object) == source)
@@ -289,10 +290,11 @@ def _cross_fit_round(sessions: list[tuple[str, Seq]], miner: TemplateTree, cfg: 
     rng = np.random.default_rng([cfg.model.seed, 1, rnd])
     folds = np.array_split(rng.permutation([i for i in range(len(sessions)) if i not in skip]), CROSS_FOLDS)
     found: dict[int, str] = {}
+    fold_cfg = cfg.model_copy(update={"features": cfg.features.model_copy(update={"min_support": 1})})
     for f, held in enumerate(folds):
         rest = rng.permutation(np.concatenate([folds[g] for g in range(CROSS_FOLDS) if g != f]))
         n_cal = max(1, int(round(len(rest) * cfg.model.calibration_fraction)))
-        model, *_ = _build(sessions, np.sort(rest[n_cal:]), np.sort(rest[:n_cal]), miner, cfg)
+        model, *_ = _build(sessions, np.sort(rest[n_cal:]), np.sort(rest[:n_cal]), miner, fold_cfg)
         scorer = model.make_scorer()
         by_source: dict[str, list[int]] = {}
         for i in held.tolist():
@@ -324,7 +326,7 @@ def _build(sessions: list[tuple[str, Seq]], train_idx: np.ndarray, cal_idx: np.n
     distinct = [seq for _, seq in counts]
     weights = np.array(list(counts.values()), dtype=float)
 
-    vectorizer = NgramVectorizer(cfg.features.ngram_max).fit(distinct, sample_weight=weights)
+    vectorizer = NgramVectorizer(cfg.features.ngram_max, cfg.features.min_support).fit(distinct, sample_weight=weights)
     # in blocks: a block's per-row vectors are garbage before the next is made
     X = sp.vstack([vectorizer.transform(distinct[lo:lo + FIT_BLOCK])[0]
                    for lo in range(0, len(distinct), FIT_BLOCK)], format="csr")
