@@ -312,6 +312,13 @@ def _cross_fit_round(sessions: list[tuple[str, Seq]], miner: TemplateTree, cfg: 
     return found
 
 
+def min_support(cfg: Config, n_sessions: float) -> float:
+    """The fewest fit sessions an n-gram must be seen in to be learned: ``[features]
+    min_support``, but never more than the smallest cluster the baseline learns
+    (``min_cluster_share`` of the sessions), so a small baseline keeps its rarer shapes."""
+    return max(1.0, min(float(cfg.features.min_support), cfg.model.min_cluster_share * n_sessions))
+
+
 def _build(sessions: list[tuple[str, Seq]], train_idx: np.ndarray, cal_idx: np.ndarray, miner: TemplateTree,
            cfg: Config) -> tuple[Baseline, object, list[Seq], np.ndarray]:
     """Vectorise and cluster ``train_idx``, fit the scorer, calibrate on ``cal_idx``."""
@@ -326,7 +333,8 @@ def _build(sessions: list[tuple[str, Seq]], train_idx: np.ndarray, cal_idx: np.n
     distinct = [seq for _, seq in counts]
     weights = np.array(list(counts.values()), dtype=float)
 
-    vectorizer = NgramVectorizer(cfg.features.ngram_max, cfg.features.min_support).fit(distinct, sample_weight=weights)
+    vectorizer = NgramVectorizer(cfg.features.ngram_max, min_support(cfg, float(weights.sum()))).fit(
+        distinct, sample_weight=weights)
     # in blocks: a block's per-row vectors are garbage before the next is made
     X = sp.vstack([vectorizer.transform(distinct[lo:lo + FIT_BLOCK])[0]
                    for lo in range(0, len(distinct), FIT_BLOCK)], format="csr")
