@@ -46,13 +46,16 @@ def alert_id(session: Session) -> str:
 
 
 def build_verdict(session: Session, seq: tuple[int, ...], score: float, cluster: int, distance: float,
-                  unseen_share: float, p_value: float, far: bool, baseline, redact: Redactor, *, explain_it: bool) -> dict:
+                  unseen_share: float, p_value: float, far: bool, novel: bool, baseline, redact: Redactor, *,
+                  explain_it: bool) -> dict:
+    """``far``: p ≤ false_alarm_rate; ``novel``: its never-seen events raise an alert by
+    themselves (:meth:`~tracewatch.model.baseline.Baseline.judge`)."""
     miner = baseline.miner
     unseen = Counter(e for e in seq if not miner.is_seen(e))
     reasons = []
     if far:
         reasons.append(REASON_FAR)
-    if unseen:
+    if novel:
         reasons.append(REASON_UNSEEN)
     verdict = {
         "alert": bool(reasons),

@@ -57,6 +57,7 @@ ARRAYS: tuple[Array, ...] = (
     Array("calibration_sources", "<i8", ("S",), names="sources"),
     Array("calibration_scores", "<f8", ("C",), low=0.0, high=1e12),
     Array("calibration_offsets", "<i8", ("S+1",), offsets_of="calibration_scores"),
+    Array("calibration_novelty", "<f8", ("S",), low=0.0, high=1.0),  # share holding a template new to the fit part
 )
 
 
@@ -71,7 +72,7 @@ class Judgement(NamedTuple):
     results: list[Result]  # (score, cluster, distance to its centre, unseen share)
     p_values: np.ndarray  # conformal p-values against the session's source
     far: np.ndarray  # p ≤ false_alarm_rate
-    unseen: np.ndarray  # holds an event the baseline never saw
+    unseen: np.ndarray  # holds a never-seen event that raises an alert by itself (Baseline.judge)
 
     @property
     def flagged(self) -> np.ndarray:
@@ -89,7 +90,7 @@ class Baseline:
                  cluster_weights: np.ndarray, cluster_df: np.ndarray, cluster_sources: list[str],
                  medoids: list[Seq], normal_seqs: list[Seq], normal_labels: np.ndarray,
                  normal_sources: list[str], scorer: Scorer, calibration: dict[str, ConformalThreshold],
-                 report: dict, version: str = "unsaved") -> None:
+                 report: dict, version: str = "unsaved", novelty: dict[str, float] | None = None) -> None:
         self.miner = miner
         self.vectorizer = vectorizer
         self.centers = centers
@@ -104,6 +105,9 @@ class Baseline:
         # one split-conformal threshold per source (POOLED: all sources, for sources that had too
         # few calibration sessions): each source keeps its own false-alarm rate
         self.calibration = calibration
+        # per calibration source: the share of its held-out sessions holding a template no fit
+        # session had — how often normal traffic brings new templates
+        self.novelty = novelty if novelty is not None else {}
         self.report = report
         self.version = version
         self._normal_matrix = None  # the distinct baseline sessions' vectors (closest_normal)
@@ -118,6 +122,12 @@ class Baseline:
         own = self.calibration.get(source)
         return own if own is not None and own.usable_ else self.calibration[POOLED]
 
+    def novelty_rate(self, source: str) -> float:
+        """How often normal sessions of ``source`` bring a new template (the pooled rate where
+        the source had too few calibration sessions of its own, as :meth:`conformal`)."""
+        own = self.calibration.get(source)
+        return self.novelty.get(source if own is not None and own.usable_ else POOLED, 0.0)
+
     def make_scorer(self) -> SessionScorer:
         """A scorer with its own cache (one per pipeline)."""
         return SessionScorer(self.vectorizer, self.centers, self.scorer, cluster_sources=self.cluster_sources,
@@ -126,7 +136,13 @@ class Baseline:
     def judge(self, scorer: SessionScorer, sources: Sequence[str], seqs: Sequence[Seq]) -> Judgement:
         """Score non-empty sessions, each source against its own clusters and calibration. A
         session is flagged when it is far from the baseline (p ≤ false_alarm_rate) or holds an
-        event the baseline never saw."""
+        event the baseline never saw, weighed by its severity: a never-seen template logged at
+        error level or worse always raises an alert; a milder one (or one without a level)
+        raises one by itself only where normal traffic brings new templates at most as often
+        as the false-alarm rate — on a drifting source (the calibration part held templates
+        the fit part never had, in more than that share of its sessions) such a session is
+        judged by its p-value alone, where the unseen n-grams already count, so the asked rate
+        holds."""
         rows: dict[str, list[int]] = {}
         for i, source in enumerate(sources):
             rows.setdefault(source, []).append(i)
@@ -136,9 +152,22 @@ class Baseline:
             for i, res in zip(idx, scorer.score(source, [seqs[i] for i in idx])):
                 results[i] = res
             p_values[idx] = self.conformal(source).p_values([results[i][0] for i in idx])
-        n_seen = self.miner.n_seen
-        unseen = np.fromiter((max(s) >= n_seen for s in seqs), dtype=bool, count=len(seqs))
-        return Judgement(results, p_values, p_values <= self.false_alarm_rate, unseen)
+        return Judgement(results, p_values, p_values <= self.false_alarm_rate, self._novel(sources, seqs))
+
+    def _novel(self, sources: Sequence[str], seqs: Sequence[Seq]) -> np.ndarray:
+        """Which sessions' never-seen events raise an alert by themselves (see :meth:`judge`)."""
+        from ..templates import SEVERE
+
+        templates, n_seen, rate = self.miner.templates, self.miner.n_seen, self.false_alarm_rate
+        out = np.zeros(len(seqs), dtype=bool)
+        for i, seq in enumerate(seqs):
+            if max(seq) < n_seen:
+                continue
+            # an index past the miner's templates (a refit gate's template id this baseline
+            # does not know) has no level: it counts as severe, as every unseen event used to
+            out[i] = self.novelty_rate(sources[i]) <= rate or any(
+                e >= len(templates) or templates[e].severity >= SEVERE for e in seq if e >= n_seen)
+        return out
 
     def closest_normal(self, vec: SessionVector, source: str) -> tuple[Seq, int]:
         """The distinct baseline session of ``source`` (of any source when it has none) nearest a
@@ -184,6 +213,7 @@ class Baseline:
             "calibration_sources": [src for src, _ in cal],
             "calibration_scores": np.concatenate([c.calibration_scores_ for _, c in cal]).astype(np.float64),
             "calibration_offsets": np.cumsum([0] + [len(c.calibration_scores_) for _, c in cal]).astype(np.int64),
+            "calibration_novelty": np.array([self.novelty.get(src, 0.0) for src, _ in cal], dtype=np.float64),
             **self.scorer.to_arrays(),
         }
 
@@ -209,7 +239,8 @@ class Baseline:
                    medoids=_unflat(arrays["medoid_events"], arrays["medoid_offsets"]),
                    normal_seqs=_unflat(arrays["normal_events"], arrays["normal_offsets"]),
                    normal_labels=arrays["normal_labels"], normal_sources=arrays["normal_sources"],
-                   scorer=scorer.from_arrays(arrays), calibration=calibration, report=report, version=version)
+                   scorer=scorer.from_arrays(arrays), calibration=calibration, report=report, version=version,
+                   novelty=dict(zip(cal_sources, arrays["calibration_novelty"].tolist())))
 
 
 def _flat(seqs: list[Seq]) -> tuple[np.ndarray, np.ndarray]:
@@ -350,7 +381,7 @@ def _build(sessions: list[tuple[str, Seq]], train_idx: np.ndarray, cal_idx: np.n
         medoids=[distinct[r] for r in model.medoids_], normal_seqs=[distinct[r] for r in keep],
         normal_labels=labels[keep], normal_sources=[row_sources[r] for r in keep], scorer=scorer,
         calibration={}, report={})
-    _calibrate(baseline, [sessions[i] for i in cal_idx], mcfg.false_alarm_rate)
+    _calibrate(baseline, [sessions[i] for i in cal_idx], mcfg.false_alarm_rate, {e for seq in distinct for e in seq})
     return baseline, model, distinct, weights
 
 
@@ -378,8 +409,9 @@ def _owners(labels: np.ndarray, weights: np.ndarray, row_sources: list[str], mod
             for cl in range(len(model.cluster_centers_))]
 
 
-def _calibrate(baseline: Baseline, held_out: list[tuple[str, Seq]], rate: float) -> None:
-    """One threshold per source from its own held-out sessions, and the pooled one."""
+def _calibrate(baseline: Baseline, held_out: list[tuple[str, Seq]], rate: float, fitted: set[int]) -> None:
+    """One threshold per source from its own held-out sessions, and the pooled one; and how
+    often those sessions hold a template none of the ``fitted`` sessions had (the novelty rate)."""
     from .calibrate import ConformalThreshold
 
     scorer = baseline.make_scorer()
@@ -392,6 +424,9 @@ def _calibrate(baseline: Baseline, held_out: list[tuple[str, Seq]], rate: float)
         calibration[source] = ConformalThreshold(rate).fit(scores)
     calibration[POOLED] = ConformalThreshold(rate).fit(
         np.concatenate([c.calibration_scores_ for c in calibration.values()]))
+    novel = {source: [not fitted.issuperset(seq) for seq in seqs] for source, seqs in by_source.items()}
+    baseline.novelty = {source: float(np.mean(flags)) for source, flags in novel.items()}
+    baseline.novelty[POOLED] = float(np.mean([f for flags in novel.values() for f in flags]))
 
 
 def _report(b: Baseline, model, cfg: Config, *, n: int, n_train: int, n_cal: int, distinct: list[Seq],
@@ -424,7 +459,8 @@ def _report(b: Baseline, model, cfg: Config, *, n: int, n_train: int, n_cal: int
             for item in model.contamination_
         ],
         "thresholds": {src: {"threshold": c.threshold_ if c.usable_ else None,
-                             "calibration_sessions": len(c.calibration_scores_)}
+                             "calibration_sessions": len(c.calibration_scores_),
+                             "new_template_share": round(b.novelty.get(src, 0.0), 5)}
                        for src, c in b.calibration.items()},
         "false_alarm_rate": mcfg.false_alarm_rate,
         "scorer": mcfg.scorer,
@@ -439,6 +475,12 @@ def _report(b: Baseline, model, cfg: Config, *, n: int, n_train: int, n_cal: int
             f"can give (1/{n_cal + 1} = {1 / (n_cal + 1):.4g}), so only never-seen events raise alerts: "
             f"fit on at least {need} calibration sessions (more baseline sessions, or a higher "
             f"calibration_fraction than {mcfg.calibration_fraction})")
+    for src, share in b.novelty.items():
+        if src != POOLED and share > mcfg.false_alarm_rate:
+            report["notes"].append(
+                f"source {src!r} brings new templates in {share:.2%} of its normal sessions, more often than "
+                f"false_alarm_rate={mcfg.false_alarm_rate}: a new template there alerts by itself only when "
+                f"logged at error level or worse; others are judged by their score")
     for src, c in b.calibration.items():
         if c.usable_:
             continue
