@@ -8,7 +8,26 @@ from __future__ import annotations
 
 import random
 
-from tracewatch.demo.scenario import Scenario, Step
+from tracewatch.demo.scenario import GeneratedSession, Scenario, Step, render_text
+
+
+def fit_and_score(tmp_path, scenario: Scenario, base: list[GeneratedSession], day: list[GeneratedSession],
+                  source: str, **model):
+    """Fit on ``base``'s log and score ``day``'s (every session): the baseline and the verdicts by
+    session key."""
+    from tracewatch.batch import assign_sources, fit_files, score_files
+    from tracewatch.config import parse_config
+
+    (tmp_path / "b.log").write_text("\n".join(render_text(scenario, base)) + "\n")
+    (tmp_path / "d.log").write_text("\n".join(render_text(scenario, day)) + "\n")
+    cfg = parse_config({"state_dir": str(tmp_path / "state"),
+                        "sources": [{"name": source, "line_pattern": scenario.line_pattern}],
+                        "sessions": {"idle_timeout_s": 30}, "model": model})
+    baseline, _, _ = fit_files(cfg, assign_sources(cfg, [str(tmp_path / "b.log")]))
+    verdicts: dict[str, dict] = {}
+    score_files(cfg, assign_sources(cfg, [str(tmp_path / "d.log")]), baseline,
+                lambda v: verdicts.__setitem__(v["session_key"], v), score_all=True)
+    return baseline, verdicts
 
 
 def ride(rng: random.Random) -> list[Step]:

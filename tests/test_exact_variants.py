@@ -12,9 +12,9 @@ import numpy as np
 import pytest
 from sklearn.metrics import silhouette_score
 
-from tracewatch.batch import assign_sources, fit_files, score_files
-from tracewatch.config import parse_config
-from tracewatch.demo.scenario import GeneratedSession, Scenario, Step, generate, render_text
+from tracewatch.demo.scenario import GeneratedSession, Scenario, Step, generate
+
+from .scenarios import fit_and_score
 
 RATE = 0.005
 STEPS = {
@@ -72,18 +72,7 @@ def run(tmp_path, seed: int):
     rng = random.Random(seed)
     for sess in rng.sample(day, 20):
         _repeat_a_step(sess, rng)
-    (tmp_path / "b.log").write_text("\n".join(render_text(scenario, base)) + "\n")
-    (tmp_path / "d.log").write_text("\n".join(render_text(scenario, day)) + "\n")
-    cfg = parse_config({
-        "state_dir": str(tmp_path / "state"),
-        "sources": [{"name": "tickets", "line_pattern": scenario.line_pattern}],
-        "sessions": {"idle_timeout_s": 30},
-        "model": {"false_alarm_rate": RATE},
-    })
-    baseline, _, pipeline = fit_files(cfg, assign_sources(cfg, [str(tmp_path / "b.log")]))
-    verdicts: dict[str, dict] = {}
-    score_files(cfg, assign_sources(cfg, [str(tmp_path / "d.log")]), baseline,
-                lambda v: verdicts.__setitem__(v["session_key"], v), score_all=True)
+    baseline, verdicts = fit_and_score(tmp_path, scenario, base, day, "tickets", false_alarm_rate=RATE)
     return baseline, day, verdicts
 
 

@@ -15,10 +15,10 @@ from datetime import datetime, timezone
 
 import pytest
 
-from tracewatch.batch import assign_sources, fit_files, score_files
-from tracewatch.config import parse_config
-from tracewatch.demo.scenario import GeneratedSession, Scenario, Step, generate, render_text
+from tracewatch.demo.scenario import GeneratedSession, Scenario, Step, generate
 from tracewatch.templates import SEVERE, severity
+
+from .scenarios import fit_and_score
 
 RATE = 0.005
 
@@ -61,17 +61,7 @@ def run(tmp_path, drift: float, seed: int = 7):
         _insert(sess, Step("linker", f"linker crashed with signal {rng.randint(4, 11)}", "ERROR"), "error")
     for sess in picked[20:]:  # a new, mild step (the same template every time)
         _insert(sess, Step("cache", f"remote cache warmed with {rng.randint(10, 99)} entries"), "info")
-    (tmp_path / "b.log").write_text("\n".join(render_text(scenario, base)) + "\n")
-    (tmp_path / "d.log").write_text("\n".join(render_text(scenario, day)) + "\n")
-    cfg = parse_config({
-        "state_dir": str(tmp_path / "state"),
-        "sources": [{"name": "ci", "line_pattern": scenario.line_pattern}],
-        "model": {"false_alarm_rate": RATE},
-    })
-    baseline, _, _ = fit_files(cfg, assign_sources(cfg, [str(tmp_path / "b.log")]))
-    verdicts: dict[str, dict] = {}
-    score_files(cfg, assign_sources(cfg, [str(tmp_path / "d.log")]), baseline,
-                lambda v: verdicts.__setitem__(v["session_key"], v), score_all=True)
+    baseline, verdicts = fit_and_score(tmp_path, scenario, base, day, "ci", false_alarm_rate=RATE)
     return baseline, day, verdicts
 
 
