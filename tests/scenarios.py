@@ -106,3 +106,43 @@ def bike_docks() -> Scenario:
         line_format="[{ts}] {service} {level} ctx={key}: {message}",
         time_format="%Y-%m-%d %H:%M:%S,%f",
     )
+
+
+# -- ticket machines at tram stops: a few exact variants of one workflow ------------------------
+STEPS = {
+    "open": "ticket session opened",
+    "lang": "display language switched",
+    "zone": "fare zone selected",
+    "disc": "reduced fare applied",
+    "fare": "fare shown to rider",
+    "coin": "coin accepted",
+    "card": "bank card presented",
+    "ok": "bank card approved",
+    "print": "ticket printed",
+    "change": "change returned",
+    "receipt": "receipt printed",
+    "close": "ticket session closed",
+}
+# (share of traffic, step sequence): eight exact variants; "reduced-card-receipt" is the rare one
+VARIANTS = {
+    "card": (0.28, "open zone fare card ok print close"),
+    "coins": (0.20, "open zone fare coin coin print change close"),
+    "card-receipt": (0.15, "open zone fare card ok print receipt close"),
+    "lang-card": (0.12, "open lang zone fare card ok print close"),
+    "reduced-coins": (0.10, "open zone disc fare coin coin coin print close"),
+    "coins-receipt": (0.07, "open zone fare coin coin print receipt close"),
+    "lang-coins": (0.05, "open lang zone fare coin coin print change close"),
+    "reduced-card-receipt": (0.03, "open zone disc fare card ok print receipt close"),
+}
+RARE = "reduced-card-receipt"  # 3% of traffic
+
+
+def _workflow(seq: str):
+    def steps(rng: random.Random) -> list[Step]:
+        return [Step(name, STEPS[name]) for name in seq.split()]
+    return steps
+
+
+def ticket_machines() -> Scenario:
+    return Scenario(service="ticketd", workflows={n: (share, _workflow(seq)) for n, (share, seq) in VARIANTS.items()},
+                    novel=[])

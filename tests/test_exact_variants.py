@@ -12,48 +12,11 @@ import numpy as np
 import pytest
 from sklearn.metrics import silhouette_score
 
-from tracewatch.demo.scenario import GeneratedSession, Scenario, Step, generate
+from tracewatch.demo.scenario import GeneratedSession, generate
 
-from .scenarios import fit_and_score
+from .scenarios import RARE, STEPS, VARIANTS, fit_and_score, ticket_machines
 
 RATE = 0.005
-STEPS = {
-    "open": "ticket session opened",
-    "lang": "display language switched",
-    "zone": "fare zone selected",
-    "disc": "reduced fare applied",
-    "fare": "fare shown to rider",
-    "coin": "coin accepted",
-    "card": "bank card presented",
-    "ok": "bank card approved",
-    "print": "ticket printed",
-    "change": "change returned",
-    "receipt": "receipt printed",
-    "close": "ticket session closed",
-}
-# (share of traffic, step sequence): eight exact variants; "reduced-card-receipt" is the rare one
-VARIANTS = {
-    "card": (0.28, "open zone fare card ok print close"),
-    "coins": (0.20, "open zone fare coin coin print change close"),
-    "card-receipt": (0.15, "open zone fare card ok print receipt close"),
-    "lang-card": (0.12, "open lang zone fare card ok print close"),
-    "reduced-coins": (0.10, "open zone disc fare coin coin coin print close"),
-    "coins-receipt": (0.07, "open zone fare coin coin print receipt close"),
-    "lang-coins": (0.05, "open lang zone fare coin coin print change close"),
-    "reduced-card-receipt": (0.03, "open zone disc fare card ok print receipt close"),
-}
-RARE = "reduced-card-receipt"
-
-
-def _workflow(seq: str):
-    def steps(rng: random.Random) -> list[Step]:
-        return [Step(name, STEPS[name]) for name in seq.split()]
-    return steps
-
-
-def ticket_machines() -> Scenario:
-    return Scenario(service="ticketd", workflows={n: (share, _workflow(seq)) for n, (share, seq) in VARIANTS.items()},
-                    novel=[])
 
 
 def _repeat_a_step(sess: GeneratedSession, rng: random.Random) -> None:

@@ -74,3 +74,38 @@ def test_demo_alerts_are_compared_with_a_normal_session_of_their_own_workflow(tm
     print(f"\n{own_workflow}/{len(alerts)} alerts compared with a normal session of their own workflow")
     assert len(alerts) > 150
     assert own_workflow >= 0.95 * len(alerts)
+
+
+def test_an_alert_on_a_shape_seen_twice_in_the_baseline_says_it_is_rare_there(tmp_path):
+    """A split payment (coins, then a card) happened twice in the baseline day; tomorrow's
+    five are flagged — and each says why: these exact steps are rare in the baseline, with
+    the count, never an empty difference."""
+    import random
+    from datetime import datetime, timezone
+
+    from tracewatch.demo.scenario import GeneratedSession, Step, generate
+
+    from .scenarios import STEPS, fit_and_score, ticket_machines
+
+    def split_payment(rng: random.Random, key: str, start: float) -> GeneratedSession:
+        steps = [Step(n, STEPS[n]) for n in "open zone fare coin card ok print close".split()]
+        return GeneratedSession(key, "split", steps, start=start, times=[start + 0.3 * j for j in range(len(steps))])
+
+    sc, rng = ticket_machines(), random.Random(3)
+    base = generate(sc, 3000, seed=3, start=datetime(2026, 11, 29, tzinfo=timezone.utc), kinds=())
+    day = generate(sc, 1000, seed=4, start=datetime(2026, 11, 30, tzinfo=timezone.utc), kinds=())
+    t0 = datetime(2026, 11, 29, tzinfo=timezone.utc).timestamp()
+    base += [split_payment(rng, f"split{i}", t0 + 3600 * (i + 1)) for i in range(2)]
+    day += [split_payment(rng, f"today{i}", t0 + 86_400 + 3600 * (i + 1)) for i in range(5)]
+    baseline, verdicts = fit_and_score(tmp_path, sc, base, day, "tickets", false_alarm_rate=0.005)
+    today = [verdicts[f"today{i}"] for i in range(5)]
+    assert baseline.period_sessions == 3002
+    assert all(v["alert"] for v in today)
+    for v in today:
+        assert v["seen_in_baseline"] == 2
+        assert v["diff"] and v["diff"][0] == (f"rare in the baseline: these exact steps were seen in 2 of its "
+                                              f"{baseline.period_sessions} sessions")
+    # every alert on a shape the baseline knows says so; no alert has an empty difference
+    alerts = [v for v in verdicts.values() if v["alert"]]
+    assert all(v["diff"] for v in alerts)
+    assert all(v["diff"][0].startswith("rare in the baseline") for v in alerts if v["seen_in_baseline"])

@@ -49,7 +49,8 @@ if TYPE_CHECKING:
 
 SCHEMA_VERSION = 5  # 2: templates masked to <var>; 3: the template tree's settings renamed;
 # 4: the manifest inside its checksum, the arrays of one storage table, each scorer's own arrays;
-# 5: calibration_novelty (how often each source's normal sessions bring new templates)
+# 5: calibration_novelty (how often each source's normal sessions bring new templates), the
+# baseline period's session shapes and their counts
 KIND = "tracewatch-baseline"
 FILES = ("templates.json", "model.npz")
 VERSION_NAME = re.compile(r"^v\d{4,9}$")

@@ -200,8 +200,9 @@ class TemplatesConfig(_Section):
 
 class FeaturesConfig(_Section):
     ngram_max: int = Field(default=3, ge=1, le=5)
-    # an n-gram seen in fewer baseline sessions than this is not learned (it counts as never
-    # seen): a handful of copies of an incident in the baseline must not make it normal
+    # with [model] expected_bad_share > 0: an n-gram seen in fewer baseline sessions than this
+    # (and than the incidents expected) is not learned, it counts as never seen: a handful of
+    # copies of an incident in the baseline must not make it normal
     min_support: int = Field(default=5, ge=1)
 
 

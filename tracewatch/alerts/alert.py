@@ -86,6 +86,8 @@ def build_verdict(session: Session, seq: tuple[int, ...], score: float, cluster:
         closest, near = baseline.closest_normal(vec, session.source)  # explained against its workflow
         verdict.update(explain(seq, vec, near, baseline.centers[near], baseline.cluster_df[near],
                                baseline.medoids[near], closest,
-                               baseline.vectorizer, miner.text, miner.is_seen))
+                               baseline.vectorizer, miner.text, miner.is_seen,
+                               times_seen=baseline.times_seen(session.source, seq),
+                               period_sessions=baseline.period_sessions))
         verdict["samples"] = [redact(s) for s in session.samples]
     return verdict
