@@ -8,7 +8,26 @@ from __future__ import annotations
 
 import random
 
-from tracewatch.demo.scenario import Scenario, Step
+from tracewatch.demo.scenario import GeneratedSession, Scenario, Step, render_text
+
+
+def fit_and_score(tmp_path, scenario: Scenario, base: list[GeneratedSession], day: list[GeneratedSession],
+                  source: str, **model):
+    """Fit on ``base``'s log and score ``day``'s (every session): the baseline and the verdicts by
+    session key."""
+    from tracewatch.batch import assign_sources, fit_files, score_files
+    from tracewatch.config import parse_config
+
+    (tmp_path / "b.log").write_text("\n".join(render_text(scenario, base)) + "\n")
+    (tmp_path / "d.log").write_text("\n".join(render_text(scenario, day)) + "\n")
+    cfg = parse_config({"state_dir": str(tmp_path / "state"),
+                        "sources": [{"name": source, "line_pattern": scenario.line_pattern}],
+                        "sessions": {"idle_timeout_s": 30}, "model": model})
+    baseline, _, _ = fit_files(cfg, assign_sources(cfg, [str(tmp_path / "b.log")]))
+    verdicts: dict[str, dict] = {}
+    score_files(cfg, assign_sources(cfg, [str(tmp_path / "d.log")]), baseline,
+                lambda v: verdicts.__setitem__(v["session_key"], v), score_all=True)
+    return baseline, verdicts
 
 
 def ride(rng: random.Random) -> list[Step]:
@@ -87,3 +106,43 @@ def bike_docks() -> Scenario:
         line_format="[{ts}] {service} {level} ctx={key}: {message}",
         time_format="%Y-%m-%d %H:%M:%S,%f",
     )
+
+
+# -- ticket machines at tram stops: a few exact variants of one workflow ------------------------
+STEPS = {
+    "open": "ticket session opened",
+    "lang": "display language switched",
+    "zone": "fare zone selected",
+    "disc": "reduced fare applied",
+    "fare": "fare shown to rider",
+    "coin": "coin accepted",
+    "card": "bank card presented",
+    "ok": "bank card approved",
+    "print": "ticket printed",
+    "change": "change returned",
+    "receipt": "receipt printed",
+    "close": "ticket session closed",
+}
+# (share of traffic, step sequence): eight exact variants; "reduced-card-receipt" is the rare one
+VARIANTS = {
+    "card": (0.28, "open zone fare card ok print close"),
+    "coins": (0.20, "open zone fare coin coin print change close"),
+    "card-receipt": (0.15, "open zone fare card ok print receipt close"),
+    "lang-card": (0.12, "open lang zone fare card ok print close"),
+    "reduced-coins": (0.10, "open zone disc fare coin coin coin print close"),
+    "coins-receipt": (0.07, "open zone fare coin coin print receipt close"),
+    "lang-coins": (0.05, "open lang zone fare coin coin print change close"),
+    "reduced-card-receipt": (0.03, "open zone disc fare card ok print receipt close"),
+}
+RARE = "reduced-card-receipt"  # 3% of traffic
+
+
+def _workflow(seq: str):
+    def steps(rng: random.Random) -> list[Step]:
+        return [Step(name, STEPS[name]) for name in seq.split()]
+    return steps
+
+
+def ticket_machines() -> Scenario:
+    return Scenario(service="ticketd", workflows={n: (share, _workflow(seq)) for n, (share, seq) in VARIANTS.items()},
+                    novel=[])

@@ -68,3 +68,20 @@ def test_the_storage_table_bounds_the_markers():
     # the stored vocabulary holds template ids ≥ 0 and the three markers, the least of them its bound
     row = next(a for a in ARRAYS if a.name == "vocab_ngrams")
     assert row.low == min(START, END, PAD) and row.high == "T"
+
+
+def test_ngrams_of_fewer_than_min_support_sessions_are_not_learned():
+    # by hand: (1, 2, 3) ten times, (1, 4, 3) twice; with min_support 3 the n-grams only the
+    # second sequence has — (4), (1, 4), (4, 3), (START, 1, 4), (1, 4, 3), (4, 3, END) — stay out
+    seqs, w = [(1, 2, 3), (1, 4, 3)], [10.0, 2.0]
+    vec = NgramVectorizer(3, min_support=3).fit(seqs, sample_weight=w)
+    assert not any(4 in gram for gram in vec.vocabulary_)
+    assert len(vec.vocabulary_) == len(NgramVectorizer(3).fit(seqs[:1]).vocabulary_)
+    rare = vec.vector((1, 4, 3))
+    assert set(rare.unseen) == {(4,), (1, 4), (4, 3), (START, 1, 4), (1, 4, 3), (4, 3, END)}
+    assert rare.unseen_mass > 0.5
+    assert vec.vector((1, 2, 3)).unseen_mass == 0.0
+    # every n-gram below the bar: the most supported ones (both sequences hold them) are kept,
+    # never an empty vocabulary
+    kept = NgramVectorizer(3, min_support=50).fit(seqs, sample_weight=w).vocabulary_
+    assert set(kept) == {(1,), (3,), (START, 1), (3, END)}

@@ -141,12 +141,13 @@ def test_center_distances_equal_the_sparse_product():
 
 def test_closest_normal_is_the_plain_cosine_nearest_neighbour(demo_fit):
     from sklearn.neighbors import NearestNeighbors
+    from sklearn.preprocessing import normalize
 
     b = demo_fit.baseline
     loaded = load_baseline(demo_fit.cfg.state_dir)  # as saved and loaded
     # the reference: scikit-learn's brute-force nearest neighbour in cosine distance, over the
     # distinct baseline sessions of the source, without any cluster spread
-    R = b.vectorizer.transform(b.normal_seqs)[0]
+    R = normalize(b.vectorizer.transform(b.normal_seqs)[0])  # cosine: unit rows
     nn = NearestNeighbors(n_neighbors=1, metric="cosine", algorithm="brute").fit(R)
     for seq in b.normal_seqs[:30] + [(0, 1, 2, 999), (3, 3, 3, 3, 3, 3, 1)]:
         v = b.vectorizer.vector(seq)

@@ -47,8 +47,10 @@ from .model.score import SCORERS, ScorerName, make_scorer
 if TYPE_CHECKING:
     from .model.baseline import Baseline
 
-SCHEMA_VERSION = 4  # 2: templates masked to <var>; 3: the template tree's settings renamed;
-# 4: the manifest inside its checksum, the arrays of one storage table, each scorer's own arrays
+SCHEMA_VERSION = 5  # 2: templates masked to <var>; 3: the template tree's settings renamed;
+# 4: the manifest inside its checksum, the arrays of one storage table, each scorer's own arrays;
+# 5: calibration_novelty (how often each source's normal sessions bring new templates), the
+# baseline period's session shapes and their counts
 KIND = "tracewatch-baseline"
 FILES = ("templates.json", "model.npz")
 VERSION_NAME = re.compile(r"^v\d{4,9}$")
@@ -103,6 +105,7 @@ class _Incident(_Strict):  # a baseline session set aside as a probable incident
 class _Threshold(_Strict):
     threshold: _Finite | None
     calibration_sessions: _Count
+    new_template_share: float = Field(default=0.0, ge=0, le=1)
 
 
 class _Gate(BaseModel):  # a refit gate: the fields `baselines show` prints are checked
@@ -146,7 +149,7 @@ class FitReport(_Strict):
 
 
 class Manifest(_Strict):
-    schema_version: Literal[4]
+    schema_version: Literal[5]
     kind: Literal["tracewatch-baseline"]
     version: str = Field(pattern=VERSION_NAME.pattern)
     created: str = Field(max_length=64)

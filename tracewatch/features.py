@@ -56,13 +56,16 @@ class NgramWeights:
     ``count(X, sample_weight)`` on event sequences (``X``: sequences of template indices)
     learns ``vocabulary_`` (n-gram → column), ``idf_``, ``unseen_idf_`` (the idf of an n-gram
     never seen) and ``n_sessions_``; a weight counts a sequence that many times, so distinct
-    sequences can stand for many identical sessions. The scikit-learn estimator over it is
-    :class:`tracewatch.model.estimators.NgramVectorizer` (fit uses it); a baseline loaded for
-    scoring holds this class, so scoring never imports scikit-learn (about 1 s of start-up).
+    sequences can stand for many identical sessions. N-grams found in fewer than
+    ``min_support`` sessions stay out of the vocabulary: to a new session they are unseen.
+    The scikit-learn estimator over it is :class:`tracewatch.model.estimators.NgramVectorizer`
+    (fit uses it); a baseline loaded for scoring holds this class, so scoring never imports
+    scikit-learn (about 1 s of start-up).
     """
 
-    def __init__(self, ngram_max: int = 3) -> None:
+    def __init__(self, ngram_max: int = 3, min_support: float = 1.0) -> None:
         self.ngram_max = ngram_max
+        self.min_support = min_support
 
     def count(self, X: Sequence[Sequence[int]], sample_weight: Sequence[float] | None = None) -> "NgramWeights":
         """Learn the vocabulary and idf of ``X`` (checked: event sequences, one weight each)."""
@@ -76,7 +79,10 @@ class NgramWeights:
         for seq, w in zip(X, weights):
             for gram in ngrams(seq, self.ngram_max):
                 df[gram] += w
-        grams = sorted(df, key=lambda g: (len(g), g))
+        # an n-gram of fewer than min_support sessions is weak evidence of normality (a few
+        # copies of an incident look like that too): it is left out, so it counts as unseen
+        least = min(self.min_support, max(df.values()))
+        grams = sorted((g for g, d in df.items() if d >= least), key=lambda g: (len(g), g))
         self.vocabulary_ = {g: i for i, g in enumerate(grams)}
         n = float(weights.sum())
         dfs = np.array([df[g] for g in grams], dtype=float)

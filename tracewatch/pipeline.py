@@ -130,6 +130,7 @@ class Pipeline:
         if None in cols.times:  # keyed records without a time: their sessions never idle out
             self.untimed[source] += sum(1 for key, ts in zip(cols.keys, cols.times) if ts is None and key is not None)
         idxs = self.miner.add_many(cols.messages, cols.events)
+        self.miner.note_severity(idxs, cols.levels)  # the level of templates the baseline never saw
         if self.on_records is not None:
             self.on_records(source, stream, cols, idxs)
         columns = (cols.keys, cols.times, idxs, cols.raws, cols.offsets, cols.messages)
@@ -192,7 +193,7 @@ class Pipeline:
             if not (far or unseen or self.score_all):
                 continue
             alarm = far or unseen
-            verdict = build_verdict(sess, seq, score, cluster, dist, unseen_share, p, far, b,
+            verdict = build_verdict(sess, seq, score, cluster, dist, unseen_share, p, far, unseen, b,
                                     self.redact, explain_it=alarm)
             verdict.update(self._alert_fields[sess.source](self._sources[sess.source], sess.key))
             for reason in verdict["reasons"]:

@@ -147,6 +147,20 @@ def _stable_id(text: str) -> str:
     return hashlib.blake2b(text.encode("utf-8", "replace"), digest_size=5).hexdigest()
 
 
+SEVERE = 3  # error and worse
+_SEVERITY_WORDS = (("emerg", 3), ("alert", 3), ("crit", 3), ("fatal", 3), ("panic", 3), ("err", 3),
+                   ("sever", 3), ("warn", 2))
+
+
+def severity(level: str | None) -> int:
+    """A record's level as a rank: 0 none, 1 info or below, 2 warning, 3 (:data:`SEVERE`) error
+    and worse — the names of RFC 5424's severities and of the common logging libraries."""
+    if not level:
+        return 0
+    low = level.lower()
+    return next((rank for word, rank in _SEVERITY_WORDS if low.startswith(word)), 1)
+
+
 @dataclass(slots=True)
 class Template:
     id: str
@@ -156,6 +170,7 @@ class Template:
     count: int = 0
     structured: bool = False  # an event type given by the record, not mined
     seen: bool = True  # known to the baseline
+    severity: int = 0  # unseen templates: the worst level of their records (see severity())
 
     @property
     def text(self) -> str:
@@ -305,6 +320,16 @@ class TemplateTree:
         self.n_seen = len(self.templates)
         self.cache.clear()  # as a baseline loaded from disk starts: no memory of the fit
 
+    def note_severity(self, idxs: list[int], levels: list[str | None]) -> None:
+        """Keep, for every template made after the freeze, the worst level of its records."""
+        n_seen = self.n_seen
+        if not self.frozen or not idxs or max(idxs) < n_seen:
+            return
+        for idx, level in zip(idxs, levels):
+            if idx >= n_seen and level:
+                tpl = self.templates[idx]
+                tpl.severity = max(tpl.severity, severity(level))
+
     def text(self, idx: int) -> str:
         return self.templates[idx].text
 
@@ -409,7 +434,7 @@ class TemplateTree:
         tokens = list(entry["tokens"])
         idx = len(self.templates)
         tpl = Template(entry["id"], idx, tokens, tuple(entry["path"]), int(entry["count"]),
-                       bool(entry["structured"]), seen)
+                       bool(entry["structured"]), seen, int(entry.get("severity", 0)))
         self.templates.append(tpl)
         self._ids[tpl.id] = idx
         if tpl.structured:
@@ -434,7 +459,7 @@ class TemplateTree:
         the freeze and which template each masked message went to — so that a restarted
         daemon maps every later message exactly as it would have without the restart."""
         return {"n_seen": self.n_seen,
-                "templates": [self._entry(t) for t in self.templates[self.n_seen:]],
+                "templates": [{**self._entry(t), "severity": t.severity} for t in self.templates[self.n_seen:]],
                 "masked": list(self.cache.masked.items())}
 
     def restore_learned(self, state: dict) -> None:

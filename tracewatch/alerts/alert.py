@@ -46,13 +46,16 @@ def alert_id(session: Session) -> str:
 
 
 def build_verdict(session: Session, seq: tuple[int, ...], score: float, cluster: int, distance: float,
-                  unseen_share: float, p_value: float, far: bool, baseline, redact: Redactor, *, explain_it: bool) -> dict:
+                  unseen_share: float, p_value: float, far: bool, novel: bool, baseline, redact: Redactor, *,
+                  explain_it: bool) -> dict:
+    """``far``: p ≤ false_alarm_rate; ``novel``: its never-seen events raise an alert by
+    themselves (:meth:`~tracewatch.model.baseline.Baseline.judge`)."""
     miner = baseline.miner
     unseen = Counter(e for e in seq if not miner.is_seen(e))
     reasons = []
     if far:
         reasons.append(REASON_FAR)
-    if unseen:
+    if novel:
         reasons.append(REASON_UNSEEN)
     verdict = {
         "alert": bool(reasons),
@@ -83,6 +86,8 @@ def build_verdict(session: Session, seq: tuple[int, ...], score: float, cluster:
         closest, near = baseline.closest_normal(vec, session.source)  # explained against its workflow
         verdict.update(explain(seq, vec, near, baseline.centers[near], baseline.cluster_df[near],
                                baseline.medoids[near], closest,
-                               baseline.vectorizer, miner.text, miner.is_seen))
+                               baseline.vectorizer, miner.text, miner.is_seen,
+                               times_seen=baseline.times_seen(session.source, seq),
+                               period_sessions=baseline.period_sessions))
         verdict["samples"] = [redact(s) for s in session.samples]
     return verdict

@@ -12,6 +12,7 @@ its arrays, through :data:`ARRAYS`, to the storage in tracewatch/baselines.py.
 
 from __future__ import annotations
 
+import hashlib
 from collections import Counter
 from collections.abc import Mapping, Sequence
 from typing import TYPE_CHECKING, NamedTuple
@@ -39,7 +40,7 @@ Seq = tuple[int, ...]
 
 # The arrays every baseline keeps (the scorer adds its own: Scorer.arrays). Dimensions: V the
 # vocabulary, G = ngram_max, K clusters, N distinct baseline sessions, T templates, S calibrated
-# sources; the others are lengths of flat arrays.
+# sources, H distinct session shapes of the baseline period; the others are lengths of flat arrays.
 ARRAYS: tuple[Array, ...] = (
     Array("vocab_ngrams", "<i8", ("V", "G"), low=-3, high="T"),  # template ids; START, END, PAD: -1, -2, -3
     Array("idf", "<f8", ("V",), low=1.0, high=1e6),  # smooth idf ≥ 1
@@ -54,9 +55,14 @@ ARRAYS: tuple[Array, ...] = (
     Array("normal_offsets", "<i8", ("N+1",), offsets_of="normal_events"),
     Array("normal_labels", "<i8", ("N",), low=0, high="K"),
     Array("normal_sources", "<i8", ("N",), names="sources"),
+    # every distinct (source, sequence) of the baseline period, as a 64-bit hash (shape_hash),
+    # sorted, and how many of its sessions had it — calibration and set-aside ones included
+    Array("shape_hashes", "<i8", ("H",)),
+    Array("shape_counts", "<f8", ("H",), low=1.0, high=1e15),
     Array("calibration_sources", "<i8", ("S",), names="sources"),
     Array("calibration_scores", "<f8", ("C",), low=0.0, high=1e12),
     Array("calibration_offsets", "<i8", ("S+1",), offsets_of="calibration_scores"),
+    Array("calibration_novelty", "<f8", ("S",), low=0.0, high=1.0),  # share holding a template new to the fit part
 )
 
 
@@ -71,7 +77,7 @@ class Judgement(NamedTuple):
     results: list[Result]  # (score, cluster, distance to its centre, unseen share)
     p_values: np.ndarray  # conformal p-values against the session's source
     far: np.ndarray  # p ≤ false_alarm_rate
-    unseen: np.ndarray  # holds an event the baseline never saw
+    unseen: np.ndarray  # holds a never-seen event that raises an alert by itself (Baseline.judge)
 
     @property
     def flagged(self) -> np.ndarray:
@@ -89,7 +95,8 @@ class Baseline:
                  cluster_weights: np.ndarray, cluster_df: np.ndarray, cluster_sources: list[str],
                  medoids: list[Seq], normal_seqs: list[Seq], normal_labels: np.ndarray,
                  normal_sources: list[str], scorer: Scorer, calibration: dict[str, Calibration],
-                 report: dict, version: str = "unsaved") -> None:
+                 report: dict, version: str = "unsaved", novelty: dict[str, float] | None = None,
+                 shapes: tuple[np.ndarray, np.ndarray] | None = None) -> None:
         self.miner = miner
         self.vectorizer = vectorizer
         self.centers = centers
@@ -100,10 +107,15 @@ class Baseline:
         self.normal_seqs = normal_seqs  # distinct fit sequences
         self.normal_labels = normal_labels  # their cluster
         self.normal_sources = normal_sources  # their source
+        # every shape of the baseline period: sorted hashes and their session counts
+        self.shapes = shapes if shapes is not None else (np.zeros(0, np.int64), np.zeros(0))
         self.scorer = scorer
         # one split-conformal threshold per source (POOLED: all sources, for sources that had too
         # few calibration sessions): each source keeps its own false-alarm rate
         self.calibration = calibration
+        # per calibration source: the share of its held-out sessions holding a template no fit
+        # session had — how often normal traffic brings new templates
+        self.novelty = novelty if novelty is not None else {}
         self.report = report
         self.version = version
         self._normal_matrix = None  # the distinct baseline sessions' vectors (closest_normal)
@@ -118,6 +130,12 @@ class Baseline:
         own = self.calibration.get(source)
         return own if own is not None and own.usable_ else self.calibration[POOLED]
 
+    def novelty_rate(self, source: str) -> float:
+        """How often normal sessions of ``source`` bring a new template (the pooled rate where
+        the source had too few calibration sessions of its own, as :meth:`conformal`)."""
+        own = self.calibration.get(source)
+        return self.novelty.get(source if own is not None and own.usable_ else POOLED, 0.0)
+
     def make_scorer(self) -> SessionScorer:
         """A scorer with its own cache (one per pipeline)."""
         return SessionScorer(self.vectorizer, self.centers, self.scorer, cluster_sources=self.cluster_sources,
@@ -126,7 +144,13 @@ class Baseline:
     def judge(self, scorer: SessionScorer, sources: Sequence[str], seqs: Sequence[Seq]) -> Judgement:
         """Score non-empty sessions, each source against its own clusters and calibration. A
         session is flagged when it is far from the baseline (p ≤ false_alarm_rate) or holds an
-        event the baseline never saw."""
+        event the baseline never saw, weighed by its severity: a never-seen template logged at
+        error level or worse always raises an alert; a milder one (or one without a level)
+        raises one by itself only where normal traffic brings new templates at most as often
+        as the false-alarm rate — on a drifting source (the calibration part held templates
+        the fit part never had, in more than that share of its sessions) such a session is
+        judged by its p-value alone, where the unseen n-grams already count, so the asked rate
+        holds."""
         rows: dict[str, list[int]] = {}
         for i, source in enumerate(sources):
             rows.setdefault(source, []).append(i)
@@ -136,9 +160,22 @@ class Baseline:
             for i, res in zip(idx, scorer.score(source, [seqs[i] for i in idx])):
                 results[i] = res
             p_values[idx] = self.conformal(source).p_values([results[i][0] for i in idx])
-        n_seen = self.miner.n_seen
-        unseen = np.fromiter((max(s) >= n_seen for s in seqs), dtype=bool, count=len(seqs))
-        return Judgement(results, p_values, p_values <= self.false_alarm_rate, unseen)
+        return Judgement(results, p_values, p_values <= self.false_alarm_rate, self._novel(sources, seqs))
+
+    def _novel(self, sources: Sequence[str], seqs: Sequence[Seq]) -> np.ndarray:
+        """Which sessions' never-seen events raise an alert by themselves (see :meth:`judge`)."""
+        from ..templates import SEVERE
+
+        templates, n_seen, rate = self.miner.templates, self.miner.n_seen, self.false_alarm_rate
+        out = np.zeros(len(seqs), dtype=bool)
+        for i, seq in enumerate(seqs):
+            if max(seq) < n_seen:
+                continue
+            # an index past the miner's templates (a refit gate's template id this baseline
+            # does not know) has no level: it counts as severe, as every unseen event used to
+            out[i] = self.novelty_rate(sources[i]) <= rate or any(
+                e >= len(templates) or templates[e].severity >= SEVERE for e in seq if e >= n_seen)
+        return out
 
     def closest_normal(self, vec: SessionVector, source: str) -> tuple[Seq, int]:
         """The distinct baseline session of ``source`` (of any source when it has none) nearest a
@@ -147,11 +184,12 @@ class Baseline:
         a session far from everything to the widest cluster. The baseline sessions are
         vectorised on first use: only alerts ask."""
         import scipy.sparse as sp
+        from sklearn.preprocessing import normalize
 
-        if self._normal_matrix is None:
-            self._normal_matrix = sp.vstack(
+        if self._normal_matrix is None:  # unit rows: a session's n-grams too rare to learn left out
+            self._normal_matrix = normalize(sp.vstack(
                 [self.vectorizer.transform(self.normal_seqs[lo:lo + FIT_BLOCK])[0]
-                 for lo in range(0, len(self.normal_seqs), FIT_BLOCK)], format="csr")
+                 for lo in range(0, len(self.normal_seqs), FIT_BLOCK)], format="csr"))
         rows = self._rows_of.get(source)
         if rows is None:
             own = np.flatnonzero(np.asarray(self.normal_sources, dtype=object) == source)
@@ -163,6 +201,18 @@ class Baseline:
             dense[vec.indices] = vec.values
             r = int(rows[int(np.argmax(self._normal_matrix[rows] @ dense))])
         return self.normal_seqs[r], int(self.normal_labels[r])
+
+    def times_seen(self, source: str, seq: Seq) -> int:
+        """How many sessions of the baseline period (of ``source``) had exactly these steps."""
+        hashes, counts = self.shapes
+        h = shape_hash(source, seq)
+        i = int(np.searchsorted(hashes, h))
+        return int(counts[i]) if i < len(hashes) and hashes[i] == h else 0
+
+    @property
+    def period_sessions(self) -> int:
+        """The sessions of the baseline period."""
+        return int(self.shapes[1].sum())
 
     # -- the arrays of storage_table(self.scorer) -------------------------------------------
     def to_arrays(self) -> dict[str, object]:
@@ -180,9 +230,12 @@ class Baseline:
             "normal_events": normal_events, "normal_offsets": normal_offsets,
             "normal_labels": np.asarray(self.normal_labels, dtype=np.int64),
             "normal_sources": self.normal_sources,
+            "shape_hashes": np.asarray(self.shapes[0], dtype=np.int64),
+            "shape_counts": np.asarray(self.shapes[1], dtype=np.float64),
             "calibration_sources": [src for src, _ in cal],
             "calibration_scores": np.concatenate([c.calibration_scores_ for _, c in cal]).astype(np.float64),
             "calibration_offsets": np.cumsum([0] + [len(c.calibration_scores_) for _, c in cal]).astype(np.int64),
+            "calibration_novelty": np.array([self.novelty.get(src, 0.0) for src, _ in cal], dtype=np.float64),
             **self.scorer.to_arrays(),
         }
 
@@ -200,6 +253,8 @@ class Baseline:
         offsets = arrays["calibration_offsets"].tolist()
         if len(set(cal_sources)) != len(cal_sources) or POOLED not in cal_sources:
             raise ValueError("the calibration must name each source once and the pooled one")
+        if np.any(np.diff(arrays["shape_hashes"]) <= 0):
+            raise ValueError("the session shapes must be sorted, each once")
         calibration = {src: Calibration(false_alarm_rate).calibrate(scores[a:b])
                        for src, a, b in zip(cal_sources, offsets, offsets[1:])}
         return cls(miner=miner, vectorizer=NgramWeights.from_arrays(ngram_max, arrays),
@@ -208,7 +263,23 @@ class Baseline:
                    medoids=_unflat(arrays["medoid_events"], arrays["medoid_offsets"]),
                    normal_seqs=_unflat(arrays["normal_events"], arrays["normal_offsets"]),
                    normal_labels=arrays["normal_labels"], normal_sources=arrays["normal_sources"],
-                   scorer=scorer.from_arrays(arrays), calibration=calibration, report=report, version=version)
+                   shapes=(arrays["shape_hashes"], arrays["shape_counts"]),
+                   scorer=scorer.from_arrays(arrays), calibration=calibration, report=report, version=version,
+                   novelty=dict(zip(cal_sources, arrays["calibration_novelty"].tolist())))
+
+
+def shape_hash(source: str, seq: Seq) -> int:
+    """A session shape (its source and event sequence) as a signed 64-bit hash."""
+    h = hashlib.blake2b(source.encode("utf-8", "replace") + b"\x1f", digest_size=8)
+    h.update(np.asarray(seq, dtype="<i8").tobytes())
+    return int.from_bytes(h.digest(), "little", signed=True)
+
+
+def _shapes(sessions: list[tuple[str, Seq]]) -> tuple[np.ndarray, np.ndarray]:
+    """Every distinct shape of ``sessions`` as sorted hashes, and how many sessions had it."""
+    counts = Counter(shape_hash(src, seq) for src, seq in sessions)
+    hashes = np.array(sorted(counts), dtype=np.int64)
+    return hashes, np.array([counts[h] for h in hashes.tolist()], dtype=np.float64)
 
 
 def _flat(seqs: list[Seq]) -> tuple[np.ndarray, np.ndarray]:
@@ -241,6 +312,7 @@ def fit_baseline(sessions: list[tuple[str, Seq]], miner: TemplateTree, cfg: Conf
     n_cal = max(1, int(round(len(order) * mcfg.calibration_fraction)))
     cal_idx, train_idx = np.sort(order[:n_cal]), np.sort(order[n_cal:])
     baseline, model, distinct, weights = _build(sessions, train_idx, cal_idx, miner, cfg)
+    baseline.shapes = _shapes(sessions)
     baseline.report = _report(baseline, model, cfg, n=n, n_train=len(train_idx), n_cal=n_cal,
                               distinct=distinct, weights=weights)
     baseline.report["probable_incidents"] = [
@@ -289,10 +361,11 @@ def _cross_fit_round(sessions: list[tuple[str, Seq]], miner: TemplateTree, cfg: 
     rng = np.random.default_rng([cfg.model.seed, 1, rnd])
     folds = np.array_split(rng.permutation([i for i in range(len(sessions)) if i not in skip]), CROSS_FOLDS)
     found: dict[int, str] = {}
+    fold_cfg = cfg.model_copy(update={"features": cfg.features.model_copy(update={"min_support": 1})})
     for f, held in enumerate(folds):
         rest = rng.permutation(np.concatenate([folds[g] for g in range(CROSS_FOLDS) if g != f]))
         n_cal = max(1, int(round(len(rest) * cfg.model.calibration_fraction)))
-        model, *_ = _build(sessions, np.sort(rest[n_cal:]), np.sort(rest[:n_cal]), miner, cfg)
+        model, *_ = _build(sessions, np.sort(rest[n_cal:]), np.sort(rest[:n_cal]), miner, fold_cfg)
         scorer = model.make_scorer()
         by_source: dict[str, list[int]] = {}
         for i in held.tolist():
@@ -310,6 +383,18 @@ def _cross_fit_round(sessions: list[tuple[str, Seq]], miner: TemplateTree, cfg: 
     return found
 
 
+def min_support(cfg: Config, n_sessions: float) -> float:
+    """The fewest fit sessions an n-gram must be seen in to be learned, where the baseline is
+    expected to hold incidents (``expected_bad_share`` > 0): ``[features] min_support``, but
+    never more than the incidents expected among ``n_sessions`` nor than the smallest cluster
+    the baseline learns (``min_cluster_share`` of them). A trusted baseline (share 0) learns
+    every n-gram: measured on an 800-session baseline, leaving out those of fewer than 3
+    sessions raised the threshold from 2.39 to 5.73 and missed every dropped step."""
+    mcfg = cfg.model
+    cap = min(mcfg.expected_bad_share, mcfg.min_cluster_share) * n_sessions
+    return max(1.0, min(float(cfg.features.min_support), cap))
+
+
 def _build(sessions: list[tuple[str, Seq]], train_idx: np.ndarray, cal_idx: np.ndarray, miner: TemplateTree,
            cfg: Config) -> tuple[Baseline, object, list[Seq], np.ndarray]:
     """Vectorise and cluster ``train_idx``, fit the scorer, calibrate on ``cal_idx``."""
@@ -324,7 +409,8 @@ def _build(sessions: list[tuple[str, Seq]], train_idx: np.ndarray, cal_idx: np.n
     distinct = [seq for _, seq in counts]
     weights = np.array(list(counts.values()), dtype=float)
 
-    vectorizer = NgramVectorizer(cfg.features.ngram_max).fit(distinct, sample_weight=weights)
+    vectorizer = NgramVectorizer(cfg.features.ngram_max, min_support(cfg, float(weights.sum()))).fit(
+        distinct, sample_weight=weights)
     # in blocks: a block's per-row vectors are garbage before the next is made
     X = sp.vstack([vectorizer.transform(distinct[lo:lo + FIT_BLOCK])[0]
                    for lo in range(0, len(distinct), FIT_BLOCK)], format="csr")
@@ -340,7 +426,7 @@ def _build(sessions: list[tuple[str, Seq]], train_idx: np.ndarray, cal_idx: np.n
         medoids=[distinct[r] for r in model.medoids_], normal_seqs=[distinct[r] for r in keep],
         normal_labels=labels[keep], normal_sources=[row_sources[r] for r in keep], scorer=scorer,
         calibration={}, report={})
-    _calibrate(baseline, [sessions[i] for i in cal_idx], mcfg.false_alarm_rate)
+    _calibrate(baseline, [sessions[i] for i in cal_idx], mcfg.false_alarm_rate, {e for seq in distinct for e in seq})
     return baseline, model, distinct, weights
 
 
@@ -368,8 +454,9 @@ def _owners(labels: np.ndarray, weights: np.ndarray, row_sources: list[str], mod
             for cl in range(len(model.cluster_centers_))]
 
 
-def _calibrate(baseline: Baseline, held_out: list[tuple[str, Seq]], rate: float) -> None:
-    """One threshold per source from its own held-out sessions, and the pooled one."""
+def _calibrate(baseline: Baseline, held_out: list[tuple[str, Seq]], rate: float, fitted: set[int]) -> None:
+    """One threshold per source from its own held-out sessions, and the pooled one; and how
+    often those sessions hold a template none of the ``fitted`` sessions had (the novelty rate)."""
     from .estimators import ConformalThreshold
 
     scorer = baseline.make_scorer()
@@ -382,6 +469,9 @@ def _calibrate(baseline: Baseline, held_out: list[tuple[str, Seq]], rate: float)
         calibration[source] = ConformalThreshold(rate).fit(scores)
     calibration[POOLED] = ConformalThreshold(rate).fit(
         np.concatenate([c.calibration_scores_ for c in calibration.values()]))
+    novel = {source: [not fitted.issuperset(seq) for seq in seqs] for source, seqs in by_source.items()}
+    baseline.novelty = {source: float(np.mean(flags)) for source, flags in novel.items()}
+    baseline.novelty[POOLED] = float(np.mean([f for flags in novel.values() for f in flags]))
 
 
 def _report(b: Baseline, model, cfg: Config, *, n: int, n_train: int, n_cal: int, distinct: list[Seq],
@@ -414,7 +504,8 @@ def _report(b: Baseline, model, cfg: Config, *, n: int, n_train: int, n_cal: int
             for item in model.contamination_
         ],
         "thresholds": {src: {"threshold": c.threshold_ if c.usable_ else None,
-                             "calibration_sessions": len(c.calibration_scores_)}
+                             "calibration_sessions": len(c.calibration_scores_),
+                             "new_template_share": round(b.novelty.get(src, 0.0), 5)}
                        for src, c in b.calibration.items()},
         "false_alarm_rate": mcfg.false_alarm_rate,
         "scorer": mcfg.scorer,
@@ -429,6 +520,12 @@ def _report(b: Baseline, model, cfg: Config, *, n: int, n_train: int, n_cal: int
             f"can give (1/{n_cal + 1} = {1 / (n_cal + 1):.4g}), so only never-seen events raise alerts: "
             f"fit on at least {need} calibration sessions (more baseline sessions, or a higher "
             f"calibration_fraction than {mcfg.calibration_fraction})")
+    for src, share in b.novelty.items():
+        if src != POOLED and share > mcfg.false_alarm_rate:
+            report["notes"].append(
+                f"source {src!r} brings new templates in {share:.2%} of its normal sessions, more often than "
+                f"false_alarm_rate={mcfg.false_alarm_rate}: a new template there alerts by itself only when "
+                f"logged at error level or worse; others are judged by their score")
     for src, c in b.calibration.items():
         if c.usable_:
             continue

@@ -69,10 +69,13 @@ def step_diff(session: Sequence[int], normal: Sequence[int], text: Callable[[int
 def explain(seq: Sequence[int], vec: SessionVector, cluster: int, center: np.ndarray,
             cluster_df: np.ndarray, medoid: Sequence[int], closest: Sequence[int],
             vectorizer: NgramWeights,
-            text: Callable[[int], str], is_seen: Callable[[int], bool]) -> dict:
+            text: Callable[[int], str], is_seen: Callable[[int], bool], *, times_seen: int = 0,
+            period_sessions: int = 0) -> dict:
     """The explanation fields of an alert: the step difference is taken against ``closest``,
     the cluster's baseline session most like this one, which reads far better than a diff
-    against the medoid when normal sessions vary in length."""
+    against the medoid when normal sessions vary in length. ``times_seen``: how many of the
+    ``period_sessions`` sessions of the baseline period had exactly these steps — an alert on
+    a known shape says that it is rare there, never an empty difference."""
     grams = vectorizer.grams_
 
     def label(gram) -> str:
@@ -99,10 +102,15 @@ def explain(seq: Sequence[int], vec: SessionVector, cluster: int, center: np.nda
     missing_cols.sort(key=lambda c: (len(grams[c]), -cluster_df[c], c))
     missing = [{"ngram": label(grams[c]), "cluster_share": round(float(cluster_df[c]), 3)}
                for c in missing_cols[:MAX_ITEMS]]
+    diff = step_diff(seq, closest, text, is_seen)
+    if times_seen:
+        diff.insert(0, f"rare in the baseline: these exact steps were seen in {times_seen} of its "
+                       f"{period_sessions} sessions")
     return {
         "unexpected": unexpected,
         "missing": missing,
-        "diff": step_diff(seq, closest, text, is_seen),
+        "seen_in_baseline": times_seen,
+        "diff": diff,
         "closest_normal": [text(e) for e in closest],
         "representative": [text(e) for e in medoid],
     }

@@ -6,8 +6,10 @@ many sessions share them, so a day of repetitive traffic costs what its variety 
 - k-means with k-means++ seeding and restarts (Arthur & Vassilvitskii, SODA 2007), run by
   scikit-learn's ``KMeans`` with ``sample_weight``.
 - k = "auto": the knee of the inertia curve (Kneedle: Satopää, Albrecht, Irwin, Raghavan,
-  "Finding a 'Kneedle' in a Haystack", ICDCS workshops 2011), cross-checked by the mean
-  silhouette (Rousseeuw, J. Comput. Appl. Math. 20, 1987).
+  "Finding a 'Kneedle' in a Haystack", ICDCS workshops 2011), overruled by the k of the
+  largest mean silhouette (Rousseeuw, "Silhouettes: a graphical aid to the interpretation and
+  validation of cluster analysis", J. Comput. Appl. Math. 20, 1987) when that one separates
+  the sessions clearly better (:func:`choose_k`).
 - Clusters holding less than ``min_cluster_share`` of the sessions are treated as
   contamination of the baseline: reported, not learned.
 - Large corpora (many distinct rows) are fitted in a streaming way: the best of ``restarts``
@@ -52,6 +54,21 @@ def kneedle(ks: np.ndarray, inertia: np.ndarray) -> int:
     y = (inertia - inertia.min()) / (inertia.max() - inertia.min())
     diff = (1.0 - x) - y
     return int(ks[int(np.argmax(diff))])
+
+
+def choose_k(knee: int, silhouettes: dict[int, float]) -> int:
+    """The knee, unless the k of the largest mean silhouette separates the sessions clearly
+    better: the silhouette's own rule (Rousseeuw 1987: the k with the largest mean
+    silhouette) wins when it closes at least half of the knee's distance to a perfect
+    silhouette of 1, or when the knee's silhouette is below half the best. Traffic made of a
+    few exact variants reaches a silhouette of 1 at k = the number of variants, while the knee
+    of its inertia curve merges the smaller variants; traffic whose silhouette only creeps up
+    past the knee (optional steps inside each workflow) keeps the knee."""
+    if not silhouettes or knee < 2:  # a knee at 1: no structure worth splitting
+        return knee
+    best = max(silhouettes, key=silhouettes.get)
+    at_knee, top = silhouettes.get(knee, 0.0), silhouettes[best]
+    return best if 1.0 - top <= 0.5 * (1.0 - at_knee) or at_knee < 0.5 * top else knee
 
 
 def weighted_silhouette(X, labels: np.ndarray, weights: np.ndarray | None = None) -> float:
@@ -222,13 +239,10 @@ class ClusterModel(ClusterMixin, BaseEstimator):
             inertia = np.array([fits[int(k)].inertia_ for k in ks])
             knee = kneedle(ks, inertia)
             sil = self._silhouettes(Xk, wk, fits)
-            chosen = knee
-            if sil:
-                best = max(sil, key=sil.get)
-                if knee >= 2 and sil.get(knee, 0.0) < 0.5 * sil[best]:
-                    self.notes_.append(f"knee at k={knee} has a weak silhouette "
-                                       f"({sil[knee]:.3f}); k={best} is used (silhouette {sil[best]:.3f})")
-                    chosen = best
+            chosen = choose_k(knee, sil)
+            if chosen != knee:
+                self.notes_.append(f"knee at k={knee} has silhouette {sil.get(knee, 0.0):.3f}; k={chosen} "
+                                   f"separates the sessions better (silhouette {sil[chosen]:.3f}) and is used")
             self.curve_ = [{"k": int(k), "inertia": float(i), "silhouette": sil.get(int(k))}
                            for k, i in zip(ks, inertia)]
             self.knee_ = knee

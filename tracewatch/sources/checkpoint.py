@@ -103,6 +103,7 @@ class SavedTemplate(_Strict):
     path: list[Text] = Field(max_length=64)
     count: Count
     structured: bool
+    severity: int = Field(default=0, ge=0, le=3)  # the worst level of its records (templates.severity)
 
     @model_validator(mode="after")
     def _consistent(self) -> SavedTemplate:
