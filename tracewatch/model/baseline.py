@@ -184,12 +184,12 @@ class Baseline:
         a session far from everything to the widest cluster. The baseline sessions are
         vectorised on first use: only alerts ask."""
         import scipy.sparse as sp
-        from sklearn.preprocessing import normalize
 
         if self._normal_matrix is None:  # unit rows: a session's n-grams too rare to learn left out
-            self._normal_matrix = normalize(sp.vstack(
-                [self.vectorizer.transform(self.normal_seqs[lo:lo + FIT_BLOCK])[0]
-                 for lo in range(0, len(self.normal_seqs), FIT_BLOCK)], format="csr"))
+            m = sp.vstack([self.vectorizer.transform(self.normal_seqs[lo:lo + FIT_BLOCK])[0]
+                           for lo in range(0, len(self.normal_seqs), FIT_BLOCK)], format="csr")
+            norms = np.sqrt(np.asarray(m.multiply(m).sum(axis=1)).ravel())
+            self._normal_matrix = (sp.diags(1.0 / np.where(norms > 0, norms, 1.0)) @ m).tocsr()
         rows = self._rows_of.get(source)
         if rows is None:
             own = np.flatnonzero(np.asarray(self.normal_sources, dtype=object) == source)
