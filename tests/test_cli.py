@@ -60,7 +60,7 @@ def test_fit_then_score_contract(demo_dir):
     assert quiet.returncode in (0, 3) and (quiet.returncode == 3) == bool(quiet.stdout.strip())
 
 
-@pytest.mark.parametrize("command", ["check-config", "fit", "score", "run", "incidents", "demo"])
+@pytest.mark.parametrize("command", ["init", "check-config", "fit", "score", "run", "incidents", "demo"])
 def test_subcommand_help_has_example_and_exit_codes(command):
     out = run_cli(command, "--help", check=True).stdout
     assert f"example:\n  tracewatch {command}" in out and "exit codes: 0 success" in out

@@ -64,6 +64,25 @@ def cmd_check_config(args) -> int:
     return 0
 
 
+INIT_HELP = (
+    "Write a starter config for one log file: its first few thousand lines are read by each of "
+    "tracewatch's format readers, and the format that reads the most, its time layout and a session "
+    "key (a field that repeats across lines and takes many values: a request id, a pid, a trace id) "
+    "are guessed. Each guess is printed on one line with how sure it is (the share of sampled lines "
+    "it holds for). The config is checked before it is written; an existing file is kept unless "
+    "--force. Read the guesses before fitting: a wrong session key gives a baseline of nonsense.")
+
+
+def cmd_init(args) -> int:
+    from .starter import write_starter
+
+    starter, out = write_starter(args.logfile, args.out, force=args.force)
+    for g in starter.guesses:
+        print(g.line())
+    print(f"wrote {out}; next: tracewatch check-config --config {out}")
+    return 0
+
+
 def cmd_fit(args) -> int:
     cfg = _config(args)
     pairs = assign_sources(cfg, args.inputs, args.source)
@@ -463,6 +482,7 @@ EXIT_ALERTS = 3  # `score --fail-on-alert` found alerts (and `refit` refused): r
 EXIT_HELP = ("exit codes: 0 success; 1 runtime problem (unreadable input, missing or corrupt baseline);\n"
              f"  2 bad config or arguments; {EXIT_ALERTS} alerts with --fail-on-alert, or a refit refused; 130 interrupted")
 EXAMPLES = {
+    "init": "tracewatch init logs/app.log --out tw.toml",
     "check-config": "tracewatch check-config --config config/tracewatch.example.toml",
     "fit": "tracewatch fit --config tw.toml logs/monday/*.log",
     "score": "tracewatch score --config tw.toml --fail-on-alert logs/tuesday/*.log",
@@ -486,6 +506,13 @@ def build_parser() -> argparse.ArgumentParser:
                             "(the whole line is the message): text, jsonl, syslog, otlp-json, strace")
             sp.add_argument("--state-dir", default="./tracewatch-state", metavar="DIR",
                             help="state directory when no config is given (default ./tracewatch-state)")
+
+    sp = sub.add_parser("init", help="guess a starter config from one log file", description=INIT_HELP)
+    sp.add_argument("logfile", metavar="LOGFILE", help="a log file of the application, in its usual format")
+    sp.add_argument("--out", "-o", default="tracewatch.toml", metavar="FILE",
+                    help="the config file to write (default tracewatch.toml)")
+    sp.add_argument("--force", action="store_true", help="overwrite FILE if it exists")
+    sp.set_defaults(func=cmd_init)
 
     sp = sub.add_parser("check-config", help="validate a config file")
     with_config(sp)
