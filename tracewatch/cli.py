@@ -17,7 +17,7 @@ from . import __version__
 from .alerts.store import STATUSES
 from .baselines import (baselines_dir, current_version, list_versions, load_baseline, load_baseline_dir,
                         set_current)
-from .batch import assign_sources, fit_files, score_files, template_rows, unread_lines
+from .batch import assign_sources, byte_progress, fit_files, score_files, template_rows, unread_lines
 from .config import Config, IncidentsConfig, adhoc_config, load_config
 from .errors import ConfigError, TracewatchError
 from .pipeline import Pipeline
@@ -86,7 +86,8 @@ def cmd_init(args) -> int:
 def cmd_fit(args) -> int:
     cfg = _config(args)
     pairs = assign_sources(cfg, args.inputs, args.source)
-    baseline, path, pipeline = fit_files(cfg, pairs)
+    with byte_progress(pairs, "fit: reading") as on_bytes:
+        baseline, path, pipeline = fit_files(cfg, pairs, on_bytes)
     for line in unread_lines(pipeline, refuse=False):
         print(f"tracewatch: {line}", file=sys.stderr)
     if args.json:
@@ -100,8 +101,9 @@ def cmd_score(args) -> int:
     cfg = _config(args)
     baseline = load_baseline(cfg.state_dir, args.baseline)
     pairs = assign_sources(cfg, args.inputs, args.source)
-    pipeline = score_files(cfg, pairs, baseline, _out if args.output == "json" else _alert_text,
-                           score_all=args.all)
+    with byte_progress(pairs, "score") as on_bytes:
+        pipeline = score_files(cfg, pairs, baseline, _out if args.output == "json" else _alert_text,
+                               score_all=args.all, on_bytes=on_bytes)
     sys.stdout.flush()
     for line in unread_lines(pipeline, refuse=False):
         print(f"tracewatch: {line}", file=sys.stderr)
