@@ -12,6 +12,7 @@ import sys
 from pathlib import Path
 
 import orjson
+import shtab
 
 from . import __version__
 from .alerts.store import STATUSES
@@ -412,6 +413,11 @@ def format_labels(rows: list[dict], info: dict) -> str:
     return "\n".join(lines)
 
 
+def cmd_completion(args) -> int:
+    sys.stdout.write(shtab.complete(build_parser(), shell=args.shell))
+    return 0
+
+
 def cmd_demo(args) -> int:
     from .demo.run import run_demo
 
@@ -493,6 +499,7 @@ EXAMPLES = {
     "run": "tracewatch run --config tw.toml",
     "incidents": "tracewatch incidents --config tw.toml",
     "demo": "tracewatch demo --dir ./tracewatch-demo",
+    "completion": "tracewatch completion bash > ~/.local/share/bash-completion/completions/tracewatch",
 }
 
 
@@ -502,7 +509,7 @@ def build_parser() -> argparse.ArgumentParser:
     sub = p.add_subparsers(dest="command", required=True, parser_class=_Parser)
 
     def with_config(sp, *, adhoc: bool = False):
-        sp.add_argument("--config", "-c", metavar="FILE", help="TOML config file")
+        sp.add_argument("--config", "-c", metavar="FILE", help="TOML config file").complete = shtab.FILE
         if adhoc:
             sp.add_argument("--format", metavar="FMT", help="read INPUT in this format with no config "
                             "(the whole line is the message): text, jsonl, syslog, otlp-json, strace")
@@ -598,6 +605,17 @@ def build_parser() -> argparse.ArgumentParser:
     sp.add_argument("--seed", type=int, default=7)
     sp.add_argument("--show", type=int, default=6, help="how many alerts to print in full")
     sp.set_defaults(func=cmd_demo)
+
+    sp = sub.add_parser("completion", help="print a shell completion script for tracewatch",
+                        description="Print a completion script for bash or zsh on stdout: subcommands, options "
+                        "and their choices complete with Tab; files complete where a file is asked for. "
+                        "Install it where your shell looks (bash: ~/.local/share/bash-completion/completions/"
+                        "tracewatch; zsh: a file _tracewatch in a folder of $fpath) or source it.")
+    sp.add_argument("shell", choices=["bash", "zsh"])
+    sp.set_defaults(func=cmd_completion)
+    for action in (a for sp in sub.choices.values() for a in sp._actions):
+        if action.metavar in ("FILE", "INPUT", "LOGFILE") and not hasattr(action, "complete"):
+            action.complete = shtab.FILE
     for name, sp in sub.choices.items():
         example = EXAMPLES.get(name, "")
         sp.formatter_class = argparse.RawDescriptionHelpFormatter
