@@ -95,7 +95,7 @@ class Daemon:
         self.watch = BaselineWatch(self.state_dir)
         self.refit = RefitJob(cfg, self.state_dir, lock=self.lock, store=lambda: self.incidents.store, wall=wall)
         self.report = DaemonStatus(self)
-        self.metrics = DaemonMetrics(self.registry, self.report.snapshot)
+        self.metrics = DaemonMetrics(self.registry, self.report.snapshot, [s.name for s in cfg.sources])
         self.watcher: Watcher | None = None
         self.server = self.http_thread = None
         self.started = False
