@@ -21,6 +21,7 @@ from .baselines import (baselines_dir, current_version, list_versions, load_base
 from .batch import assign_sources, byte_progress, fit_files, score_files, template_rows, unread_lines
 from .config import Config, IncidentsConfig, adhoc_config, load_config
 from .errors import ConfigError, TracewatchError
+from .model.baseline import drift_warning
 from .pipeline import Pipeline
 
 CAUTION = ("Logs can hold secrets and personal data: keep state_dir private and follow your "
@@ -102,6 +103,9 @@ def cmd_score(args) -> int:
     cfg = _config(args)
     baseline = load_baseline(cfg.state_dir, args.baseline)
     pairs = assign_sources(cfg, args.inputs, args.source)
+    drift = drift_warning(baseline, cfg)
+    if drift:
+        print(f"tracewatch: {drift}", file=sys.stderr)
     with byte_progress(pairs, "score") as on_bytes:
         pipeline = score_files(cfg, pairs, baseline, _out if args.output == "json" else _alert_text,
                                score_all=args.all, on_bytes=on_bytes)
