@@ -129,7 +129,7 @@ def test_bash_sources_the_completion_script(tmp_path):
 def test_zsh_registers_the_completion_function(tmp_path):
     zsh = shutil.which("zsh")
     if zsh is None:
-        pytest.skip("zsh is not installed (apt-get install zsh to run this test)")
+        pytest.skip("zsh is not installed (make test installs it with apt-get when it can)")
     folder = tmp_path / "completions"  # zsh's way: a file _tracewatch in a folder of $fpath
     folder.mkdir()
     (folder / "_tracewatch").write_text(run_cli("completion", "zsh", check=True).stdout)

@@ -122,6 +122,41 @@ def test_strace_output(tmp_path):
     assert len(pids) == 12 and {v["session_key"] for v in verdicts} == pids
 
 
+def _shapes(kind: str, n: int = 200) -> list[str]:
+    """Invented parcel-locker lines in three more shapes: JSON lines (key ctx.request_id, message
+    msg), kubelet's CRI container log around them, and RFC 5424 syslog (key req= in MSG, and a
+    PROCID that is the same on every line)."""
+    rng = random.Random(5)
+    out = []
+    for i in range(n):
+        req = f"{rng.getrandbits(40):010x}"
+        for j, msg in enumerate(("compartment reserved", "door opened", "deposit recorded")):
+            t = f"2026-11-30T10:{i // 60:02d}:{i % 60:02d}.{j}00Z"
+            doc = json.dumps({"time": t, "level": "INFO", "msg": msg,
+                              "ctx": {"request_id": req, "locker": f"LK-{rng.randint(1, 3)}"}})
+            out.append({"jsonl": doc, "cri": f"{t[:-1]}000000Z stdout F {doc}",
+                        "syslog": f"<134>1 {t} gw-3 locker-api 812 - - req={req} {msg}"}[kind])
+    return out
+
+
+@pytest.mark.parametrize("kind,expect", [
+    ("jsonl", {"format": "jsonl", "session_key": "ctx.request_id", "message_field": "msg", "time_field": "time",
+               "ts_format": "iso8601", "level_field": "level"}),
+    ("cri", {"format": "cri", "payload_format": "jsonl", "session_key": "ctx.request_id", "message_field": "msg"}),
+    ("syslog", {"format": "syslog", "session_key": r'\breq=(?P<key>[^\s\]\[,;()"]+)'}),
+], ids=["jsonl", "cri", "syslog"])
+def test_other_shapes(tmp_path, kind, expect):
+    import tomllib
+
+    log = tmp_path / "app.log"
+    log.write_text("\n".join(_shapes(kind)) + "\n")
+    run_cli("init", str(log), "--out", str(tmp_path / "tw.toml"), check=True)
+    run_cli("check-config", "--config", str(tmp_path / "tw.toml"), check=True)
+    source = tomllib.loads((tmp_path / "tw.toml").read_text())["sources"][0]
+    assert {k: source.get(k) for k in expect} == expect
+    assert source["paths"] == ["app.log"]
+
+
 def test_an_existing_file_is_kept_without_force(tmp_path):
     python_log(tmp_path / "app.log", 20, seed=1)
     cfg = tmp_path / "tw.toml"
