@@ -179,6 +179,18 @@ def test_an_unusable_log_gives_one_line(tmp_path, content):
     assert proc.stderr.startswith(f"tracewatch: {log}: ") and not (tmp_path / "tw.toml").exists()
 
 
+def test_a_request_id_beats_a_field_of_few_values():
+    """locker= is on every line with 3 values; req= on every line, 90 requests of 3 lines and
+    30 of one line (cut off by the sample's ends, say)."""
+    from tracewatch.starter import guess
+
+    lines = [f"2026-11-30T10:00:{i % 60:02d}Z INFO locker=LK-{i % 3} req=r{i // 3} door opened" for i in range(270)]
+    lines += [f"2026-11-30T10:01:{i:02d}Z INFO locker=LK-{i % 3} req=single{i} door opened" for i in range(30)]
+    found = {g.what: g for g in guess(lines).guesses}
+    assert found["session key"].value == "req=" and found["session key"].share == pytest.approx(0.9)
+    assert "120 distinct values" in found["session key"].detail
+
+
 @pytest.mark.parametrize("keys,share,distinct", [
     (["a", "a", "b", "b", "c"], 0.8, 3),  # c never repeats: 4 of 5 records
     (["a", "a", "a"], 0.0, 1),  # one value is no session key

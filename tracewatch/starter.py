@@ -10,6 +10,7 @@ values. Each guess carries how sure it is: the share of sampled lines it holds f
 from __future__ import annotations
 
 import json
+import math
 import os
 import re
 import tomllib
@@ -118,13 +119,16 @@ def key_share(keys: list) -> tuple[float, int]:
 
 
 def best_key(lines: list[str], base: dict, candidates: dict[str, dict]) -> tuple[str, dict, float, int] | None:
-    """The candidate (name -> options added to ``base``) whose keys repeat on the most records,
-    more distinct values breaking ties; None when no candidate repeats at all."""
-    best = None
+    """The candidate (name -> options added to ``base``) that best repeats across records and
+    takes many values: the highest share of repeating records × log(distinct values), so a field
+    of a few values on every line (a locker, a status) loses to a request id on most lines; None
+    when no candidate repeats at all."""
+    best, best_rank = None, 0.0
     for name, extra in candidates.items():
         share, distinct = key_share(trial(lines, {**base, **extra}).keys)
-        if share > 0 and (best is None or (round(share, 2), distinct) > (round(best[2], 2), best[3])):
-            best = (name, extra, share, distinct)
+        rank = share * math.log(distinct) if distinct > 1 else 0.0
+        if rank > best_rank:
+            best, best_rank = (name, extra, share, distinct), rank
     return best
 
 
