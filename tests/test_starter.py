@@ -124,8 +124,8 @@ def test_strace_output(tmp_path):
 
 def _shapes(kind: str, n: int = 200) -> list[str]:
     """Invented parcel-locker lines in three more shapes: JSON lines (key ctx.request_id, message
-    msg), kubelet's CRI container log around them, and RFC 5424 syslog (key req= in MSG, and a
-    PROCID that is the same on every line)."""
+    msg), kubelet's CRI container log around them, RFC 5424 syslog and `journalctl -o json`
+    entries (key req= in the message, and a process id that is the same on every line)."""
     rng = random.Random(5)
     out = []
     for i in range(n):
@@ -135,7 +135,10 @@ def _shapes(kind: str, n: int = 200) -> list[str]:
             doc = json.dumps({"time": t, "level": "INFO", "msg": msg,
                               "ctx": {"request_id": req, "locker": f"LK-{rng.randint(1, 3)}"}})
             out.append({"jsonl": doc, "cri": f"{t[:-1]}000000Z stdout F {doc}",
-                        "syslog": f"<134>1 {t} gw-3 locker-api 812 - - req={req} {msg}"}[kind])
+                        "syslog": f"<134>1 {t} gw-3 locker-api 812 - - req={req} {msg}",
+                        "journald": json.dumps({"__REALTIME_TIMESTAMP": str(1764496800000000 + i * 10**6 + j),
+                                                "PRIORITY": "6", "_SYSTEMD_UNIT": "locker-api.service",
+                                                "_PID": "812", "MESSAGE": f"req={req} {msg}"})}[kind])
     return out
 
 
@@ -144,7 +147,8 @@ def _shapes(kind: str, n: int = 200) -> list[str]:
                "ts_format": "iso8601", "level_field": "level"}),
     ("cri", {"format": "cri", "payload_format": "jsonl", "session_key": "ctx.request_id", "message_field": "msg"}),
     ("syslog", {"format": "syslog", "session_key": r'\breq=(?P<key>[^\s\]\[,;()"]+)'}),
-], ids=["jsonl", "cri", "syslog"])
+    ("journald", {"format": "journald", "session_key": r'\breq=(?P<key>[^\s\]\[,;()"]+)'}),
+], ids=["jsonl", "cri", "syslog", "journald"])
 def test_other_shapes(tmp_path, kind, expect):
     import tomllib
 

@@ -265,6 +265,14 @@ def guess_syslog(lines: list[str]) -> Starter:
                                                                  "RFC 3164")]), candidates)
 
 
+def guess_journald(lines: list[str]) -> Starter:
+    """The journal's export: a process of a unit, or a ``name=`` pair in the messages."""
+    candidates = {"_SYSTEMD_UNIT/_PID": {"journal_key_fields": ["_SYSTEMD_UNIT", "_PID"]},
+                  **_pair_candidates([line for line in lines if line.strip()])}
+    return _with_key(lines, Starter({"format": "journald"}, [Guess("time", "from the format", 1.0,
+                                                                   "the journal's __REALTIME_TIMESTAMP")]), candidates)
+
+
 def guess_container(lines: list[str], fmt: str) -> Starter:
     """A container log: the payload (every record's message, read as plain text) is guessed
     as jsonl or text, and its options go with ``payload_format``."""
@@ -282,8 +290,7 @@ def guess_payload(lines: list[str]) -> Starter:
 
 INHERENT = {"otlp-json": ("traceId", "the span's start time (startTimeUnixNano)"),
             "otlp-logs-json": ("traceId", "the record's time (timeUnixNano)"),
-            "strace": ("pid", "strace's own time stamps (-t, -tt or -ttt)"),
-            "journald": ("journal fields", "the journal's __REALTIME_TIMESTAMP")}
+            "strace": ("pid", "strace's own time stamps (-t, -tt or -ttt)")}
 
 
 def guess(lines: list[str]) -> Starter:
@@ -299,6 +306,8 @@ def guess(lines: list[str]) -> Starter:
         starter, share = guess_jsonl(lines), shares[fmt]
     elif fmt == "syslog":
         starter, share = guess_syslog(lines), shares[fmt]
+    elif fmt == "journald":
+        starter, share = guess_journald(lines), shares[fmt]
     elif fmt in CONTAINER_FORMATS:
         starter, share = guess_container(lines, fmt), shares[fmt]
     else:
