@@ -43,6 +43,10 @@ test: $(VENV)/.installed-test
 	@{ command -v systemd-analyze && command -v systemd-sysusers && command -v systemd-notify; } >/dev/null 2>&1 || { export DEBIAN_FRONTEND=noninteractive; \
 	  { apt-get update -qq && apt-get install -y -qq --no-install-recommends systemd; } >/dev/null 2>&1 \
 	  || echo "make: systemd could not be installed (needs root and apt-get); the unit file's tests will be skipped"; }
+	@# Debian's zsh, for the completion script's zsh test (tests/test_cli.py): the same rule
+	@command -v zsh >/dev/null 2>&1 || { export DEBIAN_FRONTEND=noninteractive; \
+	  { apt-get update -qq && apt-get install -y -qq --no-install-recommends zsh; } >/dev/null 2>&1 \
+	  || echo "make: zsh could not be installed (needs root and apt-get); its completion test will be skipped"; }
 	@command -v rsync >/dev/null 2>&1 || { export DEBIAN_FRONTEND=noninteractive; \
 	  { apt-get update -qq && apt-get install -y -qq --no-install-recommends rsync; } >/dev/null 2>&1 \
 	  || echo "make: rsync could not be installed (needs root and apt-get); the baseline-shipping test will be skipped"; }

@@ -135,6 +135,47 @@ def test_score_command_with_corrupt_baseline_is_one_line(demo_fit, demo_state, t
     assert len(proc.stderr.strip().splitlines()) == 1 and "Traceback" not in proc.stderr
 
 
+def test_score_refuses_a_hand_edited_manifest_in_one_line(demo_fit, demo_state, tmp_path):
+    manifest = demo_state / "baselines" / "v0001" / "manifest.json"
+    manifest.write_text(manifest.read_text().replace('"false_alarm_rate": 0.02', '"false_alarm_rate": 0.2'))
+    conf = tmp_path / "tw.toml"
+    conf.write_text(f'state_dir = "{demo_state}"\n[[sources]]\nname = "x"\n')
+    proc = run_cli("score", "--config", str(conf), str(demo_fit.day))
+    assert proc.returncode == 1 and proc.stdout == ""
+    assert proc.stderr.splitlines() == [
+        f"tracewatch: {manifest.parent}: manifest.json does not match its checksum: it was edited or damaged "
+        "(refit, or roll back to another version with 'tracewatch baselines use')"]
+
+
+def _demo_config(path: Path, demo_fit, state: Path, **model) -> Path:
+    """A config file for the demo baseline: its source, its sessions, these [model] keys."""
+    lines = [f'state_dir = "{state}"', "[[sources]]", 'name = "api"',
+             f"line_pattern = '{demo_fit.cfg.sources[0].line_pattern}'", "[sessions]", "idle_timeout_s = 5",
+             "[model]", *(f"{k} = {json.dumps(v)}" for k, v in model.items())]
+    path.write_text("\n".join(lines) + "\n")
+    return path
+
+
+@pytest.mark.parametrize("saved_settings", [True, False], ids=["settings-in-report", "older-baseline"])
+def test_score_warns_once_when_the_config_settings_differ(demo_fit, demo_state, tmp_path, saved_settings):
+    if not saved_settings:  # a baseline saved before the report kept its settings
+        dst = demo_state / "baselines" / "v0001"
+        manifest = orjson.loads((dst / "manifest.json").read_bytes())
+        assert manifest["report"].pop("settings")["model.false_alarm_rate"] == 0.02
+        _reseal(dst, manifest)
+    same = _demo_config(tmp_path / "same.toml", demo_fit, demo_state, false_alarm_rate=0.02)
+    quiet = run_cli("score", "--config", str(same), str(demo_fit.day))
+    assert quiet.returncode == 0 and quiet.stderr == ""
+    other = _demo_config(tmp_path / "other.toml", demo_fit, demo_state, false_alarm_rate=0.01, unseen_weight=2.0)
+    (tmp_path / "other.toml").write_text(other.read_text() + "[features]\nngram_max = 2\n")
+    warned = run_cli("score", "--config", str(other), str(demo_fit.day))
+    assert warned.returncode == 0 and warned.stdout == quiet.stdout  # scored with the baseline's own
+    assert warned.stderr.splitlines() == [
+        "tracewatch: warning: baseline v0001 was fitted with other settings than the config's: "
+        "features.ngram_max 3 (config: 2), model.false_alarm_rate 0.02 (config: 0.01), "
+        "model.unseen_weight 5.0 (config: 2.0); it scores with its own — fit again to apply the config's"]
+
+
 # -- save and load agree, whatever the sources ---------------------------------------------------
 FLOWS = [(0, 1, 2, 3), (4, 5, 6), (0, 7, 7, 3), (8, 9), (1, 2, 10, 11, 3)]
 

@@ -2,14 +2,25 @@
 
 from __future__ import annotations
 
+import fcntl
 import json
+import os
+import pty
+import re
+import struct
+import subprocess
+import sys
+import termios
+
+import pytest
 
 from tracewatch.batch import assign_sources, run_files
 from tracewatch.config import load_config
 from tracewatch.pipeline import Pipeline
 
 from .conftest import run_cli
-from .daemon_helpers import fitted  # noqa: F401
+from .conftest import ROOT
+from .daemon_helpers import fitted, workspace  # noqa: F401
 
 
 def _files(folder, lines: list[str], n: int):
@@ -49,3 +60,48 @@ def test_a_fit_over_split_files_collects_whole_sessions(fitted, tmp_path):
     assert len(sessions) > 200
     assert sorted((key, len(seq)) for _, key, seq in many.collected) == sessions
     assert many.records == one.records
+
+
+# -- progress on a terminal ------------------------------------------------------------------------
+def _run(args: list[str], folder, *, tty: bool) -> tuple[int, str, str]:
+    """The real command with stderr on a pseudo-terminal of 100x30 (``tty``) or on a pipe:
+    its return code, stdout and everything written to stderr."""
+    env = dict(os.environ, PYTHONPATH=str(ROOT))
+    env.pop("TQDM_DISABLE", None)
+    argv = [sys.executable, "-m", "tracewatch", *args]
+    if not tty:
+        proc = subprocess.run(argv, env=env, capture_output=True, text=True, timeout=300)
+        return proc.returncode, proc.stdout, proc.stderr
+    master, slave = pty.openpty()
+    fcntl.ioctl(slave, termios.TIOCSWINSZ, struct.pack("HHHH", 30, 100, 0, 0))
+    with open(folder / "stdout", "w") as out:  # a file, not a pipe: a full pipe would block the child
+        proc = subprocess.Popen(argv, env=env, stdout=out, stderr=slave)
+    os.close(slave)
+    seen = b""
+    while True:  # until the child closes the terminal (EIO on Linux, or end of file)
+        try:
+            chunk = os.read(master, 65536)
+        except OSError:
+            break
+        if not chunk:
+            break
+        seen += chunk
+    os.close(master)
+    proc.wait(timeout=300)
+    return proc.returncode, (folder / "stdout").read_text(), seen.decode("utf-8", "replace")
+
+
+@pytest.mark.parametrize("command", ["fit", "score"])
+def test_progress_only_on_a_terminal(fitted, tmp_path, command):
+    root, _, base, _, expected = fitted
+    cfg_path = workspace(fitted, tmp_path)
+    args = [command, "--config", str(cfg_path), str(base if command == "fit" else root / "day.txt")]
+    rc, out, err = _run(args, tmp_path, tty=True)
+    assert rc == 0
+    label = "fit: reading" if command == "fit" else "score"
+    # tqdm's bar, e.g. "score:   0%|          | 0.00/52.1k [00:00<?, ?B/s]"
+    assert re.search(rf"{label}: +\d+%\|.*B/s", err), err
+    piped_rc, piped_out, piped_err = _run(args, tmp_path, tty=False)
+    assert piped_rc == 0 and piped_err == ""  # no progress, nothing else either
+    if command == "score":  # the bar never reaches stdout: the alerts are the same either way
+        assert out == piped_out and len(out.splitlines()) == len(expected)

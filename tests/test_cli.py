@@ -2,6 +2,9 @@
 
 from __future__ import annotations
 
+import shutil
+import subprocess
+
 import orjson
 import pytest
 
@@ -60,7 +63,7 @@ def test_fit_then_score_contract(demo_dir):
     assert quiet.returncode in (0, 3) and (quiet.returncode == 3) == bool(quiet.stdout.strip())
 
 
-@pytest.mark.parametrize("command", ["check-config", "fit", "score", "run", "incidents", "demo"])
+@pytest.mark.parametrize("command", ["init", "completion", "check-config", "fit", "score", "run", "incidents", "demo"])
 def test_subcommand_help_has_example_and_exit_codes(command):
     out = run_cli(command, "--help", check=True).stdout
     assert f"example:\n  tracewatch {command}" in out and "exit codes: 0 success" in out
@@ -98,3 +101,43 @@ def test_demo_runs_end_to_end(tmp_path):
     for kind in ("missing_step", "unseen_event", "retry_loop", "out_of_order", "cut_short", "mixed_workflows"):
         assert kind in out
     assert (tmp_path / "demo" / "state" / "baselines" / "CURRENT").exists()
+
+
+# -- shell completion (shtab) -------------------------------------------------------------------------
+BASH_COMPLETE = """source "$1"
+complete -p tracewatch
+reply() { COMP_WORDS=("$@"); COMP_CWORD=$(($# - 1)); COMPREPLY=(); _shtab_tracewatch; echo "${COMPREPLY[*]}"; }
+reply tracewatch i
+reply tracewatch score --output ''
+reply tracewatch completion ''
+"""
+
+
+def test_bash_sources_the_completion_script(tmp_path):
+    bash = shutil.which("bash")
+    if bash is None:
+        pytest.skip("bash is not installed")
+    script = tmp_path / "tracewatch.bash"
+    script.write_text(run_cli("completion", "bash", check=True).stdout)
+    proc = subprocess.run([bash, "--norc", "--noprofile", "-c", BASH_COMPLETE, "bash", str(script)],
+                          capture_output=True, text=True, timeout=60)
+    assert proc.returncode == 0 and proc.stderr == "", proc.stderr
+    assert proc.stdout.splitlines() == ["complete -o bashdefault -F _shtab_tracewatch tracewatch",
+                                        "init incidents", "json text", "bash zsh"]
+
+
+def test_zsh_registers_the_completion_function(tmp_path):
+    zsh = shutil.which("zsh")
+    if zsh is None:
+        pytest.skip("zsh is not installed (make test installs it with apt-get when it can)")
+    folder = tmp_path / "completions"  # zsh's way: a file _tracewatch in a folder of $fpath
+    folder.mkdir()
+    (folder / "_tracewatch").write_text(run_cli("completion", "zsh", check=True).stdout)
+    proc = subprocess.run([zsh, "-f", "-c", 'fpath=("$1" $fpath); autoload -U compinit && compinit -u -D && '
+                           'print -r -- ${_comps[tracewatch]}', "zsh", str(folder)],
+                          capture_output=True, text=True, timeout=60, cwd=tmp_path,
+                          env={"HOME": str(tmp_path), "PATH": "/usr/bin:/bin"})
+    assert proc.returncode == 0 and proc.stderr == "", proc.stderr
+    assert proc.stdout.strip() == "_tracewatch"  # compinit read the script's "#compdef tracewatch"
+    parsed = subprocess.run([zsh, "-n", str(folder / "_tracewatch")], capture_output=True, text=True, timeout=60)
+    assert parsed.returncode == 0 and parsed.stderr == ""  # and zsh parses all of it

@@ -328,3 +328,14 @@ def test_idle_session_closes_live_after_quiet_time_not_during_a_backlog(fitted):
     pipe.tick(live())
     assert not pipe.sessionizer.open and [v["closed_by"] for v in verdicts] == ["idle"]
     assert np.isfinite(verdicts[0]["score"])
+
+
+def test_run_warns_once_when_the_config_settings_differ(fitted, tmp_path):
+    """The baseline was fitted with false_alarm_rate 0.05 (daemon_helpers.write_config)."""
+    daemon = DaemonProcess(workspace(fitted, tmp_path, false_alarm_rate=0.2)).ready()
+    assert daemon.terminate() == 0
+    warned = [line for line in daemon.stderr().splitlines() if "fitted with other settings" in line]
+    assert len(warned) == 1 and "WARNING" in warned[0].upper()
+    assert warned[0].endswith("baseline v0001 was fitted with other settings than the config's: "
+                              "model.false_alarm_rate 0.05 (config: 0.2); it scores with its own — fit again "
+                              "to apply the config's")

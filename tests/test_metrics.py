@@ -27,7 +27,9 @@ def _pipeline_snapshot() -> dict:
             "sessions_scored": {"api": 7}, "alerts": {("api", "unseen_event"): 2},
             "sessions_evicted": 3, "baseline_version": "v0002", "sources": ["api", "idle-source"],
             "files": [{"source": "api", "lag_bytes": 100, "lag_seconds": 1.5},
-                      {"source": "api", "lag_bytes": 20, "lag_seconds": 4.0}]}
+                      {"source": "api", "lag_bytes": 20, "lag_seconds": 4.0}],
+            "incidents": {"open": 2, "acknowledged": 1, "resolved": 0, "expected": 0},
+            "notifications": {"webhook": {"sent": 3, "rejected": 0, "retried": 1, "pending": 1}}}
 
 
 def test_values_from_the_snapshot():
@@ -71,7 +73,7 @@ def test_exposition_parses_and_follows_the_naming_rules():
     DaemonMetrics(reg, _pipeline_snapshot).observe_score("api", 1.0)
     families = list(text_string_to_metric_families(generate_latest(reg).decode()))
     assert families
-    allowed = {"source", "reason", "version", "le"}
+    allowed = {"source", "reason", "version", "le", "status", "sink"}
     for fam in families:
         if fam.name.startswith(("process_", "python_")):
             continue  # prometheus_client's standard collectors, with their own labels
@@ -96,6 +98,8 @@ def test_standard_collectors_build_info_and_promtool():
     DaemonMetrics(reg, _pipeline_snapshot).observe_score("api", 1.0)
     text = generate_latest(reg).decode()
     names = {f.name for f in text_string_to_metric_families(text)}
+    assert {"tracewatch_incidents", "tracewatch_notifications_sent", "tracewatch_notifications_failed",
+            "tracewatch_notifications_pending"} <= names  # the parser names counters without _total
     assert {"process_cpu_seconds", "process_resident_memory_bytes", "python_info", "python_gc_objects_collected"} <= names
     assert f'tracewatch_build_info{{version="{__version__}"}} 1.0' in text
     assert "_created" not in text
@@ -104,3 +108,56 @@ def test_standard_collectors_build_info_and_promtool():
     proc = subprocess.run(["promtool", "check", "metrics"], input=text, capture_output=True, text=True, timeout=30)
     assert proc.returncode == 0, proc.stdout + proc.stderr
 
+
+
+def test_incident_and_notification_series_exist_at_zero_then_count(tmp_path):
+    """A real store, tracker and notifier (tracewatch/service/incidents.py) sending to a real HTTP
+    receiver on 127.0.0.1: every series with a known label set is 0 before anything happened."""
+    from tracewatch.service.incidents import Incidents
+
+    from .incident_data import Receiver, toy_alert
+
+    receiver = Receiver().start()
+    cfg = parse_config({"state_dir": str(tmp_path / "state"), "notify": {"webhook_url": receiver.url},
+                        "sources": [{"name": "api"}, {"name": "audit"}]})
+    incidents = Incidents(cfg)
+    try:
+        incidents.store  # noqa: B018 - opens it, as the daemon's start does
+        reg = CollectorRegistry()
+        DaemonMetrics(reg, lambda: {"sources": ["api", "audit"], **incidents.snapshot()}, ["api", "audit"])
+        get = reg.get_sample_value
+        for source in ("api", "audit"):
+            for reason in ("far_from_baseline", "unseen_event"):
+                assert get("tracewatch_alerts_total", {"source": source, "reason": reason}) == 0
+            for reason in ("invalid_utf8", "line_too_long"):
+                assert get("tracewatch_lines_repaired_total", {"source": source, "reason": reason}) == 0
+            assert get("tracewatch_records_total", {"source": source}) == 0
+            assert get("tracewatch_sessions_scored_total", {"source": source}) == 0
+            assert get("tracewatch_session_score_count", {"source": source}) == 0
+        for status in ("open", "acknowledged", "resolved", "expected"):
+            assert get("tracewatch_incidents", {"status": status}) == 0
+        assert get("tracewatch_notifications_sent_total", {"sink": "webhook"}) == 0
+        assert get("tracewatch_notifications_failed_total", {"sink": "webhook", "reason": "retried"}) == 0
+        assert get("tracewatch_notifications_failed_total", {"sink": "webhook", "reason": "rejected"}) == 0
+        assert get("tracewatch_notifications_pending", {"sink": "webhook"}) == 0
+
+        incidents.tracker.add(toy_alert("1", "A"))
+        receiver.status = 503  # the receiver in trouble: kept and retried
+        incidents.notifier.run_once(100.0)
+        assert get("tracewatch_incidents", {"status": "open"}) == 1
+        assert get("tracewatch_notifications_pending", {"sink": "webhook"}) == 1
+        assert get("tracewatch_notifications_failed_total", {"sink": "webhook", "reason": "retried"}) == 1
+        receiver.status = 200
+        incidents.notifier.run_once(200.0)  # after the backoff
+        assert get("tracewatch_notifications_sent_total", {"sink": "webhook"}) == 1
+        assert get("tracewatch_notifications_pending", {"sink": "webhook"}) == 0
+        incidents.tracker.add(toy_alert("2", "B"))  # unlike the first: an incident of its own
+        receiver.status = 400  # refused for good
+        incidents.notifier.run_once(300.0)
+        assert get("tracewatch_incidents", {"status": "open"}) == 2
+        assert get("tracewatch_notifications_failed_total", {"sink": "webhook", "reason": "rejected"}) == 1
+        assert get("tracewatch_notifications_pending", {"sink": "webhook"}) == 0
+        assert [r["status"] for r in receiver.requests] == [503, 200, 400]
+    finally:
+        incidents.close()
+        receiver.stop()

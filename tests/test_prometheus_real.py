@@ -30,7 +30,7 @@ from .daemon_helpers import (DEPLOY, DaemonProcess, Neighbour, fitted, free_port
 
 PROM_DIR = DEPLOY / "prometheus"
 RULES = ("TracewatchDown", "TracewatchIngestLagGrowing", "TracewatchRecordsRejected", "TracewatchNoBaseline",
-         "TracewatchSessionsEvicted")
+         "TracewatchSessionsEvicted", "TracewatchNotificationsStuck")
 
 
 def prometheus_folder(folder: Path, target_port: int) -> Path:

@@ -146,6 +146,9 @@ class FitReport(_Strict):
     scorer: str
     unseen_weight: _Finite = Field(ge=0)
     refit: _Refit | None = None
+    # the [features] and [model] settings of the fit, as dotted keys (score warns when the config differs)
+    settings: dict[Annotated[str, Field(max_length=64)], bool | int | _Finite | _Text] = Field(default_factory=dict,
+                                                                                          max_length=100)
 
 
 class Manifest(_Strict):

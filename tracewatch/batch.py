@@ -7,7 +7,9 @@ from the config's ``paths`` globs, or — with a single source — is that sourc
 from __future__ import annotations
 
 import fnmatch
-from collections.abc import Callable
+import sys
+from collections.abc import Callable, Iterator
+from contextlib import contextmanager
 from itertools import repeat
 from operator import itemgetter
 from pathlib import Path
@@ -49,18 +51,41 @@ def assign_sources(cfg: Config, inputs: list[str], source: str | None = None) ->
     return pairs
 
 
+OnBytes = Callable[[int], object] | None  # told the bytes of every read (a progress bar)
+
+
+@contextmanager
+def byte_progress(pairs: list[tuple[str, Path]], what: str) -> Iterator[OnBytes]:
+    """A progress bar of the input bytes read, on stderr, only when stderr is a terminal
+    (tqdm); None otherwise, so pipes, logs and tests see nothing of it."""
+    if not sys.stderr.isatty():
+        yield None
+        return
+    from tqdm import tqdm
+
+    total = 0
+    for _, path in pairs:
+        try:
+            total += path.stat().st_size
+        except OSError:
+            pass  # reading it says why
+    with tqdm(total=total, desc=what, unit="B", unit_scale=True, unit_divisor=1024, file=sys.stderr,
+              leave=False, dynamic_ncols=True) as bar:
+        yield bar.update
+
+
 def run_files(pipeline: Pipeline, pairs: list[tuple[str, Path]], *,
-              on_block: Callable[[str, list[int]], None] | None = None) -> None:
+              on_block: Callable[[str, list[int]], None] | None = None, on_bytes: OnBytes = None) -> None:
     """Feed every file to the pipeline, then flush it; ``on_block`` sees the stream and the
-    line offsets of every block read, before the pipeline does. Several files are read merged
+    line offsets of every block read, before the pipeline does, ``on_bytes`` the bytes of every read. Several files are read merged
     by record time (:class:`TimeMerge`), as the daemon sees them arrive; ``templates`` (with
     ``on_block``) reads them one after another, in input order."""
     if len(pairs) > 1 and on_block is None:
-        TimeMerge(pipeline, pairs).run()
+        TimeMerge(pipeline, pairs, on_bytes).run()
         return
     for source, path in pairs:
         stream = str(path)
-        for lines, offsets, repairs in read_blocks(path, pipeline.cfg.source(source).line_limit):
+        for lines, offsets, repairs in read_blocks(path, pipeline.cfg.source(source).line_limit, on_bytes):
             if on_block is not None:
                 on_block(stream, offsets)
             pipeline.feed_block(source, stream, lines, offsets, repairs)
@@ -83,9 +108,9 @@ class TimeMerge:
     on its own, as logs are; a record older than what was already released is taken late, as
     the daemon would take it."""
 
-    def __init__(self, pipeline: Pipeline, pairs: list[tuple[str, Path]]) -> None:
+    def __init__(self, pipeline: Pipeline, pairs: list[tuple[str, Path]], on_bytes: OnBytes = None) -> None:
         self.pipeline = pipeline
-        self.files = [(source, str(path), read_blocks(path, pipeline.cfg.source(source).line_limit))
+        self.files = [(source, str(path), read_blocks(path, pipeline.cfg.source(source).line_limit, on_bytes))
                       for source, path in pairs]
         self.newest = {stream: float("-inf") for _, stream, _ in self.files}  # newest time read
         self.waiting: dict[str, list[tuple]] = {}  # source -> (sort time, seq, row)
@@ -174,14 +199,14 @@ def unread_lines(pipeline: Pipeline, *, refuse: bool) -> list[str]:
     return out
 
 
-def fit_files(cfg: Config, pairs: list[tuple[str, Path]]):
+def fit_files(cfg: Config, pairs: list[tuple[str, Path]], on_bytes: OnBytes = None):
     """Read normal sessions from files, fit a baseline, save it as the current version."""
     from .baselines import check_writable, save_baseline
     from .model.baseline import fit_baseline
 
     check_writable(cfg.state_dir)
     pipeline = Pipeline(cfg)
-    run_files(pipeline, pairs)
+    run_files(pipeline, pairs, on_bytes=on_bytes)
     for line in unread_lines(pipeline, refuse=True):
         raise InputError(line)
     baseline = fit_baseline(pipeline.fit_sessions(), pipeline.miner, cfg, pipeline.fit_keys())
@@ -189,23 +214,26 @@ def fit_files(cfg: Config, pairs: list[tuple[str, Path]]):
     return baseline, path, pipeline
 
 
-def score_files(cfg: Config, pairs: list[tuple[str, Path]], baseline, on_verdict, *, score_all: bool = False
-                ) -> Pipeline:
+def score_files(cfg: Config, pairs: list[tuple[str, Path]], baseline, on_verdict, *, score_all: bool = False,
+                on_bytes: OnBytes = None) -> Pipeline:
     pipeline = Pipeline(cfg, baseline, on_verdict=on_verdict, score_all=score_all)
-    run_files(pipeline, pairs)
+    run_files(pipeline, pairs, on_bytes=on_bytes)
     return pipeline
 
 
-def group_files(cfg: Config, pairs: list[tuple[str, Path]], baseline, store) -> Pipeline:
+def group_files(cfg: Config, pairs: list[tuple[str, Path]], baseline, store, *, on_bytes: OnBytes = None) -> Pipeline:
     """``score --incidents``: replay the files and group their alerts into incidents in ``store``
     as the daemon would — its tracker (and triage, when enabled), every session counted for the
     rates — on the replay's event clock: before each verdict, incidents with no alert for
     ``auto_resolve_s`` are resolved, as the daemon's tick would have."""
     from .alerts.incidents import IncidentTracker, alert_time
-    from .triage import Triage
 
     clock = [0.0]  # the newest event time replayed so far
-    triage = Triage(cfg.triage, Path(cfg.state_dir)) if cfg.triage.enabled else None
+    triage = None
+    if cfg.triage.enabled:  # the kernel perceptron brings scikit-learn: only when asked
+        from .triage import Triage
+
+        triage = Triage(cfg.triage, Path(cfg.state_dir))
     tracker = IncidentTracker(store, cfg.incidents, clock=lambda: clock[0], triage=triage)
 
     def on_verdict(verdict: dict) -> None:
@@ -213,6 +241,6 @@ def group_files(cfg: Config, pairs: list[tuple[str, Path]], baseline, store) -> 
         tracker.tick(clock[0])
         tracker.add(verdict)
 
-    pipeline = score_files(cfg, pairs, baseline, on_verdict, score_all=True)
+    pipeline = score_files(cfg, pairs, baseline, on_verdict, score_all=True, on_bytes=on_bytes)
     tracker.flush()
     return pipeline

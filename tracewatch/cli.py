@@ -12,14 +12,16 @@ import sys
 from pathlib import Path
 
 import orjson
+import shtab
 
 from . import __version__
 from .alerts.store import STATUSES
 from .baselines import (baselines_dir, current_version, list_versions, load_baseline, load_baseline_dir,
                         set_current)
-from .batch import assign_sources, fit_files, score_files, template_rows, unread_lines
+from .batch import assign_sources, byte_progress, fit_files, score_files, template_rows, unread_lines
 from .config import Config, IncidentsConfig, adhoc_config, load_config
 from .errors import ConfigError, TracewatchError
+from .model.baseline import drift_warning
 from .pipeline import Pipeline
 
 CAUTION = ("Logs can hold secrets and personal data: keep state_dir private and follow your "
@@ -64,10 +66,30 @@ def cmd_check_config(args) -> int:
     return 0
 
 
+INIT_HELP = (
+    "Write a starter config for one log file: its first few thousand lines are read by each of "
+    "tracewatch's format readers, and the format that reads the most, its time layout and a session "
+    "key (a field that repeats across lines and takes many values: a request id, a pid, a trace id) "
+    "are guessed. Each guess is printed on one line with how sure it is (the share of sampled lines "
+    "it holds for). The config is checked before it is written; an existing file is kept unless "
+    "--force. Read the guesses before fitting: a wrong session key gives a baseline of nonsense.")
+
+
+def cmd_init(args) -> int:
+    from .starter import write_starter
+
+    starter, out = write_starter(args.logfile, args.out, force=args.force)
+    for g in starter.guesses:
+        print(g.line())
+    print(f"wrote {out}; next: tracewatch check-config --config {out}")
+    return 0
+
+
 def cmd_fit(args) -> int:
     cfg = _config(args)
     pairs = assign_sources(cfg, args.inputs, args.source)
-    baseline, path, pipeline = fit_files(cfg, pairs)
+    with byte_progress(pairs, "fit: reading") as on_bytes:
+        baseline, path, pipeline = fit_files(cfg, pairs, on_bytes)
     for line in unread_lines(pipeline, refuse=False):
         print(f"tracewatch: {line}", file=sys.stderr)
     if args.json:
@@ -83,11 +105,15 @@ def cmd_score(args) -> int:
         raise ConfigError("score: --incidents prints incidents, --all every session; choose one")
     baseline = load_baseline(cfg.state_dir, args.baseline)
     pairs = assign_sources(cfg, args.inputs, args.source)
-    if args.incidents:
-        pipeline = _score_incidents(cfg, pairs, baseline, args.output)
-    else:
-        pipeline = score_files(cfg, pairs, baseline, _out if args.output == "json" else _alert_text,
-                               score_all=args.all)
+    drift = drift_warning(baseline, cfg)
+    if drift:
+        print(f"tracewatch: {drift}", file=sys.stderr)
+    with byte_progress(pairs, "score") as on_bytes:
+        if args.incidents:
+            pipeline = _score_incidents(cfg, pairs, baseline, args.output, on_bytes)
+        else:
+            pipeline = score_files(cfg, pairs, baseline, _out if args.output == "json" else _alert_text,
+                                   score_all=args.all, on_bytes=on_bytes)
     sys.stdout.flush()
     for line in unread_lines(pipeline, refuse=False):
         print(f"tracewatch: {line}", file=sys.stderr)
@@ -99,7 +125,7 @@ def cmd_score(args) -> int:
     return EXIT_ALERTS if args.fail_on_alert and n_alerts else 0
 
 
-def _score_incidents(cfg: Config, pairs, baseline, output: str) -> Pipeline:
+def _score_incidents(cfg: Config, pairs, baseline, output: str, on_bytes) -> Pipeline:
     """`score --incidents`: the replay's alerts grouped as the daemon would, in a store of their
     own (a temporary directory; the daemon's incidents.db is never touched), then printed: one
     detail object per incident (json), or the table and each incident in detail (text)."""
@@ -113,7 +139,7 @@ def _score_incidents(cfg: Config, pairs, baseline, output: str) -> Pipeline:
     with tempfile.TemporaryDirectory(prefix="tracewatch-replay-") as tmp:
         store = IncidentStore.open(Path(tmp))
         try:
-            pipeline = group_files(cfg, pairs, baseline, store)
+            pipeline = group_files(cfg, pairs, baseline, store, on_bytes=on_bytes)
             found = store.incidents(limit=-1)
             details = [{**summary.detail(store.incident(r["id"]), max_samples=cfg.incidents.max_samples,
                                          redact=Redactor(cfg.redact),
@@ -431,6 +457,11 @@ def format_labels(rows: list[dict], info: dict) -> str:
     return "\n".join(lines)
 
 
+def cmd_completion(args) -> int:
+    sys.stdout.write(shtab.complete(build_parser(), shell=args.shell))
+    return 0
+
+
 def cmd_demo(args) -> int:
     from .demo.run import run_demo
 
@@ -503,6 +534,7 @@ EXIT_ALERTS = 3  # `score --fail-on-alert` found alerts (and `refit` refused): r
 EXIT_HELP = ("exit codes: 0 success; 1 runtime problem (unreadable input, missing or corrupt baseline);\n"
              f"  2 bad config or arguments; {EXIT_ALERTS} alerts with --fail-on-alert, or a refit refused; 130 interrupted")
 EXAMPLES = {
+    "init": "tracewatch init logs/app.log --out tw.toml",
     "check-config": "tracewatch check-config --config config/tracewatch.example.toml",
     "fit": "tracewatch fit --config tw.toml logs/monday/*.log",
     "score": "tracewatch score --config tw.toml --fail-on-alert logs/tuesday/*.log",
@@ -511,6 +543,7 @@ EXAMPLES = {
     "run": "tracewatch run --config tw.toml",
     "incidents": "tracewatch incidents --config tw.toml",
     "demo": "tracewatch demo --dir ./tracewatch-demo",
+    "completion": "tracewatch completion bash > ~/.local/share/bash-completion/completions/tracewatch",
 }
 
 
@@ -520,12 +553,19 @@ def build_parser() -> argparse.ArgumentParser:
     sub = p.add_subparsers(dest="command", required=True, parser_class=_Parser)
 
     def with_config(sp, *, adhoc: bool = False):
-        sp.add_argument("--config", "-c", metavar="FILE", help="TOML config file")
+        sp.add_argument("--config", "-c", metavar="FILE", help="TOML config file").complete = shtab.FILE
         if adhoc:
             sp.add_argument("--format", metavar="FMT", help="read INPUT in this format with no config "
                             "(the whole line is the message): text, jsonl, syslog, otlp-json, strace")
             sp.add_argument("--state-dir", default="./tracewatch-state", metavar="DIR",
                             help="state directory when no config is given (default ./tracewatch-state)")
+
+    sp = sub.add_parser("init", help="guess a starter config from one log file", description=INIT_HELP)
+    sp.add_argument("logfile", metavar="LOGFILE", help="a log file of the application, in its usual format")
+    sp.add_argument("--out", "-o", default="tracewatch.toml", metavar="FILE",
+                    help="the config file to write (default tracewatch.toml)")
+    sp.add_argument("--force", action="store_true", help="overwrite FILE if it exists")
+    sp.set_defaults(func=cmd_init)
 
     sp = sub.add_parser("check-config", help="validate a config file")
     with_config(sp)
@@ -613,6 +653,17 @@ def build_parser() -> argparse.ArgumentParser:
     sp.add_argument("--seed", type=int, default=7)
     sp.add_argument("--show", type=int, default=6, help="how many alerts to print in full")
     sp.set_defaults(func=cmd_demo)
+
+    sp = sub.add_parser("completion", help="print a shell completion script for tracewatch",
+                        description="Print a completion script for bash or zsh on stdout: subcommands, options "
+                        "and their choices complete with Tab; files complete where a file is asked for. "
+                        "Install it where your shell looks (bash: ~/.local/share/bash-completion/completions/"
+                        "tracewatch; zsh: a file _tracewatch in a folder of $fpath) or source it.")
+    sp.add_argument("shell", choices=["bash", "zsh"])
+    sp.set_defaults(func=cmd_completion)
+    for action in (a for sp in sub.choices.values() for a in sp._actions):
+        if action.metavar in ("FILE", "INPUT", "LOGFILE") and not hasattr(action, "complete"):
+            action.complete = shtab.FILE
     for name, sp in sub.choices.items():
         example = EXAMPLES.get(name, "")
         sp.formatter_class = argparse.RawDescriptionHelpFormatter

@@ -190,6 +190,7 @@ class Notifier:
         self._next_resend = {s.name: -float("inf") for s in sinks}
         self._next_prune = -float("inf")
         self.rounds = 0  # delivery rounds finished since the start
+        self.retries = dict.fromkeys(self._next_try, 0)  # sink -> failed attempts that are retried
         for s in sinks:
             store.cursor(s.name)  # a new sink starts after the newest notification
         self._wake = threading.Event()
@@ -247,6 +248,7 @@ class Notifier:
                     sink.send(row_id, event, incident)
                 except DeliveryError as exc:
                     if exc.retry:
+                        self.retries[name] += 1
                         attempts = self.store.failed(name, str(exc))
                         self._next_try[name] = now + self.backoff(attempts)
                         log.warning("%s: %s; notification %d kept, attempt %d, next in %.0f s", name, exc,
@@ -303,7 +305,8 @@ class Notifier:
             self._thread = None
 
     def status(self) -> dict:
-        """Per sink: its cursor (pending, attempts, delivered, rejected, last_error) and the
-        delivery rounds finished since the start."""
+        """Per sink: its cursor (pending, attempts, delivered, rejected, last_error), the failed
+        attempts retried and the delivery rounds finished since the start."""
         cursors = self.store.cursors()
-        return {s.name: {**cursors.get(s.name, {}), "rounds": self.rounds} for s in self.sinks}
+        return {s.name: {**cursors.get(s.name, {}), "retries": self.retries[s.name], "rounds": self.rounds}
+                for s in self.sinks}

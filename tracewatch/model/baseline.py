@@ -125,6 +125,16 @@ class Baseline:
     def false_alarm_rate(self) -> float:
         return self.calibration[POOLED].false_alarm_rate
 
+    def settings_drift(self, cfg: Config) -> list[tuple[str, object, object]]:
+        """``(key, fitted with, config now)`` for each [features] / [model] setting of ``cfg``
+        that differs from what this baseline was fitted with (the fit report's ``settings``;
+        for a baseline saved without them, what the baseline itself holds)."""
+        fitted = {"features.ngram_max": self.vectorizer.ngram_max, "model.false_alarm_rate": self.false_alarm_rate,
+                  "model.scorer": self.scorer.name, **{f"model.{k}": v for k, v in self.scorer.get_params().items()},
+                  **self.report.get("settings", {})}
+        now = fit_settings(cfg)
+        return [(key, fitted[key], now[key]) for key in now if key in fitted and fitted[key] != now[key]]
+
     def conformal(self, source: str) -> Calibration:
         """The calibration of ``source`` (or the pooled one when it had too few sessions)."""
         own = self.calibration.get(source)
@@ -474,6 +484,22 @@ def _calibrate(baseline: Baseline, held_out: list[tuple[str, Seq]], rate: float,
     baseline.novelty[POOLED] = float(np.mean([f for flags in novel.values() for f in flags]))
 
 
+def fit_settings(cfg: Config) -> dict:
+    """The config settings a fit depends on, as dotted keys: every [features] and [model] key."""
+    return {**{f"features.{k}": v for k, v in cfg.features.model_dump().items()},
+            **{f"model.{k}": v for k, v in cfg.model.model_dump().items()}}
+
+
+def drift_warning(baseline: Baseline, cfg: Config) -> str | None:
+    """One line naming the settings that differ between the config and the baseline, or None."""
+    drift = baseline.settings_drift(cfg)
+    if not drift:
+        return None
+    keys = ", ".join(f"{key} {fitted!r} (config: {now!r})" for key, fitted, now in drift)
+    return (f"warning: baseline {baseline.version} was fitted with other settings than the config's: {keys}; "
+            "it scores with its own — fit again to apply the config's")
+
+
 def _report(b: Baseline, model, cfg: Config, *, n: int, n_train: int, n_cal: int, distinct: list[Seq],
             weights: np.ndarray) -> dict:
     """The fit report (kept in the manifest; `tracewatch fit` and `baselines show` print it)."""
@@ -510,6 +536,7 @@ def _report(b: Baseline, model, cfg: Config, *, n: int, n_train: int, n_cal: int
         "false_alarm_rate": mcfg.false_alarm_rate,
         "scorer": mcfg.scorer,
         "unseen_weight": mcfg.unseen_weight,
+        "settings": fit_settings(cfg),
     }
     need = int(np.ceil(1 / mcfg.false_alarm_rate)) - 1
     # a conformal p-value is at least 1/(n+1): no rate below that can come from distance alone

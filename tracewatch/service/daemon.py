@@ -37,6 +37,7 @@ from prometheus_client import CollectorRegistry
 
 from .. import __version__
 from ..baselines import baselines_dir, load_baseline, load_baseline_dir
+from ..model.baseline import drift_warning
 from ..config import Config
 from ..errors import BaselineError, InputError, StateError
 from ..pipeline import Pipeline
@@ -95,7 +96,7 @@ class Daemon:
         self.watch = BaselineWatch(self.state_dir)
         self.refit = RefitJob(cfg, self.state_dir, lock=self.lock, store=lambda: self.incidents.store, wall=wall)
         self.report = DaemonStatus(self)
-        self.metrics = DaemonMetrics(self.registry, self.report.snapshot)
+        self.metrics = DaemonMetrics(self.registry, self.report.snapshot, [s.name for s in cfg.sources])
         self.watcher: Watcher | None = None
         self.server = self.http_thread = None
         self.started = False
@@ -144,6 +145,7 @@ class Daemon:
             self.pipe.use_baseline(current)
             log.info("switched from baseline %s (of the checkpoint) to the current %s",
                      base.version, current.version)
+        self._check_settings(current)
         if cfg.refit.enabled:
             self.refit.attach(self.pipe)
         self.journal.open(ckpt.alerts if ckpt is not None else None)
@@ -307,6 +309,13 @@ class Daemon:
             self.refit.baseline_changed(baseline.version)
         log.info("switched baseline %s → %s; %d open sessions carried over", old, baseline.version,
                  len(self.pipe.sessionizer.open))
+        self._check_settings(baseline)
+
+    def _check_settings(self, baseline) -> None:
+        """One warning line when the config's model settings differ from the baseline's."""
+        drift = drift_warning(baseline, self.cfg)
+        if drift:
+            log.warning("%s", drift)
 
     # -- what HTTP and metrics read (tracewatch/service/status.py) ---------------------------------
     def ready(self) -> tuple[bool, str]:

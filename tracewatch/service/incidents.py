@@ -16,7 +16,7 @@ from pathlib import Path
 
 from ..alerts.incidents import IncidentTracker, set_status
 from ..alerts.sinks import Notifier
-from ..alerts.store import IncidentStore
+from ..alerts.store import STATUSES, IncidentStore
 from ..config import Config
 from ..errors import StateError
 
@@ -82,6 +82,24 @@ class Incidents:
         out = set_status(self.store, iid, action, by=by, note=note)
         self.notifier.wake()
         return out
+
+    def snapshot(self) -> dict:
+        """``incidents`` by status and ``notifications`` by sink, for the metrics (keys in
+        :mod:`tracewatch.service.metrics`); every status and every configured sink, at zero too.
+        Empty while the store is not open or cannot be read (the error is logged where it happens)."""
+        if self._store is None:
+            return {}
+        try:
+            counts = self._store.counts()
+            sinks = self.notifier.status()
+        except (sqlite3.Error, StateError, OSError):
+            return {}
+        finally:
+            self._store.release()  # asked from the scraping thread: its connection goes with it
+        return {"incidents": {status: counts.get(status, 0) for status in STATUSES},
+                "notifications": {name: {"sent": c.get("delivered", 0), "rejected": c.get("rejected", 0),
+                                         "retried": c["retries"], "pending": c.get("pending", 0)}
+                                  for name, c in sinks.items()}}
 
     def release(self) -> None:
         """Close this thread's store connection (each HTTP request runs in a thread of its own)."""

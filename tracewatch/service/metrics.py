@@ -22,11 +22,17 @@ The snapshot is a dict with these keys (all optional):
                                              how long it took
     refits                                   {outcome: n} baseline refits (tracewatch/refit.py)
     refit_pool                               {source: n} sessions held for the next refit
+    incidents                                {status: n} incidents in the store
+    notifications                            {sink: {"sent", "rejected", "retried", "pending"}}
+
+Every series whose labels are known in advance exists from the start, at zero: per configured
+source (and per alert reason, per repair reason), per incident status, per configured sink — so
+rules and dashboards see a 0, not an absent series, before the first alert or notification.
 """
 
 from __future__ import annotations
 
-from collections.abc import Callable, Iterator
+from collections.abc import Callable, Iterator, Sequence
 
 from prometheus_client import (GCCollector, PlatformCollector, ProcessCollector, CollectorRegistry, Histogram,
                                disable_created_metrics)
@@ -34,6 +40,8 @@ from prometheus_client.core import CounterMetricFamily, GaugeMetricFamily, Metri
 from prometheus_client.registry import Collector
 
 from .. import __version__
+from ..alerts.alert import REASON_FAR, REASON_UNSEEN
+from ..sources.files import INVALID_UTF8, LINE_TOO_LONG
 
 # no `*_created` series beside counters and histograms: they double the series count and no rule
 # here reads them (prometheus_client's switch is process-wide)
@@ -47,12 +55,21 @@ _BY_SOURCE = (
     ("lines", "tracewatch_lines_total", "Lines read from the source's files."),
     ("sessions_scored", "tracewatch_sessions_scored_total", "Sessions closed and scored."),
 )
-_BY_REASON = (
+_BY_REASON = (  # key, name, help, the reasons known in advance (each format has rejection reasons of its own)
     ("rejected", "tracewatch_records_rejected_total",
-     "Lines a format could not read as intended (most are still kept as whole-line records)."),
+     "Lines a format could not read as intended (most are still kept as whole-line records).", ()),
     ("repaired", "tracewatch_lines_repaired_total",
-     "Lines decoded with replacement characters or truncated to max_line_bytes."),
-    ("alerts", "tracewatch_alerts_total", "Alerts raised, by reason (an alert may have several)."),
+     "Lines decoded with replacement characters or truncated to max_line_bytes.", (INVALID_UTF8, LINE_TOO_LONG)),
+    ("alerts", "tracewatch_alerts_total", "Alerts raised, by reason (an alert may have several).",
+     (REASON_FAR, REASON_UNSEEN)),
+)
+_BY_SINK = (  # key in a sink's notifications, name, help, labels beside sink
+    ("sent", "tracewatch_notifications_sent_total", "Incident notifications the sink's receiver accepted."),
+    ("retried", "tracewatch_notifications_failed_total", "Incident notifications that did not get through: "
+     "reason retried (unreachable, timeout, 408/425/429/5xx; tried again, counted since the start) or "
+     "rejected (another 4xx; set aside for good)."),
+    ("pending", "tracewatch_notifications_pending", "Incident notifications in the outbox not yet delivered "
+     "to the sink."),
 )
 _PLAIN_COUNTERS = (
     ("sessions_evicted", "tracewatch_sessions_evicted_total",
@@ -72,16 +89,19 @@ class _SnapshotCollector(Collector):
 
     def collect(self) -> Iterator[Metric]:
         snap = self.snapshot()
+        sources = snap.get("sources", [])
         for key, name, doc in _BY_SOURCE:
             fam = CounterMetricFamily(name, doc, labels=["source"])
-            for source, n in sorted(snap.get(key, {}).items()):
+            for source, n in sorted({**dict.fromkeys(sources, 0), **snap.get(key, {})}.items()):
                 fam.add_metric([source], n)
             yield fam
-        for key, name, doc in _BY_REASON:
+        for key, name, doc, known in _BY_REASON:
             fam = CounterMetricFamily(name, doc, labels=["source", "reason"])
-            for (source, reason), n in sorted(snap.get(key, {}).items()):
+            zeros = {(source, reason): 0 for source in sources for reason in known}
+            for (source, reason), n in sorted({**zeros, **snap.get(key, {})}.items()):
                 fam.add_metric([source, reason], n)
             yield fam
+        yield from _incident_families(snap)
         for key, name, doc in _PLAIN_COUNTERS:
             yield CounterMetricFamily(name, doc, value=snap.get(key, 0))
         build = GaugeMetricFamily("tracewatch_build_info", "The running tracewatch (value 1).", labels=["version"])
@@ -132,14 +152,37 @@ class _SnapshotCollector(Collector):
                                     value=snap.get("checkpoint_seconds", 0.0))
 
 
-class DaemonMetrics:
-    """All of the daemon's metrics on ``registry``; ``snapshot`` is read at every scrape."""
+def _incident_families(snap: dict) -> Iterator[Metric]:
+    """Incidents by status and notifications by sink (tracewatch/service/incidents.py)."""
+    if "incidents" in snap:
+        fam = GaugeMetricFamily("tracewatch_incidents", "Incidents in the store by status: open, acknowledged, "
+                                "resolved, expected.", labels=["status"])
+        for status, n in snap["incidents"].items():
+            fam.add_metric([status], n)
+        yield fam
+    sinks = snap.get("notifications", {})
+    sent, failed, pending = (CounterMetricFamily(*_BY_SINK[0][1:], labels=["sink"]),
+                             CounterMetricFamily(*_BY_SINK[1][1:], labels=["sink", "reason"]),
+                             GaugeMetricFamily(*_BY_SINK[2][1:], labels=["sink"]))
+    for sink, c in sorted(sinks.items()):
+        sent.add_metric([sink], c["sent"])
+        failed.add_metric([sink, "retried"], c["retried"])
+        failed.add_metric([sink, "rejected"], c["rejected"])
+        pending.add_metric([sink], c["pending"])
+    yield from (sent, failed, pending)
 
-    def __init__(self, registry: CollectorRegistry, snapshot: Callable[[], dict]) -> None:
+
+class DaemonMetrics:
+    """All of the daemon's metrics on ``registry``; ``snapshot`` is read at every scrape; the
+    score histogram of each of ``sources`` exists from the start."""
+
+    def __init__(self, registry: CollectorRegistry, snapshot: Callable[[], dict], sources: Sequence[str] = ()) -> None:
         self.registry = registry
         self.scores = Histogram("tracewatch_session_score", "Scores of the sessions scored "
                                 "(distance to the nearest normal cluster, in units of its spread).",
                                 ["source"], buckets=SCORE_BUCKETS, registry=registry)
+        for source in sources:
+            self.scores.labels(source)
         registry.register(_SnapshotCollector(snapshot))
         # the standard process_*, python_info and python_gc_* families, on this registry
         ProcessCollector(registry=registry)

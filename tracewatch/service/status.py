@@ -42,11 +42,12 @@ class DaemonStatus:
     def snapshot(self) -> dict:
         """The counters the metrics expose (keys in :mod:`tracewatch.service.metrics`)."""
         d = self.d
+        incidents = d.incidents.snapshot()  # the store has its own locking
         with d.lock:
             p = d.pipe
             if p is None:
                 return {}
-            return {
+            return {**incidents,
                 "records": dict(p.records), "lines": dict(p.lines), "sessions_scored": dict(p.sessions_scored),
                 "rejected": dict(p.rejected), "repaired": dict(p.repaired), "alerts": dict(p.alerts),
                 "sessions_open": len(p.sessionizer.open), "sessions_evicted": p.sessionizer.evicted,

@@ -8,7 +8,7 @@ UTF-8 is decoded with replacement and counted (``invalid_utf8``); lines longer t
 from __future__ import annotations
 
 import glob
-from collections.abc import Iterator
+from collections.abc import Callable, Iterator
 from itertools import repeat
 from pathlib import Path
 
@@ -87,10 +87,11 @@ def read_lines(path: Path, max_line_bytes: int) -> Iterator[tuple[str, int, str 
         yield from zip(lines, offsets, repairs or repeat(None))
 
 
-def read_blocks(path: Path, max_line_bytes: int) -> Iterator[Block]:
+def read_blocks(path: Path, max_line_bytes: int, on_bytes: Callable[[int], object] | None = None
+                ) -> Iterator[Block]:
     """Yield the lines of ``path`` in blocks of about ``CHUNK`` bytes, as columns, the last line
-    even without a trailing newline. Memory stays bounded by the chunk size and
-    ``max_line_bytes`` even for a file with no newline at all."""
+    even without a trailing newline; ``on_bytes`` is told how many bytes each read took. Memory
+    stays bounded by the chunk size and ``max_line_bytes`` even for a file with no newline at all."""
     try:
         fh = open(path, "rb")
     except OSError as exc:
@@ -104,6 +105,8 @@ def read_blocks(path: Path, max_line_bytes: int) -> Iterator[Block]:
                 chunk = fh.read(CHUNK)
                 if not chunk:
                     break
+                if on_bytes is not None:
+                    on_bytes(len(chunk))
                 data = rest + chunk if rest else chunk
                 cut = data.rfind(b"\n") + 1
                 if skipping:
