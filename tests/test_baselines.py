@@ -229,7 +229,7 @@ DELETE = object()
 HUGE = 2**64 - 1  # the largest whole number orjson writes; a longer one reads as a float
 # (path in manifest.json, a value out of its bounds or of the wrong kind); DELETE removes the key
 MANIFEST_EDITS = [
-    *[(("schema_version",), v) for v in ("4", None, 3.5, DELETE)],
+    *[(("schema_version",), v) for v in ("5", None, 3.5, DELETE)],
     *[(("kind",), v) for v in ("tracewatch-other", None)],
     *[(("version",), v) for v in ("v1", "../v0001", 7)],
     (("created",), "x" * 65), (("tracewatch",), ["0.1"]),

@@ -47,8 +47,9 @@ from .model.score import SCORERS, ScorerName, make_scorer
 if TYPE_CHECKING:
     from .model.baseline import Baseline
 
-SCHEMA_VERSION = 4  # 2: templates masked to <var>; 3: the template tree's settings renamed;
-# 4: the manifest inside its checksum, the arrays of one storage table, each scorer's own arrays
+SCHEMA_VERSION = 5  # 2: templates masked to <var>; 3: the template tree's settings renamed;
+# 4: the manifest inside its checksum, the arrays of one storage table, each scorer's own arrays;
+# 5: key=value values and bracketed paths masked, bracketed tokens route as variables
 KIND = "tracewatch-baseline"
 FILES = ("templates.json", "model.npz")
 VERSION_NAME = re.compile(r"^v\d{4,9}$")
@@ -146,7 +147,7 @@ class FitReport(_Strict):
 
 
 class Manifest(_Strict):
-    schema_version: Literal[4]
+    schema_version: Literal[5]
     kind: Literal["tracewatch-baseline"]
     version: str = Field(pattern=VERSION_NAME.pattern)
     created: str = Field(max_length=64)
