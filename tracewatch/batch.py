@@ -14,7 +14,7 @@ from pathlib import Path
 
 from .config import Config
 from .errors import ConfigError, InputError
-from .pipeline import Pipeline
+from .pipeline import Pipeline, problem_line
 from .sources.files import expand_inputs, read_blocks
 
 
@@ -163,14 +163,10 @@ def unread_lines(pipeline: Pipeline, *, refuse: bool) -> list[str]:
     out = []
     for source, what, count, total in pipeline.input_problems():
         limit = pipeline.cfg.source(source).max_unread_share
-        above = total > 0 and count / total > limit
-        if refuse and not above:
+        if refuse and not (total > 0 and count / total > limit):
             continue
-        head = "fit refused: " if refuse else "warning: "
-        tail = (f", above max_unread_share {limit}; no baseline written" if refuse
-                else (f", above max_unread_share {limit}" if above else ""))
-        hint = " (check ts_format)" if "time" in what else " (check format and line_pattern)"
-        out.append(f"{head}source '{source}': {count} of {total} {what}{tail}{hint}")
+        out.append(("fit refused: " if refuse else "warning: ") + problem_line(pipeline, source, what, count, total,
+                                                                                refuse=refuse))
     return out
 
 

@@ -30,6 +30,8 @@ SCORE_BATCH = 256
 TICK_EVERY = 1024
 
 
+UNTIMED = "records with a session key carry no usable time"  # what input_problems says of untimed records
+
 class Pipeline:
     def __init__(self, cfg: Config, baseline: Baseline | None = None, *,
                  on_verdict: Callable[[dict], None] | None = None, score_all: bool = False,
@@ -208,8 +210,7 @@ class Pipeline:
                 reasons = ", ".join(f"{r}={n}" for n, r in rejected)
                 out.append((name, f"lines rejected ({reasons})", sum(n for n, _ in rejected), self.lines[name]))
             if self.untimed[name]:
-                out.append((name, "records with a session key carry no usable time", self.untimed[name],
-                            self.records[name]))
+                out.append((name, UNTIMED, self.untimed[name], self.records[name]))
         return out
 
     def fit_sessions(self) -> list[tuple[str, tuple[int, ...]]]:
@@ -247,3 +248,15 @@ class Pipeline:
         self._drain()
         self.sessionizer.remap(baseline.miner.adopt(self.miner))
         self.baseline, self.miner, self.scorer = baseline, baseline.miner, baseline.make_scorer()
+
+
+def problem_line(pipeline: Pipeline, source: str, what: str, count: int, total: int, *, refuse: bool = False) -> str:
+    """One input problem (:meth:`Pipeline.input_problems`) in words, with the share it is
+    measured against and what to check; the daemon logs the same line."""
+    limit = pipeline.cfg.source(source).max_unread_share
+    above = total > 0 and count / total > limit
+    tail = (f", above max_unread_share {limit}; no baseline written" if refuse
+            else (f", above max_unread_share {limit}" if above else ""))
+    hint = " (check ts_format)" if what == UNTIMED else " (check format and line_pattern)"
+    return f"source '{source}': {count} of {total} {what}{tail}{hint}"
+
