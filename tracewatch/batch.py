@@ -7,6 +7,7 @@ from the config's ``paths`` globs, or — with a single source — is that sourc
 from __future__ import annotations
 
 import fnmatch
+import os
 from collections.abc import Callable
 from itertools import repeat
 from operator import itemgetter
@@ -47,6 +48,18 @@ def assign_sources(cfg: Config, inputs: list[str], source: str | None = None) ->
                 raise InputError(f"{path}: {why}; say which with --source NAME")
             pairs.append((hits[0], path))
     return pairs
+
+
+def file_time(stream: str) -> Callable[[], float] | None:
+    """The "now" of a file read once: its modification time, so that a replay of old files
+    places stamps without a year (RFC 3164's ``Mmm dd hh:mm:ss``) in the year they were written,
+    not the year of the replay — common practice for rotated syslog files; the daemon keeps the
+    wall clock for files it follows as they grow. None (the wall clock) if it cannot be read."""
+    try:
+        mtime = os.stat(stream).st_mtime
+    except (OSError, ValueError):
+        return None
+    return lambda: mtime
 
 
 def run_files(pipeline: Pipeline, pairs: list[tuple[str, Path]], *,
@@ -151,7 +164,7 @@ def template_rows(cfg: Config, pairs: list[tuple[str, Path]]) -> tuple[list[tupl
     def take(source: str, stream: str, cols, idxs: list[int]) -> None:
         rows.extend(zip(map(numbers[stream].get, cols.offsets, repeat(0)), idxs))
 
-    pipeline = Pipeline(cfg, on_records=take, sample_rejects=False)
+    pipeline = Pipeline(cfg, on_records=take, sample_rejects=False, dating=file_time)
     run_files(pipeline, pairs, on_block=number)
     return rows, pipeline
 
@@ -176,7 +189,7 @@ def fit_files(cfg: Config, pairs: list[tuple[str, Path]]):
     from .model.baseline import fit_baseline
 
     check_writable(cfg.state_dir)
-    pipeline = Pipeline(cfg)
+    pipeline = Pipeline(cfg, dating=file_time)
     run_files(pipeline, pairs)
     for line in unread_lines(pipeline, refuse=True):
         raise InputError(line)
@@ -187,6 +200,6 @@ def fit_files(cfg: Config, pairs: list[tuple[str, Path]]):
 
 def score_files(cfg: Config, pairs: list[tuple[str, Path]], baseline, on_verdict, *, score_all: bool = False
                 ) -> Pipeline:
-    pipeline = Pipeline(cfg, baseline, on_verdict=on_verdict, score_all=score_all)
+    pipeline = Pipeline(cfg, baseline, on_verdict=on_verdict, score_all=score_all, dating=file_time)
     run_files(pipeline, pairs)
     return pipeline

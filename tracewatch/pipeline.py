@@ -38,8 +38,11 @@ class Pipeline:
                  clock: Callable[[], float] | None = None,
                  on_quiet: Callable[[str, tuple[int, ...]], None] | None = None,
                  on_records: Callable[[str, str, Columns, list[int]], None] | None = None,
-                 sample_rejects: bool = True) -> None:
+                 sample_rejects: bool = True,
+                 dating: Callable[[str], Callable[[], float] | None] | None = None) -> None:
         self.cfg = cfg
+        # a stream's "now" for stamps without a year (Format.dated_by); None: the wall clock
+        self.dating = dating
         # `tracewatch templates`: called with (source, stream, records, template indices) of
         # every block of records, in input order
         self.on_records = on_records
@@ -82,7 +85,8 @@ class Pipeline:
     def _format(self, source: str, stream: str) -> Format:
         fmt = self._formats.get((source, stream))
         if fmt is None:
-            fmt = self._formats[(source, stream)] = make_format(self._sources[source], stream)
+            today = self.dating(stream) if self.dating is not None else None
+            fmt = self._formats[(source, stream)] = make_format(self._sources[source], stream, today)
         return fmt
 
     def feed_line(self, source: str, stream: str, line: str, offset: int = -1,
