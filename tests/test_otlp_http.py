@@ -210,10 +210,11 @@ class _Sink:
         pass
 
 
-def _receiver(tmp_path: Path, **limits) -> tuple[Receiver, Spool, _Sink]:
+def _receiver(tmp_path: Path, max_line: int = 20 << 20, **limits) -> tuple[Receiver, Spool, _Sink]:
     cfg = parse_config({"sources": [{"name": "traces", "format": "otlp-json"}],
                         "otlp": {"enabled": True, "traces_source": "traces", **limits}}).otlp
-    spool = Spool("traces", tmp_path / "spool", max_queue_bytes=cfg.max_queue_bytes, file_bytes=cfg.spool_file_bytes)
+    spool = Spool("traces", tmp_path / "spool", max_queue_bytes=cfg.max_queue_bytes, file_bytes=cfg.spool_file_bytes,
+                  max_line_bytes=max_line)
     sink = _Sink()
     spool.attach(None, sink)
     return Receiver(cfg, {"/v1/traces": spool}, accepting=lambda: True, wake=lambda: None), spool, sink
@@ -262,6 +263,22 @@ def test_size_limits_hold_for_the_body_and_once_decompressed(tmp_path):
     with pytest.raises(RequestError) as err:
         receiver.take("/v1/traces", "application/json", "gzip", bomb)
     assert err.value.status == 413
+
+
+def test_a_request_longer_than_max_document_bytes_as_json_is_refused_not_cut(tmp_path):
+    """The spool is read up to the source's max_document_bytes, as its files are: a request
+    whose OTLP/JSON line is longer is answered 413 (the sender knows), never spooled to be cut."""
+    receiver, spool, sink = _receiver(tmp_path, max_line=4096)
+    spans = SPAN_DOC["resourceSpans"][0]["scopeSpans"][0]["spans"] * 40
+    big = orjson.dumps({"resourceSpans": [{"scopeSpans": [{"spans": spans}]}]})
+    assert len(big) > 4096
+    with pytest.raises(RequestError) as err:
+        receiver.take("/v1/traces", "application/json", "", big)
+    assert err.value.status == 413 and "max_document_bytes" in str(err.value)
+    receiver.take("/v1/traces", "application/json", "", orjson.dumps(SPAN_DOC))
+    while spool.poll():
+        pass
+    assert [json.loads(x) for x in sink.lines] == [SPAN_DOC]
 
 
 def test_a_full_spool_answers_429_with_retry_after_and_kill_9_loses_nothing_acknowledged(tmp_path):
