@@ -1,4 +1,4 @@
-"""Generated log corpora in eight real-world shapes, each line labelled with its true template.
+"""Generated log corpora in nine real-world shapes, each line labelled with its true template.
 
 The shapes follow how common kinds of programs write their messages (the part a format hands
 to template mining: after the timestamp and level, the program name and pid kept where syslog
@@ -224,9 +224,27 @@ def _storage(r: R) -> dict[str, tuple[int, Maker]]:
     }
 
 
+def _firmware(r: R) -> dict[str, tuple[int, Maker]]:
+    """Short statements told apart by one word (engaged / released), beside a word that is a
+    variable with few values (the kiosk's mode): what a similarity bar must not merge."""
+    slot = lambda r: r.randint(1, 48)
+    kiosk = lambda r: f"LK-{r.randint(1, 900)}"
+    return {
+        "fw-lock-on": (15, lambda r: f"compartment {slot(r)} lock engaged"),
+        "fw-lock-off": (15, lambda r: f"compartment {slot(r)} lock released"),
+        "fw-charge": (8, lambda r: f"battery at {r.randint(5, 100)}% charging"),
+        "fw-discharge": (8, lambda r: f"battery at {r.randint(5, 100)}% discharging"),
+        "fw-door-open": (10, lambda r: f"door opened by courier {_user(r)} at {kiosk(r)}"),
+        "fw-door-close": (10, lambda r: f"door closed by courier {_user(r)} at {kiosk(r)}"),
+        "fw-mode": (6, lambda r: f"kiosk {kiosk(r)} switched to {r.choice(['maintenance', 'service', 'normal'])} mode"),
+        "fw-sensor": (6, lambda r: f"compartment {slot(r)} sensor reads {r.choice(['open', 'closed', 'fault'])} "
+                                   f"after {r.randint(1, 90)} s"),
+    }
+
+
 SHAPES: dict[str, Callable[[R], dict[str, tuple[int, Maker]]]] = {
     "sshd": _ssh, "webserver": _web, "jvm": _jvm, "kernel": _kernel, "proxy": _proxy,
-    "database": _db, "scheduler": _scheduler, "storage": _storage,
+    "database": _db, "scheduler": _scheduler, "storage": _storage, "firmware": _firmware,
 }
 
 

@@ -11,6 +11,7 @@ import struct
 import subprocess
 import sys
 import termios
+from datetime import datetime, timedelta, timezone
 
 import pytest
 
@@ -105,3 +106,39 @@ def test_progress_only_on_a_terminal(fitted, tmp_path, command):
     assert piped_rc == 0 and piped_err == ""  # no progress, nothing else either
     if command == "score":  # the bar never reaches stdout: the alerts are the same either way
         assert out == piped_out and len(out.splitlines()) == len(expected)
+@pytest.mark.parametrize("source", [
+    "format = 'syslog'\nsession_key = 'req=(?P<key>\\S+)'",
+    "line_pattern = '^(?P<ts>\\w{3} [ \\d]\\d \\S+) gw app: req=(?P<key>\\S+) (?P<message>.*)$'\n"
+    "ts_format = '%b %d %H:%M:%S'",
+], ids=["rfc3164", "strptime-yearless"])
+def test_a_replayed_file_takes_the_year_of_its_modification_time(tmp_path, source):
+    """BSD syslog stamps carry no year (RFC 3164 section 4.1.2: ``Mmm dd hh:mm:ss``). Replaying
+    a file written over the new year 2024/2025 long after (the wall clock is in another year),
+    ``score`` places its stamps against the file's modification time: every session starts and
+    ends at the epoch seconds of 2024-12-31 and 2025-01-01, one session across midnight."""
+    def stamp(t: datetime) -> str:
+        return f"{t:%b} {t.day:2d} {t:%H:%M:%S}"
+
+    def write(path, start: datetime, n: int) -> None:
+        rows = []
+        for i in range(n):
+            t0 = start + timedelta(seconds=40 * i)
+            for j, step in enumerate(("pickup code checked", "door 4 opened", "door 4 closed")):
+                rows.append(f"{stamp(t0 + timedelta(seconds=5 * j))} gw app: req=r{i} {step}")
+        path.write_text("\n".join(rows) + "\n")
+
+    cfg = tmp_path / "tracewatch.toml"
+    cfg.write_text(f"state_dir = 'state'\n[[sources]]\nname = 'gw'\n{source}\n[sessions]\nidle_timeout_s = 20\n"
+                   "[model]\nfalse_alarm_rate = 0.05\n")
+    write(tmp_path / "base.log", datetime(2024, 11, 3, 8, 0, tzinfo=timezone.utc), 200)
+    run_cli("fit", "--config", str(cfg), str(tmp_path / "base.log"), check=True)
+    day = tmp_path / "day.log"
+    first = datetime(2024, 12, 31, 23, 58, 30, tzinfo=timezone.utc)
+    write(day, first, 6)  # sessions 40 s apart: the third one runs from 23:59:50 to 00:00:00
+    written = datetime(2025, 1, 1, 0, 5, tzinfo=timezone.utc).timestamp()
+    os.utime(day, (written, written))
+    assert datetime.now(timezone.utc).year not in (2024, 2025)  # else the wall clock would give the same years
+    out = run_cli("score", "--all", "--config", str(cfg), str(day), check=True).stdout
+    got = sorted((v["session_key"], v["start"], v["end"], v["events"]) for v in map(json.loads, out.splitlines()))
+    expected = sorted((f"r{i}", first.timestamp() + 40 * i, first.timestamp() + 40 * i + 10, 3) for i in range(6))
+    assert got == expected

@@ -4,6 +4,7 @@
 from __future__ import annotations
 
 from datetime import datetime, timezone
+from pathlib import Path
 
 from .conftest import run_cli
 
@@ -76,3 +77,43 @@ def test_untimed_below_the_share_is_a_fit_report_line_and_a_warning(tmp_path):
     assert "untimed: lockers=30 records with a session key but no usable time" in fit.stdout
     assert fit.stderr == ("tracewatch: warning: source 'lockers': 30 of 360 records with a session key carry "
                           "no usable time (check ts_format)\n")
+
+
+def test_the_daemon_logs_untimed_records_once_per_source_and_counts_them(tmp_path):
+    """The daemon, following a file whose keyed lines carry no usable time, logs the line
+    `score` prints (once per source, not again within UNTIMED_WARN_S however many more come)
+    and counts them in tracewatch_records_untimed_total{source}, carried across a restart."""
+    from prometheus_client.parser import text_string_to_metric_families
+
+    from .daemon_helpers import DaemonProcess, free_port, no_daemon_left  # noqa: F401
+
+    good = _lines(tmp_path, "good.log", _iso)
+    cfg = _config(tmp_path, line_pattern=PATTERN)
+    with open(cfg, "a") as fh:
+        fh.write(f"paths = ['{tmp_path / 'live' / '*.log'}']\n[sessions]\nidle_timeout_s = 1.0\n[server]\nlisten = '127.0.0.1:{free_port()}'\n"
+                 "[daemon]\npoll_interval_s = 0.2\ncheckpoint_interval_s = 0.3\n")
+    run_cli("fit", "--config", cfg, good, check=True)
+    (tmp_path / "live").mkdir()
+    live = tmp_path / "live" / "app.log"
+    bad = open(_lines(tmp_path, "bad.log", lambda t: "sometime")).read()
+
+    def untimed(d: DaemonProcess) -> float | None:
+        text = d.get("/metrics")[1].decode()
+        return next((s.value for f in text_string_to_metric_families(text) if f.name == "tracewatch_records_untimed"
+                     for s in f.samples if s.labels.get("source") == "lockers" and s.name.endswith("_total")), None)
+
+    warning = ("WARNING tracewatch.daemon: source 'lockers': 360 of 360 records with a session key carry no usable "
+               "time, above max_unread_share 0.5 (check ts_format)")
+    daemon = DaemonProcess(Path(cfg)).ready()
+    live.write_text(bad)
+    daemon.until(lambda: warning in daemon.stderr(), "the untimed warning")
+    with open(live, "a") as fh:
+        fh.write(bad)
+    daemon.until(lambda: untimed(daemon) == 720, "720 untimed records counted")
+    assert daemon.status()["sources"][0]["untimed"] == 720
+    assert daemon.terminate() == 0
+    assert daemon.stderr().count("no usable time") == 1  # rate-limited: the second 360 said nothing more
+
+    daemon = DaemonProcess(Path(cfg)).ready()  # the count comes back with the checkpoint
+    assert untimed(daemon) == 720
+    assert daemon.terminate() == 0

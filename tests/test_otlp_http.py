@@ -188,6 +188,17 @@ SPAN_DOC = {"resourceSpans": [{"scopeSpans": [{"spans": [
      "kind": 2, "startTimeUnixNano": "1796032800000000000", "endTimeUnixNano": "1796032800100000000"}]}]}]}
 
 
+def fit_one_span_traces(cfg_path: Path) -> None:
+    """A baseline of 220 one-span traces for the traces source (only so that the daemon starts)."""
+    fit_dir = cfg_path.parent / "fit"
+    fit_dir.mkdir()
+    docs = [{"resourceSpans": [{"scopeSpans": [{"spans": [{**SPAN_DOC["resourceSpans"][0]["scopeSpans"][0]["spans"][0],
+             "traceId": f"{i + 1:032x}", "startTimeUnixNano": str(1796032800000000000 + i * 10**10)}]}]}]}
+            for i in range(220)]
+    (fit_dir / "t.jsonl").write_text("".join(json.dumps(d) + "\n" for d in docs))
+    run_cli("fit", "--config", str(cfg_path), "--source", "traces", str(fit_dir / "t.jsonl"), check=True)
+
+
 class _Sink:
     def __init__(self) -> None:
         self.lines: list[str] = []
@@ -199,10 +210,11 @@ class _Sink:
         pass
 
 
-def _receiver(tmp_path: Path, **limits) -> tuple[Receiver, Spool, _Sink]:
+def _receiver(tmp_path: Path, max_line: int = 20 << 20, **limits) -> tuple[Receiver, Spool, _Sink]:
     cfg = parse_config({"sources": [{"name": "traces", "format": "otlp-json"}],
                         "otlp": {"enabled": True, "traces_source": "traces", **limits}}).otlp
-    spool = Spool("traces", tmp_path / "spool", max_queue_bytes=cfg.max_queue_bytes, file_bytes=cfg.spool_file_bytes)
+    spool = Spool("traces", tmp_path / "spool", max_queue_bytes=cfg.max_queue_bytes, file_bytes=cfg.spool_file_bytes,
+                  max_line_bytes=max_line)
     sink = _Sink()
     spool.attach(None, sink)
     return Receiver(cfg, {"/v1/traces": spool}, accepting=lambda: True, wake=lambda: None), spool, sink
@@ -253,6 +265,22 @@ def test_size_limits_hold_for_the_body_and_once_decompressed(tmp_path):
     assert err.value.status == 413
 
 
+def test_a_request_longer_than_max_document_bytes_as_json_is_refused_not_cut(tmp_path):
+    """The spool is read up to the source's max_document_bytes, as its files are: a request
+    whose OTLP/JSON line is longer is answered 413 (the sender knows), never spooled to be cut."""
+    receiver, spool, sink = _receiver(tmp_path, max_line=4096)
+    spans = SPAN_DOC["resourceSpans"][0]["scopeSpans"][0]["spans"] * 40
+    big = orjson.dumps({"resourceSpans": [{"scopeSpans": [{"spans": spans}]}]})
+    assert len(big) > 4096
+    with pytest.raises(RequestError) as err:
+        receiver.take("/v1/traces", "application/json", "", big)
+    assert err.value.status == 413 and "max_document_bytes" in str(err.value)
+    receiver.take("/v1/traces", "application/json", "", orjson.dumps(SPAN_DOC))
+    while spool.poll():
+        pass
+    assert [json.loads(x) for x in sink.lines] == [SPAN_DOC]
+
+
 def test_a_full_spool_answers_429_with_retry_after_and_kill_9_loses_nothing_acknowledged(tmp_path):
     """With a queue of 64 KiB and the loop busy elsewhere, requests are refused with 429 and
     Retry-After (OTLP/HTTP Throttling); every request answered 200 is read after a kill -9."""
@@ -269,14 +297,7 @@ def test_a_full_spool_answers_429_with_retry_after_and_kill_9_loses_nothing_ackn
     assert set(answers[answers.count(200):]) == {(429, 2)}
 
     cfg_path = write_config(tmp_path / "live", max_queue=1 << 20)
-    fit_dir = tmp_path / "live" / "fit"
-    fit_dir.mkdir()
-    # a baseline of 220 one-span traces and 220 log lines (only so that the daemon starts)
-    docs = [{"resourceSpans": [{"scopeSpans": [{"spans": [{**SPAN_DOC["resourceSpans"][0]["scopeSpans"][0]["spans"][0],
-             "traceId": f"{i + 1:032x}", "startTimeUnixNano": str(1796032800000000000 + i * 10**10)}]}]}]}
-            for i in range(220)]
-    (fit_dir / "t.jsonl").write_text("".join(json.dumps(d) + "\n" for d in docs))
-    run_cli("fit", "--config", str(cfg_path), "--source", "traces", str(fit_dir / "t.jsonl"), check=True)
+    fit_one_span_traces(cfg_path)
     daemon = DaemonProcess(cfg_path).ready()
     port = otlp_port(cfg_path)
     acked = 0
@@ -297,3 +318,72 @@ def test_a_full_spool_answers_429_with_retry_after_and_kill_9_loses_nothing_ackn
     assert records == acked == 300
     spool_files = os.listdir(tmp_path / "live" / "state" / "otlp" / "traces")
     assert len(spool_files) <= 2  # read files are deleted after the checkpoint past them
+
+
+def test_a_batch_over_64_kib_from_the_sdk_exporter_is_read_whole_across_a_restart(tmp_path):
+    """The SDK's OTLP/HTTP exporter sends one batch of 500 spans (one request, a spool line of
+    well over 64 KiB): every span is read, as one session. A restart after a crash left a long
+    request cut short at the end of the spool (never acknowledged) reads on from the checkpoint:
+    nothing read twice, nothing lost, and the next big batch is read whole too."""
+    pytest.importorskip("opentelemetry.exporter.otlp.proto.http", reason="the test extras bring "
+                        "opentelemetry-exporter-otlp-proto-http")
+    from opentelemetry.exporter.otlp.proto.http import Compression
+    from opentelemetry.exporter.otlp.proto.http.trace_exporter import OTLPSpanExporter
+    from opentelemetry.sdk.resources import Resource
+    from opentelemetry.sdk.trace import TracerProvider
+    from opentelemetry.sdk.trace.export import BatchSpanProcessor
+
+    cfg_path = write_config(tmp_path / "live")
+    cfg_path.write_text(cfg_path.read_text().replace("[sessions]\n", "[sessions]\nmax_events = 5000\n"))
+    fit_one_span_traces(cfg_path)
+    spool_dir = tmp_path / "live" / "state" / "otlp" / "traces"
+
+    def send_batch(n_spans: int) -> None:
+        provider = TracerProvider(resource=Resource.create({"service.name": "locker-api"}))
+        exporter = OTLPSpanExporter(endpoint=f"http://127.0.0.1:{otlp_port(cfg_path)}/v1/traces",
+                                    compression=Compression.Gzip)
+        provider.add_span_processor(BatchSpanProcessor(exporter, schedule_delay_millis=600_000,
+                                                       max_export_batch_size=4096, max_queue_size=8192))
+        tracer = provider.get_tracer("parcel-lockers", "1.0")
+        with tracer.start_as_current_span("POST /sweeps"):
+            for i in range(n_spans - 1):
+                with tracer.start_as_current_span("check compartment") as span:
+                    span.set_attribute("locker.compartment", f"LK-17/{i:04d}")
+                    span.set_attribute("locker.note", "door sensor, lock and camera checked " * 3)
+        assert provider.force_flush(30_000)
+        provider.shutdown()
+
+    daemon = DaemonProcess(cfg_path).ready()
+    send_batch(500)
+    daemon.until(lambda: daemon.status()["sources"][0]["sessions_scored"] == 1, "the batch's trace scored")
+    first = daemon.status()["sources"][0]
+    assert daemon.terminate() == 0
+    lines = [line for f in sorted(spool_dir.iterdir()) for line in f.read_bytes().splitlines()]
+    assert len(lines) == 1 and len(lines[0]) > 3 * 65536  # one request, one line, far over 64 KiB
+    assert first["records"] == 500 and not first["rejected"]
+
+    # a crash in the middle of writing a long request: its first 100 KB, no newline
+    with open(sorted(spool_dir.iterdir())[-1], "ab") as fh:
+        fh.write(lines[0][:100_000])
+    daemon = DaemonProcess(cfg_path).ready()
+    send_batch(300)
+    # the counts go on from the checkpoint: the first batch's 500 spans are not read again
+    daemon.until(lambda: daemon.status()["sources"][0]["sessions_scored"] == 2, "the second batch's trace scored")
+    second = daemon.status()["sources"][0]
+    assert daemon.terminate() == 0
+    assert second["records"] == 500 + 300 and not second["rejected"]
+    assert "cut short by a crash" in daemon.stderr()
+
+
+def test_the_spool_reads_a_line_longer_than_a_read_chunk(tmp_path):
+    """A request larger than what one poll reads (4 MiB) is handed on whole, in one block."""
+    from tracewatch.sources.spool import READ_CHUNK
+
+    _, spool, sink = _receiver(tmp_path)
+    doc = {"resourceSpans": [{"scopeSpans": [{"spans": [SPAN_DOC["resourceSpans"][0]["scopeSpans"][0]["spans"][0]] * 30_000}]}]}
+    line = orjson.dumps(doc)
+    assert len(line) > READ_CHUNK
+    assert spool.append(line) == "accepted" and spool.append(orjson.dumps(SPAN_DOC)) == "accepted"
+    while spool.poll():
+        pass
+    assert [x.encode() for x in sink.lines] == [line, orjson.dumps(SPAN_DOC)]

@@ -47,10 +47,11 @@ from .model.score import SCORERS, ScorerName, make_scorer
 if TYPE_CHECKING:
     from .model.baseline import Baseline
 
-SCHEMA_VERSION = 5  # 2: templates masked to <var>; 3: the template tree's settings renamed;
+SCHEMA_VERSION = 6  # 2: templates masked to <var>; 3: the template tree's settings renamed;
 # 4: the manifest inside its checksum, the arrays of one storage table, each scorer's own arrays;
 # 5: calibration_novelty (how often each source's normal sessions bring new templates), the
 # baseline period's session shapes and their counts
+# 6: key=value values and bracketed paths masked, bracketed tokens route as variables
 KIND = "tracewatch-baseline"
 FILES = ("templates.json", "model.npz")
 VERSION_NAME = re.compile(r"^v\d{4,9}$")

@@ -7,6 +7,7 @@ from the config's ``paths`` globs, or — with a single source — is that sourc
 from __future__ import annotations
 
 import fnmatch
+import os
 import sys
 from collections.abc import Callable, Iterator
 from contextlib import contextmanager
@@ -16,7 +17,7 @@ from pathlib import Path
 
 from .config import Config
 from .errors import ConfigError, InputError
-from .pipeline import Pipeline
+from .pipeline import Pipeline, problem_line
 from .sources.files import expand_inputs, read_blocks
 
 
@@ -72,6 +73,18 @@ def byte_progress(pairs: list[tuple[str, Path]], what: str) -> Iterator[OnBytes]
     with tqdm(total=total, desc=what, unit="B", unit_scale=True, unit_divisor=1024, file=sys.stderr,
               leave=False, dynamic_ncols=True) as bar:
         yield bar.update
+
+
+def file_time(stream: str) -> Callable[[], float] | None:
+    """The "now" of a file read once: its modification time, so that a replay of old files
+    places stamps without a year (RFC 3164's ``Mmm dd hh:mm:ss``) in the year they were written,
+    not the year of the replay — common practice for rotated syslog files; the daemon keeps the
+    wall clock for files it follows as they grow. None (the wall clock) if it cannot be read."""
+    try:
+        mtime = os.stat(stream).st_mtime
+    except (OSError, ValueError):
+        return None
+    return lambda: mtime
 
 
 def run_files(pipeline: Pipeline, pairs: list[tuple[str, Path]], *,
@@ -176,7 +189,7 @@ def template_rows(cfg: Config, pairs: list[tuple[str, Path]]) -> tuple[list[tupl
     def take(source: str, stream: str, cols, idxs: list[int]) -> None:
         rows.extend(zip(map(numbers[stream].get, cols.offsets, repeat(0)), idxs))
 
-    pipeline = Pipeline(cfg, on_records=take, sample_rejects=False)
+    pipeline = Pipeline(cfg, on_records=take, sample_rejects=False, dating=file_time)
     run_files(pipeline, pairs, on_block=number)
     return rows, pipeline
 
@@ -188,14 +201,10 @@ def unread_lines(pipeline: Pipeline, *, refuse: bool) -> list[str]:
     out = []
     for source, what, count, total in pipeline.input_problems():
         limit = pipeline.cfg.source(source).max_unread_share
-        above = total > 0 and count / total > limit
-        if refuse and not above:
+        if refuse and not (total > 0 and count / total > limit):
             continue
-        head = "fit refused: " if refuse else "warning: "
-        tail = (f", above max_unread_share {limit}; no baseline written" if refuse
-                else (f", above max_unread_share {limit}" if above else ""))
-        hint = " (check ts_format)" if "time" in what else " (check format and line_pattern)"
-        out.append(f"{head}source '{source}': {count} of {total} {what}{tail}{hint}")
+        out.append(("fit refused: " if refuse else "warning: ") + problem_line(pipeline, source, what, count, total,
+                                                                                refuse=refuse))
     return out
 
 
@@ -205,7 +214,7 @@ def fit_files(cfg: Config, pairs: list[tuple[str, Path]], on_bytes: OnBytes = No
     from .model.baseline import fit_baseline
 
     check_writable(cfg.state_dir)
-    pipeline = Pipeline(cfg)
+    pipeline = Pipeline(cfg, dating=file_time)
     run_files(pipeline, pairs, on_bytes=on_bytes)
     for line in unread_lines(pipeline, refuse=True):
         raise InputError(line)
@@ -216,7 +225,7 @@ def fit_files(cfg: Config, pairs: list[tuple[str, Path]], on_bytes: OnBytes = No
 
 def score_files(cfg: Config, pairs: list[tuple[str, Path]], baseline, on_verdict, *, score_all: bool = False,
                 on_bytes: OnBytes = None) -> Pipeline:
-    pipeline = Pipeline(cfg, baseline, on_verdict=on_verdict, score_all=score_all)
+    pipeline = Pipeline(cfg, baseline, on_verdict=on_verdict, score_all=score_all, dating=file_time)
     run_files(pipeline, pairs, on_bytes=on_bytes)
     return pipeline
 

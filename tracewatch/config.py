@@ -194,7 +194,8 @@ class SessionsConfig(_Section):
 
 class TemplatesConfig(_Section):
     routing_tokens: int = Field(default=2, ge=1, le=6)  # leading tokens that route a message in the tree
-    join_share: float = Field(default=0.5, gt=0, le=1)  # share of equal tokens to join a template
+    # share of equal tokens, over the positions where both hold a constant, to join a template
+    join_share: float = Field(default=0.75, gt=0, le=1)
     max_branches: int = Field(default=100, ge=2)  # per tree node; beyond it new tokens go to <var>
 
 

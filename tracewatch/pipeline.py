@@ -30,14 +30,19 @@ SCORE_BATCH = 256
 TICK_EVERY = 1024
 
 
+UNTIMED = "records with a session key carry no usable time"  # what input_problems says of untimed records
+
 class Pipeline:
     def __init__(self, cfg: Config, baseline: Baseline | None = None, *,
                  on_verdict: Callable[[dict], None] | None = None, score_all: bool = False,
                  clock: Callable[[], float] | None = None,
                  on_quiet: Callable[[str, tuple[int, ...]], None] | None = None,
                  on_records: Callable[[str, str, Columns, list[int]], None] | None = None,
-                 sample_rejects: bool = True) -> None:
+                 sample_rejects: bool = True,
+                 dating: Callable[[str], Callable[[], float] | None] | None = None) -> None:
         self.cfg = cfg
+        # a stream's "now" for stamps without a year (Format.dated_by); None: the wall clock
+        self.dating = dating
         # `tracewatch templates`: called with (source, stream, records, template indices) of
         # every block of records, in input order
         self.on_records = on_records
@@ -82,7 +87,8 @@ class Pipeline:
     def _format(self, source: str, stream: str) -> Format:
         fmt = self._formats.get((source, stream))
         if fmt is None:
-            fmt = self._formats[(source, stream)] = make_format(self._sources[source], stream)
+            today = self.dating(stream) if self.dating is not None else None
+            fmt = self._formats[(source, stream)] = make_format(self._sources[source], stream, today)
         return fmt
 
     def feed_line(self, source: str, stream: str, line: str, offset: int = -1,
@@ -211,8 +217,7 @@ class Pipeline:
                 reasons = ", ".join(f"{r}={n}" for n, r in rejected)
                 out.append((name, f"lines rejected ({reasons})", sum(n for n, _ in rejected), self.lines[name]))
             if self.untimed[name]:
-                out.append((name, "records with a session key carry no usable time", self.untimed[name],
-                            self.records[name]))
+                out.append((name, UNTIMED, self.untimed[name], self.records[name]))
         return out
 
     def fit_sessions(self) -> list[tuple[str, tuple[int, ...]]]:
@@ -251,3 +256,15 @@ class Pipeline:
         self.sessionizer.remap(baseline.miner.adopt(self.miner))
         self.baseline, self.miner, self.scorer = baseline, baseline.miner, baseline.make_scorer()
         self.sessionizer.unseen_from = self.miner.n_seen
+
+
+def problem_line(pipeline: Pipeline, source: str, what: str, count: int, total: int, *, refuse: bool = False) -> str:
+    """One input problem (:meth:`Pipeline.input_problems`) in words, with the share it is
+    measured against and what to check; the daemon logs the same line."""
+    limit = pipeline.cfg.source(source).max_unread_share
+    above = total > 0 and count / total > limit
+    tail = (f", above max_unread_share {limit}; no baseline written" if refuse
+            else (f", above max_unread_share {limit}" if above else ""))
+    hint = " (check ts_format)" if what == UNTIMED else " (check format and line_pattern)"
+    return f"source '{source}': {count} of {total} {what}{tail}{hint}"
+

@@ -152,6 +152,10 @@ class Sessionizer:
                     sess.times = []
             else:
                 move_to_end(skey)
+                if by_time and (t < sess.first_ts or (t == sess.first_ts and raw < sess.first_raw)):
+                    # the session starts at its earliest record whatever the order of arrival
+                    # (which file the follower read first): its start and alert id stay the same
+                    sess.first_ts, sess.first_raw, sess.first_offset = t, raw, offset
             sess.events.append(event)
             if by_time and sess.times is not None:
                 sess.times.append(t)

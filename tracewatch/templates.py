@@ -1,12 +1,20 @@
 """Templates: a record's message becomes an event template.
 
-Stage: formats → **templates** → sessions. Variable parts (quoted values, URLs, paths and any
-token holding a digit: numbers, ids, hex, UUIDs, IPs, durations) are masked to ``<var>``;
-then an online miner groups messages by token count and leading tokens and merges similar
-ones into templates with wildcards — the fixed-depth prefix-tree method:
+Stage: formats → **templates** → sessions. Variable parts (quoted values, URLs, paths, the
+value of ``key=value`` and any token holding a digit: numbers, ids, hex, UUIDs, IPs,
+durations) are masked to ``<var>``; then an online miner groups messages by token count and
+leading tokens and merges similar ones into templates with wildcards — the fixed-depth
+prefix-tree method:
 
-    P. He, J. Zhu, Z. Zheng, M. R. Lyu, IEEE International Conference on Web Services
-    (ICWS) 2017, pp. 33–40.
+    P. He, J. Zhu, Z. Zheng, M. R. Lyu, "Drain: An Online Log Parsing Approach with Fixed
+    Depth Tree", IEEE International Conference on Web Services (ICWS) 2017, pp. 33–40.
+
+Two changes to the paper's similarity: it is the share of equal tokens over the positions
+where both the template and the message hold a constant (a wildcard, or a masked token that
+covers the other such as ``[<var>]`` and ``[main]``, counts neither way), so a line made mostly
+of variables joins on its few constants; and a token in brackets (``(alice)``) routes as a
+variable. Known limits: a digitless variable among the routing tokens, or two of them in a
+short statement, still split a template; a constant holding a digit (``ssh2``) is masked.
 
 Each template gets a stable id (a hash of the first masked message that created it) and a
 dense index used by the feature stage. Structured records (span names, syscalls) carry an
@@ -30,6 +38,7 @@ WILDCARD = "<var>"
 _QUOTED = re.compile(r'"[^"]*"')
 _TRAILING = ",;:.)]}>'"
 _LEADING = "([{<'/"
+_OPENING = "([{<'"
 # a host name with no digit: three or more lower-case DNS labels (a class name has capitals)
 _HOST = re.compile(r"[a-z][a-z-]*(?:\.[a-z][a-z-]*){2,}(?::[a-z]+)?")
 _DIGITS = frozenset("0123456789")
@@ -94,14 +103,16 @@ def _coarse(shapes: list[bytes]) -> list[bytes]:
 def _mask_token(tok: str) -> str:
     if "://" in tok or tok[0] == "/":  # URLs and absolute paths
         return WILDCARD
-    if _DIGITS.isdisjoint(tok):
-        return WILDCARD if "." in tok and _HOST.fullmatch(tok.rstrip(_TRAILING)) else tok
     key, eq, value = tok.partition("=")
-    if eq and key and _DIGITS.isdisjoint(key):  # key=value keeps its key
-        return key + "=" + _mask_token(value) if value else tok
-    end = len(tok)
-    while end > 1 and tok[end - 1] in _TRAILING:  # keep trailing punctuation
-        end -= 1
+    if eq and key and value and WILDCARD not in value and _DIGITS.isdisjoint(key):  # key=value keeps its key; the value is variable
+        return key + "=" + _mask_value(value)
+    if _DIGITS.isdisjoint(tok):
+        if tok[0] in _OPENING and "/" in tok:  # a path in brackets: (/usr/bin/x
+            start = len(tok) - len(tok.lstrip(_OPENING))
+            if tok[start] == "/":
+                return tok[:start] + _mask_value(tok[start:])
+        return WILDCARD if "." in tok and _HOST.fullmatch(tok.rstrip(_TRAILING)) else tok
+    end = _value_end(tok)
     start, bracket = 0, tok.find("[")
     if 0 < bracket < end and _DIGITS.isdisjoint(tok[:bracket]):  # a program's pid: name[<var>]
         start = bracket + 1
@@ -109,6 +120,19 @@ def _mask_token(tok: str) -> str:
         while start < end - 1 and tok[start] in _LEADING:  # and leading brackets: [<var>]
             start += 1
     return tok[:start] + WILDCARD + tok[end:]
+
+
+def _value_end(tok: str) -> int:
+    """Where a token's value ends: before its trailing punctuation (kept in the template)."""
+    end = len(tok)
+    while end > 1 and tok[end - 1] in _TRAILING:
+        end -= 1
+    return end
+
+
+def _mask_value(value: str) -> str:
+    """A variable value as ``<var>``, its trailing punctuation kept."""
+    return WILDCARD + value[_value_end(value):]
 
 
 _ID_RUN_TEXT = re.compile(_ID_RUN.pattern.decode())
@@ -141,6 +165,23 @@ def mask(message: str) -> str:
     if tokens.count(WILDCARD) > 1:
         tokens = _collapse_lists(tokens, raw)
     return " ".join(tokens)
+
+
+def _covers(pattern: str, token: str) -> bool:
+    """Whether a token with a variable (``<var>``, ``[<var>]``, ``key=<var>,``) stands for
+    ``token``: what is around its variables starts and ends ``token`` too."""
+    if WILDCARD not in pattern:
+        return False
+    parts = pattern.split(WILDCARD)
+    return (len(token) >= len(parts[0]) + len(parts[-1]) and token.startswith(parts[0])
+            and token.endswith(parts[-1]))
+
+
+def _generalise(a: str, b: str) -> str:
+    """One token of a template that stands for both ``a`` and ``b``."""
+    if a == b or _covers(a, b):
+        return a
+    return b if _covers(b, a) else WILDCARD
 
 
 def _stable_id(text: str) -> str:
@@ -229,11 +270,12 @@ class TemplateTree:
     """Online template learning with the fixed-depth prefix-tree method (He et al., ICWS 2017).
 
     Messages are routed by their token count and then by their first ``routing_tokens``
-    tokens; ``join_share`` is the share of equal tokens needed to join a template there; a
+    tokens; ``join_share`` is the share of equal tokens, over the positions where both hold a
+    constant, needed to join a template there; a
     node with ``max_branches`` branches sends new tokens to ``<var>``.
     """
 
-    def __init__(self, routing_tokens: int = 2, join_share: float = 0.5, max_branches: int = 100,
+    def __init__(self, routing_tokens: int = 2, join_share: float = 0.75, max_branches: int = 100,
                  cache_size: int = 100_000) -> None:
         self.routing_tokens = routing_tokens
         self.join_share = join_share
@@ -343,7 +385,9 @@ class TemplateTree:
         for token in tokens[: self.routing_tokens]:
             if node is None:
                 return None, ()
-            key = token if _DIGITS.isdisjoint(token) and WILDCARD not in token else WILDCARD
+            # a token with a digit or a variable, or one in brackets (a field: "(alice)", "[main]"),
+            # routes as a variable; the leaf's comparison tells such templates apart
+            key = token if _DIGITS.isdisjoint(token) and WILDCARD not in token and token[:1] not in _OPENING else WILDCARD
             if key not in node:
                 if not create:
                     key = WILDCARD
@@ -372,11 +416,12 @@ class TemplateTree:
             tpl = self.templates[cand]
             same = wild = 0
             for a, b in zip(tpl.tokens, tokens):
-                if a == WILDCARD:
+                if a == WILDCARD or (a != b and (_covers(a, b) or _covers(b, a))):
                     wild += 1
                 elif a == b:
                     same += 1
-            sim = same / len(tokens)
+            held = len(tokens) - wild  # the positions where both hold a constant
+            sim = same / held if held else 1.0
             if sim > best_sim or (sim == best_sim and wild > best_wild):
                 best, best_sim, best_wild = cand, sim, wild
         if best is None or best_sim < self.join_share:
@@ -384,7 +429,7 @@ class TemplateTree:
         if best is not None and best_sim >= self.join_share:
             tpl = self.templates[best]
             if not (self.frozen and best < self.n_seen):
-                tpl.tokens = [a if a == b else WILDCARD for a, b in zip(tpl.tokens, tokens)]
+                tpl.tokens = list(map(_generalise, tpl.tokens, tokens))
             idx = best
         else:
             idx = self._new(masked, tokens, path)
@@ -400,7 +445,7 @@ class TemplateTree:
         for cand in self._by_length.get(len(tokens), ()):
             tpl = self.templates[cand]
             keep = self.frozen and cand < self.n_seen
-            if all(a == b or WILDCARD in a or (WILDCARD in b and not keep) for a, b in zip(tpl.tokens, tokens)):
+            if all(a == b or _covers(a, b) or (not keep and _covers(b, a)) for a, b in zip(tpl.tokens, tokens)):
                 return cand
         return None
 

@@ -29,11 +29,18 @@ Stamp = float | None
 @dataclass(frozen=True)
 class Layout:
     """One way of writing a time. ``one`` reads a text (None: not this layout, or impossible);
-    ``block`` reads many texts at once and gives None when any is not of this layout."""
+    ``block`` reads many texts at once and gives None when any is not of this layout. A
+    ``yearless`` layout's ``one`` also takes the time its year is inferred against
+    (``reference``, :func:`infer_year`)."""
 
     name: str
-    one: Callable[[str], Stamp]
+    one: Callable[..., Stamp]
     block: Callable[[Sequence[str]], list[float] | None] | None = None
+    yearless: bool = False
+
+    def read(self, text: str, reference: float | None = None) -> Stamp:
+        """``one(text)``, a yearless layout's year inferred against ``reference`` (None: now)."""
+        return self.one(text, reference) if self.yearless else self.one(text)
 
 
 # -- ISO 8601 / RFC 3339 --------------------------------------------------------------------------
@@ -284,18 +291,23 @@ def yymmdd_hhmmss(text: str) -> Stamp:
     return _utc(yy + (1900 if yy >= 69 else 2000), int(m[2]), int(m[3]), f"{m[4]}:{m[5]}:{m[6]}", None)
 
 
-def strptime_reader(pattern: str) -> Callable[[str], Stamp]:
-    """A reader for a ``strptime`` pattern; no zone in it: UTC; no year: :func:`infer_year`."""
-    yearless = "%Y" not in pattern and "%y" not in pattern and "%G" not in pattern
+def _yearless(pattern: str) -> bool:
+    return "%Y" not in pattern and "%y" not in pattern and "%G" not in pattern
 
-    def read(text: str) -> Stamp:
+
+def strptime_reader(pattern: str) -> Callable[[str], Stamp]:
+    """A reader for a ``strptime`` pattern; no zone in it: UTC; no year: :func:`infer_year`
+    against ``reference``."""
+    yearless = _yearless(pattern)
+
+    def read(text: str, reference: float | None = None) -> Stamp:
         try:  # a yearless text is read in 2000, a leap year, so that 29 February reads too
             dt = datetime.strptime(text.strip() + " 2000", pattern + " %Y") if yearless \
                 else datetime.strptime(text.strip(), pattern)
         except (ValueError, TypeError):
             return None
         if yearless:
-            return infer_year(dt.month, dt.day, dt.strftime("%H:%M:%S"), f"{dt.microsecond:06d}")
+            return infer_year(dt.month, dt.day, dt.strftime("%H:%M:%S"), f"{dt.microsecond:06d}", reference)
         if dt.tzinfo is None:
             dt = dt.replace(tzinfo=timezone.utc)
         return dt.timestamp()
@@ -310,7 +322,7 @@ LAYOUTS: dict[str, Layout] = {layout.name: layout for layout in (
     Layout("epoch", epoch_seconds),
     Layout("epoch_ms", epoch_millis),
     Layout("postgres", postgres),
-    Layout("syslog", syslog_yearless),
+    Layout("syslog", syslog_yearless, yearless=True),
     Layout("asctime", asctime),
     Layout("yymmdd", yymmdd_hhmmss),
 )}
@@ -326,8 +338,9 @@ def parse_timestamp(text: str | None) -> Stamp:
     return detect(text)[0]
 
 
-def detect(text: str | None) -> tuple[Stamp, Layout | None]:
-    """The stamp of ``text`` and the first layout of :data:`LAYOUTS` that reads it."""
+def detect(text: str | None, reference: float | None = None) -> tuple[Stamp, Layout | None]:
+    """The stamp of ``text`` and the first layout of :data:`LAYOUTS` that reads it (a yearless
+    one inferring the year against ``reference``, None: now)."""
     if not text:
         return None, None
     if len(text) >= 10 and text[4] == "-" and text[7] == "-":  # the common case
@@ -335,7 +348,7 @@ def detect(text: str | None) -> tuple[Stamp, Layout | None]:
         if stamp is not None:
             return stamp, _ISO
     for layout in LAYOUTS.values():
-        stamp = layout.one(text)
+        stamp = layout.read(text, reference)
         if stamp is not None:
             return stamp, layout
     stamp = _ISO.one(text.strip())
@@ -346,26 +359,29 @@ class StampReader:
     """One source's reader of times: the layout named by its ``ts_format`` (a name in
     :data:`LAYOUTS` or a ``strptime`` pattern), or, unset, the layout the first readable stamp
     shows, kept for the texts after it (a text it cannot read is tried against every layout,
-    and the layout that reads it is kept from then on)."""
+    and the layout that reads it is kept from then on). ``today`` gives the time a yearless
+    stamp's year is inferred against (None: the wall clock; a replayed file: its mtime)."""
 
-    def __init__(self, ts_format: str | None = None) -> None:
+    def __init__(self, ts_format: str | None = None, today: Callable[[], float] | None = None) -> None:
         self.fixed = ts_format is not None
+        self.today = today
         if ts_format is None:
             self.layout: Layout | None = None
         elif ts_format in LAYOUTS:
             self.layout = LAYOUTS[ts_format]
         else:
-            self.layout = Layout(ts_format, strptime_reader(ts_format))
+            self.layout = Layout(ts_format, strptime_reader(ts_format), yearless=_yearless(ts_format))
 
     def one(self, text: str | None) -> Stamp:
         if not text:
             return None
         layout = self.layout
+        reference = self.today() if self.today is not None else None
         if layout is not None:
-            stamp = layout.one(text)
+            stamp = layout.read(text, reference)
             if stamp is not None or self.fixed:
                 return stamp
-        stamp, found = detect(text)
+        stamp, found = detect(text, reference)
         if found is not None:
             self.layout = found
         return stamp
@@ -376,7 +392,8 @@ class StampReader:
             return list(map(self.one, texts))
         stamps = layout.block(texts) if layout.block is not None else None
         if stamps is None:
-            stamps = [layout.one(t) if t else None for t in texts]
+            reference = self.today() if self.today is not None else None
+            stamps = [layout.read(t, reference) if t else None for t in texts]
         if self.fixed or None not in stamps:
             return stamps
         return [s if s is not None else self.one(t) for s, t in zip(stamps, texts)]

@@ -19,7 +19,7 @@ Adding a format: a module here with a :class:`Format` subclass (its ``name``, ``
 from __future__ import annotations
 
 import importlib
-from collections.abc import Sequence
+from collections.abc import Callable, Sequence
 from typing import TYPE_CHECKING, ClassVar
 
 import orjson
@@ -62,6 +62,10 @@ class Format:
     def open_stream(self, stream: str) -> None:
         """Told the name of the stream it reads before the first line (a file's path in batch
         runs, ``path@dev:ino`` live); formats that take something from a file's name use it."""
+
+    def dated_by(self, today: Callable[[], float]) -> None:
+        """Told what "now" is for stamps without a year (the wall clock unless told: a file
+        replayed in batch is dated by its modification time); formats that read them use it."""
 
     @staticmethod
     def alert_fields(src: SourceConfig, key: str | None) -> dict:
@@ -143,9 +147,12 @@ def format_class(name: str) -> type[Format]:
     return getattr(importlib.import_module(f"{__name__}.{module}"), cls)
 
 
-def make_format(src: SourceConfig, stream: str | None = None) -> Format:
-    """The format object for one source (a fresh one per file being read), told its stream."""
+def make_format(src: SourceConfig, stream: str | None = None, today: Callable[[], float] | None = None) -> Format:
+    """The format object for one source (a fresh one per file being read), told its stream and
+    the "now" of its yearless stamps (:meth:`Format.dated_by`; None: the wall clock)."""
     fmt = format_class(src.format)(src)
+    if today is not None:
+        fmt.dated_by(today)
     if stream is not None:
         fmt.open_stream(stream)
     return fmt

@@ -105,6 +105,9 @@ class _ContainerFormat(Format):
         self._queue: deque[_Piece] = deque()  # lines in order of their first piece, not yet handed on
         self._times: dict[int, float | None] = {}  # offset -> runtime time, of lines the inner format holds
 
+    def dated_by(self, today) -> None:
+        self.inner.dated_by(today)
+
     def open_stream(self, stream: str) -> None:
         self.inner.open_stream(stream)
         labels = container_labels(stream)

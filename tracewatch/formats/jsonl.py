@@ -78,6 +78,9 @@ class JsonlFormat(Format):
                        (self._level, src.level_field), (self._event, src.event_field))
                        if type(g) is methodcaller}
 
+    def dated_by(self, today) -> None:
+        self._stamps.today = today
+
     def feed(self, line: str, offset: int) -> Output:
         if not line.strip():
             return [Rejection("empty", line)]

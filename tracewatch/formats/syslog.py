@@ -215,6 +215,9 @@ class SyslogFormat(Format):
                                    re.S) if sd else None
         self._key_re = re.compile(src.session_key) if src.session_key else None
 
+    def dated_by(self, today) -> None:
+        self.clock = today  # a yearless RFC 3164 stamp is placed against it
+
     def _sd_key(self, sd_text: str) -> str | None:
         """The structured-data parameter ``session_field`` names, escapes resolved."""
         element = self._sd_element.search(sd_text)

@@ -57,6 +57,9 @@ class TextFormat(Format):
         self._pending: Record | None = None
         self._pending_lines = 0
 
+    def dated_by(self, today) -> None:
+        self._stamps.today = today
+
     # -- one line -----------------------------------------------------------------------------
     def _key_of(self, line: str) -> str | None:
         """The session key found by the ``session_key`` regex, if any."""

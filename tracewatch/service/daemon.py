@@ -40,7 +40,7 @@ from ..baselines import baselines_dir, load_baseline, load_baseline_dir
 from ..model.baseline import drift_warning
 from ..config import Config
 from ..errors import BaselineError, InputError, StateError
-from ..pipeline import Pipeline
+from ..pipeline import UNTIMED, Pipeline, problem_line
 from ..sessions import LiveTime
 from ..sources.checkpoint import AlertJournal, capture_chunks, load_checkpoint, restore, save_checkpoint
 from ..sources.follow import Follower, Watcher, watch_dirs
@@ -59,6 +59,7 @@ log = logging.getLogger("tracewatch.daemon")
 
 TICK_S = 0.2  # how often idle sessions are looked for
 RELOAD_CHECK_S = 1.0  # how often the current baseline and the watched folders are re-checked
+UNTIMED_WARN_S = 600.0  # a source's untimed records are logged at most this often (one line)
 READ_CHUNK = 256 << 10  # bytes per file per loop turn: keeps HTTP answers prompt
 STATES = ("ready", "reloading", "stopping")  # what on_state is told
 
@@ -103,6 +104,7 @@ class Daemon:
         self.checkpoint_time = 0.0
         self.checkpoint_seconds = 0.0
         self.ticks = 0  # idle-session checks done (tests wait on it, not on the clock)
+        self._untimed_warned: dict[str, tuple[float, int]] = {}  # source -> (monotonic time, count) of its last warning
         self._lock_fd = -1
         # called once per loop turn, outside the lock: the service manager's watchdog and reload
         # requests (tracewatch/service/systemd.py)
@@ -284,9 +286,20 @@ class Daemon:
         if verdict["alert"]:
             self.refit.offer_alert(verdict, iid)  # refit: on-call may have said this pattern is normal
 
+    def _warn_untimed(self) -> None:
+        """One warning line per source whose keyed records came without a usable time since its
+        last warning, at most every ``UNTIMED_WARN_S`` (the line ``score`` prints at its end)."""
+        now = self.monotonic()
+        for source, what, count, total in self.pipe.input_problems():
+            when, before = self._untimed_warned.get(source, (None, 0))
+            if what == UNTIMED and count > before and (when is None or now - when >= UNTIMED_WARN_S):
+                log.warning("%s", problem_line(self.pipe, source, what, count, total))
+                self._untimed_warned[source] = (now, count)
+
     def _checkpoint(self) -> None:
         """Score what is closed, make the journal durable, then save everything (lock held)."""
         self.pipe.tick(self.live())
+        self._warn_untimed()
         t0 = time.perf_counter()
         mark = self.journal.sync()
         streams = [{"source": s.source, "position": p} for s in self.streams if (p := s.position()) is not None]

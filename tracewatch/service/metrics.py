@@ -11,7 +11,7 @@ counters end in ``_total``, labels bounded (source, reason, version — never a 
 
 The snapshot is a dict with these keys (all optional):
 
-    records, lines, sessions_scored          {source: n}
+    records, lines, sessions_scored, untimed {source: n}
     rejected, repaired, alerts               {(source, reason): n}
     sessions_open, sessions_evicted, baseline_reload_failures, alerts_replayed,
     alert_lines_damaged                      int
@@ -54,6 +54,8 @@ _BY_SOURCE = (
     ("records", "tracewatch_records_total", "Records accepted from the source's files."),
     ("lines", "tracewatch_lines_total", "Lines read from the source's files."),
     ("sessions_scored", "tracewatch_sessions_scored_total", "Sessions closed and scored."),
+    ("untimed", "tracewatch_records_untimed_total",
+     "Records with a session key but no usable time (check the source's ts_format)."),
 )
 _BY_REASON = (  # key, name, help, the reasons known in advance (each format has rejection reasons of its own)
     ("rejected", "tracewatch_records_rejected_total",

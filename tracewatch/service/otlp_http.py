@@ -15,7 +15,8 @@ Protocol (opentelemetry-specification, specification/protocol/otlp.md, "OTLP/HTT
   success) in the request's encoding.
 - Failures answer with a ``google.rpc.Status`` in the request's encoding: 400 for bad data
   (not retried by clients), 404 for a signal with no source, 411/413 for a body without a
-  length or over ``max_request_bytes`` (as sent, and once decompressed), 415 for another
+  length or over ``max_request_bytes`` (as sent, and once decompressed) or, as the OTLP/JSON line
+  spooled, over the source's ``max_document_bytes``, 415 for another
   encoding or content type — and protobuf without the extra.
 - Throttling ("OTLP/HTTP Throttling"): while the spool holds ``max_queue_bytes`` not read yet,
   429 Too Many Requests; while the daemon starts or stops, 503 Service Unavailable; both with
@@ -153,7 +154,11 @@ class Receiver:
             raise RequestError(415, INVALID_ARGUMENT, f"Content-Type must be {PROTOBUF} or {JSON}")
         if not doc.get(top):
             return  # nothing in it (an empty export): acknowledged, nothing to spool
-        outcome = spool.append(orjson.dumps(doc))
+        line = orjson.dumps(doc)
+        if len(line) > spool.max_line_bytes:  # refused, not cut where the spool is read
+            raise RequestError(413, RESOURCE_EXHAUSTED, f"the request is {len(line)} bytes as OTLP/JSON, more than "
+                               f"the source's max_document_bytes ({spool.max_line_bytes}); send smaller batches")
+        outcome = spool.append(line)
         if outcome == "full":
             raise RequestError(429, RESOURCE_EXHAUSTED, "tracewatch is behind; retry later", self.cfg.retry_after_s)
         if outcome != "accepted":

@@ -49,6 +49,7 @@ class DaemonStatus:
                 return {}
             return {**incidents,
                 "records": dict(p.records), "lines": dict(p.lines), "sessions_scored": dict(p.sessions_scored),
+                "untimed": dict(p.untimed),
                 "rejected": dict(p.rejected), "repaired": dict(p.repaired), "alerts": dict(p.alerts),
                 "sessions_open": len(p.sessionizer.open), "sessions_evicted": p.sessionizer.evicted,
                 "baseline_reload_failures": d.watch.failures, "alerts_replayed": d.journal.replayed,
@@ -74,6 +75,7 @@ class DaemonStatus:
                 "attached": d.started and src.name not in detached,
                 "lines": snap.get("lines", {}).get(src.name, 0),
                 "records": snap.get("records", {}).get(src.name, 0),
+                "untimed": snap.get("untimed", {}).get(src.name, 0),
                 "rejected": {r: n for (s, r), n in snap.get("rejected", {}).items() if s == src.name},
                 "sessions_scored": snap.get("sessions_scored", {}).get(src.name, 0),
                 "lag_bytes": sum(f["lag_bytes"] for f in mine),

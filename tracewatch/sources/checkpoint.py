@@ -39,7 +39,7 @@ from .follow import FINGERPRINT_BYTES
 log = logging.getLogger("tracewatch.checkpoint")
 
 SCHEMA_VERSION = 1
-COUNTERS = ("records", "rejected", "repaired", "lines", "sessions_scored", "alerts")
+COUNTERS = ("records", "rejected", "repaired", "lines", "sessions_scored", "alerts", "untimed")
 TAIL_READ_BYTES = 8 << 20  # the recent alerts /api/alerts serves are read back from this much
 PENDING_READ_BYTES = 1 << 20  # read back from a checkpoint's mark at a time, for its pending alerts
 

@@ -37,7 +37,7 @@ log = logging.getLogger("tracewatch.spool")
 READ_CHUNK = 4 << 20  # bytes handed on per poll
 _NAME = re.compile(r"^([0-9]{12})\.jsonl$")
 _POSITION = re.compile(r"^([0-9]{1,12}):([0-9]{1,19})$")
-NO_LIMIT = 1 << 62  # lines are bounded by the receiver's request limit, not here
+NO_LIMIT = 1 << 62
 
 
 class Spool:
@@ -46,6 +46,7 @@ class Spool:
     def __init__(self, source: str, folder: Path, *, max_queue_bytes: int, file_bytes: int,
                  max_line_bytes: int = NO_LIMIT) -> None:
         self.source = source
+        self.max_line_bytes = max_line_bytes  # a line is read up to this (the source's line_limit)
         self.folder = folder
         self.max_queue = max_queue_bytes
         self.file_bytes = file_bytes
@@ -138,11 +139,15 @@ class Spool:
         size = path.stat().st_size
         if not size:
             return 0
-        with open(path, "rb") as fh:
-            fh.seek(max(0, size - (1 << 16)))
-            tail = fh.read()
-        cut = tail.rfind(b"\n")
-        complete = size - len(tail) + cut + 1 if cut >= 0 else 0
+        complete, at = 0, size
+        with open(path, "rb") as fh:  # back from the end, a chunk at a time, to the last newline
+            while at > 0:
+                at = max(0, at - READ_CHUNK)
+                fh.seek(at)
+                cut = fh.read(min(READ_CHUNK, size - at)).rfind(b"\n")
+                if cut >= 0:
+                    complete = at + cut + 1
+                    break
         if complete != size:
             log.warning("%s ends with %d bytes of a request cut short by a crash (never acknowledged); left out",
                         path, size - complete)
@@ -157,10 +162,12 @@ class Spool:
             with open(self._path(self.read_seq), "rb") as fh:
                 fh.seek(self.read_offset)
                 data = fh.read(min(READ_CHUNK, end - self.read_offset))
+                while b"\n" not in data[-READ_CHUNK:] and self.read_offset + len(data) < end:
+                    data += fh.read(min(READ_CHUNK, end - self.read_offset - len(data)))  # a line longer than a chunk
             cut = data.rfind(b"\n") + 1
             if cut:
                 stream = str(self._path(self.read_seq))
-                self.sink.feed_block(self.source, stream, *block_of(data[:cut], self.read_offset, NO_LIMIT))
+                self.sink.feed_block(self.source, stream, *block_of(data[:cut], self.read_offset, self.max_line_bytes))
                 self.read_offset += cut
                 with self.lock:
                     self.pending -= cut

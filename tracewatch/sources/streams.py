@@ -62,5 +62,5 @@ def stream_sources(cfg: Config, state_dir: Path) -> list[StreamSource]:
         elif cfg.receives_otlp(src.name):
             o = cfg.otlp
             out.append(Spool(src.name, state_dir / "otlp" / src.name, max_queue_bytes=o.max_queue_bytes,
-                             file_bytes=o.spool_file_bytes, max_line_bytes=src.max_line_bytes))
+                             file_bytes=o.spool_file_bytes, max_line_bytes=src.line_limit))
     return out
