@@ -153,7 +153,7 @@ class FitReport(_Strict):
 
 
 class Manifest(_Strict):
-    schema_version: Literal[5]
+    schema_version: Literal[SCHEMA_VERSION]  # type: ignore[valid-type]
     kind: Literal["tracewatch-baseline"]
     version: str = Field(pattern=VERSION_NAME.pattern)
     created: str = Field(max_length=64)

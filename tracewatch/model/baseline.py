@@ -263,7 +263,8 @@ class Baseline:
         offsets = arrays["calibration_offsets"].tolist()
         if len(set(cal_sources)) != len(cal_sources) or POOLED not in cal_sources:
             raise ValueError("the calibration must name each source once and the pooled one")
-        if np.any(np.diff(arrays["shape_hashes"]) <= 0):
+        hashes = arrays["shape_hashes"]
+        if np.any(hashes[1:] <= hashes[:-1]):  # compared, not subtracted: a difference of two int64 overflows
             raise ValueError("the session shapes must be sorted, each once")
         calibration = {src: Calibration(false_alarm_rate).calibrate(scores[a:b])
                        for src, a, b in zip(cal_sources, offsets, offsets[1:])}
