@@ -18,6 +18,7 @@ def fit_and_score(tmp_path, scenario: Scenario, base: list[GeneratedSession], da
     from tracewatch.batch import assign_sources, fit_files, score_files
     from tracewatch.config import parse_config
 
+    tmp_path.mkdir(parents=True, exist_ok=True)
     (tmp_path / "b.log").write_text("\n".join(render_text(scenario, base)) + "\n")
     (tmp_path / "d.log").write_text("\n".join(render_text(scenario, day)) + "\n")
     cfg = parse_config({"state_dir": str(tmp_path / "state"),

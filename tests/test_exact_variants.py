@@ -1,6 +1,8 @@
 """k for exact variants: normal traffic made of a few fixed step sequences (ticket machines at
 tram stops), one of them only 3% of traffic, and an anomaly that repeats a known step 20–40
-times. Over ten seeds the anomaly is caught every time and the rare variant never flagged.
+times. Over ten seeds the anomaly is caught every time and the rare variant never flagged; and
+on one day of it, with k forced one either side of the chosen k and three seeds, no verdict
+changes.
 """
 
 from __future__ import annotations
@@ -77,3 +79,41 @@ def test_k_is_the_number_of_variants_and_the_silhouettes_match_sklearn():
         theirs = silhouette_score(expanded, np.repeat(labels, w.astype(int)))
         assert ours == pytest.approx(theirs, abs=1e-6)  # sklearn's zero distances carry float rounding
     assert model.curve_[model.k_ - 1]["silhouette"] == pytest.approx(1.0)
+
+
+def test_verdicts_do_not_swing_with_k_or_seed(tmp_path):
+    """One day of ticket-machine traffic, fitted with k forced to the chosen k − 1, k and k + 1
+    (k + 1 is more than the distinct sessions: the fit says so and uses k) under three seeds:
+    every run catches every anomaly and flags no normal session. The threshold itself swings
+    (0 at the chosen k, where every normal session sits on its centre; about 2.5–4 at k − 1,
+    where two variants share a cluster), but no verdict does. A spread floor as large as a
+    share of the distance between neighbouring variants fails here: at k − 1 the floor outgrows
+    the shared cluster's spread and anomalies beside a one-variant cluster fall under the
+    threshold (a quarter of that distance missed 5 of these 40 anomalies)."""
+    scenario = ticket_machines()
+    base = generate(scenario, 3000, seed=0, start=datetime(2026, 11, 29, tzinfo=timezone.utc), kinds=())
+    kinds = ("missing_step", "retry_loop", "out_of_order", "cut_short")
+    day = generate(scenario, 1500, 5, seed=100, start=datetime(2026, 11, 30, tzinfo=timezone.utc), kinds=kinds)
+    rng = random.Random(0)
+    for sess in rng.sample([s for s in day if s.label == "normal"], 20):
+        _repeat_a_step(sess, rng)
+    variants = {tuple(STEPS[n] for n in seq.split()) for _, seq in VARIANTS.values()}
+    # an injected change can give another variant's exact steps (a receipt dropped): normal by its steps
+    bad = [s.key for s in day if s.label != "normal" and tuple(st.message for st in s.steps) not in variants]
+    normal = [s.key for s in day if s.key not in set(bad)]
+    assert len(bad) >= 35
+    chosen = fit_and_score(tmp_path / "auto", scenario, base, day, "tickets", false_alarm_rate=RATE)[0].report["k"]
+    assert chosen == len(VARIANTS)
+    for k in (chosen - 1, chosen, chosen + 1):
+        for seed in range(3):
+            run_dir = tmp_path / f"k{k}-seed{seed}"
+            baseline, verdicts = fit_and_score(run_dir, scenario, base, day, "tickets", false_alarm_rate=RATE,
+                                               k=k, seed=seed)
+            threshold = baseline.report["thresholds"]["tickets"]["threshold"]
+            caught = sum(verdicts[key]["alert"] for key in bad)
+            flagged = sum(verdicts[key]["alert"] for key in normal)
+            print(f"k={k} (fitted {baseline.report['k']}) seed {seed}: threshold {threshold:.3f}, "
+                  f"caught {caught}/{len(bad)}, normal flagged {flagged}/{len(normal)}, lowest anomaly score "
+                  f"{min(verdicts[key]['score'] for key in bad):.3f}")
+            assert caught == len(bad), (k, seed)
+            assert flagged == 0, (k, seed)
