@@ -134,6 +134,29 @@ def test_rate_and_reach_of_a_stored_row():
     assert rate_text(brief({**row, "sessions": 0})) == "12 alerts in 10 min (sessions of locker-api not counted)"
 
 
+def test_one_alert_is_rated_over_the_last_ten_minutes(tmp_path):
+    # one alert at 08:09:10: its rate window is 08:00 … 08:09 (RATE_MINUTES), in Python and in the
+    # store's SQL alike; sessions counted at 07:59 and 08:10 stay outside it
+    from tracewatch.alerts.store import IncidentStore
+    from tracewatch.alerts.summary import rate_minutes
+
+    t = 1_800_000_550.0
+    assert rate_minutes(t, t) == (30_000_000, 30_000_009)
+    store = IncidentStore.open(tmp_path)
+    try:
+        with store.transaction() as db:
+            store.count_sessions({("locker-api", 29_999_999): 7, ("locker-api", 30_000_000): 25,
+                                  ("locker-api", 30_000_009): 15, ("locker-api", 30_000_010): 9}, db=db)
+            iid = store.new_incident(status="open", title="t", t=t, now=t, stats={"sources": {"locker-api": 1}},
+                                     centroid={}, representative={"alert_id": "a1"}, status_by="",
+                                     suggestion=None, signature="", db=db)
+        row = store.incident(iid)
+    finally:
+        store.close()
+    assert row["sessions"] == 40
+    assert rate_text(brief(row)) == "1 of 40 sessions of locker-api in 10 min (2%)"
+
+
 # -- the example in a title --------------------------------------------------------------------------
 @pytest.mark.parametrize("value, shown", [
     ("4512", "4…2"), ("L-17", "L…7"), ("7", "…"), ("ab", "…"), ('"Ana Silva"', '"A…a"'),

@@ -45,6 +45,7 @@ import orjson
 
 from ..errors import StateError
 from . import rows
+from .summary import RATE_MINUTES
 
 SCHEMA_VERSION = 4
 FILENAME = "incidents.db"
@@ -135,10 +136,12 @@ _LIST_KEYS = ("id", "status", "title", "first_seen", "last_seen", "count", "esca
               "status_changed", "status_by", "note")
 # an incident's sources (the keys of its statistics' "sources"; none where the column is not JSON)
 _SOURCES = "json_each(CASE WHEN json_valid(incidents.stats) THEN incidents.stats ELSE '{}' END, '$.sources')"
-# the sessions scored of an incident's sources in the minutes of its window (first to last alert)
+# the sessions scored of an incident's sources in the minutes of its rate window (first to last
+# alert, and at least the last RATE_MINUTES: summary.rate_minutes says the same in Python)
+_LAST_MINUTE = "CAST(incidents.last_seen / 60 AS INTEGER)"
 _SESSIONS = ("(SELECT COALESCE(SUM(s.count), 0) FROM sessions s WHERE s.source IN (SELECT key FROM "
-             f"{_SOURCES}) AND s.minute BETWEEN CAST(incidents.first_seen / 60 AS INTEGER) "
-             "AND CAST(incidents.last_seen / 60 AS INTEGER))")
+             f"{_SOURCES}) AND s.minute BETWEEN MIN(CAST(incidents.first_seen / 60 AS INTEGER), "
+             f"{_LAST_MINUTE} - {RATE_MINUTES - 1}) AND {_LAST_MINUTE})")
 # what is read for showing an incident: the listed columns and the sessions of its window
 _READ_COLUMNS = f"{_LIST_COLUMNS}, {_SESSIONS}"
 # what the tracker may change on an incident row

@@ -189,15 +189,27 @@ def severity(alerts: int, share: float | None, sources: int) -> str:
     return "low"
 
 
+# the shortest window an incident's rate is measured over: its last RATE_MINUTES minutes at least,
+# so one alert reads "1 of 40 sessions in 10 min", not "1 of 1 in 1 min" (the store reads the same)
+RATE_MINUTES = 10
+
+
+def rate_minutes(first_seen: float, last_seen: float) -> tuple[int, int]:
+    """The first and last minute (as minute numbers) of an incident's rate window."""
+    last = int(last_seen // 60)
+    return min(int(first_seen // 60), last - RATE_MINUTES + 1), last
+
+
 def reach(incident: dict) -> dict:
     """How fast and how wide an incident hits. Rate: its alerts against the sessions scored of
-    its sources in the minutes of its window (first to last alert; the store reads them as
-    ``sessions``). Reach: the share of those sessions that are its alerts, and its number of
+    its sources in the minutes of its window (first to last alert, and at least the last
+    :data:`RATE_MINUTES`; the store reads them as ``sessions``). Reach: the share of those sessions that are its alerts, and its number of
     sources. Severity from both (:data:`SEVERITY_RULE`). With no sessions counted (an incident
     older than the counts) the share is None."""
     count = int(incident.get("count") or 0)
     sessions = int(incident.get("sessions") or 0)
-    minutes = int(incident["last_seen"] // 60) - int(incident["first_seen"] // 60) + 1
+    first, last = rate_minutes(incident["first_seen"], incident["last_seen"])
+    minutes = last - first + 1
     share = round(min(1.0, count / sessions), 4) if sessions else None
     n_sources = len((incident.get("stats") or {}).get("sources") or incident.get("sources") or ())
     return {"severity": severity(count, share, n_sources),
