@@ -70,7 +70,7 @@ def test_medoid_is_the_representative(store):
 
 
 def test_time_window(store):
-    tr = tracker(store, window_s=600)
+    tr = tracker(store, window_s=600, recur_s=0)  # recur_s 0: the same signature, too, joins only within the window
     first = tr.add(toy_alert("1", "A", t=T0))
     assert tr.add(toy_alert("2", "A", t=T0 + 599)) == first
     later = tr.add(toy_alert("3", "A", t=T0 + 599 + 601))  # quiet for longer than the window
@@ -147,6 +147,37 @@ def test_auto_resolve_on_tick(store):
     assert store.incident(iid)["status"] == "resolved"
     assert store.incident(iid)["status_by"].startswith("auto")
     assert events(store) == [(iid, "opened"), (iid, "resolved")]
+
+
+@pytest.mark.parametrize("recur_s, joins", [(86_400, True), (0, False)])
+def test_a_problem_back_after_auto_resolve_reopens_its_incident(store, recur_s, joins):
+    # the same never-seen event at 08:00 and at 11:00 (event time): quiet for three hours, so the
+    # first incident was resolved automatically; within recur_s it is the same incident again
+    wall = Wall(T0 + 86_400)
+    tr = IncidentTracker(store, parse_config({"incidents": {"auto_resolve_s": 1800, "window_s": 1800,
+                                                             "recur_s": recur_s}}).incidents, clock=wall)
+    iid = tr.add(toy_alert("1", "A", t=T0))
+    other = tr.add(toy_alert("2", "B", t=T0 + 3 * 3600))  # another problem: an incident of its own
+    wall.t += 2
+    assert tr.tick(T0 + 3 * 3600) == [iid]  # the event clock is at 11:00: 08:00's incident is quiet
+    again = tr.add(toy_alert("3", "A", t=T0 + 3 * 3600 + 60))
+    assert other != iid
+    if joins:
+        assert again == iid
+        row = store.incident(iid)
+        assert row["status"] == "open" and row["count"] == 2 and row["status_by"].startswith("auto")
+        assert events(store) == [(iid, "opened"), (other, "opened"), (iid, "resolved"), (iid, "opened")]
+        assert [p.get("reopened") for _, ev, p in store.outbox_after(0)] == [None, None, None, True]
+    else:
+        assert again not in (iid, other) and store.incident(iid)["status"] == "resolved"
+
+
+def test_a_problem_back_after_someone_resolved_it_opens_a_new_incident(store):
+    wall = Wall(T0 + 86_400)
+    tr = IncidentTracker(store, parse_config({"incidents": {}}).incidents, clock=wall)
+    iid = tr.add(toy_alert("1", "A", t=T0))
+    set_status(store, iid, "resolve", by="oncall")  # a person said it is over: a recurrence is news
+    assert tr.add(toy_alert("2", "A", t=T0 + 3600)) != iid
 
 
 def test_auto_resolve_runs_on_event_time_across_a_restart(tmp_path):

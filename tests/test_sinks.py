@@ -86,7 +86,7 @@ def test_alertmanager_payload_resend_and_resolve(store, receiver):
     assert firing["annotations"]["summary"] == "never-seen event 'event A <var>'"
     # its one alert is the one session of api counted in its minute
     assert firing["annotations"]["severity"] == "low"
-    assert firing["annotations"]["rate"] == "1 of 1 sessions of api in 1 min (100%)"
+    assert firing["annotations"]["rate"] == "1 of 1 sessions of api in 10 min (100%)"
     assert firing["generatorURL"] == f"http://127.0.0.1:9464/incidents/{iid}"
     assert datetime.fromisoformat(firing["startsAt"]).timestamp() == pytest.approx(1_800_000_000.0)
     # clients re-send active alerts periodically (prometheus.io/docs/alerting/latest/clients/)

@@ -330,6 +330,11 @@ class IncidentsConfig(_Section):
     window_s: float = Field(default=1800.0, gt=0)
     # open or acknowledged incidents with no alert for this long are resolved (0 = never)
     auto_resolve_s: float = Field(default=1800.0, ge=0)
+    # an alert with an incident's signature (the same never-seen event, missing step, retried
+    # step ...) joins it while the incident's last alert is at most this old, past window_s, and
+    # reopens it when it was resolved automatically: a problem that comes back within the day stays
+    # one incident (0 = by signature within window_s only)
+    recur_s: float = Field(default=86_400.0, ge=0)
     # notifications go out again when an open incident's alert count reaches these
     escalation_steps: list[int] = Field(default_factory=lambda: [10, 100, 1000])
     # candidate representatives kept per incident (the medoid is chosen among them)

@@ -5,7 +5,8 @@ Stage: alerts → **incidents** → summaries, page, notifications. Alerts are c
 vectors (:mod:`tracewatch.alerts.vectors`: explanation and sequence n-grams, cosine geometry).
 
 First by what is wrong: an alert joins the nearest incident (open or acknowledged with an alert
-within ``window_s``, or expected) whose signature — the source and the kind and subject of its
+within ``window_s``, or expected; or, of its own signature, one with an alert within ``recur_s``
+that is open, acknowledged or was resolved automatically — reopened then) whose signature — the source and the kind and subject of its
 opening alert's strongest explanation (:func:`tracewatch.alerts.summary.signature`: the same
 never-seen event, the same retried step, the same missing step ...) — is the alert's, however
 far its other terms are. Failing that, by similarity:
@@ -154,10 +155,11 @@ class IncidentTracker:
                 store.count_sessions(self._sessions, db=db)  # first: the notification queued reads them
                 sig = summary.signature(alert)
                 best, best_d, same = None, math.inf, False
-                candidates = store.candidates(t - self.cfg.window_s, db=db)
-                for iid, count, their_sig in candidates:
+                recur = self.cfg.recur_s if self.cfg.recur_s else self.cfg.window_s
+                candidates = store.candidates(t - self.cfg.window_s, t - max(recur, self.cfg.window_s), db=db)
+                for iid, count, their_sig, recurring in candidates:
                     mine = bool(sig) and their_sig == sig
-                    if same and not mine:
+                    if (same or recurring) and not mine:
                         continue
                     g = self._group(db, iid, count)
                     if g is None:
@@ -246,6 +248,10 @@ class IncidentTracker:
                 members[worst], closeness[worst] = (aid, x), mine
                 store.add_member(iid, aid, x, alert, db=db)
         medoid = members[max(range(len(members)), key=closeness.__getitem__)][0]
+        reopened = row["status"] == "resolved"  # resolved automatically, and the same problem is back
+        if reopened:
+            store.set_status(iid, "open", by="auto: the same problem again", note="", now=self.clock(), db=db)
+            row["status"] = "open"
         stats = row["stats"]
         _stats_add(stats, alert)
         values: dict = {"count": count, "first_seen": min(row["first_seen"], t), "last_seen": max(row["last_seen"], t),
@@ -259,9 +265,12 @@ class IncidentTracker:
             values["escalated"] = step
         store.update_incident(iid, db=db, **values)
         changed[iid] = _Group(count, total, members)
+        if reopened:
+            queue(store, db, iid, "opened", reopened=True)
+            log.info("incident %d reopened: %s is back", iid, summary.safe(row["title"]))
         if noted:
             queue(store, db, iid, "escalated", step=step)
-        return iid, noted
+        return iid, noted or reopened
 
     # -- time ----------------------------------------------------------------------------------------
     def _saw(self, t: float | None) -> None:

@@ -383,11 +383,19 @@ class IncidentStore:
         row = db.execute("SELECT incident_id FROM alerts WHERE alert_id = ?", (alert_id,)).fetchone()
         return None if row is None else row[0]
 
-    def candidates(self, active_since: float, *, db: sqlite3.Connection) -> list[tuple[int, object, str]]:
-        """(id, count, signature) of the incidents an alert may join: open or acknowledged with an
-        alert since ``active_since``, or expected. The counts are as stored (checked by :meth:`group`)."""
-        return db.execute("SELECT id, count, signature FROM incidents WHERE (status IN ('open', 'acknowledged') "
-                          "AND last_seen >= ?) OR status = 'expected'", (active_since,)).fetchall()
+    def candidates(self, active_since: float, recur_since: float, *,
+                   db: sqlite3.Connection) -> list[tuple[int, object, str, bool]]:
+        """(id, count, signature, recurring) of the incidents an alert may join: open or
+        acknowledged with an alert since ``active_since``, or expected; and, ``recurring``, those
+        with a signature and an alert since ``recur_since`` that are open, acknowledged or were
+        resolved automatically (status_by "auto: ...") — which only an alert of their signature
+        joins. The counts are as stored (checked by :meth:`group`)."""
+        return db.execute(
+            "SELECT id, count, signature, NOT ((status IN ('open', 'acknowledged') AND last_seen >= ?) "
+            "OR status = 'expected') FROM incidents WHERE (status IN ('open', 'acknowledged') AND last_seen >= ?) "
+            "OR status = 'expected' OR (signature != '' AND last_seen >= ? AND (status IN ('open', 'acknowledged') "
+            "OR (status = 'resolved' AND status_by LIKE 'auto:%')))",
+            (active_since, active_since, recur_since)).fetchall()
 
     def group(self, incident_id: int, *, db: sqlite3.Connection) -> rows.Group:
         """What grouping needs of an incident, checked: its row, the sum of its alerts' vectors
