@@ -314,6 +314,14 @@ class TemplateTree:
         return idxs
 
     def _add_mixed(self, messages: Sequence[str], events: Sequence[str | None]) -> list[int]:
+        if None not in events:  # every record a structured event (spans): looked up in C, counted once
+            idxs = list(map(self._events.get, events))
+            if None in idxs:
+                idxs = [self.add_event(e, 0) if i is None else i for e, i in zip(events, idxs)]
+            templates = self.templates
+            for idx, n in Counter(idxs).items():
+                templates[idx].count += n
+            return idxs
         mined = [m for m, e in zip(messages, events) if e is None]
         it = iter(self.add_many(mined) if mined else ())
         return [next(it) if e is None else self.add_event(e) for e in events]
@@ -347,13 +355,14 @@ class TemplateTree:
         if cache.emptied == emptied and (len(miss) < len(idxs) or len(cache.shapes) < len(miss)):
             cache.remember(cache.shapes, missed, found)
 
-    def add_event(self, event: str) -> int:
-        """Template index for a structured event type (no masking, no merging)."""
+    def add_event(self, event: str, count: int = 1) -> int:
+        """Template index for a structured event type (no masking, no merging), counted ``count``
+        times."""
         idx = self._events.get(event)
         if idx is None:
             idx = self._new(f"event:{event}", [event], (), structured=True)
             self._events[event] = idx
-        self.templates[idx].count += 1
+        self.templates[idx].count += count
         return idx
 
     def freeze(self) -> None:

@@ -325,8 +325,11 @@ def _uint64s(values: list) -> list[int]:
 
 def _enums(values: list, names: dict[str, int]) -> list[int]:
     """``_enum`` of many values; plain integers as they are."""
-    if set(map(type, values)) == {int}:
+    kinds = set(map(type, values))
+    if kinds == {int}:
         return values
+    if kinds == {str}:  # the enum names: looked up in C
+        return list(map(names.get, values, repeat(0)))
     return list(map(_enum, values, repeat(names)))
 
 
