@@ -156,17 +156,18 @@ class Sessionizer:
                     # the session starts at its earliest record whatever the order of arrival
                     # (which file the follower read first): its start and alert id stay the same
                     sess.first_ts, sess.first_raw, sess.first_offset = t, raw, offset
-            sess.events.append(event)
+            evs, samples = sess.events, sess.samples
+            evs.append(event)
             if by_time and sess.times is not None:
                 sess.times.append(t)
             if t > sess.last_ts:
                 sess.last_ts = t
             sess.last_seen = t
-            if len(sess.samples) < FIRST_SAMPLES or (event >= unseen_from and len(sess.samples) < MAX_SAMPLES):
-                sess.samples.append(raw)
+            if len(samples) < FIRST_SAMPLES or (event >= unseen_from and len(samples) < MAX_SAMPLES):
+                samples.append(raw)
             if end is not None and end.search(message):
                 self._close(skey, "end", closed)
-            elif len(sess.events) >= max_events:
+            elif len(evs) >= max_events:
                 self._close(skey, "max_events", closed)
         return newest
 
