@@ -49,8 +49,10 @@ _OPENING = "([{<'"
 # a host name with no digit: three or more lower-case DNS labels (a class name has capitals)
 _HOST = re.compile(r"[a-z][a-z-]*(?:\.[a-z][a-z-]*){2,}(?::[a-z]+)?")
 _DIGITS = frozenset("0123456789")
+_ASCII_LETTERS = frozenset("ABCDEFGHIJKLMNOPQRSTUVWXYZabcdefghijklmnopqrstuvwxyz")
 _ZERO_DIGITS = bytes.maketrans(b"123456789", b"000000000")
 _ZERO_TEXT = str.maketrans("123456789", "000000000")
+_A_DIGIT = re.compile("[0-9]")
 _encode = methodcaller("encode", "utf-8", "surrogatepass")
 _zero = methodcaller("translate", _ZERO_DIGITS)
 
@@ -75,23 +77,29 @@ _ID_RUN = re.compile(rb"(?<![0-9a-fA-F-])[a-fA-F-]*+[0-9][0-9a-fA-F-]*+")
 
 
 _LETTER = frozenset(b"ABCDEFGHIJKLMNOPQRSTUVWXYZabcdefghijklmnopqrstuvwxyz")
+_LOWER = frozenset(b"abcdefghijklmnopqrstuvwxyz")
 
 
 def _collapse_run(run: re.Match) -> bytes:
     """The coarse form of an id-like run of a shape (its digits are 0): the run itself if it
-    holds one digit, right after a letter (as in ``ssh2``, ``utf8``: what ``_KEPT`` looks at);
-    else ``00`` after a letter (``node01``, ``ssh12``) and ``0`` after anything else (``12``,
-    ``blk_-12``, ``10.0.0.1``), so the two stay apart."""
+    holds one digit, right after two letters, the second lower-case (as in ``ssh2``, ``utf8``:
+    where ``_KEPT`` may keep a name); else ``00`` after such two letters (``node01``,
+    ``ssh12``: a run of two bytes or more, as a run of one byte there is kept) and ``0`` after
+    anything else (``12``, ``blk_-12``, ``10.0.0.1``), so a kept run and a marker stay apart."""
     text, data, start = run.group(), run.string, run.start()
-    digit = start + text.find(b"0")
-    if text.count(b"0") == 1 and digit and data[digit - 1] in _LETTER:
+    if text.count(b"0") == 1 and _after_word(data, start + text.find(b"0")):
         return text
-    return b"00" if start and data[start - 1] in _LETTER else b"0"
+    return b"00" if _after_word(data, start) else b"0"
+
+
+def _after_word(data: bytes, i: int) -> bool:
+    return i > 1 and data[i - 1] in _LOWER and data[i - 2] in _LETTER
 
 
 # byte classes for _collapse_id_runs: 2 a digit, 1 a hex letter or a dash, 0 anything else
 _ID_CLASS = bytes(2 if chr(c) in "0123456789" else 1 if chr(c) in "abcdefABCDEF-" else 0 for c in range(256))
-_IS_LETTER = np.array([c in _LETTER for c in range(256)])
+# and for the bytes before a digit: 3 a lower-case letter, 1 a capital, 0 anything else
+_WORD_CLASS = bytes(3 if c in _LOWER else 1 if c in _LETTER else 0 for c in range(256))
 
 
 def _collapse_id_runs(data: bytes) -> bytes:
@@ -104,17 +112,15 @@ def _collapse_id_runs(data: bytes) -> bytes:
     starts = in_run.copy()
     starts[1:] &= ~in_run[:-1]
     run = starts.cumsum(dtype=np.int32)  # the number of the run each byte is in (where in_run)
-    after_letter = np.zeros(cls.size, dtype=bool)
-    after_letter[1:] = _IS_LETTER[np.frombuffer(data, dtype=np.uint8)[:-1]]
-    n = int(run[-1]) + 1
+    word = np.frombuffer(data.translate(_WORD_CLASS), dtype=np.uint8)
+    after_word = np.zeros(cls.size, dtype=np.uint8)  # 1 after two letters, the second lower-case
+    after_word[2:] = (word[1:-1] >> 1) & word[:-2]
     digit = cls == 2
-    digits = np.bincount(run[digit], minlength=n)
-    collapsed = (digits > 1) | ((digits == 1) & (np.bincount(run[digit & after_letter], minlength=n) == 0))
-    id_run = in_run & collapsed[run]
-    head = id_run & starts  # becomes 0, and the byte after it too where a letter comes before
-    second = np.zeros(cls.size, dtype=bool)
-    second[1:] = head[:-1] & after_letter[:-1]  # such a run holds two bytes or more (see above)
-    head |= second
+    # per run, 1 for a digit after a word and 2 for any other: a run is kept where the sum is 1
+    weight = np.bincount(run[digit], weights=2 - after_word[digit], minlength=int(run[-1]) + 1)
+    id_run = in_run & (weight > 1)[run]
+    head = id_run & starts  # becomes 0, and the byte after it too after a word
+    head[1:] |= head[:-1] & (after_word[:-1] == 1)  # such a run holds two bytes or more
     out = np.frombuffer(data, dtype=np.uint8).copy()
     out[head] = 48
     return out[~id_run | head].tobytes()
@@ -122,7 +128,7 @@ def _collapse_id_runs(data: bytes) -> bytes:
 
 def _coarse(shapes: list[bytes]) -> list[bytes]:
     """Coarse cache keys: every id-like run (``_ID_RUN``) of a shape turned into one 0 (``00``
-    after a letter), but for a run of one digit after a letter (``_collapse_run``). Messages
+    after a letter), but for a run of one digit after a word (``_collapse_run``). Messages
     with equal coarse keys mask alike: such a run lies inside one token, keeps a digit, and
     touches none of what masking looks at besides digits (whitespace, quotes, ``=``, ``/``,
     ``://``, trailing punctuation); and ``_KEPT`` keeps a name only where every run stays."""
@@ -141,7 +147,7 @@ def _coarse(shapes: list[bytes]) -> list[bytes]:
 # underscore (LK-4, worker_3). Decided from the digit shape, as the caches need (see
 # TemplateCache): the look-ahead rejects two digits in one run of hex digits, which the coarse
 # key cannot tell apart from a longer number (sha256, x86_64 and ab1cd2 stay variables).
-_KEPT = re.compile(r"(?!.*[0-9][0-9a-fA-F]*[0-9])(?:[A-Za-z][A-Za-z_]*)?[A-Za-z][a-z][0-9]"
+_KEPT = re.compile(r"(?=[A-Za-z])(?!.*[0-9][0-9a-fA-F]*[0-9])(?:[A-Za-z][A-Za-z_]*)?[A-Za-z][a-z][0-9]"
                    r"(?:[A-Za-z_]*[A-Za-z][a-z][0-9])*[A-Za-z_]*\(?")
 
 
@@ -164,7 +170,7 @@ def _mask_token(tok: str) -> str:
     else:
         while start < end - 1 and tok[start] in _LEADING:  # and leading brackets: [<var>]
             start += 1
-    if _KEPT.fullmatch(tok, start, end):  # ssh2, (IPv4), jk2_init():
+    if tok[start] in _ASCII_LETTERS and _KEPT.fullmatch(tok, start, end):  # ssh2, (IPv4), jk2_init():
         return tok
     return tok[:start] + WILDCARD + tok[end:]
 
@@ -228,13 +234,13 @@ def _covers(pattern: str, token: str) -> bool:
 def _alike(a: str, b: str) -> bool:
     """Whether two tokens are one constant: equal, or kept names of one digit shape (``ssh1``
     and ``ssh2``), which every cache already treats as one."""
-    return a == b or (a.translate(_ZERO_TEXT) == b.translate(_ZERO_TEXT))
+    return a == b or (len(a) == len(b) and a.translate(_ZERO_TEXT) == b.translate(_ZERO_TEXT))
 
 
 def _masked_key(masked: str) -> str:
     """A masked message as the ``masked`` cache keys it: its digits (only kept names hold any)
     as 0, so that messages of one digit shape share one entry."""
-    return masked.translate(_ZERO_TEXT)
+    return masked.translate(_ZERO_TEXT) if _A_DIGIT.search(masked) else masked
 
 
 def _generalise(a: str, b: str) -> str:
@@ -481,7 +487,7 @@ class TemplateTree:
             for a, b in zip(tpl.tokens, tokens):
                 if a == WILDCARD or (a != b and (_covers(a, b) or _covers(b, a))):
                     wild += 1
-                elif _alike(a, b):
+                elif a == b or _alike(a, b):
                     same += 1
             held = len(tokens) - wild  # the positions where both hold a constant
             sim = same / held if held else 1.0
