@@ -15,8 +15,9 @@ where both the template and the message hold a constant (a wildcard, or a masked
 covers the other such as ``[<var>]`` and ``[main]``, counts neither way), so a line made mostly
 of variables joins on its few constants; and a token in brackets (``(alice)``) routes as a
 variable. Known limits: a digitless variable among the routing tokens, or two of them in a
-short statement, still split a template; a constant with a digit run longer than one digit
-(``sha256``, ``x86_64``) is masked, and a name numbered below ten (``web3``, ``eth0``) is kept.
+short statement, still split a template; a constant with a run of two digits (``sha256``,
+``x86_64``) or a digit after a capital (``MD5``) is masked, and a name numbered below ten
+(``web3``, ``eth0``) is kept.
 
 Messages that differ only in their digits are one template: the caches key messages by their
 digit shape (every digit as 0), so whether a token is kept is decided from that shape, and a
