@@ -271,8 +271,15 @@ def test_names_of_one_digit_shape_are_one_template():
         emptied.cache.clear()
         assert emptied.add(message) == 0
     assert [t.text for t in emptied.templates] == ["link eth1 down"]
+    # the id does not depend on which name came first
+    assert block.templates[0].id == _first_id("link eth0 down")
     # a name of another shape is another constant: it generalises the template where it joins
     assert emptied.add("link eth12 down") == 0 and emptied.text(0) == "link <var> down"
+
+
+def _first_id(message: str) -> str:
+    miner = TemplateTree()
+    return miner.templates[miner.add(message)].id
 
 
 @pytest.mark.parametrize("shape, name", [("sshd", "ssh2"), ("webserver", "jk2_init()"), ("proxy", "Layer7")])

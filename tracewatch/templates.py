@@ -24,9 +24,9 @@ digit shape (every digit as 0), so whether a token is kept is decided from that 
 kept token stands for every token of its shape (``eth1`` joins the template ``eth0`` made;
 the template keeps the text of the first message that made it).
 
-Each template gets a stable id (a hash of the first masked message that created it) and a
-dense index used by the feature stage. Structured records (span names, syscalls) carry an
-``event`` and map to an event template directly. When the miner is frozen (scoring), baseline
+Each template gets a stable id (a hash of the first masked message that created it, kept
+names' digits as 0) and a dense index used by the feature stage. Structured records (span
+names, syscalls) carry an ``event`` and map to an event template directly. When the miner is frozen (scoring), baseline
 templates are matched but never changed; what is created after the freeze is *unseen*.
 """
 
@@ -34,6 +34,7 @@ from __future__ import annotations
 
 import hashlib
 import re
+import string
 from collections import Counter
 from collections.abc import Sequence
 from dataclasses import dataclass
@@ -50,7 +51,7 @@ _OPENING = "([{<'"
 # a host name with no digit: three or more lower-case DNS labels (a class name has capitals)
 _HOST = re.compile(r"[a-z][a-z-]*(?:\.[a-z][a-z-]*){2,}(?::[a-z]+)?")
 _DIGITS = frozenset("0123456789")
-_ASCII_LETTERS = frozenset("ABCDEFGHIJKLMNOPQRSTUVWXYZabcdefghijklmnopqrstuvwxyz")
+_ASCII_LETTERS = frozenset(string.ascii_letters)
 _ZERO_DIGITS = bytes.maketrans(b"123456789", b"000000000")
 _ZERO_TEXT = str.maketrans("123456789", "000000000")
 _A_DIGIT = re.compile("[0-9]")
@@ -77,8 +78,8 @@ def _shapes(messages: list[str]) -> list[bytes]:
 _ID_RUN = re.compile(rb"(?<![0-9a-fA-F-])[a-fA-F-]*+[0-9][0-9a-fA-F-]*+")
 
 
-_LETTER = frozenset(b"ABCDEFGHIJKLMNOPQRSTUVWXYZabcdefghijklmnopqrstuvwxyz")
-_LOWER = frozenset(b"abcdefghijklmnopqrstuvwxyz")
+_LETTER = frozenset(string.ascii_letters.encode())
+_LOWER = frozenset(string.ascii_lowercase.encode())
 
 
 def _collapse_run(run: re.Match) -> bytes:
@@ -148,7 +149,7 @@ def _coarse(shapes: list[bytes]) -> list[bytes]:
 # underscore (LK-4, worker_3). Decided from the digit shape, as the caches need (see
 # TemplateCache): the look-ahead rejects two digits in one run of hex digits, which the coarse
 # key cannot tell apart from a longer number (sha256, x86_64 and ab1cd2 stay variables).
-_KEPT = re.compile(r"(?=[A-Za-z])(?!.*[0-9][0-9a-fA-F]*[0-9])(?:[A-Za-z][A-Za-z_]*)?[A-Za-z][a-z][0-9]"
+_KEPT = re.compile(r"(?!.*[0-9][0-9a-fA-F]*[0-9])(?:[A-Za-z][A-Za-z_]*)?[A-Za-z][a-z][0-9]"
                    r"(?:[A-Za-z_]*[A-Za-z][a-z][0-9])*[A-Za-z_]*\(?")
 
 
@@ -502,7 +503,7 @@ class TemplateTree:
                 tpl.tokens = list(map(_generalise, tpl.tokens, tokens))
             idx = best
         else:
-            idx = self._new(masked, tokens, path)
+            idx = self._new(key, tokens, path)  # the id: a hash of the key, whichever name came first
             leaf.append(idx)
         self.cache.remember_masked(key, idx)
         return idx
