@@ -114,15 +114,19 @@ def _collapse_id_runs(data: bytes) -> bytes:
     starts = in_run.copy()
     starts[1:] &= ~in_run[:-1]
     run = starts.cumsum(dtype=np.int32)  # the number of the run each byte is in (where in_run)
-    word = np.frombuffer(data.translate(_WORD_CLASS), dtype=np.uint8)
-    after_word = np.zeros(cls.size, dtype=np.uint8)  # 1 after two letters, the second lower-case
-    after_word[2:] = (word[1:-1] >> 1) & word[:-2]
+    word = np.frombuffer((b"\0\0" + data).translate(_WORD_CLASS), dtype=np.uint8)
+    after_word = ((word[1:-1] >> 1) & word[:-2]).view(bool)  # after two letters, the second lower-case
     digit = cls == 2
     # per run, 1 for a digit after a word and 2 for any other: a run is kept where the sum is 1
-    weight = np.bincount(run[digit], weights=2 - after_word[digit], minlength=int(run[-1]) + 1)
-    id_run = in_run & (weight > 1)[run]
+    weight = (digit.view(np.uint8) << 1) - (digit & after_word).view(np.uint8)
+    start_at = np.flatnonzero(starts)
+    if not start_at.size:
+        return data
+    collapsed = np.zeros(start_at.size + 1, dtype=bool)  # by run number; 0 before the first run
+    collapsed[1:] = np.add.reduceat(weight, start_at, dtype=np.int32) > 1
+    id_run = in_run & collapsed[run]
     head = id_run & starts  # becomes 0, and the byte after it too after a word
-    head[1:] |= head[:-1] & (after_word[:-1] == 1)  # such a run holds two bytes or more
+    head[1:] |= head[:-1] & after_word[:-1]  # such a run holds two bytes or more
     out = np.frombuffer(data, dtype=np.uint8).copy()
     out[head] = 48
     return out[~id_run | head].tobytes()
@@ -248,7 +252,7 @@ def _masked_key(masked: str) -> str:
 def _generalise(a: str, b: str) -> str:
     """One token of a template that stands for both ``a`` and ``b`` (``a``'s text where both are
     one constant)."""
-    if _alike(a, b) or _covers(a, b):
+    if a == b or _covers(a, b) or _alike(a, b):
         return a
     return b if _covers(b, a) else WILDCARD
 
@@ -516,7 +520,8 @@ class TemplateTree:
         for cand in self._by_length.get(len(tokens), ()):
             tpl = self.templates[cand]
             keep = self.frozen and cand < self.n_seen
-            if all(_alike(a, b) or _covers(a, b) or (not keep and _covers(b, a)) for a, b in zip(tpl.tokens, tokens)):
+            if all(a == b or _covers(a, b) or (not keep and _covers(b, a)) or _alike(a, b)
+                   for a, b in zip(tpl.tokens, tokens)):
                 return cand
         return None
 
