@@ -47,11 +47,13 @@ from .model.score import SCORERS, ScorerName, make_scorer
 if TYPE_CHECKING:
     from .model.baseline import Baseline
 
-SCHEMA_VERSION = 6  # 2: templates masked to <var>; 3: the template tree's settings renamed;
+SCHEMA_VERSION = 7  # 2: templates masked to <var>; 3: the template tree's settings renamed;
 # 4: the manifest inside its checksum, the arrays of one storage table, each scorer's own arrays;
 # 5: calibration_novelty (how often each source's normal sessions bring new templates), the
 # baseline period's session shapes and their counts
 # 6: key=value values and bracketed paths masked, bracketed tokens route as variables
+# 7: a name with single digits in its words (ssh2, jk2_init()) stays a constant in a template
+# and stands for every token of its digit shape
 KIND = "tracewatch-baseline"
 FILES = ("templates.json", "model.npz")
 VERSION_NAME = re.compile(r"^v\d{4,9}$")

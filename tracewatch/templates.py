@@ -2,7 +2,8 @@
 
 Stage: formats → **templates** → sessions. Variable parts (quoted values, URLs, paths, the
 value of ``key=value`` and any token holding a digit: numbers, ids, hex, UUIDs, IPs,
-durations) are masked to ``<var>``; then an online miner groups messages by token count and
+durations — but for a name with single digits inside its words, as ``ssh2``) are masked to
+``<var>``; then an online miner groups messages by token count and
 leading tokens and merges similar ones into templates with wildcards — the fixed-depth
 prefix-tree method:
 
@@ -14,11 +15,18 @@ where both the template and the message hold a constant (a wildcard, or a masked
 covers the other such as ``[<var>]`` and ``[main]``, counts neither way), so a line made mostly
 of variables joins on its few constants; and a token in brackets (``(alice)``) routes as a
 variable. Known limits: a digitless variable among the routing tokens, or two of them in a
-short statement, still split a template; a constant holding a digit (``ssh2``) is masked.
+short statement, still split a template; a constant with a run of two digits (``sha256``,
+``x86_64``) or a digit after a capital (``MD5``) is masked, and a name numbered below ten
+(``web3``, ``eth0``) is kept.
 
-Each template gets a stable id (a hash of the first masked message that created it) and a
-dense index used by the feature stage. Structured records (span names, syscalls) carry an
-``event`` and map to an event template directly. When the miner is frozen (scoring), baseline
+Messages that differ only in their digits are one template: the caches key messages by their
+digit shape (every digit as 0), so whether a token is kept is decided from that shape, and a
+kept token stands for every token of its shape (``eth1`` joins the template ``eth0`` made;
+the template keeps the text of the first message that made it).
+
+Each template gets a stable id (a hash of the first masked message that created it, kept
+names' digits as 0) and a dense index used by the feature stage. Structured records (span
+names, syscalls) carry an ``event`` and map to an event template directly. When the miner is frozen (scoring), baseline
 templates are matched but never changed; what is created after the freeze is *unseen*.
 """
 
@@ -26,6 +34,7 @@ from __future__ import annotations
 
 import hashlib
 import re
+import string
 from collections import Counter
 from collections.abc import Sequence
 from dataclasses import dataclass
@@ -42,7 +51,10 @@ _OPENING = "([{<'"
 # a host name with no digit: three or more lower-case DNS labels (a class name has capitals)
 _HOST = re.compile(r"[a-z][a-z-]*(?:\.[a-z][a-z-]*){2,}(?::[a-z]+)?")
 _DIGITS = frozenset("0123456789")
+_ASCII_LETTERS = frozenset(string.ascii_letters)
 _ZERO_DIGITS = bytes.maketrans(b"123456789", b"000000000")
+_ZERO_TEXT = str.maketrans("123456789", "000000000")
+_A_DIGIT = re.compile("[0-9]")
 _encode = methodcaller("encode", "utf-8", "surrogatepass")
 _zero = methodcaller("translate", _ZERO_DIGITS)
 
@@ -66,14 +78,35 @@ def _shapes(messages: list[str]) -> list[bytes]:
 _ID_RUN = re.compile(rb"(?<![0-9a-fA-F-])[a-fA-F-]*+[0-9][0-9a-fA-F-]*+")
 
 
+_LETTER = frozenset(string.ascii_letters.encode())
+_LOWER = frozenset(string.ascii_lowercase.encode())
+
+
+def _collapse_run(run: re.Match) -> bytes:
+    """The coarse form of an id-like run of a shape (its digits are 0): the run itself if it
+    holds one digit, right after two letters, the second lower-case (as in ``ssh2``, ``utf8``:
+    where ``_KEPT`` may keep a name); else ``00`` after such two letters (``node01``,
+    ``ssh12``: a run of two bytes or more, as a run of one byte there is kept) and ``0`` after
+    anything else (``12``, ``blk_-12``, ``10.0.0.1``), so a kept run and a marker stay apart."""
+    text, data, start = run.group(), run.string, run.start()
+    if text.count(b"0") == 1 and _after_word(data, start + text.find(b"0")):
+        return text
+    return b"00" if _after_word(data, start) else b"0"
+
+
+def _after_word(data: bytes, i: int) -> bool:
+    return i > 1 and data[i - 1] in _LOWER and data[i - 2] in _LETTER
+
+
 # byte classes for _collapse_id_runs: 2 a digit, 1 a hex letter or a dash, 0 anything else
 _ID_CLASS = bytes(2 if chr(c) in "0123456789" else 1 if chr(c) in "abcdefABCDEF-" else 0 for c in range(256))
+# and for the bytes before a digit: 3 a lower-case letter, 1 a capital, 0 anything else
+_WORD_CLASS = bytes(3 if c in _LOWER else 1 if c in _LETTER else 0 for c in range(256))
 
 
 def _collapse_id_runs(data: bytes) -> bytes:
-    """``_ID_RUN.sub(b"0", data)``, computed with numpy: every maximal run of hex digits and
-    dashes that holds a digit becomes one 0 (several times quicker than the regex, whose
-    engine visits every byte in Python's own loop)."""
+    """``_ID_RUN.sub(_collapse_run, data)``, computed with numpy (several times quicker than
+    the regex, whose engine visits every byte in Python's own loop)."""
     cls = np.frombuffer(data.translate(_ID_CLASS), dtype=np.uint8)
     if not cls.size:
         return data
@@ -81,23 +114,47 @@ def _collapse_id_runs(data: bytes) -> bytes:
     starts = in_run.copy()
     starts[1:] &= ~in_run[:-1]
     run = starts.cumsum(dtype=np.int32)  # the number of the run each byte is in (where in_run)
-    has_digit = np.zeros(int(run[-1]) + 1, dtype=bool)
-    has_digit[run[cls == 2]] = True
-    id_run = in_run & has_digit[run]
+    word = np.frombuffer((b"\0\0" + data).translate(_WORD_CLASS), dtype=np.uint8)
+    after_word = ((word[1:-1] >> 1) & word[:-2]).view(bool)  # after two letters, the second lower-case
+    digit = cls == 2
+    # per run, 1 for a digit after a word and 2 for any other: a run is kept where the sum is 1
+    weight = (digit.view(np.uint8) << 1) - (digit & after_word).view(np.uint8)
+    start_at = np.flatnonzero(starts)
+    if not start_at.size:
+        return data
+    collapsed = np.zeros(start_at.size + 1, dtype=bool)  # by run number; 0 before the first run
+    collapsed[1:] = np.add.reduceat(weight, start_at, dtype=np.int32) > 1
+    id_run = in_run & collapsed[run]
+    head = id_run & starts  # becomes 0, and the byte after it too after a word
+    head[1:] |= head[:-1] & after_word[:-1]  # such a run holds two bytes or more
     out = np.frombuffer(data, dtype=np.uint8).copy()
-    out[id_run & starts] = 48
-    return out[~id_run | starts].tobytes()
+    out[head] = 48
+    return out[~id_run | head].tobytes()
 
 
 def _coarse(shapes: list[bytes]) -> list[bytes]:
-    """Coarse cache keys: every id-like run (``_ID_RUN``) of a shape turned into one 0.
-    Messages with equal coarse keys mask alike: such a run lies inside one token, keeps a digit,
-    and touches none of what masking looks at besides digits (whitespace, quotes, ``=``, ``/``,
-    ``://``, trailing punctuation)."""
+    """Coarse cache keys: every id-like run (``_ID_RUN``) of a shape turned into one 0 (``00``
+    after a letter), but for a run of one digit after a word (``_collapse_run``). Messages
+    with equal coarse keys mask alike: such a run lies inside one token, keeps a digit, and
+    touches none of what masking looks at besides digits (whitespace, quotes, ``=``, ``/``,
+    ``://``, trailing punctuation); and ``_KEPT`` keeps a name only where every run stays."""
     joined = b"\0".join(shapes)
     if joined.count(b"\0") != len(shapes) - 1:
-        return [_ID_RUN.sub(b"0", s) for s in shapes]
+        return [_ID_RUN.sub(_collapse_run, s) for s in shapes]
     return _collapse_id_runs(joined).split(b"\0")
+
+
+# A name with digits that is kept as a constant: a word (letters, underscores, an opening
+# parenthesis of a call at the end) in which every digit is a single one right after two
+# letters, the second lower-case — ssh2, http2, utf8, md5, IPv4, TLSv1, mod_jk2, jk2_init(),
+# log4j. Common practice in naming (a rule of thumb): a protocol, encoding or module names its
+# version or variant with one digit after a lower-case word, while ids number their items with
+# several digits (node01, u123, CR9179), with capitals (PX1, CPU3) or after a dash or an
+# underscore (LK-4, worker_3). Decided from the digit shape, as the caches need (see
+# TemplateCache): the look-ahead rejects two digits in one run of hex digits, which the coarse
+# key cannot tell apart from a longer number (sha256, x86_64 and ab1cd2 stay variables).
+_KEPT = re.compile(r"(?!.*[0-9][0-9a-fA-F]*[0-9])(?:[A-Za-z][A-Za-z_]*)?[A-Za-z][a-z][0-9]"
+                   r"(?:[A-Za-z_]*[A-Za-z][a-z][0-9])*[A-Za-z_]*\(?")
 
 
 def _mask_token(tok: str) -> str:
@@ -119,6 +176,8 @@ def _mask_token(tok: str) -> str:
     else:
         while start < end - 1 and tok[start] in _LEADING:  # and leading brackets: [<var>]
             start += 1
+    if tok[start] in _ASCII_LETTERS and _KEPT.fullmatch(tok, start, end):  # ssh2, (IPv4), jk2_init():
+        return tok
     return tok[:start] + WILDCARD + tok[end:]
 
 
@@ -154,7 +213,8 @@ def mask(message: str) -> str:
     """The message with every variable part replaced by ``<var>``, whitespace normalised.
 
     Variable parts: double-quoted values, URLs, absolute paths, and any token holding a digit
-    (numbers, ids, hex, UUIDs, IPs, durations, versions — common practice in template mining),
+    (numbers, ids, hex, UUIDs, IPs, durations, versions — common practice in template mining)
+    but a name with single digits in its words (``ssh2``, ``jk2_init()``: ``_KEPT``),
     keeping a ``key=`` prefix and trailing punctuation. Token-wise string tests, not one large
     regex: about ten times faster on typical lines.
     """
@@ -177,9 +237,22 @@ def _covers(pattern: str, token: str) -> bool:
             and token.endswith(parts[-1]))
 
 
+def _alike(a: str, b: str) -> bool:
+    """Whether two tokens are one constant: equal, or kept names of one digit shape (``ssh1``
+    and ``ssh2``), which every cache already treats as one."""
+    return a == b or (len(a) == len(b) and a.translate(_ZERO_TEXT) == b.translate(_ZERO_TEXT))
+
+
+def _masked_key(masked: str) -> str:
+    """A masked message as the ``masked`` cache keys it: its digits (only kept names hold any)
+    as 0, so that messages of one digit shape share one entry."""
+    return masked.translate(_ZERO_TEXT) if _A_DIGIT.search(masked) else masked
+
+
 def _generalise(a: str, b: str) -> str:
-    """One token of a template that stands for both ``a`` and ``b``."""
-    if a == b or _covers(a, b):
+    """One token of a template that stands for both ``a`` and ``b`` (``a``'s text where both are
+    one constant)."""
+    if a == b or _covers(a, b) or _alike(a, b):
         return a
     return b if _covers(b, a) else WILDCARD
 
@@ -222,7 +295,8 @@ class TemplateCache:
     """Which template a message maps to, remembered at three levels so that most messages skip
     the masking and the tree:
 
-    - ``masked``: a masked message → the template the miner chose for it. This is the miner's
+    - ``masked``: a masked message (digits of kept names as 0: ``_masked_key``) → the template
+      the miner chose for it. This is the miner's
       memory (a daemon's checkpoint saves it), so a message maps where its like went before,
       even after that template was generalised;
     - ``shapes``: the message with every digit as 0 → template (messages that differ only in
@@ -415,7 +489,8 @@ class TemplateTree:
         return leaf, tuple(path)
 
     def _add_masked(self, masked: str) -> int:
-        idx = self.cache.masked.get(masked)
+        key = _masked_key(masked)
+        idx = self.cache.masked.get(key)
         if idx is not None:
             return idx
         tokens = masked.split(" ") if masked else [""]
@@ -427,7 +502,7 @@ class TemplateTree:
             for a, b in zip(tpl.tokens, tokens):
                 if a == WILDCARD or (a != b and (_covers(a, b) or _covers(b, a))):
                     wild += 1
-                elif a == b:
+                elif a == b or _alike(a, b):
                     same += 1
             held = len(tokens) - wild  # the positions where both hold a constant
             sim = same / held if held else 1.0
@@ -441,9 +516,9 @@ class TemplateTree:
                 tpl.tokens = list(map(_generalise, tpl.tokens, tokens))
             idx = best
         else:
-            idx = self._new(masked, tokens, path)
+            idx = self._new(key, tokens, path)  # the id: a hash of the key, whichever name came first
             leaf.append(idx)
-        self.cache.remember_masked(masked, idx)
+        self.cache.remember_masked(key, idx)
         return idx
 
     def _compatible(self, tokens: list[str]) -> int | None:
@@ -454,7 +529,8 @@ class TemplateTree:
         for cand in self._by_length.get(len(tokens), ()):
             tpl = self.templates[cand]
             keep = self.frozen and cand < self.n_seen
-            if all(a == b or _covers(a, b) or (not keep and _covers(b, a)) for a, b in zip(tpl.tokens, tokens)):
+            if all(a == b or _covers(a, b) or (not keep and _covers(b, a)) or _alike(a, b)
+                   for a, b in zip(tpl.tokens, tokens)):
                 return cand
         return None
 
