@@ -20,6 +20,8 @@ from tracewatch.formats import feed_lines
 from tracewatch.formats.otlp import OtlpJsonFormat
 from tracewatch.records import Record, Rejection
 
+from .daemon_helpers import DaemonProcess, free_port, no_daemon_left  # noqa: F401 - the fixture stops a daemon left running
+
 HERE = Path(__file__).resolve().parent
 TRACE = "5B8EFFF798038103D269B633813FC60C"  # the upper-case hex form the OTLP spec shows as valid
 
@@ -231,8 +233,6 @@ def test_the_daemon_following_services_files_as_they_grow_alerts_as_score_on_the
     `score` reads the same finished files in one batch. The daemon's alerts are score's: the
     same sessions (alert ids, trace ids, start and end), the same reasons and scores — whichever
     file's piece of a trace the daemon happened to read first."""
-    from .daemon_helpers import DaemonProcess, free_port, no_daemon_left  # noqa: F401
-
     logs = tmp_path / "logs"
     logs.mkdir()
     cfg = tmp_path / "tracewatch.toml"

@@ -7,6 +7,7 @@ from datetime import datetime, timezone
 from pathlib import Path
 
 from .conftest import run_cli
+from .daemon_helpers import DaemonProcess, free_port, no_daemon_left  # noqa: F401 - the fixture stops a daemon left running
 
 PATTERN = r"^(?P<ts>\S+) req=(?P<key>\S+) (?P<message>.*)$"
 
@@ -84,8 +85,6 @@ def test_the_daemon_logs_untimed_records_once_per_source_and_counts_them(tmp_pat
     `score` prints (once per source, not again within UNTIMED_WARN_S however many more come)
     and counts them in tracewatch_records_untimed_total{source}, carried across a restart."""
     from prometheus_client.parser import text_string_to_metric_families
-
-    from .daemon_helpers import DaemonProcess, free_port, no_daemon_left  # noqa: F401
 
     good = _lines(tmp_path, "good.log", _iso)
     cfg = _config(tmp_path, line_pattern=PATTERN)

@@ -58,6 +58,17 @@ def test_max_duration_by_tick_closes_exactly_the_sessions_past_it():
     assert {s.key for s in sz.open.values()} == {f"k{t}" for t in range(49, 100)} | {"long"}
 
 
+def test_a_span_session_whose_start_moves_earlier_closes_by_its_new_deadline():
+    # spans of one trace read out of time order (two services' files): the session starts at
+    # its earliest span, 40, so max_duration 50 ends it at 90, not at 150 (its first span read, 100)
+    sz = Sessionizer(SessionsConfig(idle_timeout_s=1000, max_duration_s=50), by_time=frozenset({"api"}))
+    closed = []
+    sz.add("api", "t1", 100.0, 100.0, 0, "b", 0, "b", closed)
+    sz.add("api", "t1", 40.0, 100.0, 1, "a", 1, "a", closed)
+    sz.tick(91.0, closed)
+    assert [(s.key, s.close_reason, s.first_ts, s.events) for s in closed] == [("t1", "max_duration", 40.0, [1, 0])]
+
+
 def test_max_duration_bookkeeping_stays_bounded():
     sz = Sessionizer(SessionsConfig(idle_timeout_s=1000, max_duration_s=3600, end_pattern="done"))
     closed = []

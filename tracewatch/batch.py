@@ -233,21 +233,18 @@ def score_files(cfg: Config, pairs: list[tuple[str, Path]], baseline, on_verdict
 def group_files(cfg: Config, pairs: list[tuple[str, Path]], baseline, store, *, on_bytes: OnBytes = None) -> Pipeline:
     """``score --incidents``: replay the files and group their alerts into incidents in ``store``
     as the daemon would — its tracker (and triage, when enabled), every session counted for the
-    rates — on the replay's event clock: before each verdict, incidents with no alert for
-    ``auto_resolve_s`` are resolved, as the daemon's tick would have."""
-    from .alerts.incidents import IncidentTracker, alert_time
+    rates — on the replay's event clock: incidents with no alert for ``auto_resolve_s`` are
+    resolved when that clock has moved on a minute, as the daemon's tick would have."""
+    from .alerts.incidents import alert_time, tracker_for
 
-    clock = [0.0]  # the newest event time replayed so far
-    triage = None
-    if cfg.triage.enabled:  # the kernel perceptron brings scikit-learn: only when asked
-        from .triage import Triage
-
-        triage = Triage(cfg.triage, Path(cfg.state_dir))
-    tracker = IncidentTracker(store, cfg.incidents, clock=lambda: clock[0], triage=triage)
+    clock = [0.0, 0.0]  # the newest event time replayed so far; the one of the last tick
+    tracker = tracker_for(store, cfg, clock=lambda: clock[0])
 
     def on_verdict(verdict: dict) -> None:
         clock[0] = max(clock[0], alert_time(verdict, lambda: clock[0]))
-        tracker.tick(clock[0])
+        if clock[0] - clock[1] >= 60:  # a tick is a transaction: once a minute of event time
+            clock[1] = clock[0]
+            tracker.tick(clock[0])
         tracker.add(verdict)
 
     pipeline = score_files(cfg, pairs, baseline, on_verdict, score_all=True, on_bytes=on_bytes)

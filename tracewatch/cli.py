@@ -125,6 +125,15 @@ def cmd_score(args) -> int:
     return EXIT_ALERTS if args.fail_on_alert and n_alerts else 0
 
 
+def _detail(store, cfg: Config, incident: dict) -> dict:
+    """An incident's detail form as `incidents show` and `score --incidents` print it."""
+    from .alerts import summary
+    from .alerts.alert import Redactor
+
+    return summary.detail(incident, max_samples=cfg.incidents.max_samples, redact=Redactor(cfg.redact),
+                          alert_counts=lambda b: store.alert_counts(b, incident_id=incident["id"]))
+
+
 def _score_incidents(cfg: Config, pairs, baseline, output: str, on_bytes) -> Pipeline:
     """`score --incidents`: the replay's alerts grouped as the daemon would, in a store of their
     own (a temporary directory; the daemon's incidents.db is never touched), then printed: one
@@ -132,7 +141,6 @@ def _score_incidents(cfg: Config, pairs, baseline, output: str, on_bytes) -> Pip
     import tempfile
 
     from .alerts import summary
-    from .alerts.alert import Redactor
     from .alerts.store import IncidentStore
     from .batch import group_files
 
@@ -141,10 +149,8 @@ def _score_incidents(cfg: Config, pairs, baseline, output: str, on_bytes) -> Pip
         try:
             pipeline = group_files(cfg, pairs, baseline, store, on_bytes=on_bytes)
             found = store.incidents(limit=-1)
-            details = [{**summary.detail(store.incident(r["id"]), max_samples=cfg.incidents.max_samples,
-                                         redact=Redactor(cfg.redact),
-                                         alert_counts=lambda b, i=r["id"]: store.alert_counts(b, incident_id=i)),
-                        "alert_ids": store.alert_ids(r["id"], limit=-1)} for r in found]
+            details = [{**_detail(store, cfg, store.incident(r["id"])), "alert_ids": store.alert_ids(r["id"], limit=-1)}
+                       for r in found]
         finally:
             store.close()
     if output == "json":
@@ -300,7 +306,6 @@ def cmd_incidents(args) -> int:
     import getpass
 
     from .alerts import summary
-    from .alerts.alert import Redactor
     from .alerts.incidents import set_status
     from .alerts.store import IncidentStore
     from .errors import IncidentNotFound
@@ -341,8 +346,7 @@ def cmd_incidents(args) -> int:
                 found = store.incident(args.id)
                 if found is None:
                     raise IncidentNotFound(args.id)
-                detail = summary.detail(found, max_samples=cfg.incidents.max_samples, redact=Redactor(cfg.redact),
-                                        alert_counts=lambda b: store.alert_counts(b, incident_id=args.id))
+                detail = _detail(store, cfg, found)
             else:  # IncidentNotFound, InvalidTransition: one line, exit code 1
                 out = set_status(store, args.id, action, by=f"cli:{getpass.getuser()}", note=args.note or "")
                 detail = summary.brief(out)
@@ -553,7 +557,7 @@ def build_parser() -> argparse.ArgumentParser:
     sub = p.add_subparsers(dest="command", required=True, parser_class=_Parser)
 
     def with_config(sp, *, adhoc: bool = False):
-        sp.add_argument("--config", "-c", metavar="FILE", help="TOML config file").complete = shtab.FILE
+        sp.add_argument("--config", "-c", metavar="FILE", help="TOML config file")
         if adhoc:
             sp.add_argument("--format", metavar="FMT", help="read INPUT in this format with no config "
                             "(the whole line is the message): text, jsonl, syslog, otlp-json, strace")

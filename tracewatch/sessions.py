@@ -156,6 +156,8 @@ class Sessionizer:
                     # the session starts at its earliest record whatever the order of arrival
                     # (which file the follower read first): its start and alert id stay the same
                     sess.first_ts, sess.first_raw, sess.first_offset = t, raw, offset
+                    if deadlines is not None:  # its max_duration deadline moves with it (the old entry is skipped)
+                        heapq.heappush(deadlines, (t + max_duration, next(self._created), sess))
             evs, samples = sess.events, sess.samples
             evs.append(event)
             if by_time and sess.times is not None:

@@ -54,7 +54,6 @@ _DIGITS = frozenset("0123456789")
 _ASCII_LETTERS = frozenset(string.ascii_letters)
 _ZERO_DIGITS = bytes.maketrans(b"123456789", b"000000000")
 _ZERO_TEXT = str.maketrans("123456789", "000000000")
-_A_DIGIT = re.compile("[0-9]")
 _encode = methodcaller("encode", "utf-8", "surrogatepass")
 _zero = methodcaller("translate", _ZERO_DIGITS)
 
@@ -246,7 +245,7 @@ def _alike(a: str, b: str) -> bool:
 def _masked_key(masked: str) -> str:
     """A masked message as the ``masked`` cache keys it: its digits (only kept names hold any)
     as 0, so that messages of one digit shape share one entry."""
-    return masked.translate(_ZERO_TEXT) if _A_DIGIT.search(masked) else masked
+    return masked if _DIGITS.isdisjoint(masked) else masked.translate(_ZERO_TEXT)
 
 
 def _generalise(a: str, b: str) -> str:
@@ -382,19 +381,21 @@ class TemplateTree:
         idxs = list(map(self.cache.shapes.get, shapes))
         if None in idxs:
             self._add_missed(messages, shapes, idxs)
+        self._count(idxs)
+        return idxs
+
+    def _count(self, idxs: list[int]) -> None:
+        """Count a block's records into their templates, once per template."""
         templates = self.templates
         for idx, n in Counter(idxs).items():
             templates[idx].count += n
-        return idxs
 
     def _add_mixed(self, messages: Sequence[str], events: Sequence[str | None]) -> list[int]:
         if None not in events:  # every record a structured event (spans): looked up in C, counted once
             idxs = list(map(self._events.get, events))
             if None in idxs:
                 idxs = [self.add_event(e, 0) if i is None else i for e, i in zip(events, idxs)]
-            templates = self.templates
-            for idx, n in Counter(idxs).items():
-                templates[idx].count += n
+            self._count(idxs)
             return idxs
         mined = [m for m, e in zip(messages, events) if e is None]
         it = iter(self.add_many(mined) if mined else ())

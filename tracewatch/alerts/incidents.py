@@ -47,12 +47,13 @@ import sqlite3
 import time
 from collections import Counter
 from collections.abc import Callable, Iterable
+from pathlib import Path
 from typing import Protocol
 
 from ..config import IncidentsConfig
 from ..errors import IncidentNotFound, InvalidTransition, StateError
 from . import summary
-from .store import FIRING, IncidentStore
+from .store import AUTO, FIRING, IncidentStore
 from .vectors import Vector, alert_vector, dot, sequence_ngrams, trim  # noqa: F401 - sequence_ngrams: the API
 
 log = logging.getLogger("tracewatch.incidents")
@@ -110,6 +111,18 @@ def alert_time(alert: dict, clock: Callable[[], float]) -> float:
     return clock()
 
 
+def tracker_for(store: IncidentStore, cfg, *, clock: Callable[[], float] = time.time,
+                on_outbox: Callable[[], None] | None = None) -> "IncidentTracker":
+    """The tracker the daemon and ``score --incidents`` use, with triage when ``[triage]
+    enabled`` (imported only then: the kernel perceptron brings scikit-learn)."""
+    triage = None
+    if cfg.triage.enabled:
+        from ..triage import Triage
+
+        triage = Triage(cfg.triage, Path(cfg.state_dir))
+    return IncidentTracker(store, cfg.incidents, clock=clock, on_outbox=on_outbox, triage=triage)
+
+
 class IncidentTracker:
     """Groups alerts into incidents in ``store`` (see the module docstring).
 
@@ -140,8 +153,9 @@ class IncidentTracker:
         """Count the verdict's session; group it when it is an alert and return its incident id
         (None for a verdict that is no alert)."""
         t = alert_time(alert, self.clock)
+        minute = (str(alert.get("source", "?")), int(t // 60))  # where its session is counted
         if not alert.get("alert"):
-            self._sessions[(str(alert.get("source", "?")), int(t // 60))] += 1
+            self._sessions[minute] += 1
             return None
         x = alert_vector(alert)
         store = self.store
@@ -151,12 +165,12 @@ class IncidentTracker:
                 known = store.incident_of(alert["alert_id"], db=db)
                 if known is not None:
                     return known
-                self._sessions[(str(alert.get("source", "?")), int(t // 60))] += 1
+                self._sessions[minute] += 1
                 store.count_sessions(self._sessions, db=db)  # first: the notification queued reads them
                 sig = summary.signature(alert)
                 best, best_d, same = None, math.inf, False
-                recur = self.cfg.recur_s if self.cfg.recur_s else self.cfg.window_s
-                candidates = store.candidates(t - self.cfg.window_s, t - max(recur, self.cfg.window_s), db=db)
+                candidates = store.candidates(t - self.cfg.window_s, t - max(self.cfg.recur_s, self.cfg.window_s),
+                                              db=db)
                 for iid, count, their_sig, recurring in candidates:
                     mine = bool(sig) and their_sig == sig
                     if (same or recurring) and not mine:
@@ -250,7 +264,7 @@ class IncidentTracker:
         medoid = members[max(range(len(members)), key=closeness.__getitem__)][0]
         reopened = row["status"] == "resolved"  # resolved automatically, and the same problem is back
         if reopened:
-            store.set_status(iid, "open", by="auto: the same problem again", note="", now=self.clock(), db=db)
+            store.set_status(iid, "open", by=AUTO + "the same problem again", note="", now=self.clock(), db=db)
             row["status"] = "open"
         stats = row["stats"]
         _stats_add(stats, alert)
@@ -316,7 +330,7 @@ class IncidentTracker:
         limit = now - self.cfg.auto_resolve_s
         done = []
         for iid in self.store.quiet_incidents(limit):
-            why = f"auto: no alert for {self.cfg.auto_resolve_s:g} s"
+            why = f"{AUTO}no alert for {self.cfg.auto_resolve_s:g} s"
             try:
                 set_status(self.store, iid, "resolve", by=why, now=self.clock(), when_quiet_since=limit)
             except (IncidentNotFound, InvalidTransition):  # changed meanwhile: left as it is

@@ -147,6 +147,7 @@ _READ_COLUMNS = f"{_LIST_COLUMNS}, {_SESSIONS}"
 # what the tracker may change on an incident row
 _UPDATABLE = frozenset({"count", "first_seen", "last_seen", "stats", "centroid", "representative", "title",
                         "escalated"})
+AUTO = "auto: "  # how status_by begins where tracewatch itself changed the status (auto-resolve, reopen)
 _SQLITE_INT = 1 << 63  # SQLite integers are signed 64-bit: an id outside cannot exist
 
 
@@ -388,14 +389,15 @@ class IncidentStore:
         """(id, count, signature, recurring) of the incidents an alert may join: open or
         acknowledged with an alert since ``active_since``, or expected; and, ``recurring``, those
         with a signature and an alert since ``recur_since`` that are open, acknowledged or were
-        resolved automatically (status_by "auto: ...") — which only an alert of their signature
+        resolved automatically (status_by starting with :data:`AUTO`) — which only an alert of their signature
         joins. The counts are as stored (checked by :meth:`group`)."""
-        return db.execute(
-            "SELECT id, count, signature, NOT ((status IN ('open', 'acknowledged') AND last_seen >= ?) "
-            "OR status = 'expected') FROM incidents WHERE (status IN ('open', 'acknowledged') AND last_seen >= ?) "
-            "OR status = 'expected' OR (signature != '' AND last_seen >= ? AND (status IN ('open', 'acknowledged') "
-            "OR (status = 'resolved' AND status_by LIKE 'auto:%')))",
-            (active_since, active_since, recur_since)).fetchall()
+        found = db.execute(
+            "SELECT id, count, signature, status, last_seen FROM incidents WHERE status = 'expected' "
+            "OR (status IN ('open', 'acknowledged') AND last_seen >= ?) OR (signature != '' AND last_seen >= ? "
+            "AND (status IN ('open', 'acknowledged') OR (status = 'resolved' AND status_by LIKE ?)))",
+            (active_since, recur_since, AUTO + "%")).fetchall()
+        return [(iid, count, sig, status == "resolved" or (status != "expected" and last_seen < active_since))
+                for iid, count, sig, status, last_seen in found]
 
     def group(self, incident_id: int, *, db: sqlite3.Connection) -> rows.Group:
         """What grouping needs of an incident, checked: its row, the sum of its alerts' vectors

@@ -225,13 +225,18 @@ def duration(seconds: float) -> str:
     return f"{minutes / 60:.1f} h" if minutes < 48 * 60 else f"{minutes / 1440:.3g} d"
 
 
+def share_text(share: float) -> str:
+    """A share of sessions as a percentage: "4%", and "0.4%" below one percent."""
+    return f"{share:.0%}" if share >= 0.01 else f"{share:.1%}"
+
+
 def rate_text(d: dict) -> str:
     """"12 of 300 sessions of locker-api in 10 min (4%)" for the list or detail form."""
     rate, share = d["rate"], d["reach"]["share"]
     of = ", ".join(d.get("sources") or []) or "its sources"
     if share is None:
         return f"{rate['alerts']} alerts in {duration(rate['window_s'])} (sessions of {of} not counted)"
-    pct = f"{share:.0%}" if share >= 0.01 else f"{share:.1%}"
+    pct = share_text(share)
     return f"{rate['alerts']} of {rate['sessions']} sessions of {of} in {duration(rate['window_s'])} ({pct})"
 
 
@@ -338,7 +343,7 @@ def table(rows: list[dict], *, width: int = 60) -> str:
         sources = sources if len(sources) <= 16 else sources[:15] + "…"
         t = safe(r["title"])
         share = (r.get("reach") or {}).get("share")  # (none from an older daemon's API)
-        of = "-" if share is None else f"{share:.0%} of {r['rate']['sessions']}"
+        of = "-" if share is None else f"{share_text(share)} of {r['rate']['sessions']}"
         out.append(f"{r['id']:>5}  {r['status']:<12}  {r['count']:>6}  {of:>11}  {r.get('severity', '-'):<8}  "
                    f"{_utc(r['last_seen']):<19}  {sources:<16}  {t if len(t) <= width else t[:width - 1] + '…'}")
     return "\n".join(out)

@@ -31,7 +31,7 @@ from operator import and_
 
 from ..config import SourceConfig
 from ..records import Columns, Record, Rejection
-from ..timestamps import MONTHS, iso8601_numpy, yearless_midnight
+from ..timestamps import MONTHS, infer_year, iso8601_numpy
 from . import Format, Output, _list
 
 # RFC 5424 section 6.2.1, table 2 (the same names as RFC 3164 section 4.1.1)
@@ -138,10 +138,8 @@ def parse(line: str, now: float) -> SyslogMessage | None:
             return _rfc5424((*m.groups()[:6], NIL, m.group(7)), "bad_structured_data")
     if (m := _RFC3164.match(line)) is not None:
         pri, mon, day, hh, mm, ss, host, msg = m.groups()
-        midnight = yearless_midnight(MONTHS[mon], int(day), int(now // 86400))
-        if midnight is None or int(hh) > 23 or int(mm) > 59 or int(ss) > 60:
-            return _bsd("rfc3164", pri, None, host, msg, "bad_timestamp")
-        return _bsd("rfc3164", pri, midnight + int(hh) * 3600 + int(mm) * 60 + int(ss), host, msg, None)
+        ts = infer_year(MONTHS[mon], int(day), f"{hh}:{mm}:{ss}", None, now)
+        return _bsd("rfc3164", pri, ts, host, msg, None if ts is not None else "bad_timestamp")
     if (m := _FILE3339.match(line)) is not None:
         pri, stamp, host, msg = m.groups()
         try:

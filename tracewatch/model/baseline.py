@@ -288,7 +288,7 @@ def shape_hash(source: str, seq: Seq) -> int:
 
 def _shapes(sessions: list[tuple[str, Seq]]) -> tuple[np.ndarray, np.ndarray]:
     """Every distinct shape of ``sessions`` as sorted hashes, and how many sessions had it."""
-    counts = Counter(shape_hash(src, seq) for src, seq in sessions)
+    counts = Counter({shape_hash(src, seq): n for (src, seq), n in Counter(sessions).items()})
     hashes = np.array(sorted(counts), dtype=np.int64)
     return hashes, np.array([counts[h] for h in hashes.tolist()], dtype=np.float64)
 

@@ -17,7 +17,7 @@ import numpy as np
 from sklearn.base import BaseEstimator, TransformerMixin
 from sklearn.utils.validation import check_array, check_is_fitted
 
-from ..features import NgramWeights, SessionVector
+from ..features import NgramWeights
 from .calibrate import Calibration
 
 
@@ -27,10 +27,6 @@ class NgramVectorizer(TransformerMixin, BaseEstimator, NgramWeights):
     def fit(self, X: Sequence[Sequence[int]], y=None, sample_weight: Sequence[float] | None = None
             ) -> "NgramVectorizer":
         return self.count(X, sample_weight)
-
-    def vector(self, seq: Sequence[int]) -> SessionVector:
-        check_is_fitted(self)
-        return super().vector(seq)
 
     def transform(self, X: Sequence[Sequence[int]]):
         check_is_fitted(self)
@@ -49,8 +45,6 @@ class ConformalThreshold(BaseEstimator, Calibration):
         guarantee is about exchangeable sessions, so there are no sample weights."""
         if sample_weight is not None:
             raise ValueError("ConformalThreshold takes no sample weights: give every calibration score")
-        if not 0 < self.false_alarm_rate < 1:
-            raise ValueError(f"false_alarm_rate must be between 0 and 1, not {self.false_alarm_rate!r}")
         return self.calibrate(check_array(X, ensure_2d=False, dtype=np.float64))
 
     def p_values(self, X) -> np.ndarray:

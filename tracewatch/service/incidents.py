@@ -14,7 +14,7 @@ import time
 from collections.abc import Callable
 from pathlib import Path
 
-from ..alerts.incidents import IncidentTracker, set_status
+from ..alerts.incidents import IncidentTracker, set_status, tracker_for
 from ..alerts.sinks import Notifier
 from ..alerts.store import STATUSES, IncidentStore
 from ..config import Config
@@ -44,13 +44,7 @@ class Incidents:
             state_dir = Path(self.cfg.state_dir)
             self._store = IncidentStore.open(state_dir)
             self.notifier = Notifier.from_config(self._store, self.cfg)
-            triage = None
-            if self.cfg.triage.enabled:  # the kernel perceptron brings scikit-learn: only when asked
-                from ..triage import Triage
-
-                triage = Triage(self.cfg.triage, state_dir)
-            self.tracker = IncidentTracker(self._store, self.cfg.incidents, clock=self.clock,
-                                           on_outbox=self.notifier.wake, triage=triage)
+            self.tracker = tracker_for(self._store, self.cfg, clock=self.clock, on_outbox=self.notifier.wake)
         return self._store
 
     def start(self) -> None:

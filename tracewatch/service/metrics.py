@@ -65,14 +65,12 @@ _BY_REASON = (  # key, name, help, the reasons known in advance (each format has
     ("alerts", "tracewatch_alerts_total", "Alerts raised, by reason (an alert may have several).",
      (REASON_FAR, REASON_UNSEEN)),
 )
-_BY_SINK = (  # key in a sink's notifications, name, help, labels beside sink
-    ("sent", "tracewatch_notifications_sent_total", "Incident notifications the sink's receiver accepted."),
-    ("retried", "tracewatch_notifications_failed_total", "Incident notifications that did not get through: "
-     "reason retried (unreachable, timeout, 408/425/429/5xx; tried again, counted since the start) or "
-     "rejected (another 4xx; set aside for good)."),
-    ("pending", "tracewatch_notifications_pending", "Incident notifications in the outbox not yet delivered "
-     "to the sink."),
-)
+# the notification families, labelled by sink (name, help)
+_SENT = ("tracewatch_notifications_sent_total", "Incident notifications the sink's receiver accepted.")
+_FAILED = ("tracewatch_notifications_failed_total", "Incident notifications that did not get through: "
+           "reason retried (unreachable, timeout, 408/425/429/5xx; tried again, counted since the start) or "
+           "rejected (another 4xx; set aside for good).")
+_PENDING = ("tracewatch_notifications_pending", "Incident notifications in the outbox not yet delivered to the sink.")
 _PLAIN_COUNTERS = (
     ("sessions_evicted", "tracewatch_sessions_evicted_total",
      "Sessions closed early because max_open_sessions was reached."),
@@ -163,9 +161,9 @@ def _incident_families(snap: dict) -> Iterator[Metric]:
             fam.add_metric([status], n)
         yield fam
     sinks = snap.get("notifications", {})
-    sent, failed, pending = (CounterMetricFamily(*_BY_SINK[0][1:], labels=["sink"]),
-                             CounterMetricFamily(*_BY_SINK[1][1:], labels=["sink", "reason"]),
-                             GaugeMetricFamily(*_BY_SINK[2][1:], labels=["sink"]))
+    sent, failed, pending = (CounterMetricFamily(*_SENT, labels=["sink"]),
+                             CounterMetricFamily(*_FAILED, labels=["sink", "reason"]),
+                             GaugeMetricFamily(*_PENDING, labels=["sink"]))
     for sink, c in sorted(sinks.items()):
         sent.add_metric([sink], c["sent"])
         failed.add_metric([sink, "retried"], c["retried"])

@@ -17,7 +17,7 @@ from urllib.parse import urlencode
 from datetime import datetime, timezone
 
 from ..alerts.store import STATUSES
-from ..alerts.summary import duration, rate_text
+from ..alerts.summary import duration, rate_text, share_text
 
 CAUTION = ("This page shows text taken from logs (after the configured redaction patterns); logs can hold "
            "secrets and personal data. Keep this port on loopback or behind your own access control. "
@@ -120,7 +120,7 @@ def bars_svg(tl: dict, *, width: int = 720, height: int = 120, axis: bool = True
 
 def _share(inc: dict) -> str:
     share = inc["reach"]["share"]
-    return "" if share is None else f' <small>({share:.0%} of {int(inc["rate"]["sessions"])})</small>'
+    return "" if share is None else f' <small>({share_text(share)} of {int(inc["rate"]["sessions"])})</small>'
 
 
 def _href(**params) -> str:
