@@ -11,13 +11,15 @@ import os
 import sys
 from collections.abc import Callable, Iterator
 from contextlib import contextmanager
+from functools import partial
 from itertools import repeat
 from operator import itemgetter
 from pathlib import Path
 
 from .config import Config
 from .errors import ConfigError, InputError
-from .pipeline import Pipeline, problem_line
+from .pipeline import Formatted, Pipeline, problem_line
+from .sources.ahead import CAN_FORK, read_ahead
 from .sources.files import expand_inputs, read_blocks
 
 
@@ -88,22 +90,36 @@ def file_time(stream: str) -> Callable[[], float] | None:
 
 
 def run_files(pipeline: Pipeline, pairs: list[tuple[str, Path]], *,
-              on_block: Callable[[str, list[int]], None] | None = None, on_bytes: OnBytes = None) -> None:
+              on_block: Callable[[str, list[int]], None] | None = None, on_bytes: OnBytes = None,
+              ahead: bool = CAN_FORK) -> None:
     """Feed every file to the pipeline, then flush it; ``on_block`` sees the stream and the
-    line offsets of every block read, before the pipeline does, ``on_bytes`` the bytes of every read. Several files are read merged
-    by record time (:class:`TimeMerge`), as the daemon sees them arrive; ``templates`` (with
-    ``on_block``) reads them one after another, in input order."""
+    line offsets of every block read, before the pipeline does, ``on_bytes`` the bytes of every
+    read. Several files are read merged by record time (:class:`TimeMerge`), as the daemon sees
+    them arrive; one file, or ``templates`` (with ``on_block``) one after another in input order,
+    is read and parsed ahead in a process of its own (``ahead``: sources/ahead.py)."""
     if len(pairs) > 1 and on_block is None:
         TimeMerge(pipeline, pairs, on_bytes).run()
         return
     for source, path in pairs:
         stream = str(path)
-        for lines, offsets, repairs in read_blocks(path, pipeline.cfg.source(source).line_limit, on_bytes):
-            if on_block is not None:
+        for offsets, formatted, n_bytes in read_ahead(partial(_formatted, pipeline, source, path), in_child=ahead):
+            if on_bytes is not None:
+                on_bytes(n_bytes)
+            if on_block is not None and offsets:
                 on_block(stream, offsets)
-            pipeline.feed_block(source, stream, lines, offsets, repairs)
+            pipeline.take(source, stream, formatted)
         pipeline.end_stream(source, stream)
     pipeline.flush()
+
+
+def _formatted(pipeline: Pipeline, source: str, path: Path) -> Iterator[tuple[list[int], Formatted, int]]:
+    """The format stage of one file, block by block — ``(line offsets, what the format made of
+    the lines, bytes read)`` — and at its end what the format still held."""
+    stream, read = str(path), []
+    for lines, offsets, repairs in read_blocks(path, pipeline.cfg.source(source).line_limit, read.append):
+        yield offsets, pipeline.format_block(source, stream, lines, offsets, repairs), sum(read)
+        read.clear()
+    yield [], pipeline.format_end(source, stream), sum(read)
 
 
 class TimeMerge:

@@ -13,7 +13,7 @@ from __future__ import annotations
 
 from collections import Counter
 from collections.abc import Callable
-from typing import TYPE_CHECKING
+from typing import TYPE_CHECKING, NamedTuple
 
 from .alerts.alert import Redactor, build_verdict
 from .config import Config
@@ -28,6 +28,14 @@ if TYPE_CHECKING:
 
 SCORE_BATCH = 256
 TICK_EVERY = 1024
+
+
+class Formatted(NamedTuple):
+    """The format stage's output for a block of lines (:meth:`Pipeline.format_block`)."""
+
+    lines: int  # lines read
+    repairs: list[str]  # how each mended line was mended when decoded (``invalid_utf8``, ...)
+    parts: list[Columns]  # the records and rejections, ``TICK_EVERY`` lines at a time
 
 
 UNTIMED = "records with a session key carry no usable time"  # what input_problems says of untimed records
@@ -100,14 +108,30 @@ class Pipeline:
                    repairs: list[str | None] | None = None) -> None:
         """Feed a block of lines of one stream (``repairs``: how each line was mended when it was
         decoded, None for all clean) — what the batch reader and the daemon's followers hand
-        on. The format reads them ``TICK_EVERY`` lines at a time, so what a part allocates (a
-        JSON object per line) is freed before the next one."""
+        on: :meth:`format_block`, then :meth:`take`."""
+        self.take(source, stream, self.format_block(source, stream, lines, offsets, repairs))
+
+    def format_block(self, source: str, stream: str, lines: list[str], offsets: list[int],
+                     repairs: list[str | None] | None = None) -> Formatted:
+        """The format stage of a block of lines, ``TICK_EVERY`` lines at a time (so what a part
+        allocates, a JSON object per line, is freed before the next one). It needs nothing from
+        the later stages: a batch run computes it in a process of its own (sources/ahead.py)."""
         fmt = self._format(source, stream)
-        if repairs is not None:
-            self.repaired.update((source, r) for r in repairs if r is not None)
-        self.lines[source] += len(lines)
-        for lo in range(0, len(lines), TICK_EVERY):
-            self._take(source, stream, fmt.read_block(lines[lo:lo + TICK_EVERY], offsets[lo:lo + TICK_EVERY]))
+        return Formatted(len(lines), [r for r in repairs if r is not None] if repairs is not None else [],
+                         [fmt.read_block(lines[lo:lo + TICK_EVERY], offsets[lo:lo + TICK_EVERY])
+                          for lo in range(0, len(lines), TICK_EVERY)])
+
+    def format_end(self, source: str, stream: str) -> Formatted:
+        """What the format of a stream that ended still holds; the format is let go."""
+        fmt = self._formats.pop((source, stream), None)
+        return Formatted(0, [], [fmt.finish()] if fmt is not None else [])
+
+    def take(self, source: str, stream: str, formatted: Formatted) -> None:
+        """The format stage's output of a block: counted, then on through the later stages."""
+        self.repaired.update((source, r) for r in formatted.repairs)
+        self.lines[source] += formatted.lines
+        for cols in formatted.parts:
+            self._take(source, stream, cols)
 
     def end_stream(self, source: str, stream: str) -> None:
         """A file ended (batch) or was rotated away: take what its format still holds.
@@ -115,9 +139,7 @@ class Pipeline:
         A batch run of one file (no clock) closes idle sessions by that file's own times; the
         clock starts again for the next file of a ``templates`` run. Several files of a
         ``fit`` or ``score`` run are merged by time first (tracewatch/batch.py)."""
-        fmt = self._formats.pop((source, stream), None)
-        if fmt is not None:
-            self._take(source, stream, fmt.finish())
+        self.take(source, stream, self.format_end(source, stream))
         if self.clock is None and self.hold is None:
             self._file_watermark = 0.0
 

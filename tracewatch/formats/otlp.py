@@ -331,6 +331,8 @@ def _enums(values: list, names: dict[str, int]) -> list[int]:
     kinds = set(map(type, values))
     if kinds == {int}:
         return values
+    if kinds <= {int, type(None)}:  # a field spans may leave out (a status without a code): 0
+        return [v or 0 for v in values]
     if kinds == {str}:  # the enum names: looked up in C
         return list(map(names.get, values, repeat(0)))
     return list(map(_enum, values, repeat(names)))

@@ -1,0 +1,106 @@
+"""Read ahead: a batch run's reading and format stage in a process of its own.
+
+Stage: **sources** (batch) → formats. A batch run (``fit``, ``score``, ``templates``) spends a
+third to two thirds of its time reading and parsing lines, work that needs nothing from the
+stages after it. :func:`read_ahead` runs a generator of such work in a child process forked for
+one file, one item ahead of the caller, so the parsing of the next block overlaps the mining,
+sessions and scoring of this one on a second core. The child is a fork of the caller: it runs
+the caller's own objects (its pipeline's formats), so both processes run one code path, and the
+items come back pickled through a pipe, whose buffer is what bounds the memory in between.
+
+Where ``os.fork`` is missing (or not safe: only Linux is trusted here) the generator simply
+runs in the caller's process; the items are the same either way (``tests/test_ahead.py``).
+An error in the child reaches the caller as the same exception (a tracewatch error keeps its
+one-line message); a child that dies without a word is reported as an internal error.
+"""
+
+from __future__ import annotations
+
+import fcntl
+import os
+import signal
+import sys
+import traceback
+from collections.abc import Callable, Iterator
+from multiprocessing.connection import Connection
+from typing import TypeVar
+
+from ..errors import TracewatchError
+
+T = TypeVar("T")
+
+# fork is used on Linux only: elsewhere (macOS) forking a process with system libraries loaded
+# is not safe, and a spawned child would start over without the caller's objects
+CAN_FORK = hasattr(os, "fork") and sys.platform.startswith("linux")
+
+_ITEM, _END, _ERROR = 0, 1, 2
+
+
+class ReaderDied(RuntimeError):
+    """The child process reading ahead failed outside tracewatch's own errors."""
+
+
+def read_ahead(produce: Callable[[], Iterator[T]], *, in_child: bool = CAN_FORK) -> Iterator[T]:
+    """The items of ``produce()``, computed in a forked child process (``in_child``) or here."""
+    if not in_child:
+        yield from produce()
+        return
+    sys.stdout.flush()  # nothing buffered is written twice (the child never flushes: os._exit)
+    sys.stderr.flush()
+    read_fd, write_fd = os.pipe()
+    _widen(write_fd)
+    pid = os.fork()
+    if pid == 0:  # the child: produce, send, and leave without running the caller's clean-up
+        os.close(read_fd)
+        _produce(produce, Connection(write_fd, readable=False))
+    os.close(write_fd)
+    conn = Connection(read_fd, writable=False)
+    try:
+        while True:
+            try:
+                kind, value = conn.recv()
+            except EOFError:
+                raise ReaderDied("the reading process ended without a word") from None
+            if kind == _END:
+                return
+            if kind == _ERROR:
+                raise value
+            yield value
+    finally:
+        conn.close()
+        try:
+            os.kill(pid, signal.SIGKILL)  # done or given up: it holds nothing worth finishing
+        except ProcessLookupError:
+            pass
+        os.waitpid(pid, 0)
+
+
+def _widen(fd: int) -> None:
+    """A pipe buffer of the largest size allowed (1 MiB by default, against 64 KiB): a block's
+    items cross in a few writes instead of one wake-up of each side per 64 KiB."""
+    try:
+        with open("/proc/sys/fs/pipe-max-size") as fh:
+            fcntl.fcntl(fd, fcntl.F_SETPIPE_SZ, int(fh.read()))
+    except (OSError, ValueError, AttributeError):
+        pass  # the default buffer works, only with more wake-ups
+
+
+def _produce(produce: Callable[[], Iterator], conn: Connection) -> None:
+    code = 0
+    try:
+        for item in produce():
+            conn.send((_ITEM, item))
+        conn.send((_END, None))
+    except BrokenPipeError:  # the caller stopped reading
+        code = 1
+    except BaseException as exc:  # noqa: BLE001 - every failure is handed to the caller
+        code = 1
+        # a tracewatch error as it is (its message is the user's answer), anything else with
+        # the child's traceback, which the caller's own would not show
+        sent = exc if isinstance(exc, TracewatchError) else ReaderDied("".join(traceback.format_exception(exc)))
+        try:
+            conn.send((_ERROR, sent))
+        except Exception:  # noqa: BLE001 - the caller sees the pipe close
+            pass
+    finally:
+        os._exit(code)
