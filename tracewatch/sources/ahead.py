@@ -17,9 +17,13 @@ one-line message); a child that dies without a word is reported as an internal e
 from __future__ import annotations
 
 import fcntl
+import gc
 import os
+import pickle
+import queue
 import signal
 import sys
+import threading
 import traceback
 from collections.abc import Callable, Iterator
 from multiprocessing.connection import Connection
@@ -34,6 +38,7 @@ T = TypeVar("T")
 CAN_FORK = hasattr(os, "fork") and sys.platform.startswith("linux")
 
 _ITEM, _END, _ERROR = 0, 1, 2
+AHEAD = 8  # items the child may have sent that the caller has not taken yet (each one block)
 
 
 class ReaderDied(RuntimeError):
@@ -52,27 +57,46 @@ def read_ahead(produce: Callable[[], Iterator[T]], *, in_child: bool = CAN_FORK)
     pid = os.fork()
     if pid == 0:  # the child: produce, send, and leave without running the caller's clean-up
         os.close(read_fd)
+        gc.freeze()  # the caller's objects are never scanned here, so their pages stay shared
         _produce(produce, Connection(write_fd, readable=False))
     os.close(write_fd)
     conn = Connection(read_fd, writable=False)
+    # a thread takes the items off the pipe as they come (reading releases the GIL), so the
+    # child runs up to AHEAD items ahead rather than one pipe buffer
+    waiting: queue.Queue[bytes | None] = queue.Queue(AHEAD)
+    pump = threading.Thread(target=_pump, args=(conn, waiting), name="tracewatch-read-ahead", daemon=True)
+    pump.start()
     try:
         while True:
-            try:
-                kind, value = conn.recv()
-            except EOFError:
-                raise ReaderDied("the reading process ended without a word") from None
+            data = waiting.get()
+            if data is None:
+                raise ReaderDied("the reading process ended without a word")
+            kind, value = pickle.loads(data)
             if kind == _END:
                 return
             if kind == _ERROR:
                 raise value
             yield value
     finally:
-        conn.close()
         try:
             os.kill(pid, signal.SIGKILL)  # done or given up: it holds nothing worth finishing
         except ProcessLookupError:
             pass
         os.waitpid(pid, 0)
+        while pump.is_alive():  # it ends at the end of the pipe: room for its last item
+            try:
+                waiting.get(timeout=0.05)
+            except queue.Empty:
+                pass
+        conn.close()
+
+
+def _pump(conn: Connection, waiting: queue.Queue) -> None:
+    try:
+        while True:
+            waiting.put(conn.recv_bytes())
+    except (EOFError, OSError):
+        waiting.put(None)
 
 
 def _widen(fd: int) -> None:
