@@ -19,6 +19,7 @@ Adding a format: a module here with a :class:`Format` subclass (its ``name``, ``
 from __future__ import annotations
 
 import importlib
+import time
 from collections.abc import Callable, Sequence
 from typing import TYPE_CHECKING, ClassVar
 
@@ -58,14 +59,20 @@ class Format:
 
     def __init__(self, src: SourceConfig) -> None:
         self.source = src.name
+        self.today: Callable[[], float] | None = None  # see dated_by (None: the wall clock)
 
     def open_stream(self, stream: str) -> None:
         """Told the name of the stream it reads before the first line (a file's path in batch
         runs, ``path@dev:ino`` live); formats that take something from a file's name use it."""
 
     def dated_by(self, today: Callable[[], float]) -> None:
-        """Told what "now" is for stamps without a year (the wall clock unless told: a file
-        replayed in batch is dated by its modification time); formats that read them use it."""
+        """Told what "now" is for stamps without a year or date (the wall clock unless told: a
+        file replayed in batch is dated by its modification time); formats read it by :meth:`now`."""
+        self.today = today
+
+    def now(self) -> float:
+        """"Now" for stamps without a year or date (:meth:`dated_by`)."""
+        return time.time() if self.today is None else self.today()
 
     @staticmethod
     def alert_fields(src: SourceConfig, key: str | None) -> dict:

@@ -53,12 +53,9 @@ class TextFormat(Format):
         self._key_group = self._key.groupindex["key"] if self._key is not None else 0
         self._cont = re.compile(src.continuation_pattern) if src.continuation_pattern else None
         self._cont_max = src.continuation_max
-        self._stamps = StampReader(src.ts_format)  # the layout, chosen once per stream
+        self._stamps = StampReader(src.ts_format, self.now)  # the layout, chosen once per stream
         self._pending: Record | None = None
         self._pending_lines = 0
-
-    def dated_by(self, today) -> None:
-        self._stamps.today = today
 
     # -- one line -----------------------------------------------------------------------------
     def _key_of(self, line: str) -> str | None:
