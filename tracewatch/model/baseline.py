@@ -177,13 +177,14 @@ class Baseline:
         from ..templates import SEVERE
 
         templates, n_seen, rate = self.miner.templates, self.miner.n_seen, self.false_alarm_rate
+        steady = {source: self.novelty_rate(source) <= rate for source in set(sources)}  # not drifting
         out = np.zeros(len(seqs), dtype=bool)
         for i, seq in enumerate(seqs):
             if max(seq) < n_seen:
                 continue
             # an index past the miner's templates (a refit gate's template id this baseline
             # does not know) has no level: it counts as severe, as every unseen event used to
-            out[i] = self.novelty_rate(sources[i]) <= rate or any(
+            out[i] = steady[sources[i]] or any(
                 e >= len(templates) or templates[e].severity >= SEVERE for e in seq if e >= n_seen)
         return out
 
