@@ -23,13 +23,13 @@ import orjson
 
 from .config import CONTAINER_FORMATS, SourceConfig, parse_config
 from .errors import ConfigError, InputError
-from .formats import Rejection, feed_lines, make_format
+from .formats import FORMATS, Rejection, feed_lines, make_format
 from .timestamps import detect
 
 SAMPLE_LINES = 3000
 SAMPLE_BYTES = 64 * 2**20  # an OTLP/JSON line holds a whole export batch
 # formats recognised by their own reader, most specific first; text reads anything, so it is the fallback
-STRUCTURED = ("otlp-json", "otlp-logs-json", "journald", "cri", "docker-json", "syslog", "strace", "jsonl")
+STRUCTURED = tuple(f for f in FORMATS if f != "text")
 LEVELS = {"TRACE", "DEBUG", "INFO", "NOTICE", "WARN", "WARNING", "ERROR", "ERR", "CRITICAL", "CRIT", "FATAL",
           "ALERT", "EMERG", "SEVERE"}
 _PAIR = re.compile(r"(?<![\w.-])([A-Za-z_][\w.-]{0,31})=([^\s\]\[,;()\"'=]+)")
@@ -88,7 +88,10 @@ class Trial:
     lines: int  # non-empty lines
     rejected: int
     keys: list  # session key of every record
-    records: int
+
+    @property
+    def records(self) -> int:
+        return len(self.keys)
 
     @property
     def read_share(self) -> float:
@@ -105,7 +108,7 @@ def trial(lines: list[str], options: dict) -> Trial:
     records = [x if not isinstance(x, Rejection) else x.record for x in out]
     records = [r for r in records if r is not None]
     rejected = sum(isinstance(x, Rejection) and x.reason != "no_message_field" for x in out)
-    return Trial(sum(bool(line.strip()) for line in lines), rejected, [r.key for r in records], len(records))
+    return Trial(sum(bool(line.strip()) for line in lines), rejected, [r.key for r in records])
 
 
 def key_share(keys: list) -> tuple[float, int]:
@@ -296,7 +299,8 @@ INHERENT = {"otlp-json": ("traceId", "the span's start time (startTimeUnixNano)"
 def guess(lines: list[str]) -> Starter:
     """The starter source for a sample of lines: its format (the structured reader that reads
     the most lines, text when none reads half), then that format's own guesses."""
-    shares = {fmt: trial(lines, {"format": fmt}).read_share for fmt in STRUCTURED}
+    trials = {fmt: trial(lines, {"format": fmt}) for fmt in STRUCTURED}
+    shares = {fmt: t.read_share for fmt, t in trials.items()}
     ranked = sorted(STRUCTURED, key=lambda f: -shares[f])  # stable: ties go to the more specific
     fmt = ranked[0] if shares[ranked[0]] >= 0.5 else "text"
     if fmt == "text":
@@ -312,8 +316,7 @@ def guess(lines: list[str]) -> Starter:
         starter, share = guess_container(lines, fmt), shares[fmt]
     else:
         key, when = INHERENT[fmt]
-        t = trial(lines, {"format": fmt})
-        kshare, distinct = key_share(t.keys)
+        kshare, distinct = key_share(trials[fmt].keys)
         starter, share = Starter({"format": fmt}, [Guess("time", "from the format", 1.0, when),
                                                    Guess("session key", key, kshare, f"{distinct} distinct values, "
                                                          "set by the format")]), shares[fmt]

@@ -33,17 +33,18 @@ if TYPE_CHECKING:  # the config imports this table; the formats import the confi
 
 Output = list  # list[Record | Rejection]: what feed and flush give
 
-# format name (as in the config) -> "module:class" in this package
+# format name (as in the config) -> "module:class" in this package: text (it reads anything) first,
+# then the structured formats most specific first (`tracewatch init` prefers the earlier on a tie)
 FORMATS: dict[str, str] = {
     "text": "text:TextFormat",
-    "jsonl": "jsonl:JsonlFormat",
-    "syslog": "syslog:SyslogFormat",
     "otlp-json": "otlp:OtlpJsonFormat",
-    "strace": "strace:StraceFormat",
+    "otlp-logs-json": "otlp_logs:OtlpLogsJsonFormat",
+    "journald": "journald:JournaldFormat",
     "cri": "container:CriFormat",
     "docker-json": "container:DockerJsonFormat",
-    "journald": "journald:JournaldFormat",
-    "otlp-logs-json": "otlp_logs:OtlpLogsJsonFormat",
+    "syslog": "syslog:SyslogFormat",
+    "strace": "strace:StraceFormat",
+    "jsonl": "jsonl:JsonlFormat",
 }
 
 
