@@ -82,6 +82,8 @@ class Pipeline:
         self._sources = {s.name: s for s in cfg.sources}
         # what a source's format adds to its alerts (the container's names, for container logs)
         self._alert_fields = {s.name: format_class(s.format).alert_fields for s in cfg.sources}
+        # the reasons a source's format may reject a line for (the metrics start each at 0)
+        self.reject_reasons = {s.name: format_class(s.format).reject_reasons(s) for s in cfg.sources}
         self._formats: dict[tuple[str, str], Format] = {}
         self._closed: list[Session] = []
         self._watermark = 0.0

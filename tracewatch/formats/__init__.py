@@ -57,6 +57,8 @@ class Format:
     # records of one session may arrive out of time order (a trace's spans in several exports,
     # from several files): the session's events are put in time order when it closes
     by_time: ClassVar[bool] = False
+    # the reasons it may reject a line for (the metrics show each at 0 from the start)
+    reasons: ClassVar[tuple[str, ...]] = ()
 
     def __init__(self, src: SourceConfig) -> None:
         self.source = src.name
@@ -74,6 +76,11 @@ class Format:
     def now(self) -> float:
         """"Now" for stamps without a year or date (:meth:`dated_by`)."""
         return time.time() if self.today is None else self.today()
+
+    @classmethod
+    def reject_reasons(cls, src: SourceConfig) -> tuple[str, ...]:
+        """The reasons this format, with ``src``'s options, may reject a line for."""
+        return cls.reasons
 
     @staticmethod
     def alert_fields(src: SourceConfig, key: str | None) -> dict:
@@ -121,6 +128,9 @@ def collect(outputs) -> Columns:
                     continue
             records.append(item)
     return Columns.of(records, rejected)
+
+
+JSON_OBJECT_REASONS = ("empty", "bad_json", "not_an_object")  # what json_object rejects for
 
 
 def json_object(line: str) -> dict | Rejection:

@@ -51,6 +51,7 @@ def _text(value) -> str | None:
 
 class JsonlFormat(Format):
     name = "jsonl"
+    reasons = ("empty", "bad_json", "not_an_object", "no_message_field")
     samples = [
         ({"session_key": "req"}, """\
 {"time": "2026-11-30T10:00:00.250Z", "level": "INFO", "req": "a1", "message": "door 5 opened"}

@@ -60,6 +60,7 @@ def _errno(ret: str, rest: str) -> str | None:
 
 class StraceFormat(Format):
     name = "strace"
+    reasons = ("empty", "not_strace")
     samples = [
         ({}, ['openat(AT_FDCWD, "/etc/x", O_RDONLY) = -1 ENOENT (No such file or directory)',
               "[pid  4242] 10:00:00.123456 clone(child_stack=NULL, flags=SIGCHLD) = 4243",

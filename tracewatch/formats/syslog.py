@@ -180,6 +180,7 @@ def _checked(msg: SyslogMessage) -> SyslogMessage:
 
 class SyslogFormat(Format):
     name = "syslog"
+    reasons = ("empty", "not_syslog", "bad_structured_data", "bad_timestamp", "bad_pri")
     samples = [
         ({"session_field": "[req@32473 id]"},
          ['<134>1 2026-11-30T10:00:00.250Z locker-gw-3 locker-api 812 - [req@32473 id="a1"] door 5 opened',

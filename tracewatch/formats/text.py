@@ -29,6 +29,7 @@ _group = re.Match.group
 
 class TextFormat(Format):
     name = "text"
+    reasons = ("empty", "no_match", "continuation_cap")
     samples = [
         ({"line_pattern": r"^(?P<ts>\S+) (?P<level>[A-Z]+) \[(?P<svc>[^\]]+)\] req=(?P<key>\S+) (?P<message>.*)$"},
          ["2026-11-30T00:00:00.931Z INFO [locker-api] req=c7f911dcb46060ee pickup code checked for parcel PX9 at LK-4",
