@@ -24,6 +24,7 @@ import orjson
 from .config import CONTAINER_FORMATS, SourceConfig, parse_config
 from .errors import ConfigError, InputError
 from .formats import FORMATS, Rejection, feed_lines, make_format
+from .model.calibrate import calibration_needed, calibration_size
 from .timestamps import detect
 
 SAMPLE_LINES = 3000
@@ -62,6 +63,7 @@ class Starter:
 
     options: dict
     guesses: list[Guess] = field(default_factory=list)
+    notes: list[str] = field(default_factory=list)  # what else to know before fitting
 
 
 def sample_lines(path: Path) -> list[str]:
@@ -370,6 +372,32 @@ def render(starter: Starter, log: Path, out: Path, sampled: int) -> str:
     return "\n".join(lines)
 
 
+def rate_note(lines: list[str], options: dict, false_alarm_rate: float, calibration_fraction: float) -> str:
+    """Whether ``false_alarm_rate`` is reachable by a fit on as many sessions as the sample holds:
+    a fit calibrates on ``calibration_fraction`` of its sessions, and the lowest p-value n of
+    them give is 1/(n + 1) (split-conformal; :mod:`tracewatch.model.calibrate`)."""
+    need = calibration_needed(false_alarm_rate)
+    fit_on = math.ceil(need / calibration_fraction)
+    sessions = len({k for k in trial(lines, options).keys if k is not None})
+    if not sessions:
+        return (f"false_alarm_rate {false_alarm_rate}: a fit needs at least {need} calibration sessions, "
+                f"about {fit_on} baseline sessions (not counted here: without a session key they are time windows)")
+    n_cal = calibration_size(sessions, calibration_fraction)
+    held = (f"the {len(lines)} sampled lines hold {sessions} sessions; a fit on as many would calibrate on "
+            f"{n_cal}, whose lowest p-value is 1/{n_cal + 1} = {1 / (n_cal + 1):.3g}")
+    if n_cal >= need:
+        return f"false_alarm_rate {false_alarm_rate} is reachable: {held}"
+    return (f"false_alarm_rate {false_alarm_rate} is NOT reachable with this many sessions: {held}, above the "
+            f"rate, so only never-seen events would raise alerts; fit on at least {fit_on} sessions ({need} to "
+            f"calibrate), or set false_alarm_rate to {_rounded_up(1 / (n_cal + 1))} or more")
+
+
+def _rounded_up(x: float) -> float:
+    """``x`` (> 0) to three significant digits, rounded up."""
+    digits = 2 - math.floor(math.log10(x))
+    return math.ceil(x * 10**digits - 1e-9) / 10**digits
+
+
 def write_starter(log: str | Path, out: str | Path, *, force: bool = False) -> tuple[Starter, Path]:
     """Guess a config for ``log`` and write it to ``out`` (refused when it exists, unless ``force``);
     the text written is checked by the config's own validation first."""
@@ -379,7 +407,8 @@ def write_starter(log: str | Path, out: str | Path, *, force: bool = False) -> t
     lines = sample_lines(log)
     starter = guess(lines)
     text = render(starter, log, out, len(lines))
-    parse_config(tomllib.loads(text), origin=str(out))
+    model = parse_config(tomllib.loads(text), origin=str(out)).model
+    starter.notes.append(rate_note(lines, starter.options, model.false_alarm_rate, model.calibration_fraction))
     try:
         out.write_text(text, encoding="utf-8")
     except OSError as exc:
