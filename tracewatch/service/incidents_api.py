@@ -107,6 +107,7 @@ def _charts(store: IncidentStore, rows: list[dict], status: str | None, source: 
     end = max(r["last_seen"] for r in rows)
     start = max(min(r["first_seen"] for r in rows), end - PAGE_SPAN_S)
     overall = timeline(start, end, lambda b: store.alert_counts(b, status=status, source=source, from_ts=start))
+    # every incident's counts in one query, in the buckets timeline(start, end, …) asks for
     per = store.alert_counts_each(bucket_for(start, end), [r["id"] for r in rows], from_ts=start)
     each = {r["id"]: timeline(start, end, lambda _b, i=r["id"]: per[i]) for r in rows}
     return overall, each
