@@ -19,21 +19,17 @@ from pathlib import Path
 
 sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
 
-from tests.scenarios import bike_docks, fit_and_score, ticket_machines
+from tests.scenarios import bike_docks, fit_and_score, ticket_days
 from tracewatch.demo.scenario import generate, parcel_lockers
 
 RATE = 0.005
-# ticket machines have no never-seen messages: only the kinds made of known steps
-TICKET_KINDS = ("missing_step", "retry_loop", "out_of_order", "cut_short")
 
 
 def scenario_days(name: str, data_seed: int):
     """The scenario, its baseline sessions and the day to score (with labelled anomalies)."""
-    day0, day1 = datetime(2026, 11, 29, tzinfo=timezone.utc), datetime(2026, 11, 30, tzinfo=timezone.utc)
     if name == "tickets":
-        scenario = ticket_machines()
-        base = generate(scenario, 3000, seed=data_seed, start=day0, kinds=())
-        return scenario, base, generate(scenario, 1500, 10, seed=data_seed + 100, start=day1, kinds=TICKET_KINDS)
+        return ticket_days(data_seed, 10)
+    day0, day1 = datetime(2026, 11, 29, tzinfo=timezone.utc), datetime(2026, 11, 30, tzinfo=timezone.utc)
     scenario = parcel_lockers() if name == "lockers" else bike_docks()
     base = generate(scenario, 3000, seed=data_seed, start=day0, kinds=())
     return scenario, base, generate(scenario, 3000, 40, seed=data_seed + 1, start=day1)

@@ -7,8 +7,9 @@ the anomaly kinds and labels are the same.
 from __future__ import annotations
 
 import random
+from datetime import datetime, timezone
 
-from tracewatch.demo.scenario import GeneratedSession, Scenario, Step, render_text
+from tracewatch.demo.scenario import GeneratedSession, Scenario, Step, generate, render_text
 
 
 def fit_and_score(tmp_path, scenario: Scenario, base: list[GeneratedSession], day: list[GeneratedSession],
@@ -147,3 +148,17 @@ def _workflow(seq: str):
 def ticket_machines() -> Scenario:
     return Scenario(service="ticketd", workflows={n: (share, _workflow(seq)) for n, (share, seq) in VARIANTS.items()},
                     novel=[])
+
+
+# ticket machines have no never-seen messages: only the kinds made of known steps
+TICKET_KINDS = ("missing_step", "retry_loop", "out_of_order", "cut_short")
+
+
+def ticket_days(seed: int = 0, anomalies_per_kind: int = 0
+                ) -> tuple[Scenario, list[GeneratedSession], list[GeneratedSession]]:
+    """Ticket machines, a baseline of 3000 normal sessions on 2026-11-29 and a day to score of
+    1500 on 2026-11-30 with ``anomalies_per_kind`` of each of :data:`TICKET_KINDS`."""
+    scenario = ticket_machines()
+    day0, day1 = datetime(2026, 11, 29, tzinfo=timezone.utc), datetime(2026, 11, 30, tzinfo=timezone.utc)
+    base = generate(scenario, 3000, seed=seed, start=day0, kinds=())
+    return scenario, base, generate(scenario, 1500, anomalies_per_kind, seed=seed + 100, start=day1, kinds=TICKET_KINDS)

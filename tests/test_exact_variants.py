@@ -8,15 +8,14 @@ changes.
 from __future__ import annotations
 
 import random
-from datetime import datetime, timezone
 
 import numpy as np
 import pytest
 from sklearn.metrics import silhouette_score
 
-from tracewatch.demo.scenario import GeneratedSession, generate
+from tracewatch.demo.scenario import GeneratedSession
 
-from .scenarios import RARE, STEPS, VARIANTS, fit_and_score, ticket_machines
+from .scenarios import RARE, STEPS, VARIANTS, fit_and_score, ticket_days
 
 RATE = 0.005
 
@@ -31,9 +30,7 @@ def _repeat_a_step(sess: GeneratedSession, rng: random.Random) -> None:
 
 
 def run(tmp_path, seed: int):
-    scenario = ticket_machines()
-    base = generate(scenario, 3000, seed=seed, start=datetime(2026, 11, 29, tzinfo=timezone.utc), kinds=())
-    day = generate(scenario, 1500, seed=seed + 100, start=datetime(2026, 11, 30, tzinfo=timezone.utc), kinds=())
+    scenario, base, day = ticket_days(seed)
     rng = random.Random(seed)
     for sess in rng.sample(day, 20):
         _repeat_a_step(sess, rng)
@@ -90,10 +87,7 @@ def test_verdicts_do_not_swing_with_k_or_seed(tmp_path):
     share of the distance between neighbouring variants fails here: at k − 1 the floor outgrows
     the shared cluster's spread and anomalies beside a one-variant cluster fall under the
     threshold (a quarter of that distance missed 5 of these 40 anomalies)."""
-    scenario = ticket_machines()
-    base = generate(scenario, 3000, seed=0, start=datetime(2026, 11, 29, tzinfo=timezone.utc), kinds=())
-    kinds = ("missing_step", "retry_loop", "out_of_order", "cut_short")
-    day = generate(scenario, 1500, 5, seed=100, start=datetime(2026, 11, 30, tzinfo=timezone.utc), kinds=kinds)
+    scenario, base, day = ticket_days(0, 5)
     rng = random.Random(0)
     for sess in rng.sample([s for s in day if s.label == "normal"], 20):
         _repeat_a_step(sess, rng)

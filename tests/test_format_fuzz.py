@@ -122,11 +122,12 @@ def run_format(name: str, lines: list[str]) -> tuple[object, list]:
     return fmt, feed_lines(fmt, lines)
 
 
-def check_items(out: list) -> None:
+def check_items(out: list, reasons: tuple[str, ...]) -> None:
     for item in out:
         rec = item.record if isinstance(item, Rejection) else item
         if isinstance(item, Rejection):
             assert isinstance(item.reason, str) and item.reason and isinstance(item.raw, str)
+            assert item.reason in reasons  # the format's declared reasons (the metrics start them at 0)
         if rec is None:
             continue
         assert isinstance(rec, Record) and rec.source == "src"
@@ -152,7 +153,7 @@ def _property(name: str):
     @given(lines=lines_for(name))
     def prop(lines):
         fmt, out = run_format(name, lines)
-        check_items(out)
+        check_items(out, type(fmt).reject_reasons(SourceConfig(name="src", **SOURCES[name])))
         assert accounted(fmt, out) == len(lines)
     return prop
 
@@ -187,6 +188,7 @@ def test_the_pipeline_takes_hostile_lines_of_every_format(lines):
                 pipe.feed_line(name, f"{name}.log", line, i)
         pipe.flush()
         assert all(pipe.lines[name] == len(lines) for name in SOURCES)
+        assert all(reason in pipe.reject_reasons[source] for source, reason in pipe.rejected)
         sample = Path(tmp) / "rejects.jsonl"
         if sample.exists():
             entries = [orjson.loads(x) for x in sample.read_bytes().splitlines()]

@@ -4,11 +4,11 @@ recorded with strace, fitted and scored."""
 from __future__ import annotations
 
 import math
-
+import os
 import shutil
 import subprocess
 from collections import Counter
-from datetime import datetime
+from datetime import datetime, timedelta
 from pathlib import Path
 
 import pytest
@@ -23,7 +23,9 @@ CLOCK = datetime(2026, 11, 30, 15, 0).timestamp()  # local time, as strace -t/-t
 
 
 def fmt(**kw) -> StraceFormat:
-    return StraceFormat(SourceConfig(name="st", format="strace", **kw), clock=lambda: CLOCK)
+    f = StraceFormat(SourceConfig(name="st", format="strace", **kw))
+    f.dated_by(lambda: CLOCK)
+    return f
 
 
 def feed_all(f: StraceFormat, text: str) -> list:
@@ -107,6 +109,33 @@ def test_time_of_day_rolls_over_midnight():
     [a] = f.feed("1  23:59:59.900000 getpid() = 1", 0)
     [b] = f.feed("1  00:00:00.100000 getpid() = 1", 1)
     assert b.ts - a.ts == pytest.approx(0.2)
+
+
+def test_a_replayed_file_is_dated_by_its_modification_time(tmp_path):
+    """``strace -f -tt`` prints the local time of day and no date: a file replayed in batch is
+    dated by its modification time (written after its last line), whatever the wall clock says.
+    The trace runs from 23:45 to 00:15 and was last written at 00:20: its first lines belong to
+    the day before the file's date, its last to the file's date."""
+    first = datetime(2025, 3, 13, 23, 45)  # local time, as strace prints it
+    lines = []
+    for n in range(120):  # a process every 15 s: three calls and its exit, a second in all
+        t = first + timedelta(seconds=15 * n)
+        lines += [f"{1000 + n}  {t + timedelta(seconds=0.25 * i):%H:%M:%S.%f} {call}"
+                  for i, call in enumerate(('openat(AT_FDCWD, "/srv/lockers.db", O_RDONLY) = 3',
+                                            'read(3, "PX1", 3) = 3', "close(3) = 0", "+++ exited with 0 +++"))]
+    trace = tmp_path / "day.strace"
+    trace.write_text("\n".join(lines) + "\n")
+    written = datetime(2025, 3, 14, 0, 20).timestamp()
+    os.utime(trace, (written, written))
+    assert datetime.now().date() not in (first.date(), first.date() + timedelta(days=1))  # else the clock would do
+    cfg = parse_config({"state_dir": str(tmp_path / "state"), "sources": [{"name": "st", "format": "strace"}],
+                        "model": {"false_alarm_rate": 0.05}})
+    baseline, _, _ = fit_files(cfg, [("st", trace)])
+    verdicts: list[dict] = []
+    score_files(cfg, [("st", trace)], baseline, verdicts.append, score_all=True)
+    got = sorted((v["session_key"], v["start"], v["end"]) for v in verdicts)
+    t0 = first.timestamp()
+    assert got == [(str(1000 + n), pytest.approx(t0 + 15 * n), pytest.approx(t0 + 15 * n + 0.75)) for n in range(120)]
 
 
 def test_a_call_left_unfinished_at_exit_or_end_is_kept():

@@ -20,7 +20,9 @@ def utc(*args) -> float:
 
 
 def fmt(**kw) -> SyslogFormat:
-    return SyslogFormat(SourceConfig(name="sys", format="syslog", **kw), clock=lambda: NOW)
+    f = SyslogFormat(SourceConfig(name="sys", format="syslog", **kw))
+    f.dated_by(lambda: NOW)
+    return f
 
 
 # -- RFC 5424 --------------------------------------------------------------------------------

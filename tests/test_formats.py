@@ -80,4 +80,5 @@ def test_block_reader_equals_the_per_record_parser(name, case, data):
     assert block.held_from == held[len(lines)]
     got.extend(block.finish())
     assert _rows(got) == _rows(collect(expected))
+    assert {r.reason for r in got.rejected} <= set(format_class(name).reject_reasons(src))  # (metrics start them at 0)
     assert all(type(m) is str for m in got.messages)

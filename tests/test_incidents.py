@@ -392,6 +392,12 @@ def test_rate_reach_and_severity_on_a_generated_day(tmp_path_factory):
         tr.flush()
         rows = store.incidents()
         assert len(rows) == len(KINDS)
+        each = store.alert_counts_each(300, [r["id"] for r in rows])  # (the incident list's one query)
+        assert each == {r["id"]: store.alert_counts(300, incident_id=r["id"]) for r in rows}
+        mid = (rows[0]["first_seen"] + rows[0]["last_seen"]) / 2
+        later = store.alert_counts(300, incident_id=rows[0]["id"], from_ts=mid)
+        assert 0 < sum(later.values()) < rows[0]["count"]
+        assert store.alert_counts_each(300, [rows[0]["id"]], from_ts=mid) == {rows[0]["id"]: later}
         for row in rows:
             # its timeline: the alerts' own end times, per bar
             tl = detail(row, alert_counts=lambda b: store.alert_counts(b, incident_id=row["id"]))["timeline"]

@@ -52,6 +52,29 @@ def test_values_from_the_snapshot():
     assert get("tracewatch_files_followed", {"source": "idle-source"}) == 0
 
 
+def test_rejected_series_exist_at_zero_for_each_formats_reasons():
+    """Before any line is read, every reason a source's format may reject a line for is a series
+    at 0, per source; a reason of another format is not."""
+    cfg = parse_config({"state_dir": tempfile.mkdtemp(prefix="tw-metrics-"),
+                        "sources": [{"name": "api", "line_pattern": r"^(?P<message>.*)$"},
+                                    {"name": "tracer", "format": "strace"},
+                                    {"name": "pods", "format": "cri", "payload_format": "jsonl"}]})
+    pipe = Pipeline(cfg)
+    reg = CollectorRegistry()
+    DaemonMetrics(reg, lambda: {"sources": [s.name for s in cfg.sources], "rejected": dict(pipe.rejected),
+                                "reject_reasons": pipe.reject_reasons})
+    get = reg.get_sample_value
+    expected = {"api": ("empty", "no_match", "continuation_cap"), "tracer": ("empty", "not_strace"),
+                "pods": ("empty", "bad_container_line", "partial_unfinished", "joined_too_long",
+                         "bad_json", "not_an_object", "no_message_field")}  # the runtime's and the payload's
+    for source, reasons in expected.items():
+        for reason in reasons:
+            assert get("tracewatch_records_rejected_total", {"source": source, "reason": reason}) == 0, (source, reason)
+    assert get("tracewatch_records_rejected_total", {"source": "tracer", "reason": "no_match"}) is None
+    pipe.feed_line("tracer", "f", "strace: Process 4242 attached", 0)
+    assert get("tracewatch_records_rejected_total", {"source": "tracer", "reason": "not_strace"}) == 1
+
+
 def test_score_histogram_buckets():
     reg = CollectorRegistry()
     m = DaemonMetrics(reg, dict)

@@ -161,6 +161,26 @@ def test_other_shapes(tmp_path, kind, expect):
     assert source["paths"] == ["app.log"]
 
 
+def test_init_says_whether_the_false_alarm_rate_is_reachable(tmp_path):
+    """A split-conformal p-value of n calibration sessions is at least 1/(n + 1): the starter's
+    false_alarm_rate 0.005 needs 199 of them, a quarter (calibration_fraction) of 796 sessions.
+    200 requests give 50 (1/51 is the lowest rate, as the fit then reports); 1000 give 250."""
+    log, cfg = tmp_path / "app.log", tmp_path / "tw.toml"
+    log.write_text("\n".join(_shapes("jsonl", 200)) + "\n")
+    said = run_cli("init", str(log), "--out", str(cfg), check=True).stdout.splitlines()
+    assert [line for line in said if line.startswith("false_alarm_rate")] == [
+        "false_alarm_rate 0.005 is NOT reachable with this many sessions: the 600 sampled lines hold 200 sessions; "
+        "a fit on as many would calibrate on 50, whose lowest p-value is 1/51 = 0.0196, above the rate, so only "
+        "never-seen events would raise alerts; fit on at least 796 sessions (199 to calibrate), or set "
+        "false_alarm_rate to 0.0197 or more"]
+    report = json.loads(run_cli("fit", "--config", str(cfg), "--json", check=True).stdout)
+    assert report["calibration_sessions"] == 50 and report["lowest_false_alarm_rate"] == round(1 / 51, 6)
+    log.write_text("\n".join(_shapes("jsonl", 1000)) + "\n")
+    said = run_cli("init", str(log), "--out", str(cfg), "--force", check=True).stdout
+    assert ("false_alarm_rate 0.005 is reachable: the 3000 sampled lines hold 1000 sessions; a fit on as many "
+            "would calibrate on 250, whose lowest p-value is 1/251 = 0.00398\n") in said
+
+
 def test_an_existing_file_is_kept_without_force(tmp_path):
     python_log(tmp_path / "app.log", 20, seed=1)
     cfg = tmp_path / "tw.toml"

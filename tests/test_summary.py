@@ -135,8 +135,8 @@ def test_rate_and_reach_of_a_stored_row():
 
 
 def test_one_alert_is_rated_over_the_last_ten_minutes(tmp_path):
-    # one alert at 08:09:10: its rate window is 08:00 … 08:09 (RATE_MINUTES), in Python and in the
-    # store's SQL alike; sessions counted at 07:59 and 08:10 stay outside it
+    # one alert at 08:09:10: its rate window is 08:00 … 08:09 (RATE_MINUTES), and the store counts
+    # the sessions of that window; sessions counted at 07:59 and 08:10 stay outside it
     from tracewatch.alerts.store import IncidentStore
     from tracewatch.alerts.summary import rate_minutes
 

@@ -215,12 +215,11 @@ def unread_lines(pipeline: Pipeline, *, refuse: bool) -> list[str]:
     (fit) only the problems above the source's ``max_unread_share``, worded as a refusal; else
     (score) every problem, as a warning."""
     out = []
-    for source, what, count, total in pipeline.input_problems():
-        limit = pipeline.cfg.source(source).max_unread_share
-        if refuse and not (total > 0 and count / total > limit):
+    for problem in pipeline.input_problems():
+        limit = pipeline.cfg.source(problem.source).max_unread_share
+        if refuse and not (problem.total > 0 and problem.count / problem.total > limit):
             continue
-        out.append(("fit refused: " if refuse else "warning: ") + problem_line(pipeline, source, what, count, total,
-                                                                                refuse=refuse))
+        out.append(("fit refused: " if refuse else "warning: ") + problem_line(pipeline, problem, refuse=refuse))
     return out
 
 

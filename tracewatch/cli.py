@@ -79,8 +79,8 @@ def cmd_init(args) -> int:
     from .starter import write_starter
 
     starter, out = write_starter(args.logfile, args.out, force=args.force)
-    for g in starter.guesses:
-        print(g.line())
+    for line in [g.line() for g in starter.guesses] + starter.notes:
+        print(line)
     print(f"wrote {out}; next: tracewatch check-config --config {out}")
     return 0
 

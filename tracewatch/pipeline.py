@@ -11,6 +11,7 @@ the daemon feeds lines and calls :meth:`tick` with its clock so idle sessions cl
 
 from __future__ import annotations
 
+import enum
 from collections import Counter
 from collections.abc import Callable
 from typing import TYPE_CHECKING, NamedTuple
@@ -38,7 +39,23 @@ class Formatted(NamedTuple):
     parts: list[Columns]  # the records and rejections, ``TICK_EVERY`` lines at a time
 
 
-UNTIMED = "records with a session key carry no usable time"  # what input_problems says of untimed records
+class Problem(enum.Enum):
+    """What an input problem (:meth:`Pipeline.input_problems`) is about."""
+
+    REJECTED = "rejected"  # lines rejected
+    UNTIMED = "untimed"  # keyed records without a usable time
+
+
+class InputProblem(NamedTuple):
+    source: str
+    kind: Problem
+    what: str  # the problem in words, for display
+    count: int
+    total: int  # the lines (or records) ``count`` is out of
+
+
+_UNTIMED_TEXT = "records with a session key carry no usable time"
+_HINTS = {Problem.REJECTED: " (check format and line_pattern)", Problem.UNTIMED: " (check ts_format)"}
 
 class Pipeline:
     def __init__(self, cfg: Config, baseline: Baseline | None = None, *,
@@ -73,6 +90,8 @@ class Pipeline:
         self._sources = {s.name: s for s in cfg.sources}
         # what a source's format adds to its alerts (the container's names, for container logs)
         self._alert_fields = {s.name: format_class(s.format).alert_fields for s in cfg.sources}
+        # the reasons a source's format may reject a line for (the metrics start each at 0)
+        self.reject_reasons = {s.name: format_class(s.format).reject_reasons(s) for s in cfg.sources}
         self._formats: dict[tuple[str, str], Format] = {}
         self._closed: list[Session] = []
         self._watermark = 0.0
@@ -228,18 +247,19 @@ class Pipeline:
                 self.alerts[(sess.source, reason)] += 1
             self.on_verdict(verdict)
 
-    def input_problems(self) -> list[tuple[str, str, int, int]]:
-        """``(source, what, count, out of)`` for every source whose input was badly read: lines
-        rejected (``what`` names the reasons) or keyed records without a usable time."""
+    def input_problems(self) -> list[InputProblem]:
+        """Every problem of a source whose input was badly read: lines rejected (``what`` names
+        the reasons) or keyed records without a usable time."""
         out = []
         for src in self.cfg.sources:
             name = src.name
             rejected = sorted(((n, r) for (s, r), n in self.rejected.items() if s == name), reverse=True)
             if rejected:
                 reasons = ", ".join(f"{r}={n}" for n, r in rejected)
-                out.append((name, f"lines rejected ({reasons})", sum(n for n, _ in rejected), self.lines[name]))
+                out.append(InputProblem(name, Problem.REJECTED, f"lines rejected ({reasons})",
+                                        sum(n for n, _ in rejected), self.lines[name]))
             if self.untimed[name]:
-                out.append((name, UNTIMED, self.untimed[name], self.records[name]))
+                out.append(InputProblem(name, Problem.UNTIMED, _UNTIMED_TEXT, self.untimed[name], self.records[name]))
         return out
 
     def fit_sessions(self) -> list[tuple[str, tuple[int, ...]]]:
@@ -280,13 +300,13 @@ class Pipeline:
         self.sessionizer.unseen_from = self.miner.n_seen
 
 
-def problem_line(pipeline: Pipeline, source: str, what: str, count: int, total: int, *, refuse: bool = False) -> str:
+def problem_line(pipeline: Pipeline, problem: InputProblem, *, refuse: bool = False) -> str:
     """One input problem (:meth:`Pipeline.input_problems`) in words, with the share it is
     measured against and what to check; the daemon logs the same line."""
+    source, kind, what, count, total = problem
     limit = pipeline.cfg.source(source).max_unread_share
     above = total > 0 and count / total > limit
     tail = (f", above max_unread_share {limit}; no baseline written" if refuse
             else (f", above max_unread_share {limit}" if above else ""))
-    hint = " (check ts_format)" if what == UNTIMED else " (check format and line_pattern)"
-    return f"source '{source}': {count} of {total} {what}{tail}{hint}"
+    return f"source '{source}': {count} of {total} {what}{tail}{_HINTS[kind]}"
 

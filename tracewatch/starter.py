@@ -23,13 +23,14 @@ import orjson
 
 from .config import CONTAINER_FORMATS, SourceConfig, parse_config
 from .errors import ConfigError, InputError
-from .formats import Rejection, feed_lines, make_format
+from .formats import FORMATS, Rejection, feed_lines, make_format
+from .model.calibrate import calibration_needed, calibration_size
 from .timestamps import detect
 
 SAMPLE_LINES = 3000
 SAMPLE_BYTES = 64 * 2**20  # an OTLP/JSON line holds a whole export batch
 # formats recognised by their own reader, most specific first; text reads anything, so it is the fallback
-STRUCTURED = ("otlp-json", "otlp-logs-json", "journald", "cri", "docker-json", "syslog", "strace", "jsonl")
+STRUCTURED = tuple(f for f in FORMATS if f != "text")
 LEVELS = {"TRACE", "DEBUG", "INFO", "NOTICE", "WARN", "WARNING", "ERROR", "ERR", "CRITICAL", "CRIT", "FATAL",
           "ALERT", "EMERG", "SEVERE"}
 _PAIR = re.compile(r"(?<![\w.-])([A-Za-z_][\w.-]{0,31})=([^\s\]\[,;()\"'=]+)")
@@ -62,6 +63,7 @@ class Starter:
 
     options: dict
     guesses: list[Guess] = field(default_factory=list)
+    notes: list[str] = field(default_factory=list)  # what else to know before fitting
 
 
 def sample_lines(path: Path) -> list[str]:
@@ -88,7 +90,10 @@ class Trial:
     lines: int  # non-empty lines
     rejected: int
     keys: list  # session key of every record
-    records: int
+
+    @property
+    def records(self) -> int:
+        return len(self.keys)
 
     @property
     def read_share(self) -> float:
@@ -105,7 +110,7 @@ def trial(lines: list[str], options: dict) -> Trial:
     records = [x if not isinstance(x, Rejection) else x.record for x in out]
     records = [r for r in records if r is not None]
     rejected = sum(isinstance(x, Rejection) and x.reason != "no_message_field" for x in out)
-    return Trial(sum(bool(line.strip()) for line in lines), rejected, [r.key for r in records], len(records))
+    return Trial(sum(bool(line.strip()) for line in lines), rejected, [r.key for r in records])
 
 
 def key_share(keys: list) -> tuple[float, int]:
@@ -296,7 +301,8 @@ INHERENT = {"otlp-json": ("traceId", "the span's start time (startTimeUnixNano)"
 def guess(lines: list[str]) -> Starter:
     """The starter source for a sample of lines: its format (the structured reader that reads
     the most lines, text when none reads half), then that format's own guesses."""
-    shares = {fmt: trial(lines, {"format": fmt}).read_share for fmt in STRUCTURED}
+    trials = {fmt: trial(lines, {"format": fmt}) for fmt in STRUCTURED}
+    shares = {fmt: t.read_share for fmt, t in trials.items()}
     ranked = sorted(STRUCTURED, key=lambda f: -shares[f])  # stable: ties go to the more specific
     fmt = ranked[0] if shares[ranked[0]] >= 0.5 else "text"
     if fmt == "text":
@@ -312,8 +318,7 @@ def guess(lines: list[str]) -> Starter:
         starter, share = guess_container(lines, fmt), shares[fmt]
     else:
         key, when = INHERENT[fmt]
-        t = trial(lines, {"format": fmt})
-        kshare, distinct = key_share(t.keys)
+        kshare, distinct = key_share(trials[fmt].keys)
         starter, share = Starter({"format": fmt}, [Guess("time", "from the format", 1.0, when),
                                                    Guess("session key", key, kshare, f"{distinct} distinct values, "
                                                          "set by the format")]), shares[fmt]
@@ -367,6 +372,32 @@ def render(starter: Starter, log: Path, out: Path, sampled: int) -> str:
     return "\n".join(lines)
 
 
+def rate_note(lines: list[str], options: dict, false_alarm_rate: float, calibration_fraction: float) -> str:
+    """Whether ``false_alarm_rate`` is reachable by a fit on as many sessions as the sample holds:
+    a fit calibrates on ``calibration_fraction`` of its sessions, and the lowest p-value n of
+    them give is 1/(n + 1) (split-conformal; :mod:`tracewatch.model.calibrate`)."""
+    need = calibration_needed(false_alarm_rate)
+    fit_on = math.ceil(need / calibration_fraction)
+    sessions = len({k for k in trial(lines, options).keys if k is not None})
+    if not sessions:
+        return (f"false_alarm_rate {false_alarm_rate}: a fit needs at least {need} calibration sessions, "
+                f"about {fit_on} baseline sessions (not counted here: without a session key they are time windows)")
+    n_cal = calibration_size(sessions, calibration_fraction)
+    held = (f"the {len(lines)} sampled lines hold {sessions} sessions; a fit on as many would calibrate on "
+            f"{n_cal}, whose lowest p-value is 1/{n_cal + 1} = {1 / (n_cal + 1):.3g}")
+    if n_cal >= need:
+        return f"false_alarm_rate {false_alarm_rate} is reachable: {held}"
+    return (f"false_alarm_rate {false_alarm_rate} is NOT reachable with this many sessions: {held}, above the "
+            f"rate, so only never-seen events would raise alerts; fit on at least {fit_on} sessions ({need} to "
+            f"calibrate), or set false_alarm_rate to {_rounded_up(1 / (n_cal + 1))} or more")
+
+
+def _rounded_up(x: float) -> float:
+    """``x`` (> 0) to three significant digits, rounded up."""
+    digits = 2 - math.floor(math.log10(x))
+    return math.ceil(x * 10**digits - 1e-9) / 10**digits
+
+
 def write_starter(log: str | Path, out: str | Path, *, force: bool = False) -> tuple[Starter, Path]:
     """Guess a config for ``log`` and write it to ``out`` (refused when it exists, unless ``force``);
     the text written is checked by the config's own validation first."""
@@ -376,7 +407,8 @@ def write_starter(log: str | Path, out: str | Path, *, force: bool = False) -> t
     lines = sample_lines(log)
     starter = guess(lines)
     text = render(starter, log, out, len(lines))
-    parse_config(tomllib.loads(text), origin=str(out))
+    model = parse_config(tomllib.loads(text), origin=str(out)).model
+    starter.notes.append(rate_note(lines, starter.options, model.false_alarm_rate, model.calibration_fraction))
     try:
         out.write_text(text, encoding="utf-8")
     except OSError as exc:

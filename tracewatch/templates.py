@@ -77,8 +77,12 @@ def _shapes(messages: list[str]) -> list[bytes]:
 _ID_RUN = re.compile(rb"(?<![0-9a-fA-F-])[a-fA-F-]*+[0-9][0-9a-fA-F-]*+")
 
 
-_LETTER = frozenset(string.ascii_letters.encode())
-_LOWER = frozenset(string.ascii_lowercase.encode())
+# The single-digit rule, written once: a digit belongs to a name (ssh2, utf8, IPv4) when the two
+# bytes before it are a letter and then a lower-case letter. _KEPT (a regex), _after_word and
+# _WORD_CLASS (numpy, as byte sets) are built from these two classes.
+_TWO_BEFORE, _ONE_BEFORE = "[A-Za-z]", "[a-z]"
+_NAME_DIGIT = f"{_TWO_BEFORE}{_ONE_BEFORE}[0-9]"
+_LETTER, _LOWER = (frozenset(c for c in range(256) if re.fullmatch(cls, chr(c))) for cls in (_TWO_BEFORE, _ONE_BEFORE))
 
 
 def _collapse_run(run: re.Match) -> bytes:
@@ -99,8 +103,8 @@ def _after_word(data: bytes, i: int) -> bool:
 
 # byte classes for _collapse_id_runs: 2 a digit, 1 a hex letter or a dash, 0 anything else
 _ID_CLASS = bytes(2 if chr(c) in "0123456789" else 1 if chr(c) in "abcdefABCDEF-" else 0 for c in range(256))
-# and for the bytes before a digit: 3 a lower-case letter, 1 a capital, 0 anything else
-_WORD_CLASS = bytes(3 if c in _LOWER else 1 if c in _LETTER else 0 for c in range(256))
+# and for the bytes before a digit: bit 1 where it may come just before it, bit 0 where two before
+_WORD_CLASS = bytes((2 if c in _LOWER else 0) | (1 if c in _LETTER else 0) for c in range(256))
 
 
 def _collapse_id_runs(data: bytes) -> bytes:
@@ -152,8 +156,8 @@ def _coarse(shapes: list[bytes]) -> list[bytes]:
 # underscore (LK-4, worker_3). Decided from the digit shape, as the caches need (see
 # TemplateCache): the look-ahead rejects two digits in one run of hex digits, which the coarse
 # key cannot tell apart from a longer number (sha256, x86_64 and ab1cd2 stay variables).
-_KEPT = re.compile(r"(?!.*[0-9][0-9a-fA-F]*[0-9])(?:[A-Za-z][A-Za-z_]*)?[A-Za-z][a-z][0-9]"
-                   r"(?:[A-Za-z_]*[A-Za-z][a-z][0-9])*[A-Za-z_]*\(?")
+_KEPT = re.compile(rf"(?!.*[0-9][0-9a-fA-F]*[0-9])(?:[A-Za-z][A-Za-z_]*)?{_NAME_DIGIT}"
+                   rf"(?:[A-Za-z_]*{_NAME_DIGIT})*[A-Za-z_]*\(?")
 
 
 def _mask_token(tok: str) -> str:

@@ -138,6 +138,7 @@ class _Label(BaseModel):
 
 _VEC = TypeAdapter(Vec)
 _TEXTS = TypeAdapter(Texts)
+_COUNT = TypeAdapter(Count)
 _LABEL = TypeAdapter(Annotated[str, Field(max_length=200)])
 
 
@@ -163,14 +164,15 @@ def _json(raw, what: str, *, empty=None):
         raise Damaged(f"{what}: not JSON ({str(exc)[:80]})") from exc
 
 
-def incident_row(base: dict, stats, suggestion, label, *sessions) -> dict:
-    """A listed row: ``base`` holds the plain columns; the JSON ones are decoded and checked
-    (and ``sessions``, when read, the sessions scored in the incident's window)."""
+def incident_row(base: dict, stats, suggestion, label) -> dict:
+    """A listed row: ``base`` holds the plain columns; the JSON ones are decoded and checked."""
     row = {**base, "stats": _json(stats, "stats"),
            "suggestion": None if suggestion == "" else _json(suggestion, "suggestion"), "label": label}
-    if sessions:
-        row["sessions"] = sessions[0]
     return _check(_Row, row, "incident")
+
+
+def count(value, what: str) -> int:
+    return _check(_COUNT, value, what)
 
 
 def alert(raw) -> dict:

@@ -45,7 +45,7 @@ import orjson
 
 from ..errors import StateError
 from . import rows
-from .summary import RATE_MINUTES
+from .summary import rate_minutes
 
 SCHEMA_VERSION = 4
 FILENAME = "incidents.db"
@@ -136,14 +136,11 @@ _LIST_KEYS = ("id", "status", "title", "first_seen", "last_seen", "count", "esca
               "status_changed", "status_by", "note")
 # an incident's sources (the keys of its statistics' "sources"; none where the column is not JSON)
 _SOURCES = "json_each(CASE WHEN json_valid(incidents.stats) THEN incidents.stats ELSE '{}' END, '$.sources')"
-# the sessions scored of an incident's sources in the minutes of its rate window (first to last
-# alert, and at least the last RATE_MINUTES: summary.rate_minutes says the same in Python)
-_LAST_MINUTE = "CAST(incidents.last_seen / 60 AS INTEGER)"
-_SESSIONS = ("(SELECT COALESCE(SUM(s.count), 0) FROM sessions s WHERE s.source IN (SELECT key FROM "
-             f"{_SOURCES}) AND s.minute BETWEEN MIN(CAST(incidents.first_seen / 60 AS INTEGER), "
-             f"{_LAST_MINUTE} - {RATE_MINUTES - 1}) AND {_LAST_MINUTE})")
-# what is read for showing an incident: the listed columns and the sessions of its window
-_READ_COLUMNS = f"{_LIST_COLUMNS}, {_SESSIONS}"
+# the sessions scored of each incident's sources in the minutes of its rate window, the windows
+# given as JSON [[id, [source, …], first minute, last minute], …] (summary.rate_minutes)
+_SESSIONS = ("SELECT json_extract(w.value, '$[0]'), SUM(s.count) FROM json_each(?) w, "
+             "json_each(w.value, '$[1]') src JOIN sessions s ON s.source = src.value "
+             "AND s.minute BETWEEN json_extract(w.value, '$[2]') AND json_extract(w.value, '$[3]') GROUP BY 1")
 # what the tracker may change on an incident row
 _UPDATABLE = frozenset({"count", "first_seen", "last_seen", "stats", "centroid", "representative", "title",
                         "escalated"})
@@ -317,15 +314,24 @@ class IncidentStore:
                           "afresh (alerts.jsonl keeps every alert)")
 
     def _row(self, r) -> dict:
-        """A listed row (:data:`_LIST_COLUMNS`, or :data:`_READ_COLUMNS` with the sessions of its
-        window) as a checked dict."""
+        """A listed row (:data:`_LIST_COLUMNS`) as a checked dict."""
         try:
-            return rows.incident_row(dict(zip(_LIST_KEYS, r[:11])), r[11], r[12], r[13], *r[14:15])
+            return rows.incident_row(dict(zip(_LIST_KEYS, r[:11])), r[11], r[12], r[13])
         except rows.Damaged as exc:
             raise self._damaged(f"incident {r[0]!r:.40}", exc) from exc
 
-    def _rows(self, sql: str, args: tuple) -> list[dict]:
-        return [self._row(r) for r in self.db.execute(sql, args)]
+    def _rated(self, found: list[dict], db: sqlite3.Connection | None = None) -> list[dict]:
+        """``found`` (checked rows) each with ``sessions``: the sessions scored of its sources in its
+        rate window (:func:`~tracewatch.alerts.summary.rate_minutes`), all in one query."""
+        windows = [[r["id"], sorted(r["stats"].get("sources") or {}), *rate_minutes(r["first_seen"], r["last_seen"])]
+                   for r in found]
+        got = dict((db or self.db).execute(_SESSIONS, (dumps(windows),))) if found else {}
+        for r in found:
+            try:
+                r["sessions"] = rows.count(got.get(r["id"], 0), "sessions")
+            except rows.Damaged as exc:
+                raise self._damaged(f"the sessions counted for incident {r['id']}", exc) from exc
+        return found
 
     # -- reading -----------------------------------------------------------------------------------
     def incidents(self, *, status: str | None = None, since: float | None = None, source: str | None = None,
@@ -334,9 +340,9 @@ class IncidentStore:
         open ones before all others with ``open_first`` — without the heavy columns."""
         where, args = _filters(status=status, since=since, source=source)
         order = "status = 'open' DESC, " if open_first else ""
-        sql = (f"SELECT {_READ_COLUMNS} FROM incidents {where} ORDER BY {order}last_seen DESC, id DESC "
+        sql = (f"SELECT {_LIST_COLUMNS} FROM incidents {where} ORDER BY {order}last_seen DESC, id DESC "
                "LIMIT ? OFFSET ?")
-        return self._rows(sql, (*args, limit, offset))
+        return self._rated([self._row(r) for r in self.db.execute(sql, (*args, limit, offset))])
 
     def sources(self, limit: int = 50) -> list[str]:
         """The sources incidents came from, by name."""
@@ -352,6 +358,19 @@ class IncidentStore:
                                 f"ON incidents.id = a.incident_id {where} GROUP BY 1", (bucket_s, *args))
         return {b: n for b, n in found if isinstance(b, int)}  # (a damaged time is left out)
 
+    def alert_counts_each(self, bucket_s: int, incident_ids: list[int], *, from_ts: float | None = None
+                          ) -> dict[int, dict[int, int]]:
+        """:meth:`alert_counts` of each of ``incident_ids`` (per incident id), in one query."""
+        since = "" if from_ts is None else " AND a.ts >= ?"
+        found = self.db.execute("SELECT a.incident_id, CAST(a.ts / ? AS INTEGER), COUNT(*) FROM alerts a "
+                                f"WHERE a.incident_id IN (SELECT value FROM json_each(?)){since} GROUP BY 1, 2",
+                                (bucket_s, dumps(incident_ids), *([] if from_ts is None else [from_ts])))
+        out: dict[int, dict[int, int]] = {i: {} for i in incident_ids}
+        for i, b, n in found:
+            if isinstance(b, int):  # (a damaged time is left out)
+                out[i][b] = n
+        return out
+
     def counts(self) -> dict[str, int]:
         return dict(self.db.execute("SELECT status, COUNT(*) FROM incidents GROUP BY status").fetchall())
 
@@ -359,11 +378,11 @@ class IncidentStore:
         """One incident with its representative alert (None when there is none with that id)."""
         if not storable_id(incident_id):
             return None
-        row = (db or self.db).execute(f"SELECT {_READ_COLUMNS}, representative FROM incidents WHERE id = ?",
+        row = (db or self.db).execute(f"SELECT {_LIST_COLUMNS}, representative FROM incidents WHERE id = ?",
                                       (incident_id,)).fetchone()
         if row is None:
             return None
-        out = self._row(row[:-1])
+        out = self._rated([self._row(row[:-1])], db)[0]
         try:
             out["representative"] = rows.alert(row[-1])
         except rows.Damaged as exc:
@@ -494,7 +513,7 @@ class IncidentStore:
         where, args = ("id = ?", (incident_id,)) if incident_id is not None else (
             "status IN ('open', 'acknowledged')" if firing else "1", ())
         out = []
-        for r in (db or self.db).execute(f"SELECT {_READ_COLUMNS}, {_from_representative('$.diff')} "
+        for r in (db or self.db).execute(f"SELECT {_LIST_COLUMNS}, {_from_representative('$.diff')} "
                                          f"FROM incidents WHERE {where} ORDER BY last_seen DESC, id DESC LIMIT ?",
                                          (*args, limit)):
             row = self._row(r[:-1])
@@ -503,7 +522,7 @@ class IncidentStore:
             except rows.Damaged as exc:
                 raise self._damaged(f"incident {row['id']}'s representative", exc) from exc
             out.append(row)
-        return out
+        return self._rated(out, db)
 
     def queue(self, incident_id: int, event: str, payload: dict, *, now: float, db: sqlite3.Connection) -> None:
         """Queue a notification (inside the transaction of the change that caused it)."""

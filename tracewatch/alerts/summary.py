@@ -190,7 +190,8 @@ def severity(alerts: int, share: float | None, sources: int) -> str:
 
 
 # the shortest window an incident's rate is measured over: its last RATE_MINUTES minutes at least,
-# so one alert reads "1 of 40 sessions in 10 min", not "1 of 1 in 1 min" (the store reads the same)
+# so one alert reads "1 of 40 sessions in 10 min", not "1 of 1 in 1 min" (the store counts the
+# sessions of the window rate_minutes gives)
 RATE_MINUTES = 10
 
 

@@ -50,7 +50,7 @@ import orjson
 from ..config import SourceConfig
 from ..records import Record, Rejection
 from ..timestamps import parse_timestamp
-from . import Format, Output, make_format
+from . import Format, Output, format_class, make_format
 
 HOLD_LINES = 1024  # complete lines that may wait behind an incomplete one
 BAD_LINE = "bad_container_line"
@@ -92,18 +92,30 @@ class _Piece:
         self.bad = bad  # why a line not of the format was rejected
 
 
+def _payload(src: SourceConfig) -> SourceConfig:
+    """The source options the payload's format reads the application lines with."""
+    return src.model_copy(update={"format": src.payload_format})
+
+
 class _ContainerFormat(Format):
     """Unwraps one runtime's lines; subclasses say how a line splits (:meth:`_split`)."""
 
+    reasons = ("empty", BAD_LINE, UNFINISHED, TOO_LONG)
+
     def __init__(self, src: SourceConfig) -> None:
         super().__init__(src)
-        self.inner = make_format(src.model_copy(update={"format": src.payload_format}))
+        self.inner = make_format(_payload(src))
         self.prefix_keys = src.container_key_prefix
         self.max_chars = src.max_line_bytes
         self.prefix: str | None = None
         self._open: dict[str, _Piece] = {}  # stream -> its incomplete line
         self._queue: deque[_Piece] = deque()  # lines in order of their first piece, not yet handed on
         self._times: dict[int, float | None] = {}  # offset -> runtime time, of lines the inner format holds
+
+    @classmethod
+    def reject_reasons(cls, src: SourceConfig) -> tuple[str, ...]:
+        inner = _payload(src)
+        return tuple(dict.fromkeys(cls.reasons + format_class(inner.format).reject_reasons(inner)))
 
     def dated_by(self, today) -> None:
         self.inner.dated_by(today)

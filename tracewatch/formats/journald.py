@@ -34,7 +34,7 @@ import orjson
 
 from ..config import SourceConfig
 from ..records import Record, Rejection
-from . import Format, Output, json_object
+from . import JSON_OBJECT_REASONS, Format, Output, json_object
 
 # RFC 5424 section 6.2.1 severities, as the syslog format names them (tracewatch/formats/syslog.py)
 SEVERITIES = ("emerg", "alert", "crit", "err", "warning", "notice", "info", "debug")
@@ -61,6 +61,7 @@ def field_text(value) -> tuple[str | None, bool]:
 
 class JournaldFormat(Format):
     name = "journald"
+    reasons = (*JSON_OBJECT_REASONS, ELIDED, INVALID_UTF8)
     samples = [
         ({"journal_key_fields": ["_SYSTEMD_UNIT", "_PID"]}, [
             '{"__CURSOR":"s=9f0c;i=1;b=2d1e;m=a1;t=5f2;x=11","__REALTIME_TIMESTAMP":"1764496800250000",'

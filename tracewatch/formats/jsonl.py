@@ -51,6 +51,7 @@ def _text(value) -> str | None:
 
 class JsonlFormat(Format):
     name = "jsonl"
+    reasons = ("empty", "bad_json", "not_an_object", "no_message_field")
     samples = [
         ({"session_key": "req"}, """\
 {"time": "2026-11-30T10:00:00.250Z", "level": "INFO", "req": "a1", "message": "door 5 opened"}
@@ -69,7 +70,7 @@ class JsonlFormat(Format):
         self._msg = _getter(src.message_field)
         self._key = _getter(src.session_key)
         self._ts = _getter(src.time_field)
-        self._stamps = StampReader(src.ts_format)  # the layout, chosen once per stream
+        self._stamps = StampReader(src.ts_format, self.now)  # the layout, chosen once per stream
         self._level = _getter(src.level_field)
         self._event = _getter(src.event_field)
         # top-level fields: the same lookup by itemgetter, for whole blocks (``_column``)
@@ -77,9 +78,6 @@ class JsonlFormat(Format):
                        (self._key, src.session_key), (self._ts, src.time_field),
                        (self._level, src.level_field), (self._event, src.event_field))
                        if type(g) is methodcaller}
-
-    def dated_by(self, today) -> None:
-        self._stamps.today = today
 
     def feed(self, line: str, offset: int) -> Output:
         if not line.strip():

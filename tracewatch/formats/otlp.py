@@ -107,6 +107,8 @@ def _depth_change(line: str) -> int:
 
 class OtlpJsonFormat(Format):
     name = "otlp-json"
+    reasons = ("empty", "bad_json", "not_an_object", "not_traces", SPAN_REASON, "document_too_large",
+               "truncated_document")
     by_time = True  # a trace's children are often exported before its root
     samples = [
         ({}, ['{"resourceSpans": [{"resource": {"attributes": [{"key": "service.name", "value": {"stringValue": "api"}}]},'

@@ -32,7 +32,7 @@ import orjson
 
 from ..config import SourceConfig
 from ..records import Record, Rejection
-from . import Format, Output, json_object
+from . import JSON_OBJECT_REASONS, Format, Output, json_object
 
 _HEX_ID = re.compile(r"[0-9a-fA-F]{32}")
 # OpenTelemetry logs data model, SeverityNumber ranges and their short names
@@ -100,6 +100,7 @@ def _level(rec: dict) -> str | None:
 
 class OtlpLogsJsonFormat(Format):
     name = "otlp-logs-json"
+    reasons = (*JSON_OBJECT_REASONS, "not_logs", "bad_log_record", "no_body")
     samples = [
         ({"log_key_attribute": "locker.id"}, [
             '{"resourceLogs": [{"resource": {"attributes": [{"key": "service.name", "value": {"stringValue": "api"}},'

@@ -27,9 +27,7 @@ interleave as the scheduler pleases, so for tree sessions order across processes
 from __future__ import annotations
 
 import re
-import time
-from collections.abc import Callable
-from datetime import datetime
+from datetime import datetime, timedelta
 
 from ..config import SourceConfig
 from ..records import Record, Rejection
@@ -38,6 +36,9 @@ from . import Format, Output
 FORKS = frozenset({"clone", "clone3", "fork", "vfork"})
 MAIN = "main"  # key of lines without a pid prefix
 MAX_TRACKED = 65_536  # processes with a call in flight / known roots; past it the oldest go
+# a first time of day up to this far past "now" is still of now's day (a writer's clock a little
+# ahead of the reader's; common practice), one further on was printed the day before
+AHEAD_S = 3600
 
 _PREFIX = re.compile(r"(?:\[pid +(\d+)\] |(\d+) +)?"
                      r"(?:(\d\d):(\d\d):(\d\d)(\.\d+)? |(\d{9,10}\.\d+) )?(.*)\Z", re.S)
@@ -59,6 +60,7 @@ def _errno(ret: str, rest: str) -> str | None:
 
 class StraceFormat(Format):
     name = "strace"
+    reasons = ("empty", "not_strace")
     samples = [
         ({}, ['openat(AT_FDCWD, "/etc/x", O_RDONLY) = -1 ENOENT (No such file or directory)',
               "[pid  4242] 10:00:00.123456 clone(child_stack=NULL, flags=SIGCHLD) = 4243",
@@ -70,10 +72,9 @@ class StraceFormat(Format):
          ["100 clone(child_stack=NULL) = 101", "101 getpid() = 101", "101 +++ killed by SIGKILL +++"]),
     ]
 
-    def __init__(self, src: SourceConfig, *, clock: Callable[[], float] = time.time) -> None:
+    def __init__(self, src: SourceConfig) -> None:
         super().__init__(src)
         self.tree = src.strace_session == "tree"
-        self.clock = clock
         self._unfinished: dict[str, tuple[str, str, float | None, int]] = {}  # pid -> name, line, ts, offset
         self._root: dict[str, str] = {}  # pid -> the pid that started its tree (tree mode)
         self._day: float | None = None  # -tt / -t: local midnight the times of day count from
@@ -81,14 +82,19 @@ class StraceFormat(Format):
 
     # -- time ---------------------------------------------------------------------------------
     def _time_of_day(self, h: str, m: str, s: str, frac: str | None) -> float | None:
-        """``-t``/``-tt`` print the local time of day: dated by the clock's day, rolling over to
-        the next day when the time goes back by more than twelve hours."""
+        """``-t``/``-tt`` print the local time of day: the first one is dated by the day of
+        :meth:`~tracewatch.formats.Format.now` (a replayed file's modification time, written
+        after its lines: the day before when the time of day is past now's), the next ones
+        roll over to the next day when the time goes back by more than twelve hours."""
         tod = int(h) * 3600 + int(m) * 60 + int(s) + (float(frac) if frac else 0.0)
         if tod >= 86400 + 1:
             return None
         if self._day is None:
-            now = datetime.fromtimestamp(self.clock())
-            self._day = now.replace(hour=0, minute=0, second=0, microsecond=0).timestamp()
+            now = datetime.fromtimestamp(self.now())
+            day = now.replace(hour=0, minute=0, second=0, microsecond=0)
+            if tod > (now - day).total_seconds() + AHEAD_S:
+                day -= timedelta(days=1)
+            self._day = day.timestamp()
         elif tod < self._last_tod - 43200:
             self._day += 86400
         self._last_tod = tod

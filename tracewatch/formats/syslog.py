@@ -20,8 +20,6 @@ structured data is counted by reason and the rest of the line is still used.
 from __future__ import annotations
 
 import re
-import time
-from collections.abc import Callable
 from dataclasses import dataclass
 from collections.abc import Sequence
 from datetime import datetime
@@ -182,6 +180,7 @@ def _checked(msg: SyslogMessage) -> SyslogMessage:
 
 class SyslogFormat(Format):
     name = "syslog"
+    reasons = ("empty", "not_syslog", "bad_structured_data", "bad_timestamp", "bad_pri")
     samples = [
         ({"session_field": "[req@32473 id]"},
          ['<134>1 2026-11-30T10:00:00.250Z locker-gw-3 locker-api 812 - [req@32473 id="a1"] door 5 opened',
@@ -195,9 +194,8 @@ class SyslogFormat(Format):
         ({"session_field": "procid"}, ["<13>1 2026-11-30T10:00:00Z gw app 4711 - - started"]),
     ]
 
-    def __init__(self, src: SourceConfig, *, clock: Callable[[], float] = time.time) -> None:
+    def __init__(self, src: SourceConfig) -> None:
         super().__init__(src)
-        self.clock = clock
         field = src.session_field
         self._header = field if field in HEADER_FIELDS else None
         sd = _SD_FIELD.fullmatch(field) if field and self._header is None else None
@@ -212,9 +210,6 @@ class SyslogFormat(Format):
                                    rf'{re.escape(sd.group(2))}="({_SD_VALUE})"(?: {_SD_NAME}="{_SD_VALUE}")*\]',
                                    re.S) if sd else None
         self._key_re = re.compile(src.session_key) if src.session_key else None
-
-    def dated_by(self, today) -> None:
-        self.clock = today  # a yearless RFC 3164 stamp is placed against it
 
     def _sd_key(self, sd_text: str) -> str | None:
         """The structured-data parameter ``session_field`` names, escapes resolved."""
@@ -279,7 +274,7 @@ class SyslogFormat(Format):
     def feed(self, line: str, offset: int) -> Output:
         if not line.strip():
             return [Rejection("empty", line)]
-        msg = parse(line, self.clock())
+        msg = parse(line, self.now())  # a yearless RFC 3164 stamp is placed against it
         if msg is None:
             rec = Record(self.source, self._key(None, line), None, None, line, line, offset)
             return [Rejection("not_syslog", line, rec)]

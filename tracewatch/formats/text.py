@@ -29,6 +29,7 @@ _group = re.Match.group
 
 class TextFormat(Format):
     name = "text"
+    reasons = ("empty", "no_match", "continuation_cap")
     samples = [
         ({"line_pattern": r"^(?P<ts>\S+) (?P<level>[A-Z]+) \[(?P<svc>[^\]]+)\] req=(?P<key>\S+) (?P<message>.*)$"},
          ["2026-11-30T00:00:00.931Z INFO [locker-api] req=c7f911dcb46060ee pickup code checked for parcel PX9 at LK-4",
@@ -53,12 +54,9 @@ class TextFormat(Format):
         self._key_group = self._key.groupindex["key"] if self._key is not None else 0
         self._cont = re.compile(src.continuation_pattern) if src.continuation_pattern else None
         self._cont_max = src.continuation_max
-        self._stamps = StampReader(src.ts_format)  # the layout, chosen once per stream
+        self._stamps = StampReader(src.ts_format, self.now)  # the layout, chosen once per stream
         self._pending: Record | None = None
         self._pending_lines = 0
-
-    def dated_by(self, today) -> None:
-        self._stamps.today = today
 
     # -- one line -----------------------------------------------------------------------------
     def _key_of(self, line: str) -> str | None:

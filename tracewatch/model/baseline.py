@@ -21,6 +21,7 @@ import numpy as np
 
 from ..errors import BaselineError
 from .arrays import Array
+from .calibrate import calibration_needed, calibration_size
 from .score import Result, Scorer, SessionScorer, make_scorer
 
 if TYPE_CHECKING:
@@ -177,13 +178,14 @@ class Baseline:
         from ..templates import SEVERE
 
         templates, n_seen, rate = self.miner.templates, self.miner.n_seen, self.false_alarm_rate
+        steady = {source: self.novelty_rate(source) <= rate for source in set(sources)}  # not drifting
         out = np.zeros(len(seqs), dtype=bool)
         for i, seq in enumerate(seqs):
             if max(seq) < n_seen:
                 continue
             # an index past the miner's templates (a refit gate's template id this baseline
             # does not know) has no level: it counts as severe, as every unseen event used to
-            out[i] = self.novelty_rate(sources[i]) <= rate or any(
+            out[i] = steady[sources[i]] or any(
                 e >= len(templates) or templates[e].severity >= SEVERE for e in seq if e >= n_seen)
         return out
 
@@ -320,7 +322,7 @@ def fit_baseline(sessions: list[tuple[str, Seq]], miner: TemplateTree, cfg: Conf
     rng = np.random.default_rng(mcfg.seed)
     suspects = _cross_fit(sessions, miner, cfg)
     order = np.array([i for i in rng.permutation(n) if i not in suspects], dtype=np.int64)
-    n_cal = max(1, int(round(len(order) * mcfg.calibration_fraction)))
+    n_cal = calibration_size(len(order), mcfg.calibration_fraction)
     cal_idx, train_idx = np.sort(order[:n_cal]), np.sort(order[n_cal:])
     baseline, model, distinct, weights = _build(sessions, train_idx, cal_idx, miner, cfg)
     baseline.shapes = _shapes(sessions)
@@ -375,7 +377,7 @@ def _cross_fit_round(sessions: list[tuple[str, Seq]], miner: TemplateTree, cfg: 
     fold_cfg = cfg.model_copy(update={"features": cfg.features.model_copy(update={"min_support": 1})})
     for f, held in enumerate(folds):
         rest = rng.permutation(np.concatenate([folds[g] for g in range(CROSS_FOLDS) if g != f]))
-        n_cal = max(1, int(round(len(rest) * cfg.model.calibration_fraction)))
+        n_cal = calibration_size(len(rest), cfg.model.calibration_fraction)
         model, *_ = _build(sessions, np.sort(rest[n_cal:]), np.sort(rest[:n_cal]), miner, fold_cfg)
         scorer = model.make_scorer()
         by_source: dict[str, list[int]] = {}
@@ -539,7 +541,7 @@ def _report(b: Baseline, model, cfg: Config, *, n: int, n_train: int, n_cal: int
         "unseen_weight": mcfg.unseen_weight,
         "settings": fit_settings(cfg),
     }
-    need = int(np.ceil(1 / mcfg.false_alarm_rate)) - 1
+    need = calibration_needed(mcfg.false_alarm_rate)
     # a conformal p-value is at least 1/(n+1): no rate below that can come from distance alone
     report["lowest_false_alarm_rate"] = round(1 / (n_cal + 1), 6)
     if mcfg.false_alarm_rate * (n_cal + 1) < 1 - 1e-9:  # the test ConformalThreshold.fit makes

@@ -14,6 +14,17 @@ import math
 import numpy as np
 
 
+def calibration_size(sessions: int, calibration_fraction: float) -> int:
+    """How many of ``sessions`` baseline sessions a fit holds out to calibrate on."""
+    return max(1, int(round(sessions * calibration_fraction)))
+
+
+def calibration_needed(false_alarm_rate: float) -> int:
+    """The fewest calibration sessions that can give ``false_alarm_rate``: the lowest p-value of
+    n of them is 1/(n + 1), so n ≥ 1/rate − 1."""
+    return int(math.ceil(1 / false_alarm_rate)) - 1
+
+
 class Calibration:
     """Conformal calibration over scores (one nonconformity score per session, higher = more
     anomalous), with numpy alone: ``calibrate(calibration_scores)`` stores them sorted as

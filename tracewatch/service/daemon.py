@@ -40,7 +40,7 @@ from ..baselines import baselines_dir, load_baseline, load_baseline_dir
 from ..model.baseline import drift_warning
 from ..config import Config
 from ..errors import BaselineError, InputError, StateError
-from ..pipeline import UNTIMED, Pipeline, problem_line
+from ..pipeline import Pipeline, Problem, problem_line
 from ..sessions import LiveTime
 from ..sources.checkpoint import AlertJournal, capture_chunks, load_checkpoint, restore, save_checkpoint
 from ..sources.follow import Follower, Watcher, watch_dirs
@@ -290,11 +290,12 @@ class Daemon:
         """One warning line per source whose keyed records came without a usable time since its
         last warning, at most every ``UNTIMED_WARN_S`` (the line ``score`` prints at its end)."""
         now = self.monotonic()
-        for source, what, count, total in self.pipe.input_problems():
-            when, before = self._untimed_warned.get(source, (None, 0))
-            if what == UNTIMED and count > before and (when is None or now - when >= UNTIMED_WARN_S):
-                log.warning("%s", problem_line(self.pipe, source, what, count, total))
-                self._untimed_warned[source] = (now, count)
+        for problem in self.pipe.input_problems():
+            when, before = self._untimed_warned.get(problem.source, (None, 0))
+            if (problem.kind is Problem.UNTIMED and problem.count > before
+                    and (when is None or now - when >= UNTIMED_WARN_S)):
+                log.warning("%s", problem_line(self.pipe, problem))
+                self._untimed_warned[problem.source] = (now, problem.count)
 
     def _checkpoint(self) -> None:
         """Score what is closed, make the journal durable, then save everything (lock held)."""

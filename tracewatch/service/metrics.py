@@ -13,6 +13,7 @@ The snapshot is a dict with these keys (all optional):
 
     records, lines, sessions_scored, untimed {source: n}
     rejected, repaired, alerts               {(source, reason): n}
+    reject_reasons                           {source: (reason, ...)} its format's rejection reasons
     sessions_open, sessions_evicted, baseline_reload_failures, alerts_replayed,
     alert_lines_damaged                      int
     baseline_version                         str
@@ -26,7 +27,7 @@ The snapshot is a dict with these keys (all optional):
     notifications                            {sink: {"sent", "rejected", "retried", "pending"}}
 
 Every series whose labels are known in advance exists from the start, at zero: per configured
-source (and per alert reason, per repair reason), per incident status, per configured sink — so
+source (and per alert reason, per repair reason, per rejection reason of its format), per incident status, per configured sink — so
 rules and dashboards see a 0, not an absent series, before the first alert or notification.
 """
 
@@ -57,9 +58,9 @@ _BY_SOURCE = (
     ("untimed", "tracewatch_records_untimed_total",
      "Records with a session key but no usable time (check the source's ts_format)."),
 )
-_BY_REASON = (  # key, name, help, the reasons known in advance (each format has rejection reasons of its own)
+_BY_REASON = (  # key, name, help, the reasons known in advance (None: each source's format's own)
     ("rejected", "tracewatch_records_rejected_total",
-     "Lines a format could not read as intended (most are still kept as whole-line records).", ()),
+     "Lines a format could not read as intended (most are still kept as whole-line records).", None),
     ("repaired", "tracewatch_lines_repaired_total",
      "Lines decoded with replacement characters or truncated to max_line_bytes.", (INVALID_UTF8, LINE_TOO_LONG)),
     ("alerts", "tracewatch_alerts_total", "Alerts raised, by reason (an alert may have several).",
@@ -97,7 +98,8 @@ class _SnapshotCollector(Collector):
             yield fam
         for key, name, doc, known in _BY_REASON:
             fam = CounterMetricFamily(name, doc, labels=["source", "reason"])
-            zeros = {(source, reason): 0 for source in sources for reason in known}
+            zeros = {(source, reason): 0 for source in sources
+                     for reason in (known if known is not None else snap.get("reject_reasons", {}).get(source, ()))}
             for (source, reason), n in sorted({**zeros, **snap.get(key, {})}.items()):
                 fam.add_metric([source, reason], n)
             yield fam
