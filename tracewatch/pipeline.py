@@ -57,6 +57,7 @@ class InputProblem(NamedTuple):
 _UNTIMED_TEXT = "records with a session key carry no usable time"
 _HINTS = {Problem.REJECTED: " (check format and line_pattern)", Problem.UNTIMED: " (check ts_format)"}
 
+
 class Pipeline:
     def __init__(self, cfg: Config, baseline: Baseline | None = None, *,
                  on_verdict: Callable[[dict], None] | None = None, score_all: bool = False,
