@@ -614,8 +614,7 @@ def _report(b: Baseline, model, cfg: Config, *, n: int, n_train: int, n_cal: int
         report["notes"].append(
             f"false_alarm_rate={mcfg.false_alarm_rate} is below the lowest rate {n_cal} calibration sessions "
             f"can give (1/{n_cal + 1} = {1 / (n_cal + 1):.4g}), so only never-seen events raise alerts: "
-            f"fit on at least {need} calibration sessions (more baseline sessions, or a higher "
-            f"calibration_fraction than {mcfg.calibration_fraction})")
+            f"fit on at least {need} baseline sessions (every one is already scored for calibration)")
     for src, share in b.novelty.items():
         if src != POOLED and share > mcfg.false_alarm_rate:
             report["notes"].append(

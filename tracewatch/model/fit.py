@@ -41,16 +41,6 @@ SEED_ROWS = 3072  # rows the k-means++ seedings are drawn from (sklearn's defaul
 EPOCHS = 2  # passes of mini-batches over the shuffled rows
 SEARCH_ROWS = 50_000  # streaming k search: on this many sessions drawn ∝ weight, not on every row
 CHUNK_ROWS = 8192  # rows per block in the assignment passes: CHUNK_ROWS × k floats at a time
-# A cluster's spread: the distance from its centre within which this share of its sessions lie
-# (our rule, measured with bench/k_swing.py on the bike-dock scenario, k = chosen − 1 .. + 1 under
-# three seeds, 3000 normal sessions, asked rate 0.005, i.e. 15 expected false alarms). The
-# weighted mean member distance shrinks on a cluster whose sessions mostly sit on its centre, so
-# its one common edge shape (about 1% of traffic) outscored every rarer normal session and the
-# threshold fell inside that shape's tie: 0–16 false alarms, none on 3 of 9 fits. With the
-# 0.9-quantile only a cluster's outer tenth scores above 1, the top 0.5% are the rare shapes of
-# every cluster: 3–19. The median behaved like the mean (0–14); 0.99 put each cluster's farthest
-# common shape at exactly 1, one large tie again (no false alarm in 30,000 sessions on 6 of 9 fits).
-SPREAD_QUANTILE = 0.9
 
 
 def kneedle(ks: np.ndarray, inertia: np.ndarray) -> int:
@@ -191,19 +181,11 @@ def _minibatch(X, w: np.ndarray, k: int, restarts: int, seed: int, init: np.ndar
     return _Fit(km.cluster_centers_, labels, inertia)
 
 
-def weighted_quantile(x: np.ndarray, w: np.ndarray, q: float) -> float:
-    """The smallest value of ``x`` with at least ``q`` of the weight ``w`` at or below it (the
-    q-quantile of the sessions the rows stand for; numpy's "inverted_cdf" on the expanded data)."""
-    order = np.argsort(x, kind="stable")
-    cum = np.cumsum(w[order])
-    return float(x[order][min(len(x) - 1, int(np.searchsorted(cum, q * cum[-1] * (1 - 1e-12))))])
-
-
 class ClusterModel(ClusterMixin, BaseEstimator):
     """k-means baseline, a scikit-learn clusterer.
 
     After ``fit(X, sample_weight=...)`` (``X``: session vectors, one row per distinct session): ``cluster_centers_`` (dense, contamination removed),
-    ``spreads_`` (the weighted ``SPREAD_QUANTILE`` of member distances, floored), ``cluster_weights_``,
+    ``spreads_`` (weighted mean member distance, floored), ``cluster_weights_``,
     ``medoids_`` (row index of each cluster's representative), ``labels_`` (per row, -1 for
     contamination), ``curve_`` (k, inertia, silhouette), ``k_``, ``contamination_``,
     ``streaming_`` (whether mini-batches were used), ``silhouette_rows_`` (distinct rows the
@@ -323,7 +305,7 @@ class ClusterModel(ClusterMixin, BaseEstimator):
         for c in range(len(keep)):
             rows = np.flatnonzero(self.labels_ == c)
             dc = own[rows]
-            spreads.append(weighted_quantile(dc, w[rows], SPREAD_QUANTILE))
+            spreads.append(float(np.sum(dc * w[rows]) / np.sum(w[rows])))
             medoids.append(int(rows[np.argmin(dc)]))
         spreads = np.array(spreads)
         # The least spread (our rule): a cluster of one distinct session has spread 0, so the

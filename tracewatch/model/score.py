@@ -96,9 +96,8 @@ class Scorer:
 
 
 class CentroidScorer(Scorer):
-    """Nearest centre in units of its cluster's spread (``spreads_``: the distance within which
-    nine tenths of the cluster's sessions lie, floored: tracewatch/model/fit.py), plus
-    ``unseen_weight`` × the unseen share."""
+    """Nearest centre in units of its cluster's spread (``spreads_``: the clusters' weighted mean
+    member distance, floored), plus ``unseen_weight`` × the unseen share."""
 
     name = "centroid"
     arrays = (Array("spreads", "<f8", ("K",), low=SPREAD_FLOOR, high=2.0),)  # unit vectors: ≤ √2 apart
