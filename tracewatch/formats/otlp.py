@@ -249,23 +249,23 @@ class OtlpJsonFormat(Format):
                     found = [x for x in found if isinstance(x, dict)]
                 spans += found
                 services += [service] * len(found)
-        starts = _uint64s(list(map(_get("startTimeUnixNano"), spans)))
+        starts = _uint64s(_column(spans, "startTimeUnixNano"))
         order = sorted(range(len(spans)), key=starts.__getitem__)  # stable: ties keep document order
         if len(order) > 1 and order != list(range(len(spans))):
             pick = itemgetter(*order)  # reordered in C
             spans, services, starts = (list(pick(col)) for col in (spans, services, starts))
         raws = list(map(bytes.decode, map(orjson.dumps, spans)))
-        tids = _once_each(_trace_id, list(map(_get("traceId"), spans)))
-        names = list(map(_get("name"), spans))
+        tids = _once_each(_trace_id, _column(spans, "traceId"))
+        names = _column(spans, "name")
         if None in tids or set(map(type, names)) != {str} or "" in names:
             keep = [i for i, (tid, name) in enumerate(zip(tids, names)) if tid is not None and isinstance(name, str)
                     and name]
             bad += [Rejection(SPAN_REASON, raws[i]) for i in sorted(set(range(len(spans))) - set(keep))]
             spans, services, starts, raws, tids, names = ([col[i] for i in keep] for col in
                                                           (spans, services, starts, raws, tids, names))
-        kinds = _enums(list(map(_get("kind"), spans)), _KIND_NAMES)
-        statuses = list(map(_get("status"), spans))
-        codes = (_enums(list(map(_get("code"), statuses)), _STATUS_NAMES) if set(map(type, statuses)) == {dict}
+        kinds = _enums(_column(spans, "kind"), _KIND_NAMES)
+        statuses = _column(spans, "status")
+        codes = (_enums(_column(statuses, "code"), _STATUS_NAMES) if set(map(type, statuses)) == {dict}
                  else list(map(_status_code, statuses)))
         errors = list(map(STATUS_ERROR.__eq__, codes))
         events = list(map(":".join, zip(*(self._part(p, services, kinds, names, errors) for p in self.parts
@@ -315,8 +315,13 @@ _LEVEL = {True: "ERROR", False: None}
 _ERROR_PART = {True: "ERROR", False: None}
 
 
-def _get(field: str):
-    return methodcaller("get", field)
+def _column(objects: list[dict], field: str) -> list:
+    """``obj.get(field)`` of every object, in C: by ``itemgetter`` while every one has the field
+    (the usual case, and about twice as quick), else by ``dict.get``."""
+    try:
+        return list(map(itemgetter(field), objects))
+    except KeyError:
+        return list(map(methodcaller("get", field), objects))
 
 
 def _uint64s(values: list) -> list[int]:
