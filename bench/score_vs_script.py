@@ -62,15 +62,19 @@ SOURCES = {
     "syslog": 'format = "syslog"\nsession_field = "[req@32473 id]"\n',
     "otlp-json": 'format = "otlp-json"\n',
 }
-# what limits each shape: py-spy's top own-time entries on the 1M-line day (bench/run.py
-# --profile fills this column afresh); see bench/README.md
+# what limits each shape: the slower of the two processes of a batch run (the reader parsing
+# ahead, sources/ahead.py, and the main one mining, sessionizing, scoring), by their CPU seconds
+# on the 1M-line day (bench/run.py --profile fills this column afresh from py-spy of the main
+# process); see bench/README.md
 LIMITS = {
-    KEY_IN_PATTERN: "the line regex and its group columns; template cache lookups; the sessionizer loop",
-    "text, session_key regex": "as above, plus the session_key search in every line and coarse template keys "
-                               "for every message (each holds its request id)",
-    "jsonl": "orjson.loads: a dict and five strings per line",
-    "syslog": "the RFC 5424 regex per line (structured data checked), the structured-data key search",
-    "otlp-json": "decoding each export and re-encoding each span as its raw text (orjson); per-span Python",
+    KEY_IN_PATTERN: "the main process (2.4 s CPU: template cache lookups, the sessionizer loop, scoring); "
+                    "the reader 1.4 s",
+    "text, session_key regex": "the main process (3.3 s CPU: as above plus coarse template keys for every "
+                               "message, each holding its request id); the reader 1.6 s",
+    "jsonl": "the main process (2.4 s CPU); the reader 1.5 s (orjson.loads: a dict and five strings per line)",
+    "syslog": "both alike (2.3 s CPU each); the reader: the RFC 5424 regex, structured data checked",
+    "otlp-json": "the reader (3.1 s CPU: decoding each export, per-span columns, each span's raw text "
+                 "re-encoded and sent on); the main process 2.3 s",
 }
 
 

@@ -265,8 +265,12 @@ class OtlpJsonFormat(Format):
                                                           (spans, services, starts, raws, tids, names))
         kinds = _enums(_column(spans, "kind"), _KIND_NAMES)
         statuses = _column(spans, "status")
-        codes = (_enums(_column(statuses, "code"), _STATUS_NAMES) if set(map(type, statuses)) == {dict}
-                 else list(map(_status_code, statuses)))
+        if not any(statuses):  # no status set (an unset one is left out or empty, as proto3 JSON does)
+            codes = [0] * len(spans)
+        elif set(map(type, statuses)) == {dict}:
+            codes = _enums(_column(statuses, "code"), _STATUS_NAMES)
+        else:
+            codes = list(map(_status_code, statuses))
         errors = list(map(STATUS_ERROR.__eq__, codes))
         events = list(map(":".join, zip(*(self._part(p, services, kinds, names, errors) for p in self.parts
                                            if p != "status"))))
