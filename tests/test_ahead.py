@@ -11,6 +11,7 @@ from pathlib import Path
 
 import pytest
 
+from tracewatch.baselines import load_baseline
 from tracewatch.batch import assign_sources, run_files
 from tracewatch.config import load_config
 from tracewatch.errors import InputError
@@ -101,8 +102,6 @@ def test_output_buffered_before_the_fork_is_written_once(tmp_path):
 
 
 def _scored(cfg, path: Path, ahead: bool) -> tuple[list, Counter]:
-    from tracewatch.baselines import load_baseline
-
     verdicts: list = []
     pipe = Pipeline(cfg, load_baseline(cfg.state_dir, None), on_verdict=verdicts.append, score_all=True)
     run_files(pipe, assign_sources(cfg, [str(path)]), ahead=ahead)
@@ -121,6 +120,22 @@ def test_a_score_read_ahead_is_the_score_read_here(fitted, tmp_path):
     there, counts_there = _scored(cfg, day, ahead=True)
     assert len(here) > 50 and here == there
     assert counts_here == counts_there and counts_here[("api", "invalid_utf8")] == 1
+
+
+def test_files_merged_by_time_read_ahead_score_as_read_here(fitted, tmp_path):
+    """Several files are merged by record time (batch.TimeMerge); the order the reader picks
+    blocks in comes from the times the format read, so it is the same in the child."""
+    root, cfg_path, _, lines, _ = fitted
+    cfg = load_config(cfg_path)
+    parts = [tmp_path / f"host{i}.log" for i in range(3)]
+    for i, path in enumerate(parts):
+        path.write_text("\n".join(lines[i::3]) + "\n")
+    verdicts = {}
+    for ahead in (False, True):
+        pipe = Pipeline(cfg, load_baseline(cfg.state_dir, None), on_verdict=verdicts.setdefault(ahead, []).append,
+                        score_all=True)
+        run_files(pipe, assign_sources(cfg, [str(p) for p in parts]), ahead=ahead)
+    assert len(verdicts[False]) > 50 and verdicts[True] == verdicts[False]
 
 
 def test_line_numbers_read_ahead_are_the_ones_read_here(fitted):

@@ -95,10 +95,11 @@ def run_files(pipeline: Pipeline, pairs: list[tuple[str, Path]], *,
     """Feed every file to the pipeline, then flush it; ``on_block`` sees the stream and the
     line offsets of every block read, before the pipeline does, ``on_bytes`` the bytes of every
     read. Several files are read merged by record time (:class:`TimeMerge`), as the daemon sees
-    them arrive; one file, or ``templates`` (with ``on_block``) one after another in input order,
-    is read and parsed ahead in a process of its own (``ahead``: sources/ahead.py)."""
+    them arrive; ``templates`` (with ``on_block``) reads them one after another, in input order.
+    Either way the files are read and parsed ahead in a process of its own (``ahead``:
+    sources/ahead.py)."""
     if len(pairs) > 1 and on_block is None:
-        TimeMerge(pipeline, pairs, on_bytes).run()
+        TimeMerge(pipeline, pairs, on_bytes, ahead=ahead).run()
         return
     for source, path in pairs:
         stream = str(path)
@@ -135,15 +136,40 @@ class TimeMerge:
     takes the time of the record before it in its file), and idle sessions are closed by the
     merged clock. Memory stays about one block per file. Each file must be roughly in time order
     on its own, as logs are; a record older than what was already released is taken late, as
-    the daemon would take it."""
+    the daemon would take it. The reading, in that order, and the format stage run ahead in a
+    process of their own (:meth:`blocks`)."""
 
-    def __init__(self, pipeline: Pipeline, pairs: list[tuple[str, Path]], on_bytes: OnBytes = None) -> None:
+    def __init__(self, pipeline: Pipeline, pairs: list[tuple[str, Path]], on_bytes: OnBytes = None, *,
+                 ahead: bool = CAN_FORK) -> None:
         self.pipeline = pipeline
-        self.files = [(source, str(path), read_blocks(path, pipeline.cfg.source(source).line_limit, on_bytes))
-                      for source, path in pairs]
-        self.newest = {stream: float("-inf") for _, stream, _ in self.files}  # newest time read
+        self.pairs = pairs
+        self.on_bytes = on_bytes
+        self.ahead = ahead
+        self.newest = {str(path): float("-inf") for _, path in pairs}  # newest time read
         self.waiting: dict[str, list[tuple]] = {}  # source -> (sort time, seq, row)
         self._seq = 0
+
+    def blocks(self) -> Iterator[tuple[str, str, Formatted, int, bool]]:
+        """The files' blocks through the format stage in merge order — ``(source, stream, what
+        the format made of the block, bytes read, whether the file ended)`` — choosing by the
+        times the format read, so it needs nothing of the later stages (run ahead)."""
+        pipeline, read = self.pipeline, []
+        newest = dict(self.newest)
+        files = [(source, str(path), read_blocks(path, pipeline.cfg.source(source).line_limit, read.append))
+                 for source, path in self.pairs]
+        while files:
+            i = min(range(len(files)), key=lambda j: newest[files[j][1]])
+            source, stream, blocks = files[i]
+            block = next(blocks, None)
+            if block is None:
+                del files[i]
+                yield source, stream, pipeline.format_end(source, stream), sum(read), True
+            else:
+                formatted = pipeline.format_block(source, stream, *block)
+                newest[stream] = max((t for cols in formatted.parts for t in cols.times if t is not None),
+                                     default=newest[stream])
+                yield source, stream, formatted, sum(read), False
+            read.clear()
 
     def hold(self, source: str, stream: str, rows: tuple) -> None:
         last = self.newest[stream]
@@ -174,18 +200,16 @@ class TimeMerge:
         pipeline = self.pipeline
         pipeline.hold = self.hold
         try:
-            open_files = list(self.files)
-            while open_files:
-                i = min(range(len(open_files)), key=lambda j: self.newest[open_files[j][1]])
-                source, stream, blocks = open_files[i]
-                block = next(blocks, None)
-                if block is None:
+            open_streams = [str(path) for _, path in self.pairs]
+            for source, stream, formatted, n_bytes, ended in read_ahead(self.blocks, in_child=self.ahead):
+                if self.on_bytes is not None:
+                    self.on_bytes(n_bytes)
+                pipeline.take(source, stream, formatted)
+                if ended:
                     pipeline.end_stream(source, stream)
-                    del open_files[i]
-                else:
-                    pipeline.feed_block(source, stream, *block)
-                if open_files:
-                    self.release(min(self.newest[s] for _, s, _ in open_files))
+                    open_streams.remove(stream)
+                if open_streams:
+                    self.release(min(self.newest[s] for s in open_streams))
             self.release(float("inf"))
         finally:
             pipeline.hold = None
