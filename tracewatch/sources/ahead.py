@@ -3,10 +3,11 @@
 Stage: **sources** (batch) → formats. A batch run (``fit``, ``score``, ``templates``) spends a
 third to two thirds of its time reading and parsing lines, work that needs nothing from the
 stages after it. :func:`read_ahead` runs a generator of such work in a child process forked for
-one file, one item ahead of the caller, so the parsing of the next block overlaps the mining,
-sessions and scoring of this one on a second core. The child is a fork of the caller: it runs
-the caller's own objects (its pipeline's formats), so both processes run one code path, and the
-items come back pickled through a pipe, whose buffer is what bounds the memory in between.
+the run's files, up to ``AHEAD`` items ahead of the caller, so the parsing of the next blocks
+overlaps the mining, sessions and scoring of this one on a second core. The child is a fork of
+the caller: it runs the caller's own objects (its pipeline's formats), so both processes run one
+code path, and the items come back pickled through a pipe; the bounded queue they wait in on
+the caller's side is what bounds the memory in between.
 
 Where ``os.fork`` is missing (or not safe: only Linux is trusted here) the generator simply
 runs in the caller's process; the items are the same either way (``tests/test_ahead.py``).
@@ -16,7 +17,6 @@ one-line message); a child that dies without a word is reported as an internal e
 
 from __future__ import annotations
 
-import fcntl
 import gc
 import os
 import pickle
@@ -103,9 +103,11 @@ def _widen(fd: int) -> None:
     """A pipe buffer of the largest size allowed (1 MiB by default, against 64 KiB): a block's
     items cross in a few writes instead of one wake-up of each side per 64 KiB."""
     try:
+        import fcntl  # Unix only, as fork is
+
         with open("/proc/sys/fs/pipe-max-size") as fh:
             fcntl.fcntl(fd, fcntl.F_SETPIPE_SZ, int(fh.read()))
-    except (OSError, ValueError, AttributeError):
+    except (ImportError, OSError, ValueError, AttributeError):
         pass  # the default buffer works, only with more wake-ups
 
 
