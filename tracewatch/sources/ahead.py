@@ -71,7 +71,7 @@ def read_ahead(produce: Callable[[], Iterator[T]], *, in_child: bool = CAN_FORK)
             data = waiting.get()
             if data is None:
                 raise ReaderDied("the reading process ended without a word")
-            kind, value = pickle.loads(data)
+            kind, value = pickle.loads(data)  # the pipe's only writer is this process's own fork
             if kind == _END:
                 return
             if kind == _ERROR:
