@@ -20,14 +20,15 @@ from .incident_data import toy_alert
 
 @pytest.fixture
 def filled(tmp_path):
-    """A config, and a store with two incidents: one 2 hours old, one 10 minutes old."""
+    """A config, and a store with two incidents: one about 2 hours old, one 10 minutes old."""
     cfg_path = tmp_path / "tw.toml"
     cfg_path.write_text('state_dir = "state"\n[[sources]]\nname = "api"\n')
     store = IncidentStore.open(tmp_path / "state")
     tracker = IncidentTracker(store, parse_config({}).incidents)
     now = time.time()
+    old = (now - 7200) // 60 * 60 + 20  # 20 s into a minute: its three alerts share one minute's bar
     for n in range(3):
-        tracker.add(toy_alert(f"old{n}", "A", t=now - 7200 + n))
+        tracker.add(toy_alert(f"old{n}", "A", t=old + n))
     tracker.add(toy_alert("new", "B", t=now - 600, samples=["\x1b[31mred\x1b[0m <b>bold</b>"]))
     yield cfg_path, store
     store.close()
