@@ -4,6 +4,7 @@ errors and the same results as reading in the caller's process; no child left be
 from __future__ import annotations
 
 import os
+import signal
 import subprocess
 import sys
 from collections import Counter
@@ -18,7 +19,7 @@ from tracewatch.errors import InputError
 from tracewatch.pipeline import Pipeline
 from tracewatch.sources.ahead import CAN_FORK, ReaderDied, read_ahead
 
-from .conftest import ROOT
+from .conftest import ROOT, wait_for
 from .daemon_helpers import fitted  # noqa: F401
 
 pytestmark = pytest.mark.skipif(not CAN_FORK, reason="reading ahead forks, which tracewatch does on Linux only")
@@ -147,3 +148,45 @@ def test_line_numbers_read_ahead_are_the_ones_read_here(fitted):
         run_files(Pipeline(cfg), assign_sources(cfg, [str(base)]), ahead=ahead,
                   on_block=lambda stream, offsets, ahead=ahead: seen[ahead].extend(offsets))
     assert len(seen[True]) == len(base.read_text().splitlines()) and seen[True] == seen[False]
+
+
+def _pid_children(pid: int) -> set[int]:
+    out: set[int] = set()
+    for task in os.listdir(f"/proc/{pid}/task"):
+        out.update(int(p) for p in Path(f"/proc/{pid}/task/{task}/children").read_text().split())
+    return out
+
+
+def _gone(pid: int) -> bool:
+    try:
+        state = Path(f"/proc/{pid}/stat").read_text().rsplit(")", 1)[1].split()[0]
+    except (FileNotFoundError, ProcessLookupError):
+        return True
+    return state == "Z"  # a zombie: exited, waiting for whoever reaps it
+
+
+@pytest.mark.parametrize("how", ["ctrl-c", "parent-killed"])
+def test_stopping_a_batch_run_leaves_no_reader(fitted, tmp_path, how):
+    """A real `tracewatch score` interrupted while its reader runs: Ctrl-C (SIGINT to the
+    process group, as a terminal sends it) ends both with exit code 130 and no traceback; a
+    parent killed outright (SIGKILL) leaves a reader that ends as soon as it next writes."""
+    root, cfg_path, _, lines, _ = fitted
+    big = tmp_path / "big.log"
+    big.write_text("\n".join(lines * 600) + "\n")  # long enough to be stopped halfway
+    proc = subprocess.Popen([sys.executable, "-m", "tracewatch", "score", "--config", str(cfg_path), str(big)],
+                            cwd=ROOT, env=dict(os.environ, PYTHONPATH=str(ROOT)), stdout=subprocess.DEVNULL,
+                            stderr=subprocess.PIPE, text=True, start_new_session=True)
+    try:
+        reader = next(iter(wait_for(lambda: _pid_children(proc.pid), 120, what="the reader process")))
+        if how == "ctrl-c":
+            os.killpg(proc.pid, signal.SIGINT)
+            assert proc.wait(timeout=60) == 130
+            assert "Traceback" not in proc.stderr.read()
+        else:
+            os.kill(proc.pid, signal.SIGKILL)
+            proc.wait(timeout=60)
+        wait_for(lambda: _gone(reader), 60, what="the reader to end")
+    finally:
+        if proc.poll() is None:
+            proc.kill()
+            proc.wait()
