@@ -25,12 +25,12 @@ from .daemon_helpers import fitted  # noqa: F401
 pytestmark = pytest.mark.skipif(not CAN_FORK, reason="reading ahead forks, which tracewatch does on Linux only")
 
 
-def _children() -> set[int]:
-    """This process's live (or not yet reaped) child processes, from /proc."""
-    me = os.getpid()
+def _children(pid: int | None = None) -> set[int]:
+    """A process's (this one's) live or not yet reaped child processes, from /proc."""
+    pid = os.getpid() if pid is None else pid
     out: set[int] = set()
-    for task in os.listdir(f"/proc/{me}/task"):
-        out.update(int(p) for p in Path(f"/proc/{me}/task/{task}/children").read_text().split())
+    for task in os.listdir(f"/proc/{pid}/task"):
+        out.update(int(p) for p in Path(f"/proc/{pid}/task/{task}/children").read_text().split())
     return out
 
 
@@ -150,13 +150,6 @@ def test_line_numbers_read_ahead_are_the_ones_read_here(fitted):
     assert len(seen[True]) == len(base.read_text().splitlines()) and seen[True] == seen[False]
 
 
-def _pid_children(pid: int) -> set[int]:
-    out: set[int] = set()
-    for task in os.listdir(f"/proc/{pid}/task"):
-        out.update(int(p) for p in Path(f"/proc/{pid}/task/{task}/children").read_text().split())
-    return out
-
-
 def _gone(pid: int) -> bool:
     try:
         state = Path(f"/proc/{pid}/stat").read_text().rsplit(")", 1)[1].split()[0]
@@ -177,7 +170,7 @@ def test_stopping_a_batch_run_leaves_no_reader(fitted, tmp_path, how):
                             cwd=ROOT, env=dict(os.environ, PYTHONPATH=str(ROOT)), stdout=subprocess.DEVNULL,
                             stderr=subprocess.PIPE, text=True, start_new_session=True)
     try:
-        reader = next(iter(wait_for(lambda: _pid_children(proc.pid), 120, what="the reader process")))
+        reader = next(iter(wait_for(lambda: _children(proc.pid), 120, what="the reader process")))
         if how == "ctrl-c":
             os.killpg(proc.pid, signal.SIGINT)
             assert proc.wait(timeout=60) == 130
