@@ -15,7 +15,7 @@ import pytest
 from tracewatch.baselines import load_baseline
 from tracewatch.batch import assign_sources, run_files
 from tracewatch.config import load_config
-from tracewatch.errors import InputError
+from tracewatch.errors import ConfigError, InputError
 from tracewatch.pipeline import Pipeline
 from tracewatch.sources.ahead import CAN_FORK, ReaderDied, read_ahead
 
@@ -36,7 +36,7 @@ def _children(pid: int | None = None) -> set[int]:
 
 def _blocks(n: int):
     for i in range(n):
-        yield i, "x" * i, [float(i)] * 3
+        yield [i, "x" * i, [float(i) / 3] * 3, None]
 
 
 def test_the_child_gives_the_items_the_caller_would():
@@ -89,7 +89,7 @@ def test_a_child_that_dies_without_a_word_is_an_error_not_the_end_of_the_input()
 def test_a_caller_that_stops_early_leaves_no_child():
     before = _children()
     items = read_ahead(lambda: _blocks(10_000), in_child=True)
-    assert next(items) == (0, "", [0.0] * 3)
+    assert next(items) == [0, "", [0.0] * 3, None]
     items.close()
     assert _children() == before
 
@@ -183,3 +183,14 @@ def test_stopping_a_batch_run_leaves_no_reader(fitted, tmp_path, how):
         if proc.poll() is None:
             proc.kill()
             proc.wait()
+
+
+def test_an_error_crosses_by_name_only_for_tracewatch_errors():
+    """The child hands an error over as a class name and a message (plain JSON): only names of
+    tracewatch's own errors come back as those errors; anything else is a ReaderDied."""
+    from tracewatch.sources.ahead import _error
+
+    err = _error("ConfigError", "config: bad key")
+    assert type(err) is ConfigError and str(err) == "config: bad key" and err.exit_code == 2
+    for name in ("RuntimeError", "system", "__class__", "ReaderDied"):
+        assert type(_error(name, "text")) is ReaderDied

@@ -16,6 +16,8 @@ from itertools import repeat
 from operator import itemgetter
 from pathlib import Path
 
+import orjson
+
 from .config import Config
 from .errors import ConfigError, InputError
 from .pipeline import Formatted, Pipeline, problem_line
@@ -103,7 +105,8 @@ def run_files(pipeline: Pipeline, pairs: list[tuple[str, Path]], *,
         return
     for source, path in pairs:
         stream = str(path)
-        for offsets, formatted, n_bytes in read_ahead(partial(_formatted, pipeline, source, path), in_child=ahead):
+        for formatted, offsets, n_bytes in read_ahead(partial(_formatted, pipeline, source, path), _encode, _decode,
+                                                      in_child=ahead):
             if on_bytes is not None:
                 on_bytes(n_bytes)
             if on_block is not None and offsets:
@@ -113,14 +116,25 @@ def run_files(pipeline: Pipeline, pairs: list[tuple[str, Path]], *,
     pipeline.flush()
 
 
-def _formatted(pipeline: Pipeline, source: str, path: Path) -> Iterator[tuple[list[int], Formatted, int]]:
-    """The format stage of one file, block by block — ``(line offsets, what the format made of
-    the lines, bytes read)`` — and at its end what the format still held."""
+def _formatted(pipeline: Pipeline, source: str, path: Path) -> Iterator[tuple[Formatted, list[int], int]]:
+    """The format stage of one file, block by block — ``(what the format made of the lines,
+    their offsets, bytes read)`` — and at its end what the format still held."""
     stream, read = str(path), []
     for lines, offsets, repairs in read_blocks(path, pipeline.cfg.source(source).line_limit, read.append):
-        yield offsets, pipeline.format_block(source, stream, lines, offsets, repairs), sum(read)
+        yield pipeline.format_block(source, stream, lines, offsets, repairs), offsets, sum(read)
         read.clear()
-    yield [], pipeline.format_end(source, stream), sum(read)
+    yield pipeline.format_end(source, stream), [], sum(read)
+
+
+def _encode(item: tuple) -> bytes:
+    """A reader's item — a :class:`Formatted` first, then plain values — as JSON."""
+    return orjson.dumps([item[0].plain(), *item[1:]])
+
+
+def _decode(data) -> tuple:
+    """:func:`_encode` read back."""
+    first, *rest = orjson.loads(data)
+    return Formatted.from_plain(first), *rest
 
 
 class TimeMerge:
@@ -149,9 +163,9 @@ class TimeMerge:
         self.waiting: dict[str, list[tuple]] = {}  # source -> (sort time, seq, row)
         self._seq = 0
 
-    def blocks(self) -> Iterator[tuple[str, str, Formatted, int, bool]]:
-        """The files' blocks through the format stage in merge order — ``(source, stream, what
-        the format made of the block, bytes read, whether the file ended)`` — choosing by the
+    def blocks(self) -> Iterator[tuple[Formatted, str, str, int, bool]]:
+        """The files' blocks through the format stage in merge order — ``(what the format made of
+        the block, source, stream, bytes read, whether the file ended)`` — choosing by the
         times the format read, so it needs nothing of the later stages (run ahead)."""
         pipeline, read = self.pipeline, []
         newest = dict(self.newest)
@@ -163,12 +177,12 @@ class TimeMerge:
             block = next(blocks, None)
             if block is None:
                 del files[i]
-                yield source, stream, pipeline.format_end(source, stream), sum(read), True
+                yield pipeline.format_end(source, stream), source, stream, sum(read), True
             else:
                 formatted = pipeline.format_block(source, stream, *block)
                 newest[stream] = max((t for cols in formatted.parts for t in cols.times if t is not None),
                                      default=newest[stream])
-                yield source, stream, formatted, sum(read), False
+                yield formatted, source, stream, sum(read), False
             read.clear()
 
     def hold(self, source: str, stream: str, rows: tuple) -> None:
@@ -201,7 +215,8 @@ class TimeMerge:
         pipeline.hold = self.hold
         try:
             open_streams = [str(path) for _, path in self.pairs]
-            for source, stream, formatted, n_bytes, ended in read_ahead(self.blocks, in_child=self.ahead):
+            for formatted, source, stream, n_bytes, ended in read_ahead(self.blocks, _encode, _decode,
+                                                                        in_child=self.ahead):
                 if self.on_bytes is not None:
                     self.on_bytes(n_bytes)
                 pipeline.take(source, stream, formatted)

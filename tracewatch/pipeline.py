@@ -38,6 +38,16 @@ class Formatted(NamedTuple):
     repairs: list[str]  # how each mended line was mended when decoded (``invalid_utf8``, ...)
     parts: list[Columns]  # the records and rejections, ``TICK_EVERY`` lines at a time
 
+    def plain(self) -> list:
+        """JSON-ready (what crosses the pipe of sources/ahead.py)."""
+        return [self.lines, self.repairs, [c.plain() for c in self.parts]]
+
+    @classmethod
+    def from_plain(cls, data: list) -> "Formatted":
+        """:meth:`plain` read back."""
+        lines, repairs, parts = data
+        return cls(lines, repairs, [Columns.from_plain(p) for p in parts])
+
 
 class Problem(enum.Enum):
     """What an input problem (:meth:`Pipeline.input_problems`) is about."""

@@ -43,6 +43,7 @@ class Rejection:
 
 
 _FIELDS = ("key", "ts", "level", "message", "event", "raw", "offset")
+_RECORD = Record.__slots__  # its fields in the order Record() takes them
 
 
 @dataclass(slots=True)
@@ -73,6 +74,19 @@ class Columns:
         """The rows as records again (tools and tests)."""
         return list(map(Record, repeat(source), self.keys, self.times, self.levels, self.messages, self.raws,
                         self.offsets, self.events))
+
+    def plain(self) -> list:
+        """The columns as plain lists, JSON-ready (what crosses the pipe of sources/ahead.py)."""
+        return [self.keys, self.times, self.levels, self.messages, self.events, self.raws, self.offsets,
+                [[r.reason, r.raw, None if r.record is None else list(map(getattr, repeat(r.record), _RECORD))]
+                 for r in self.rejected]]
+
+    @classmethod
+    def from_plain(cls, data: list) -> "Columns":
+        """:meth:`plain` read back."""
+        *columns, rejected = data
+        return cls(*columns, [Rejection(reason, raw, None if rec is None else Record(*rec))
+                              for reason, raw, rec in rejected])
 
     def extend(self, other: "Columns") -> None:
         """Append another block's rows and rejections."""

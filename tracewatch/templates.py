@@ -82,7 +82,8 @@ _ID_RUN = re.compile(rb"(?<![0-9a-fA-F-])[a-fA-F-]*+[0-9][0-9a-fA-F-]*+")
 # _WORD_CLASS (numpy, as byte sets) are built from these two classes.
 _TWO_BEFORE, _ONE_BEFORE = "[A-Za-z]", "[a-z]"
 _NAME_DIGIT = f"{_TWO_BEFORE}{_ONE_BEFORE}[0-9]"
-_LETTER, _LOWER = (frozenset(c for c in range(256) if re.fullmatch(cls, chr(c))) for cls in (_TWO_BEFORE, _ONE_BEFORE))
+_LETTER, _LOWER = (frozenset(c for c in range(256) if re.fullmatch(cls, chr(c)))
+                   for cls in (_TWO_BEFORE, _ONE_BEFORE))
 
 
 def _collapse_run(run: re.Match) -> bytes:

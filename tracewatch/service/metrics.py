@@ -27,8 +27,9 @@ The snapshot is a dict with these keys (all optional):
     notifications                            {sink: {"sent", "rejected", "retried", "pending"}}
 
 Every series whose labels are known in advance exists from the start, at zero: per configured
-source (and per alert reason, per repair reason, per rejection reason of its format), per incident status, per configured sink — so
-rules and dashboards see a 0, not an absent series, before the first alert or notification.
+source (and per alert reason, per repair reason, per rejection reason of its format), per incident
+status, per configured sink — so rules and dashboards see a 0, not an absent series, before the
+first alert or notification.
 """
 
 from __future__ import annotations

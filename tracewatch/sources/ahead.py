@@ -6,8 +6,9 @@ stages after it. :func:`read_ahead` runs a generator of such work in a child pro
 the run's files, up to ``AHEAD`` items ahead of the caller, so the parsing of the next blocks
 overlaps the mining, sessions and scoring of this one on a second core. The child is a fork of
 the caller: it runs the caller's own objects (its pipeline's formats), so both processes run one
-code path, and the items come back pickled through a pipe; the bounded queue they wait in on
-the caller's side is what bounds the memory in between.
+code path, and the items come back through a pipe as JSON (orjson: plain data, never anything a
+reader could be made to run, unlike pickle); the bounded queue they wait in on the caller's side
+is what bounds the memory in between.
 
 Where ``os.fork`` is missing (or not safe: only Linux is trusted here) the generator simply
 runs in the caller's process; the items are the same either way (``tests/test_ahead.py``).
@@ -19,7 +20,6 @@ from __future__ import annotations
 
 import gc
 import os
-import pickle
 import queue
 import signal
 import sys
@@ -29,6 +29,9 @@ from collections.abc import Callable, Iterator
 from multiprocessing.connection import Connection
 from typing import TypeVar
 
+import orjson
+
+from .. import errors
 from ..errors import TracewatchError
 
 T = TypeVar("T")
@@ -37,7 +40,8 @@ T = TypeVar("T")
 # is not safe, and a spawned child would start over without the caller's objects
 CAN_FORK = hasattr(os, "fork") and sys.platform.startswith("linux")
 
-_ITEM, _END, _ERROR = 0, 1, 2
+# what a message on the pipe is: its first byte
+_ITEM, _END, _ERROR = b"i", b"e", b"x"
 AHEAD = 8  # items the child may have sent that the caller has not taken yet (each one block)
 
 
@@ -45,8 +49,11 @@ class ReaderDied(RuntimeError):
     """The child process reading ahead failed outside tracewatch's own errors."""
 
 
-def read_ahead(produce: Callable[[], Iterator[T]], *, in_child: bool = CAN_FORK) -> Iterator[T]:
-    """The items of ``produce()``, computed in a forked child process (``in_child``) or here."""
+def read_ahead(produce: Callable[[], Iterator[T]], encode: Callable[[T], bytes] = orjson.dumps,
+               decode: Callable[[bytes], T] = orjson.loads, *, in_child: bool = CAN_FORK) -> Iterator[T]:
+    """The items of ``produce()``, computed in a forked child process (``in_child``) and handed
+    over as ``decode(encode(item))`` (JSON by default), or computed here and handed over as
+    they are."""
     if not in_child:
         yield from produce()
         return
@@ -58,7 +65,7 @@ def read_ahead(produce: Callable[[], Iterator[T]], *, in_child: bool = CAN_FORK)
     if pid == 0:  # the child: produce, send, and leave without running the caller's clean-up
         os.close(read_fd)
         gc.freeze()  # the caller's objects are never scanned here, so their pages stay shared
-        _produce(produce, Connection(write_fd, readable=False))
+        _produce(produce, encode, Connection(write_fd, readable=False))
     os.close(write_fd)
     conn = Connection(read_fd, writable=False)
     # a thread takes the items off the pipe as they come (reading releases the GIL), so the
@@ -71,12 +78,12 @@ def read_ahead(produce: Callable[[], Iterator[T]], *, in_child: bool = CAN_FORK)
             data = waiting.get()
             if data is None:
                 raise ReaderDied("the reading process ended without a word")
-            kind, value = pickle.loads(data)  # the pipe's only writer is this process's own fork
+            kind = data[:1]
             if kind == _END:
                 return
             if kind == _ERROR:
-                raise value
-            yield value
+                raise _error(*orjson.loads(memoryview(data)[1:]))
+            yield decode(memoryview(data)[1:])
     finally:
         try:
             os.kill(pid, signal.SIGKILL)  # done or given up: it holds nothing worth finishing
@@ -111,22 +118,34 @@ def _widen(fd: int) -> None:
         pass  # the default buffer works, only with more wake-ups
 
 
-def _produce(produce: Callable[[], Iterator], conn: Connection) -> None:
+def _produce(produce: Callable[[], Iterator], encode: Callable[[object], bytes], conn: Connection) -> None:
     code = 0
     try:
         for item in produce():
-            conn.send((_ITEM, item))
-        conn.send((_END, None))
+            conn.send_bytes(_ITEM + encode(item))
+        conn.send_bytes(_END)
     except BrokenPipeError:  # the caller stopped reading
         code = 1
     except BaseException as exc:  # noqa: BLE001 - every failure is handed to the caller
         code = 1
-        # a tracewatch error as it is (its message is the user's answer), anything else with
+        # a tracewatch error by its class and message (the user's answer), anything else with
         # the child's traceback, which the caller's own would not show
-        sent = exc if isinstance(exc, TracewatchError) else ReaderDied("".join(traceback.format_exception(exc)))
+        sent = ([type(exc).__name__, str(exc)] if isinstance(exc, TracewatchError)
+                else [ReaderDied.__name__, "".join(traceback.format_exception(exc))])
         try:
-            conn.send((_ERROR, sent))
+            conn.send_bytes(_ERROR + orjson.dumps(sent))
         except Exception:  # noqa: BLE001 - the caller sees the pipe close
             pass
     finally:
         os._exit(code)
+
+
+def _error(name: str, message: str) -> Exception:
+    """The caller's copy of an error the child met: the tracewatch error of that class, with
+    its message (only names of tracewatch's own errors are taken), or :class:`ReaderDied`."""
+    cls = getattr(errors, name, None)
+    if not (isinstance(cls, type) and issubclass(cls, TracewatchError)):
+        return ReaderDied(message)
+    exc = cls.__new__(cls)
+    exc.args = (message,)
+    return exc
