@@ -158,28 +158,49 @@ def _gone(pid: int) -> bool:
     return state == "Z"  # a zombie: exited, waiting for whoever reaps it
 
 
-@pytest.mark.parametrize("how", ["ctrl-c", "parent-killed"])
-def test_stopping_a_batch_run_leaves_no_reader(fitted, tmp_path, how):
+def _score(cfg_path, path) -> subprocess.Popen:
+    return subprocess.Popen([sys.executable, "-m", "tracewatch", "score", "--config", str(cfg_path), str(path)],
+                            cwd=ROOT, env=dict(os.environ, PYTHONPATH=str(ROOT)), stdout=subprocess.DEVNULL,
+                            stderr=subprocess.PIPE, text=True, start_new_session=True)
+
+
+def test_ctrl_c_ends_a_batch_run_and_its_reader(fitted, tmp_path):
     """A real `tracewatch score` interrupted while its reader runs: Ctrl-C (SIGINT to the
-    process group, as a terminal sends it) ends both with exit code 130 and no traceback; a
-    parent killed outright (SIGKILL) leaves a reader that ends as soon as it next writes."""
+    process group, as a terminal sends it) ends both, with exit code 130 and no traceback."""
     root, cfg_path, _, lines, _ = fitted
     big = tmp_path / "big.log"
     big.write_text("\n".join(lines * 600) + "\n")  # long enough to be stopped halfway
-    proc = subprocess.Popen([sys.executable, "-m", "tracewatch", "score", "--config", str(cfg_path), str(big)],
-                            cwd=ROOT, env=dict(os.environ, PYTHONPATH=str(ROOT)), stdout=subprocess.DEVNULL,
-                            stderr=subprocess.PIPE, text=True, start_new_session=True)
+    proc = _score(cfg_path, big)
     try:
         reader = next(iter(wait_for(lambda: _children(proc.pid), 120, what="the reader process")))
-        if how == "ctrl-c":
-            os.killpg(proc.pid, signal.SIGINT)
-            assert proc.wait(timeout=60) == 130
-            assert "Traceback" not in proc.stderr.read()
-        else:
-            os.kill(proc.pid, signal.SIGKILL)
-            proc.wait(timeout=60)
+        os.killpg(proc.pid, signal.SIGINT)
+        assert proc.wait(timeout=60) == 130
+        assert "Traceback" not in proc.stderr.read()
         wait_for(lambda: _gone(reader), 60, what="the reader to end")
     finally:
+        if proc.poll() is None:
+            proc.kill()
+            proc.wait()
+
+
+def test_a_parent_killed_outright_takes_its_reader_with_it(fitted, tmp_path):
+    """The input is a pipe whose writer stays quiet after a few lines, so the reader waits on
+    it and would never learn by writing that its parent is gone; killed with the parent
+    (PR_SET_PDEATHSIG), it ends at once."""
+    root, cfg_path, _, lines, _ = fitted
+    fifo = tmp_path / "live.log"
+    os.mkfifo(fifo)
+    proc = _score(cfg_path, fifo)
+    writer = open(fifo, "w")  # noqa: SIM115 - held open, quiet, until the end of the test
+    try:
+        writer.write("\n".join(lines[:50]) + "\n")
+        writer.flush()
+        reader = next(iter(wait_for(lambda: _children(proc.pid), 120, what="the reader process")))
+        os.kill(proc.pid, signal.SIGKILL)
+        proc.wait(timeout=60)
+        wait_for(lambda: _gone(reader), 10, what="the reader to end with its parent")
+    finally:
+        writer.close()
         if proc.poll() is None:
             proc.kill()
             proc.wait()

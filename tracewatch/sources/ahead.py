@@ -13,11 +13,14 @@ is what bounds the memory in between.
 Where ``os.fork`` is missing (or not safe: only Linux is trusted here) the generator simply
 runs in the caller's process; the items are the same either way (``tests/test_ahead.py``).
 An error in the child reaches the caller as the same exception (a tracewatch error keeps its
-one-line message); a child that dies without a word is reported as an internal error.
+one-line message); a child that dies without a word is reported as an internal error; a caller
+that stops early kills its child, and a caller killed outright takes it along (Linux's
+parent-death signal).
 """
 
 from __future__ import annotations
 
+import ctypes
 import gc
 import os
 import queue
@@ -42,6 +45,7 @@ CAN_FORK = hasattr(os, "fork") and sys.platform.startswith("linux")
 
 # what a message on the pipe is: its first byte
 _ITEM, _END, _ERROR = b"i", b"e", b"x"
+_PR_SET_PDEATHSIG = 1  # linux/prctl.h
 AHEAD = 8  # items the child may have sent that the caller has not taken yet (each one block)
 
 
@@ -61,19 +65,30 @@ def read_ahead(produce: Callable[[], Iterator[T]], encode: Callable[[T], bytes] 
     sys.stderr.flush()
     read_fd, write_fd = os.pipe()
     _widen(write_fd)
+    parent = os.getpid()
+    # Ctrl-C is held back across the fork: the child must never take one (it is the caller's
+    # to handle, and ends the child), the caller takes it once its clean-up below is in place
+    mask = signal.pthread_sigmask(signal.SIG_BLOCK, {signal.SIGINT})
     pid = os.fork()
     if pid == 0:  # the child: produce, send, and leave without running the caller's clean-up
-        os.close(read_fd)
-        gc.freeze()  # the caller's objects are never scanned here, so their pages stay shared
-        _produce(produce, encode, Connection(write_fd, readable=False))
-    os.close(write_fd)
-    conn = Connection(read_fd, writable=False)
-    # a thread takes the items off the pipe as they come (reading releases the GIL), so the
-    # child runs up to AHEAD items ahead rather than one pipe buffer
-    waiting: queue.Queue[bytes | None] = queue.Queue(AHEAD)
-    pump = threading.Thread(target=_pump, args=(conn, waiting), name="tracewatch-read-ahead", daemon=True)
-    pump.start()
+        try:
+            signal.signal(signal.SIGINT, signal.SIG_IGN)
+            signal.pthread_sigmask(signal.SIG_SETMASK, mask)
+            os.close(read_fd)
+            _die_with(parent)
+            gc.freeze()  # the caller's objects are never scanned here, so their pages stay shared
+            _produce(produce, encode, Connection(write_fd, readable=False))
+        finally:
+            os._exit(1)  # (_produce leaves by os._exit itself)
+    conn, pump = Connection(read_fd, writable=False), None
     try:
+        os.close(write_fd)
+        signal.pthread_sigmask(signal.SIG_SETMASK, mask)
+        # a thread takes the items off the pipe as they come (reading releases the GIL), so the
+        # child runs up to AHEAD items ahead rather than one pipe buffer
+        waiting: queue.Queue[bytes | None] = queue.Queue(AHEAD)
+        pump = threading.Thread(target=_pump, args=(conn, waiting), name="tracewatch-read-ahead", daemon=True)
+        pump.start()
         while True:
             data = waiting.get()
             if data is None:
@@ -90,7 +105,7 @@ def read_ahead(produce: Callable[[], Iterator[T]], encode: Callable[[T], bytes] 
         except ProcessLookupError:
             pass
         os.waitpid(pid, 0)
-        while pump.is_alive():  # it ends at the end of the pipe: room for its last item
+        while pump is not None and pump.is_alive():  # it ends at the end of the pipe: room for its last item
             try:
                 waiting.get(timeout=0.05)
             except queue.Empty:
@@ -104,6 +119,19 @@ def _pump(conn: Connection, waiting: queue.Queue) -> None:
             waiting.put(conn.recv_bytes())
     except (EOFError, OSError):
         waiting.put(None)
+
+
+def _die_with(parent: int) -> None:
+    """Ask Linux to kill this child when its parent dies (``prctl(PR_SET_PDEATHSIG)``,
+    prctl(2)): a parent killed outright must not leave a reader behind, even one waiting on an
+    input that stays quiet (a pipe), which would never find out by writing."""
+    try:
+        libc = ctypes.CDLL(None, use_errno=True)
+        libc.prctl(_PR_SET_PDEATHSIG, signal.SIGKILL)
+    except (OSError, AttributeError):
+        return  # without it, the reader still ends at its next write to the closed pipe
+    if os.getppid() != parent:  # the parent died before the request took hold
+        os._exit(1)
 
 
 def _widen(fd: int) -> None:
